@@ -1,0 +1,3 @@
+"""sqlmatch: observational-study matching compiled to SQL and run in the warehouse."""
+
+__version__ = "0.1.0"

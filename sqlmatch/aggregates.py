@@ -1,0 +1,133 @@
+"""Turn the aggregate query results into the inputs of estimators and balance diagnostics.
+
+Column names follow the templates: `<feature>__sum`, `<outcome>__sumsq`, ... Everything here
+works on a handful of rows per group or stratum.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from sqlmatch.balance import GroupMoments, compare
+from sqlmatch.engines.base import QueryResult
+from sqlmatch.estimate.att import StratumMoments
+from sqlmatch.estimate.ratio import RatioSums
+from sqlmatch.results import BalanceRow
+
+
+def _f(x) -> float:
+    return math.nan if x is None else float(x)
+
+
+def _opt(x: float) -> float | None:
+    return None if x is None or not math.isfinite(x) else x
+
+
+def _by_group(result: QueryResult) -> dict[int, dict]:
+    return {int(r["treated"]): r for r in result.records()}
+
+
+def numeric_balance(result: QueryResult, features: list[str]) -> list[BalanceRow]:
+    groups = _by_group(result)
+    t, c = groups.get(1, {}), groups.get(0, {})
+    rows = []
+    for f in features:
+        values = {_f(t.get(f"{f}__min")), _f(t.get(f"{f}__max")), _f(c.get(f"{f}__min")), _f(c.get(f"{f}__max"))}
+        binary = values <= {0.0, 1.0}
+        before = compare(
+            GroupMoments(_f(t.get(f"{f}__n")), _f(t.get(f"{f}__n")), _f(t.get(f"{f}__sum")), _f(t.get(f"{f}__sumsq"))),
+            GroupMoments(_f(c.get(f"{f}__n")), _f(c.get(f"{f}__n")), _f(c.get(f"{f}__sum")), _f(c.get(f"{f}__sumsq"))),
+            binary,
+        )
+        after = compare(
+            GroupMoments(_f(t.get(f"{f}__w")), _f(t.get(f"{f}__w2")), _f(t.get(f"{f}__wsum")), _f(t.get(f"{f}__wsumsq"))),
+            GroupMoments(_f(c.get(f"{f}__w")), _f(c.get(f"{f}__w2")), _f(c.get(f"{f}__wsum")), _f(c.get(f"{f}__wsumsq"))),
+            binary,
+        )
+        rows.append(_row(f, "binary" if binary else "numeric", before, after))
+    return rows
+
+
+def level_balance(result: QueryResult) -> list[BalanceRow]:
+    """Each level of a categorical feature is compared as a 0/1 indicator (binary SMD)."""
+    records = result.records()
+    totals: dict[tuple[str, int], list[float]] = {}
+    for r in records:
+        key = (r["feature"], int(r["treated"]))
+        tot = totals.setdefault(key, [0.0, 0.0])
+        tot[0] += float(r["n_units"])
+        tot[1] += float(r["sum_w"] or 0.0)
+    cells = {(r["feature"], r["level"], int(r["treated"])): r for r in records}
+    rows = []
+    for feature, level in sorted({(r["feature"], r["level"]) for r in records}):
+        stats = []
+        for weighted in (False, True):
+            moments = []
+            for g in (1, 0):
+                cell = cells.get((feature, level, g))
+                n_total, w_total = totals.get((feature, g), [0.0, 0.0])
+                if weighted:
+                    share = float(cell["sum_w"] or 0.0) if cell else 0.0
+                    moments.append(GroupMoments(w_total, math.nan, share, share))
+                else:
+                    share = float(cell["n_units"]) if cell else 0.0
+                    moments.append(GroupMoments(n_total, n_total, share, share))
+            stats.append(compare(moments[0], moments[1], binary=True))
+        rows.append(_row(f"{feature}={level}", "level", stats[0], stats[1]))
+    return rows
+
+
+def _row(name: str, kind: str, before, after) -> BalanceRow:
+    return BalanceRow(
+        covariate=name,
+        kind=kind,
+        mean_treated_before=_opt(before.mean_treated),
+        mean_control_before=_opt(before.mean_control),
+        smd_before=_opt(before.smd),
+        variance_ratio_before=_opt(before.variance_ratio),
+        mean_treated_after=_opt(after.mean_treated),
+        mean_control_after=_opt(after.mean_control),
+        smd_after=_opt(after.smd),
+        variance_ratio_after=_opt(after.variance_ratio),
+    )
+
+
+def _aligned(result: QueryResult) -> tuple[list[dict], list[dict]]:
+    """Treated and control rows per stratum, in stratum order; a missing group is a zero row."""
+    by_stratum: dict[int, dict[int, dict]] = {}
+    for r in result.records():
+        by_stratum.setdefault(int(r["stratum"]), {})[int(r["treated"])] = r
+    strata = sorted(by_stratum)
+    return [by_stratum[s].get(1, {}) for s in strata], [by_stratum[s].get(0, {}) for s in strata]
+
+
+def outcome_moments(result: QueryResult, outcome: str) -> tuple[StratumMoments, StratumMoments]:
+    treated, control = _aligned(result)
+
+    def moments(rows):
+        return StratumMoments.of(
+            [_f(r.get("n_units", 0)) for r in rows],
+            [_f(r.get(f"{outcome}__sum", 0.0)) for r in rows],
+            [_f(r.get(f"{outcome}__sumsq", 0.0)) for r in rows],
+        )
+
+    return moments(treated), moments(control)
+
+
+def ratio_sums(result: QueryResult, outcome: str) -> tuple[RatioSums, RatioSums]:
+    treated, control = _aligned(result)
+
+    def sums(rows):
+        get = lambda key: np.array([_f(r.get(key, 0.0)) for r in rows])  # noqa: E731
+        return RatioSums(
+            n=np.array([_f(r.get("n_units", 0)) for r in rows]),
+            sum_y=get(f"{outcome}__sum_y"),
+            sum_x=get(f"{outcome}__sum_x"),
+            sum_yy=get(f"{outcome}__sumsq_y"),
+            sum_xx=get(f"{outcome}__sumsq_x"),
+            sum_xy=get(f"{outcome}__sum_xy"),
+        )
+
+    return sums(treated), sums(control)

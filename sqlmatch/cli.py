@@ -1,0 +1,91 @@
+"""Command line: argument parsing only; the work is done by sqlmatch.api."""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from pathlib import Path
+
+from sqlmatch import api
+from sqlmatch.dialects import DIALECTS, check_dialect
+from sqlmatch.errors import SqlmatchError
+from sqlmatch.runner import Progress
+
+
+def _parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(
+        prog="sqlmatch",
+        description="Observational-study matching compiled to SQL and run in the warehouse; only aggregates come back.",
+    )
+    sub = p.add_subparsers(dest="command", required=True)
+
+    c = sub.add_parser("compile", help="write the study's SQL plan as numbered .sql files and a manifest")
+    c.add_argument("spec", help="study spec (.toml)")
+    c.add_argument("--dialect", default="duckdb", help=f"target SQL dialect: {', '.join(DIALECTS)} (default duckdb)")
+    c.add_argument("--out", required=True, help="folder for the .sql files and manifest.json")
+
+    r = sub.add_parser("run", help="run the study in the warehouse and write results.json and report.md")
+    r.add_argument("spec", help="study spec (.toml)")
+    r.add_argument("--out", required=True, help="folder for results.json and report.md")
+    r.add_argument("--database", help="DuckDB file holding the tables (overrides study.database)")
+    r.add_argument("--cohort", help="enrolment month to study, YYYY-MM (overrides treatment.cohort)")
+    r.add_argument("--method", help="matching method (overrides matching.method); see `sqlmatch methods`")
+    r.add_argument("--quiet", action="store_true", help="no progress lines on stderr")
+
+    d = sub.add_parser("demo", help="build the bike-share demo warehouse and run the demo study end to end")
+    d.add_argument("--out", required=True, help="folder for the demo database, compiled SQL, results.json and report.md")
+    d.add_argument("--riders", type=int, default=20_000, help="number of riders to simulate (default 20000; trips are about 20x)")
+    d.add_argument("--seed", type=int, default=20260301, help="seed of the simulation")
+    d.add_argument("--quiet", action="store_true", help="no progress lines on stderr")
+
+    sub.add_parser("methods", help="list the matching methods")
+    return p
+
+
+def main(argv: list[str] | None = None) -> int:
+    args = _parser().parse_args(argv)
+    try:
+        return _dispatch(args)
+    except SqlmatchError as err:
+        print(f"sqlmatch: error: {err}", file=sys.stderr)
+        return err.exit_code
+    except KeyboardInterrupt:
+        print("sqlmatch: interrupted; the study's work tables were dropped.", file=sys.stderr)
+        return 130
+
+
+def _dispatch(args) -> int:
+    if args.command == "methods":
+        from sqlmatch.matching import describe
+
+        for name, text in describe():
+            print(f"{name:<18} {text}")
+        return 0
+    if args.command == "compile":
+        dialect = check_dialect(args.dialect)
+        spec = api.load(args.spec)
+        plan = api.compile_plan(spec, dialect)
+        written = api.write_plan(plan, args.out)
+        print(f"sqlmatch: wrote {len(written)} files to {args.out}")
+        return 0
+    if args.command == "run":
+        spec = api.load(args.spec)
+        if args.cohort or args.method:
+            spec = spec.with_overrides(cohort=args.cohort, method=args.method)
+        results = api.run(spec, database=args.database, progress=Progress(quiet=args.quiet))
+        paths = api.write_results(results, args.out)
+        print(f"sqlmatch: wrote {', '.join(str(p) for p in paths)}")
+        return 0
+    if args.command == "demo":
+        from sqlmatch.demo_run import run_demo
+
+        if args.riders < 500:
+            raise SqlmatchError("--riders: the demo needs at least 500 riders to have a cohort worth matching.")
+        results, paths = run_demo(Path(args.out), riders=args.riders, seed=args.seed, progress=Progress(quiet=args.quiet))
+        print(f"sqlmatch: wrote {', '.join(str(p) for p in paths)}")
+        return 0
+    raise AssertionError(args.command)  # argparse guarantees a known command
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

@@ -1,0 +1,62 @@
+"""The engine interface. Adapters are the only code that talks to a database.
+
+An adapter executes statements, returns the (small) result of aggregate queries, and reads
+the catalog for preflight checks. It counts every result row it hands to Python in
+`rows_fetched`, so a run can prove it never pulled row-level data.
+"""
+
+from __future__ import annotations
+
+from abc import ABC, abstractmethod
+from dataclasses import dataclass
+
+
+@dataclass(frozen=True)
+class QueryResult:
+    columns: tuple[str, ...]
+    rows: tuple[tuple, ...]
+
+    def records(self) -> list[dict]:
+        return [dict(zip(self.columns, row)) for row in self.rows]
+
+    def one(self) -> dict:
+        if len(self.rows) != 1:
+            raise ValueError(f"expected one row, got {len(self.rows)}")
+        return dict(zip(self.columns, self.rows[0]))
+
+
+class Engine(ABC):
+    dialect: str = ""
+
+    def __init__(self) -> None:
+        self.rows_fetched = 0
+
+    @abstractmethod
+    def execute(self, sql: str) -> None:
+        """Run one statement that returns nothing of interest."""
+
+    @abstractmethod
+    def _query(self, sql: str, params: tuple = ()) -> QueryResult: ...
+
+    def fetch(self, sql: str, params: tuple = ()) -> QueryResult:
+        """Run a query and return its rows, counting them."""
+        result = self._query(sql, params)
+        self.rows_fetched += len(result.rows)
+        return result
+
+    @abstractmethod
+    def columns(self, schema: str | None, table: str) -> dict[str, str] | None:
+        """Column name -> type of a table, or None when the table does not exist."""
+
+    @abstractmethod
+    def table_names(self, schema: str) -> list[str]:
+        """Tables in a schema (used to find a study's leftover work tables)."""
+
+    def close(self) -> None:  # pragma: no cover - adapters override when they hold resources
+        pass
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()

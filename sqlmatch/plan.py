@@ -1,0 +1,286 @@
+"""The plan: the one place that knows the pipeline's order.
+
+A plan is an ordered list of named SQL steps, each saying what it reads and writes. Table
+steps write a work table (DROP + CREATE TABLE AS); query steps return aggregates to Python.
+The plan is pure: compiling it never touches a database, and compiling twice gives the same
+bytes.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import json
+from dataclasses import dataclass, field
+
+from sqlglot import exp
+
+from sqlmatch import dialects, render
+from sqlmatch.matching import method_for
+from sqlmatch.spec import Spec, last_period_start
+
+MANIFEST_VERSION = 1
+_KIND_TEXT = {"setup": "prepares the work schema", "table": "writes a table", "query": "returns aggregates to sqlmatch"}
+
+
+@dataclass(frozen=True)
+class Step:
+    name: str
+    kind: str  # "setup": prepares the schema; "table": writes a work table; "query": returns aggregates
+    purpose: str
+    reads: tuple[str, ...]
+    writes: tuple[str, ...]
+    statements: tuple[str, ...]
+
+
+@dataclass(frozen=True)
+class MeasureColumn:
+    """One per-unit aggregate of events in a window (rendered by _macros.event_aggregate)."""
+
+    name: str
+    agg: str
+    start: dt.date
+    end: dt.date
+    fill: float
+    measure: str | None = None
+
+
+@dataclass(frozen=True)
+class OutcomeColumns:
+    name: str
+    kind: str  # continuous | binary | ratio
+    num: str | None = None
+    den: str | None = None
+
+
+@dataclass
+class PlanContext:
+    """What templates of every step may use: the spec, dialect and work-table names."""
+
+    spec: Spec
+    dialect: str
+    tables: dict[str, str] = field(default_factory=dict)  # logical name -> quoted SQL name
+    table_names: dict[str, str] = field(default_factory=dict)  # logical name -> schema.table (display)
+
+    def table(self, logical: str) -> str:
+        if logical not in self.tables:
+            name = f"{self.spec.name}_{logical}"
+            self.tables[logical] = render.work_table_sql(self.spec.work_schema, name)
+            self.table_names[logical] = f"{self.spec.work_schema}.{name}"
+        return self.tables[logical]
+
+    def display(self, logical: str) -> str:
+        self.table(logical)
+        return self.table_names[logical]
+
+    def table_node(self, logical: str) -> exp.Table:
+        return exp.to_table(self.table(logical), dialect=render.SOURCE_DIALECT)
+
+    # -- building steps from templates
+
+    def table_step(self, name: str, template: str, writes: str, reads: list[str], purpose: str, **context) -> Step:
+        sql, written_in = render.render(template, self.dialect, **context)
+        (query,) = dialects.parse(sql, written_in)
+        statements = dialects.create_table_as(self.table_node(writes), query)
+        return Step(
+            name=name,
+            kind="table",
+            purpose=purpose,
+            reads=tuple(reads),
+            writes=(self.display(writes),),
+            statements=tuple(dialects.generate(s, self.dialect) for s in statements),
+        )
+
+    def query_step(self, name: str, template: str, reads: list[str], purpose: str, kind: str = "query", **context) -> Step:
+        sql, written_in = render.render(template, self.dialect, **context)
+        statements = dialects.parse(sql, written_in)
+        return Step(
+            name=name,
+            kind=kind,
+            purpose=purpose,
+            reads=tuple(reads),
+            writes=(),
+            statements=tuple(dialects.generate(s, self.dialect) for s in statements),
+        )
+
+
+@dataclass(frozen=True)
+class Plan:
+    study: str
+    dialect: str
+    steps: tuple[Step, ...]
+    work_tables: tuple[str, ...]  # display names of every table the plan writes, in order
+    outcomes: tuple[OutcomeColumns, ...]
+
+    def step(self, name: str) -> Step:
+        for s in self.steps:
+            if s.name == name:
+                return s
+        raise KeyError(name)
+
+    def file_name(self, index: int) -> str:
+        return f"{index:02d}_{self.steps[index].name}.sql"
+
+    def files(self) -> dict[str, str]:
+        """File name -> contents: a header comment, then the statements, each ending in ';'."""
+        out = {}
+        for i, step in enumerate(self.steps):
+            header = [
+                f"-- sqlmatch study {self.study!r}, step {i:02d}: {step.name} ({self.dialect})",
+                f"-- {step.purpose}",
+                f"-- kind: {_KIND_TEXT[step.kind]}",
+                f"-- reads: {', '.join(step.reads) or '-'}",
+            ]
+            if step.writes:
+                header.append(f"-- writes: {', '.join(step.writes)}")
+            body = "\n\n".join(s + ";" for s in step.statements)
+            out[self.file_name(i)] = "\n".join(header) + "\n\n" + body + "\n"
+        out["manifest.json"] = json.dumps(self.manifest(), indent=2, sort_keys=False) + "\n"
+        return out
+
+    def manifest(self) -> dict:
+        return {
+            "sqlmatch_manifest": MANIFEST_VERSION,
+            "study": self.study,
+            "dialect": self.dialect,
+            "steps": [
+                {
+                    "order": i,
+                    "name": s.name,
+                    "file": self.file_name(i),
+                    "kind": s.kind,
+                    "reads": list(s.reads),
+                    "writes": list(s.writes),
+                    "purpose": s.purpose,
+                }
+                for i, s in enumerate(self.steps)
+            ],
+            "work_tables": list(self.work_tables),
+        }
+
+
+# --------------------------------------------------------------------------------------------
+
+
+def measure_columns(spec: Spec) -> tuple[list[MeasureColumn], list[OutcomeColumns]]:
+    w = spec.windows
+    cols: list[MeasureColumn] = []
+    for f in spec.event_features:
+        cols.append(MeasureColumn(name=f.name, agg=f.aggregate, start=w.pre_start, end=w.cohort_start, fill=float(f.fill), measure=f.measure))
+    outcomes: list[OutcomeColumns] = []
+    for o in spec.outcomes:
+        if o.aggregate == "ratio":
+            num, den = f"{o.name}__num", f"{o.name}__den"
+            cols.append(MeasureColumn(name=num, agg="sum", start=w.post_start, end=w.post_end, fill=0.0, measure=o.numerator))
+            den_agg = "sum" if o.denominator else "count"
+            cols.append(MeasureColumn(name=den, agg=den_agg, start=w.post_start, end=w.post_end, fill=0.0, measure=o.denominator))
+            outcomes.append(OutcomeColumns(name=o.name, kind="ratio", num=num, den=den))
+        elif o.aggregate == "active_at_end":
+            start = last_period_start(w, o.last)
+            cols.append(MeasureColumn(name=o.name, agg="any", start=start, end=w.post_end, fill=0.0))
+            outcomes.append(OutcomeColumns(name=o.name, kind="binary"))
+        else:
+            cols.append(MeasureColumn(name=o.name, agg=o.aggregate, start=w.post_start, end=w.post_end, fill=0.0, measure=o.measure))
+            outcomes.append(OutcomeColumns(name=o.name, kind="continuous"))
+    return cols, outcomes
+
+
+def build_plan(spec: Spec, dialect: str = "duckdb") -> Plan:
+    dialect = dialects.check_dialect(dialect)
+    ctx = PlanContext(spec=spec, dialect=dialect)
+    w = spec.windows
+    control_from = w.post_end if spec.control_pool == "never_by_post_end" else w.cohort_end
+    pool_text = (
+        f"never enrolled, or enrolled on or after {w.post_end} (after the post window)"
+        if spec.control_pool == "never_by_post_end"
+        else f"never enrolled, or enrolled on or after {w.cohort_end} (not yet enrolled at the cohort month)"
+    )
+    columns, outcomes = measure_columns(spec)
+    units_src, events_src = spec.units.display, spec.events.display
+
+    steps = [
+        ctx.query_step("work_schema", "work_schema", reads=[], purpose="Create the study's work schema if needed.", kind="setup", schema=spec.work_schema),
+        ctx.table_step(
+            "study_units",
+            "study_units",
+            writes="units",
+            reads=[units_src],
+            purpose=f"Treated cohort ({spec.cohort}) and control pool, after eligibility filters.",
+            units=spec.units,
+            key=spec.unit_key,
+            enrolled=spec.enrolled_on,
+            windows=w,
+            cohort=spec.cohort,
+            control_from=control_from,
+            pool_text=pool_text,
+            attributes=spec.attribute_features,
+            filters=[render.expression_sql(f, alias="u") for f in spec.filters],
+        ),
+        ctx.query_step(
+            "group_sizes",
+            "group_sizes",
+            reads=[ctx.display("units")],
+            purpose="Count treated and control units (refuse an empty cohort or control pool).",
+            units_table=ctx.table("units"),
+        ),
+        ctx.table_step(
+            "unit_measures",
+            "unit_measures",
+            writes="measures",
+            reads=[events_src, ctx.display("units")],
+            purpose="Per-unit pre-window features and post-window outcomes, one pass over the events.",
+            events=spec.events,
+            event_key=spec.event_unit_key,
+            event_time=spec.event_time,
+            windows=w,
+            columns=columns,
+            attributes=spec.attribute_features,
+            units_table=ctx.table("units"),
+        ),
+    ]
+    method = method_for(spec.matching.method)
+    steps += method.steps(ctx)
+    numeric = [f.name for f in spec.numeric_features]
+    categorical = [f.name for f in spec.categorical_features]
+    both = [ctx.display("measures"), ctx.display("weights")]
+    steps.append(
+        ctx.query_step(
+            "balance_numeric",
+            "balance_numeric",
+            reads=both,
+            purpose="Per-group counts, sums and sums of squares of numeric features, before and after matching.",
+            features=numeric,
+            measures_table=ctx.table("measures"),
+            weights_table=ctx.table("weights"),
+        )
+    )
+    if categorical:
+        steps.append(
+            ctx.query_step(
+                "balance_levels",
+                "balance_levels",
+                reads=both,
+                purpose="Per-level counts of categorical features, before and after matching.",
+                features=categorical,
+                measures_table=ctx.table("measures"),
+                weights_table=ctx.table("weights"),
+            )
+        )
+    for matched in (True, False):
+        steps.append(
+            ctx.query_step(
+                "outcome_strata" if matched else "outcome_unmatched",
+                "outcome_strata",
+                reads=both if matched else [ctx.display("measures")],
+                purpose=(
+                    "Outcome sums per stratum and group among matched units."
+                    if matched
+                    else "Outcome sums per group before matching (the naive comparison)."
+                ),
+                matched=matched,
+                outcomes=outcomes,
+                measures_table=ctx.table("measures"),
+                weights_table=ctx.table("weights"),
+            )
+        )
+    work_tables = tuple(t for s in steps for t in s.writes)
+    return Plan(study=spec.name, dialect=dialect, steps=tuple(steps), work_tables=work_tables, outcomes=tuple(outcomes))

@@ -1,0 +1,111 @@
+"""Results as dataclasses. JSON, Markdown and HTML are renderings of these (see report/)."""
+
+from __future__ import annotations
+
+import json
+import math
+from dataclasses import asdict, dataclass, field
+
+ASSUMPTIONS = (
+    "No unmeasured confounding: after matching on the listed features, enrolment is as good as random. "
+    "Anything that drives both enrolment and the outcome and is not among the features biases the estimate; "
+    "the sensitivity figures say how strong such a factor would have to be.",
+    "Overlap: every enrolled unit has comparable non-enrolled units. Enrolled units without a match are dropped, "
+    "so the estimate describes the matched enrolled units only.",
+    "No interference: one unit's enrolment does not change another unit's outcome.",
+    "The windows are fixed in advance: features come strictly before the enrolment month and outcomes strictly after it; "
+    "other window choices can give other answers.",
+    "These figures inform, and do not replace, judgement about the programme.",
+)
+
+
+def _num(x):
+    """JSON-safe number: NaN and infinities become null."""
+    if x is None:
+        return None
+    if isinstance(x, float) and not math.isfinite(x):
+        return None
+    return x
+
+
+@dataclass(frozen=True)
+class Effect:
+    outcome: str
+    kind: str  # continuous | binary | ratio
+    estimator: str
+    estimate: float
+    std_error: float | None
+    ci_low: float | None
+    ci_high: float | None
+    n_treated: int
+    n_control: int
+    mean_treated: float | None
+    mean_control: float | None
+    naive_estimate: float | None
+    naive_std_error: float | None
+    naive_ci_low: float | None
+    naive_ci_high: float | None
+
+
+@dataclass(frozen=True)
+class BalanceRow:
+    covariate: str
+    kind: str  # numeric | binary | level
+    mean_treated_before: float | None
+    mean_control_before: float | None
+    smd_before: float | None
+    variance_ratio_before: float | None
+    mean_treated_after: float | None
+    mean_control_after: float | None
+    smd_after: float | None
+    variance_ratio_after: float | None
+
+
+@dataclass(frozen=True)
+class MatchingSummary:
+    method: str
+    n_treated: int
+    n_treated_matched: int
+    n_control: int
+    n_control_matched: int
+    strata: int
+    strata_dropped: int
+
+
+@dataclass
+class StudyResults:
+    study: str
+    cohort: str
+    dialect: str
+    windows: dict
+    matching: MatchingSummary
+    balance: list[BalanceRow]
+    effects: list[Effect]
+    rows_fetched: int
+    min_cell_size: int
+    assumptions: tuple[str, ...] = ASSUMPTIONS
+    demo_truth: dict[str, float] | None = None
+    timings: dict[str, float] = field(default_factory=dict)
+
+    def effect(self, outcome: str) -> Effect:
+        return next(e for e in self.effects if e.outcome == outcome)
+
+    def to_dict(self) -> dict:
+        out = {
+            "study": self.study,
+            "cohort": self.cohort,
+            "dialect": self.dialect,
+            "windows": self.windows,
+            "matching": asdict(self.matching),
+            "balance": [{k: _num(v) for k, v in asdict(b).items()} for b in self.balance],
+            "effects": [{k: _num(v) for k, v in asdict(e).items()} for e in self.effects],
+            "rows_fetched": self.rows_fetched,
+            "min_cell_size": self.min_cell_size,
+            "assumptions": list(self.assumptions),
+        }
+        if self.demo_truth is not None:
+            out["demo_truth"] = self.demo_truth
+        return out
+
+    def to_json(self) -> str:
+        return json.dumps(self.to_dict(), indent=2) + "\n"

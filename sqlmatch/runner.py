@@ -1,0 +1,149 @@
+"""Runs a plan on an engine: preflight, each step in order, aggregates back.
+
+Nothing here computes statistics; the runner hands the aggregate query results to the
+estimators (see api.py). On any error the study's work tables are dropped, so a failed run
+leaves nothing half-written behind.
+"""
+
+from __future__ import annotations
+
+import sys
+import time
+from dataclasses import dataclass, field
+
+from sqlglot import exp
+
+from sqlmatch.engines.base import Engine, QueryResult
+from sqlmatch.errors import DataError, SpecError
+from sqlmatch.plan import Plan
+from sqlmatch.spec import Spec, filter_columns
+
+NUMERIC_TYPE_WORDS = ("INT", "DOUBLE", "FLOAT", "DECIMAL", "NUMERIC", "REAL", "HUGEINT", "BIGINT", "SMALLINT", "TINYINT", "UBIGINT", "UINTEGER")
+TIME_TYPE_WORDS = ("DATE", "TIMESTAMP")
+
+
+@dataclass
+class RunOutput:
+    results: dict[str, QueryResult] = field(default_factory=dict)
+    timings: dict[str, float] = field(default_factory=dict)
+    rows_fetched: int = 0
+
+
+class Progress:
+    """One line per step on stderr, so a scheduler's log shows where time went."""
+
+    def __init__(self, quiet: bool = False, stream=None):
+        self.quiet = quiet
+        self.stream = stream or sys.stderr
+
+    def step(self, index: int, total: int, name: str, seconds: float) -> None:
+        if not self.quiet:
+            print(f"sqlmatch: [{index + 1:>2}/{total}] {name:<20} {seconds:8.2f}s", file=self.stream, flush=True)
+
+
+def _find(columns: dict[str, str], name: str) -> str | None:
+    """Exact match first; engines that fold unquoted names may report another case."""
+    if name in columns:
+        return name
+    lowered = {c.lower(): c for c in columns}
+    return lowered.get(name.lower())
+
+
+def preflight(spec: Spec, engine: Engine) -> None:
+    """Check every table and column the spec names exists, before any table is created."""
+    units = engine.columns(spec.units.schema, spec.units.name)
+    if units is None:
+        raise SpecError("units.table", f"table {spec.units.display!r} was not found.", "check the name and schema, and that the engine's user can read it.")
+    events = engine.columns(spec.events.schema, spec.events.name)
+    if events is None:
+        raise SpecError("events.table", f"table {spec.events.display!r} was not found.", "check the name and schema, and that the engine's user can read it.")
+
+    def need(cols, table, key, column, kinds=None, kind_text=""):
+        found = _find(cols, column)
+        if found is None:
+            shown = ", ".join(sorted(cols)[:20])
+            raise SpecError(key, f"column {column!r} is not in table {table!r}.", f"use one of its columns: {shown}.")
+        if kinds and not any(word in cols[found].upper() for word in kinds):
+            raise SpecError(key, f"column {column!r} of {table!r} has type {cols[found]}, not {kind_text}.", f"name a {kind_text} column or cast it in a view.")
+
+    need(units, spec.units.display, "units.key", spec.unit_key)
+    need(units, spec.units.display, "units.enrolled_on", spec.enrolled_on, TIME_TYPE_WORDS, "date or timestamp")
+    for i, f in enumerate(spec.features):
+        if f.attribute:
+            kinds = None if f.categorical else NUMERIC_TYPE_WORDS
+            need(units, spec.units.display, f"features[{i}] ({f.name}).attribute", f.attribute, kinds, "numeric")
+    for i, tree in enumerate(spec.filters):
+        for col in filter_columns(tree):
+            need(units, spec.units.display, f"eligibility.filters[{i}]", col)
+    need(events, spec.events.display, "events.unit_key", spec.event_unit_key)
+    need(events, spec.events.display, "events.time", spec.event_time, TIME_TYPE_WORDS, "date or timestamp")
+    for i, f in enumerate(spec.features):
+        if f.measure:
+            need(events, spec.events.display, f"features[{i}] ({f.name}).measure", f.measure, NUMERIC_TYPE_WORDS, "numeric")
+    for i, o in enumerate(spec.outcomes):
+        for attr in ("measure", "numerator", "denominator"):
+            col = getattr(o, attr)
+            if col:
+                need(events, spec.events.display, f"outcomes[{i}] ({o.name}).{attr}", col, NUMERIC_TYPE_WORDS, "numeric")
+
+
+def drop_work_tables(plan: Plan, engine: Engine) -> None:
+    for table in reversed(plan.work_tables):
+        schema, name = table.split(".", 1)
+        if engine.columns(schema, name) is not None:
+            drop = exp.Drop(tables=[exp.table_(name, db=schema, quoted=True)], kind="TABLE", exists=True)
+            engine.execute(drop.sql(engine.dialect))
+
+
+def _check_groups(spec: Spec, result: QueryResult) -> None:
+    sizes = {row[0]: row[1] for row in result.rows}
+    if not sizes.get(1):
+        raise DataError(
+            "treatment.cohort",
+            f"no unit enrolled in {spec.cohort} passes the eligibility filters: the cohort is empty.",
+            "pick a month in which units enrolled, or loosen eligibility.filters.",
+        )
+    if not sizes.get(0):
+        raise DataError(
+            "treatment.control_pool",
+            "no eligible control unit: every unit in the study enrolled.",
+            "loosen eligibility.filters, or use control_pool = \"not_yet_enrolled\".",
+        )
+
+
+def _check_matched(result: QueryResult) -> None:
+    if not result.one()["n_treated_matched"]:
+        raise DataError(
+            "matching",
+            "no treated unit found a control unit to match, so nothing was matched.",
+            "match on fewer features (matching.on) or coarser cut points (matching.cut_points).",
+        )
+
+
+def run_plan(plan: Plan, spec: Spec, engine: Engine, progress: Progress | None = None, keep_tables: bool = True) -> RunOutput:
+    progress = progress or Progress(quiet=True)
+    preflight(spec, engine)
+    out = RunOutput()
+    start_rows = engine.rows_fetched
+    try:
+        for i, step in enumerate(plan.steps):
+            t0 = time.perf_counter()
+            if step.kind in ("setup", "table"):
+                for statement in step.statements:
+                    engine.execute(statement)
+            else:
+                (statement,) = step.statements
+                out.results[step.name] = engine.fetch(statement)
+                if step.name == "group_sizes":
+                    _check_groups(spec, out.results[step.name])
+                if step.name == "matching_summary":
+                    _check_matched(out.results[step.name])
+            out.timings[step.name] = time.perf_counter() - t0
+            progress.step(i, len(plan.steps), step.name, out.timings[step.name])
+    except BaseException:
+        drop_work_tables(plan, engine)
+        raise
+    out.rows_fetched = engine.rows_fetched - start_rows
+    if not keep_tables:
+        drop_work_tables(plan, engine)
+    return out

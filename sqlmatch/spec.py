@@ -1,0 +1,530 @@
+"""Study spec: TOML in, validated dataclasses out. Every error names the key at fault.
+
+The spec says which tables hold units and events, who is treated (the enrolment month
+studied), who may serve as a control, the pre and post windows, the features and outcomes
+to build, and the matching method. Nothing here touches a database; column existence is
+checked later against the engine's catalog (preflight).
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import re
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import sqlglot
+from sqlglot import exp
+
+from sqlmatch.errors import SpecError
+
+# Names we create columns and tables from: plain identifiers, so generated SQL stays readable.
+_NAME_RE = re.compile(r"^[a-z](?!.*__)[a-z0-9_]{0,47}$")
+_COHORT_RE = re.compile(r"^(\d{4})-(\d{2})$")
+
+FEATURE_AGGREGATES = ("count", "sum", "mean", "active_days", "days_since_last", "attribute")
+OUTCOME_AGGREGATES = ("count", "sum", "active_days", "ratio", "active_at_end")
+CONTROL_POOLS = ("never_by_post_end", "not_yet_enrolled")
+WINDOW_UNITS = ("month", "day")
+METHODS = ("coarsened_exact",)
+
+# Statement-level nodes that must never appear inside a filter expression.
+_FORBIDDEN_IN_FILTER = (
+    exp.Query,
+    exp.Insert,
+    exp.Update,
+    exp.Delete,
+    exp.Merge,
+    exp.Create,
+    exp.Drop,
+    exp.Alter,
+    exp.Command,
+    exp.Use,
+    exp.Set,
+    exp.Transaction,
+    exp.Commit,
+    exp.Rollback,
+)
+
+
+@dataclass(frozen=True)
+class TableRef:
+    """A source table, optionally schema-qualified; names are kept verbatim and quoted on output."""
+
+    name: str
+    schema: str | None = None
+
+    @property
+    def display(self) -> str:
+        return f"{self.schema}.{self.name}" if self.schema else self.name
+
+
+@dataclass(frozen=True)
+class Windows:
+    unit: str
+    pre: int
+    post: int
+    cohort_start: dt.date
+    cohort_end: dt.date
+    pre_start: dt.date
+    post_start: dt.date
+    post_end: dt.date
+
+    @property
+    def pre_days(self) -> int:
+        return (self.cohort_start - self.pre_start).days
+
+
+@dataclass(frozen=True)
+class Feature:
+    name: str
+    aggregate: str
+    measure: str | None = None  # events column for sum/mean
+    attribute: str | None = None  # units column for attribute features
+    categorical: bool = False
+    fill: float | None = None  # value used when a unit has no events in the window
+
+
+@dataclass(frozen=True)
+class Outcome:
+    name: str
+    aggregate: str
+    measure: str | None = None
+    numerator: str | None = None  # ratio: events column summed on top
+    denominator: str | None = None  # ratio: events column summed below; None = count of events
+    last: int = 1  # active_at_end: how many window units at the end of the post window
+
+    @property
+    def kind(self) -> str:
+        if self.aggregate == "ratio":
+            return "ratio"
+        if self.aggregate == "active_at_end":
+            return "binary"
+        return "continuous"
+
+
+@dataclass(frozen=True)
+class Matching:
+    method: str
+    on: tuple[str, ...]
+    cut_points: dict[str, tuple[float, ...]] = field(default_factory=dict)
+
+
+@dataclass(frozen=True)
+class Spec:
+    name: str
+    work_schema: str
+    database: str | None
+    units: TableRef
+    unit_key: str
+    enrolled_on: str
+    events: TableRef
+    event_unit_key: str
+    event_time: str
+    cohort: str
+    control_pool: str
+    windows: Windows
+    filters: tuple[exp.Expression, ...]
+    filter_texts: tuple[str, ...]
+    features: tuple[Feature, ...]
+    outcomes: tuple[Outcome, ...]
+    matching: Matching
+    min_cell_size: int = 10
+    source_path: Path | None = None
+
+    @property
+    def attribute_features(self) -> tuple[Feature, ...]:
+        return tuple(f for f in self.features if f.aggregate == "attribute")
+
+    @property
+    def event_features(self) -> tuple[Feature, ...]:
+        return tuple(f for f in self.features if f.aggregate != "attribute")
+
+    @property
+    def numeric_features(self) -> tuple[Feature, ...]:
+        return tuple(f for f in self.features if not f.categorical)
+
+    @property
+    def categorical_features(self) -> tuple[Feature, ...]:
+        return tuple(f for f in self.features if f.categorical)
+
+    def feature(self, name: str) -> Feature:
+        return next(f for f in self.features if f.name == name)
+
+    def with_overrides(self, *, cohort: str | None = None, method: str | None = None) -> "Spec":
+        """A copy with the cohort or method replaced (command-line overrides)."""
+        raw = dict(self._raw)
+        if cohort is not None:
+            raw["treatment"] = {**raw.get("treatment", {}), "cohort": cohort}
+        if method is not None:
+            raw["matching"] = {**raw.get("matching", {}), "method": method}
+        return parse_spec(raw, source_path=self.source_path)
+
+    _raw: dict = field(default_factory=dict, repr=False, compare=False)
+
+
+# --------------------------------------------------------------------------------------------
+# reading helpers: each takes the dotted key so errors can name it
+
+
+def _table(raw: dict, key: str) -> dict:
+    value = raw.get(key.split(".")[-1])
+    if value is None:
+        raise SpecError(key, "is missing.", f"add a [{key}] table to the spec.")
+    if not isinstance(value, dict):
+        raise SpecError(key, f"must be a table, got {type(value).__name__}.", f"write it as [{key}].")
+    return value
+
+
+def _check_keys(section: dict, key: str, allowed: set[str]) -> None:
+    for k in section:
+        if k not in allowed:
+            hint = ", ".join(sorted(allowed))
+            raise SpecError(f"{key}.{k}" if key else k, "is not a known key.", f"use one of: {hint}.")
+
+
+def _str(section: dict, key: str, name: str, *, required: bool = True, default: str | None = None) -> str | None:
+    value = section.get(name, default)
+    full = f"{key}.{name}" if key else name
+    if value is None:
+        if required:
+            raise SpecError(full, "is missing.", f"set {name} = \"...\" under [{key}].")
+        return None
+    if not isinstance(value, str) or not value.strip():
+        raise SpecError(full, f"must be a non-empty string, got {value!r}.")
+    return value
+
+
+def _int(section: dict, key: str, name: str, *, default: int | None = None, low: int = 1, high: int = 10_000) -> int:
+    value = section.get(name, default)
+    full = f"{key}.{name}"
+    if value is None:
+        raise SpecError(full, "is missing.", f"set {name} = <whole number> under [{key}].")
+    if isinstance(value, bool) or not isinstance(value, int):
+        raise SpecError(full, f"must be a whole number, got {value!r}.")
+    if not low <= value <= high:
+        raise SpecError(full, f"must be between {low} and {high}, got {value}.")
+    return value
+
+
+def _choice(section: dict, key: str, name: str, choices: tuple[str, ...], default: str | None = None) -> str:
+    value = _str(section, key, name, required=default is None, default=default)
+    if value not in choices:
+        raise SpecError(f"{key}.{name}", f"must be one of {', '.join(choices)}; got {value!r}.")
+    return value
+
+
+def _name(value: Any, key: str) -> str:
+    if not isinstance(value, str) or not _NAME_RE.match(value):
+        raise SpecError(
+            key,
+            f"{value!r} is not a usable name.",
+            "use lower-case letters, digits and single underscores, starting with a letter (at most 48 characters).",
+        )
+    return value
+
+
+def _table_ref(value: str, key: str) -> TableRef:
+    """'schema.table' or 'table'; names with dots or quotes must use the {schema=, name=} form."""
+    if isinstance(value, dict):
+        _check_keys(value, key, {"schema", "name"})
+        name = _str(value, key, "name")
+        schema = _str(value, key, "schema", required=False)
+        return TableRef(name=name, schema=schema)
+    if not isinstance(value, str) or not value.strip():
+        raise SpecError(key, f"must name a table, got {value!r}.")
+    parts = value.split(".")
+    if len(parts) == 1:
+        return TableRef(name=parts[0])
+    if len(parts) == 2 and all(parts):
+        return TableRef(name=parts[1], schema=parts[0])
+    raise SpecError(
+        key,
+        f"{value!r} is not 'table' or 'schema.table'.",
+        "for names containing dots write {schema = \"...\", name = \"...\"}.",
+    )
+
+
+def _windows(cohort: str, unit: str, pre: int, post: int) -> Windows:
+    m = _COHORT_RE.match(cohort)
+    if not m or not 1 <= int(m.group(2)) <= 12:
+        raise SpecError("treatment.cohort", f"{cohort!r} is not a month.", "write the enrolment month as \"YYYY-MM\".")
+    cohort_start = dt.date(int(m.group(1)), int(m.group(2)), 1)
+    cohort_end = add_months(cohort_start, 1)
+    if unit == "month":
+        pre_start = add_months(cohort_start, -pre)
+        post_end = add_months(cohort_end, post)
+    else:
+        pre_start = cohort_start - dt.timedelta(days=pre)
+        post_end = cohort_end + dt.timedelta(days=post)
+    return Windows(
+        unit=unit,
+        pre=pre,
+        post=post,
+        cohort_start=cohort_start,
+        cohort_end=cohort_end,
+        pre_start=pre_start,
+        post_start=cohort_end,
+        post_end=post_end,
+    )
+
+
+def add_months(day: dt.date, months: int) -> dt.date:
+    """First-of-month arithmetic (windows always start on the first of a month)."""
+    index = day.year * 12 + (day.month - 1) + months
+    return dt.date(index // 12, index % 12 + 1, 1)
+
+
+def last_period_start(windows: Windows, last: int) -> dt.date:
+    """Start of the final `last` window units of the post window."""
+    if windows.unit == "month":
+        return add_months(windows.post_end, -last)
+    return windows.post_end - dt.timedelta(days=last)
+
+
+def parse_filter(text: Any, key: str) -> exp.Expression:
+    """Parse one boolean SQL expression over unit columns; refuse anything else.
+
+    The filter is parsed with sqlglot as exactly one expression. Statements, several
+    statements, subqueries and DDL/DML are refused; comments are dropped so nothing can
+    hide inside them in the compiled SQL.
+    """
+    if not isinstance(text, str) or not text.strip():
+        raise SpecError(key, f"must be a SQL boolean expression as a string, got {text!r}.")
+    try:
+        statements = sqlglot.parse(text, read="duckdb")
+    except sqlglot.errors.SqlglotError as err:
+        first = str(err).splitlines()[0]
+        raise SpecError(key, f"could not be parsed as SQL: {first}", "write one boolean expression over unit columns.") from None
+    statements = [s for s in statements if s is not None]
+    if len(statements) != 1:
+        raise SpecError(
+            key,
+            f"holds {len(statements)} statements.",
+            "write exactly one boolean expression, with no semicolon, e.g. signup_date < DATE '2025-09-01'.",
+        )
+    tree = statements[0]
+    for node in tree.walk():
+        if isinstance(node, _FORBIDDEN_IN_FILTER):
+            raise SpecError(
+                key,
+                f"contains {type(node).__name__.upper()}; only a boolean expression over unit columns is allowed.",
+                "remove the statement or subquery; filters may use unit columns, literals, operators and functions.",
+            )
+    if not isinstance(tree, (exp.Predicate, exp.Connector, exp.Not, exp.Paren, exp.Boolean, exp.Is, exp.In, exp.Between)):
+        raise SpecError(
+            key,
+            f"{text!r} is not a boolean expression.",
+            "write a condition such as signup_date < DATE '2025-09-01'.",
+        )
+    for node in tree.walk():
+        node.comments = None
+        if isinstance(node, exp.Column) and node.table:
+            raise SpecError(key, f"refers to {node.sql()!r} with a table prefix.", "name unit columns without a prefix.")
+    return tree
+
+
+def filter_columns(tree: exp.Expression) -> list[str]:
+    return sorted({c.name for c in tree.find_all(exp.Column)})
+
+
+# --------------------------------------------------------------------------------------------
+
+
+def load_spec(path: str | Path) -> Spec:
+    """Read and validate a study spec file."""
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise SpecError("(file)", f"{path} does not exist.", "pass the path of a study spec (.toml).") from None
+    try:
+        raw = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as err:
+        raise SpecError("(file)", f"{path} is not valid TOML: {err}.") from None
+    return parse_spec(raw, source_path=path.resolve())
+
+
+def parse_spec(raw: dict, source_path: Path | None = None) -> Spec:
+    _check_keys(raw, "", {"study", "units", "events", "treatment", "windows", "eligibility", "features", "outcomes", "matching", "report"})
+
+    study = _table(raw, "study")
+    _check_keys(study, "study", {"name", "work_schema", "database"})
+    name = _name(_str(study, "study", "name"), "study.name")
+    work_schema = _str(study, "study", "work_schema", default="sqlmatch")
+    database = _str(study, "study", "database", required=False)
+
+    units = _table(raw, "units")
+    _check_keys(units, "units", {"table", "key", "enrolled_on"})
+    units_ref = _table_ref(units.get("table"), "units.table") if "table" in units else _missing("units.table")
+    unit_key = _str(units, "units", "key")
+    enrolled_on = _str(units, "units", "enrolled_on")
+
+    events = _table(raw, "events")
+    _check_keys(events, "events", {"table", "unit_key", "time"})
+    events_ref = _table_ref(events.get("table"), "events.table") if "table" in events else _missing("events.table")
+    event_unit_key = _str(events, "events", "unit_key", default=unit_key)
+    event_time = _str(events, "events", "time")
+
+    treatment = _table(raw, "treatment")
+    _check_keys(treatment, "treatment", {"cohort", "control_pool"})
+    cohort = _str(treatment, "treatment", "cohort")
+    control_pool = _choice(treatment, "treatment", "control_pool", CONTROL_POOLS, default="never_by_post_end")
+
+    windows_raw = _table(raw, "windows")
+    _check_keys(windows_raw, "windows", {"unit", "pre", "post"})
+    unit = _choice(windows_raw, "windows", "unit", WINDOW_UNITS, default="month")
+    high = 36 if unit == "month" else 1100
+    pre = _int(windows_raw, "windows", "pre", high=high)
+    post = _int(windows_raw, "windows", "post", high=high)
+    windows = _windows(cohort, unit, pre, post)
+
+    eligibility = raw.get("eligibility", {})
+    if not isinstance(eligibility, dict):
+        raise SpecError("eligibility", "must be a table.", "write it as [eligibility] with filters = [...].")
+    _check_keys(eligibility, "eligibility", {"filters"})
+    filter_texts = eligibility.get("filters", [])
+    if isinstance(filter_texts, str):
+        filter_texts = [filter_texts]
+    if not isinstance(filter_texts, list):
+        raise SpecError("eligibility.filters", "must be a list of SQL boolean expressions.")
+    filters = tuple(parse_filter(t, f"eligibility.filters[{i}]") for i, t in enumerate(filter_texts))
+
+    features = tuple(_features(raw.get("features"), windows))
+    outcomes = tuple(_outcomes(raw.get("outcomes"), windows))
+    names = [f.name for f in features] + [o.name for o in outcomes]
+    for n in names:
+        if names.count(n) > 1:
+            raise SpecError("features/outcomes", f"the name {n!r} is used twice.", "give every feature and outcome its own name.")
+
+    matching = _matching(raw.get("matching", {}), features)
+
+    report = raw.get("report", {})
+    if not isinstance(report, dict):
+        raise SpecError("report", "must be a table.")
+    _check_keys(report, "report", {"min_cell_size"})
+    min_cell = _int(report, "report", "min_cell_size", default=10, low=1, high=1000)
+
+    spec = Spec(
+        name=name,
+        work_schema=work_schema,
+        database=database,
+        units=units_ref,
+        unit_key=unit_key,
+        enrolled_on=enrolled_on,
+        events=events_ref,
+        event_unit_key=event_unit_key,
+        event_time=event_time,
+        cohort=cohort,
+        control_pool=control_pool,
+        windows=windows,
+        filters=filters,
+        filter_texts=tuple(filter_texts),
+        features=features,
+        outcomes=outcomes,
+        matching=matching,
+        min_cell_size=min_cell,
+        source_path=source_path,
+        _raw=raw,
+    )
+    return spec
+
+
+def _missing(key: str):
+    raise SpecError(key, "is missing.", "name the table, e.g. table = \"trips\" or \"analytics.trips\".")
+
+
+def _list_of_tables(value: Any, key: str) -> list[dict]:
+    if value is None:
+        raise SpecError(key, "is missing.", f"add at least one [[{key}]] entry.")
+    if not isinstance(value, list) or not value or not all(isinstance(v, dict) for v in value):
+        raise SpecError(key, "must be a non-empty array of tables.", f"write each as [[{key}]].")
+    return value
+
+
+def _features(value: Any, windows: Windows) -> list[Feature]:
+    out = []
+    for i, item in enumerate(_list_of_tables(value, "features")):
+        key = f"features[{i}]"
+        _check_keys(item, key, {"name", "aggregate", "measure", "attribute", "type", "fill"})
+        name = _name(_str(item, key, "name"), f"{key}.name")
+        key = f"features[{i}] ({name})"
+        agg = _choice(item, key, "aggregate", FEATURE_AGGREGATES)
+        measure = _str(item, key, "measure", required=agg in ("sum", "mean"))
+        if measure and agg not in ("sum", "mean"):
+            raise SpecError(f"{key}.measure", f"is only used with aggregate sum or mean, not {agg}.", "remove it.")
+        attribute = _str(item, key, "attribute", required=agg == "attribute")
+        if attribute and agg != "attribute":
+            raise SpecError(f"{key}.attribute", "is only used with aggregate = \"attribute\".", "remove it.")
+        kind = _choice(item, key, "type", ("numeric", "categorical"), default="numeric")
+        if kind == "categorical" and agg != "attribute":
+            raise SpecError(f"{key}.type", "only unit attributes can be categorical.", "remove type or use aggregate = \"attribute\".")
+        fill = item.get("fill")
+        if fill is not None and (isinstance(fill, bool) or not isinstance(fill, (int, float))):
+            raise SpecError(f"{key}.fill", f"must be a number, got {fill!r}.")
+        if fill is None:
+            if agg in ("count", "sum", "active_days", "mean"):
+                fill = 0.0
+            elif agg == "days_since_last":
+                fill = float(windows.pre_days)
+        out.append(Feature(name=name, aggregate=agg, measure=measure, attribute=attribute, categorical=kind == "categorical", fill=fill))
+    return out
+
+
+def _outcomes(value: Any, windows: Windows) -> list[Outcome]:
+    out = []
+    for i, item in enumerate(_list_of_tables(value, "outcomes")):
+        key = f"outcomes[{i}]"
+        _check_keys(item, key, {"name", "aggregate", "measure", "numerator", "denominator", "last"})
+        name = _name(_str(item, key, "name"), f"{key}.name")
+        key = f"outcomes[{i}] ({name})"
+        agg = _choice(item, key, "aggregate", OUTCOME_AGGREGATES)
+        measure = _str(item, key, "measure", required=agg == "sum")
+        numerator = _str(item, key, "numerator", required=agg == "ratio")
+        denominator = _str(item, key, "denominator", required=False)
+        if agg != "ratio" and (numerator or denominator):
+            raise SpecError(f"{key}.numerator", "numerator/denominator are only used with aggregate = \"ratio\".")
+        last = _int(item, key, "last", default=1, high=max(windows.post, 1))
+        if agg != "active_at_end" and "last" in item:
+            raise SpecError(f"{key}.last", "is only used with aggregate = \"active_at_end\".", "remove it.")
+        out.append(Outcome(name=name, aggregate=agg, measure=measure, numerator=numerator, denominator=denominator, last=last))
+    return out
+
+
+def _matching(value: Any, features: tuple[Feature, ...]) -> Matching:
+    if not isinstance(value, dict):
+        raise SpecError("matching", "must be a table.", "write it as [matching].")
+    _check_keys(value, "matching", {"method", "on", "cut_points"})
+    method = _choice(value, "matching", "method", METHODS, default="coarsened_exact")
+    names = [f.name for f in features]
+    on = value.get("on", names)
+    if not isinstance(on, list) or not all(isinstance(x, str) for x in on) or not on:
+        raise SpecError("matching.on", "must be a non-empty list of feature names.")
+    for n in on:
+        if n not in names:
+            raise SpecError("matching.on", f"{n!r} is not a feature.", f"use names from [[features]]: {', '.join(names)}.")
+    cuts_raw = value.get("cut_points", {})
+    if not isinstance(cuts_raw, dict):
+        raise SpecError("matching.cut_points", "must be a table of feature name = [cut points].")
+    cut_points: dict[str, tuple[float, ...]] = {}
+    for n, pts in cuts_raw.items():
+        key = f"matching.cut_points.{n}"
+        if n not in names:
+            raise SpecError(key, f"{n!r} is not a feature.", f"use names from [[features]]: {', '.join(names)}.")
+        if not isinstance(pts, list) or not pts or not all(isinstance(p, (int, float)) and not isinstance(p, bool) for p in pts):
+            raise SpecError(key, "must be a non-empty list of numbers.")
+        if any(b <= a for a, b in zip(pts, pts[1:])):
+            raise SpecError(key, f"cut points {pts} are not strictly increasing.", "sort them and remove repeats.")
+        cut_points[n] = tuple(float(p) for p in pts)
+    if method == "coarsened_exact":
+        feats = {f.name: f for f in features}
+        for n in on:
+            if not feats[n].categorical and n not in cut_points:
+                raise SpecError(
+                    f"matching.cut_points.{n}",
+                    f"numeric feature {n!r} has no cut points for coarsened exact matching.",
+                    f"add {n} = [..] under [matching.cut_points], or leave it out of matching.on.",
+                )
+    return Matching(method=method, on=tuple(on), cut_points=cut_points)
