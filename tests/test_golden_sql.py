@@ -1,0 +1,90 @@
+"""Golden compiled SQL: the demo study's plan per dialect, checked in under tests/golden/.
+
+Regenerate after an intended change with `python -m pytest tests/test_golden_sql.py --update-golden`
+and review the diff like any other code change.
+"""
+
+from __future__ import annotations
+
+import json
+import shutil
+from pathlib import Path
+
+import pytest
+import sqlglot
+
+from sqlmatch import api
+from sqlmatch.dialects import DIALECTS
+
+from conftest import DEMO_SPEC
+
+GOLDEN = Path(__file__).parent / "golden"
+
+
+@pytest.fixture(scope="module")
+def spec():
+    return api.load(DEMO_SPEC)
+
+
+@pytest.mark.parametrize("dialect", DIALECTS)
+def test_compiled_plan_matches_golden(spec, dialect, update_golden, tmp_path):
+    plan = api.compile_plan(spec, dialect)
+    folder = GOLDEN / dialect
+    if update_golden:
+        shutil.rmtree(folder, ignore_errors=True)
+        api.write_plan(plan, folder)
+    api.write_plan(plan, tmp_path)
+    expected = sorted(p.name for p in folder.iterdir())
+    got = sorted(p.name for p in tmp_path.iterdir())
+    assert got == expected, "step files differ from the golden set; rerun with --update-golden if intended"
+    for name in got:
+        assert (tmp_path / name).read_text() == (folder / name).read_text(), f"{dialect}/{name} differs from golden"
+
+
+@pytest.mark.parametrize("dialect", DIALECTS)
+def test_compiling_twice_gives_identical_bytes(spec, dialect, tmp_path):
+    first, second = tmp_path / "a", tmp_path / "b"
+    api.write_plan(api.compile_plan(spec, dialect), first)
+    api.write_plan(api.compile_plan(api.load(DEMO_SPEC), dialect), second)
+    for path in first.iterdir():
+        assert path.read_bytes() == (second / path.name).read_bytes()
+
+
+@pytest.mark.parametrize("dialect", DIALECTS)
+def test_every_golden_statement_parses_back(dialect):
+    folder = GOLDEN / dialect
+    manifest = json.loads((folder / "manifest.json").read_text())
+    assert [s["file"] for s in manifest["steps"]] == sorted(p.name for p in folder.glob("*.sql"))
+    for step in manifest["steps"]:
+        text = (folder / step["file"]).read_text()
+        statements = [s for s in sqlglot.parse(text, read=dialect) if s is not None]
+        expected = {"setup": 1, "table": 2, "query": 1}[step["kind"]]
+        assert len(statements) == expected, step["file"]
+        if step["kind"] == "table":
+            assert isinstance(statements[0], sqlglot.exp.Drop)
+            assert isinstance(statements[1], sqlglot.exp.Create)
+
+
+def test_manifest_lists_reads_and_writes(spec):
+    manifest = api.compile_plan(spec, "duckdb").manifest()
+    by_name = {s["name"]: s for s in manifest["steps"]}
+    assert by_name["unit_measures"]["reads"] == ["trips", "sqlmatch.annual_pass_units"]
+    assert by_name["unit_measures"]["writes"] == ["sqlmatch.annual_pass_measures"]
+    assert manifest["work_tables"] == [
+        "sqlmatch.annual_pass_units",
+        "sqlmatch.annual_pass_measures",
+        "sqlmatch.annual_pass_cem_cells",
+        "sqlmatch.annual_pass_weights",
+    ]
+
+
+def test_events_are_scanned_once(spec):
+    """Features and outcomes come from one pass over the events table: it appears in exactly one
+    FROM/JOIN of the whole plan."""
+    plan = api.compile_plan(spec, "duckdb")
+    scans = 0
+    for step in plan.steps:
+        for statement in step.statements:
+            tree = sqlglot.parse_one(statement, read="duckdb")
+            scans += sum(1 for t in tree.find_all(sqlglot.exp.Table) if t.name == "trips")
+    assert scans == 1
