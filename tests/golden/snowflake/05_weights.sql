@@ -19,25 +19,41 @@ WITH coarsened AS (
       THEN -1
       WHEN m.pre_trips < 1.0
       THEN 0
-      WHEN m.pre_trips < 4.0
+      WHEN m.pre_trips < 2.0
       THEN 1
-      WHEN m.pre_trips < 8.0
+      WHEN m.pre_trips < 3.0
       THEN 2
-      WHEN m.pre_trips < 12.0
+      WHEN m.pre_trips < 4.0
       THEN 3
-      WHEN m.pre_trips < 16.0
+      WHEN m.pre_trips < 5.0
       THEN 4
-      WHEN m.pre_trips < 20.0
+      WHEN m.pre_trips < 6.0
       THEN 5
-      WHEN m.pre_trips < 25.0
+      WHEN m.pre_trips < 7.0
       THEN 6
-      WHEN m.pre_trips < 30.0
+      WHEN m.pre_trips < 8.0
       THEN 7
-      WHEN m.pre_trips < 40.0
+      WHEN m.pre_trips < 9.0
       THEN 8
-      WHEN m.pre_trips < 60.0
+      WHEN m.pre_trips < 10.0
       THEN 9
-      ELSE 10
+      WHEN m.pre_trips < 12.0
+      THEN 10
+      WHEN m.pre_trips < 14.0
+      THEN 11
+      WHEN m.pre_trips < 16.0
+      THEN 12
+      WHEN m.pre_trips < 18.0
+      THEN 13
+      WHEN m.pre_trips < 21.0
+      THEN 14
+      WHEN m.pre_trips < 25.0
+      THEN 15
+      WHEN m.pre_trips < 30.0
+      THEN 16
+      WHEN m.pre_trips < 40.0
+      THEN 17
+      ELSE 18
     END AS pre_trips__bin,
     COALESCE(m.age_band, '(missing)') AS age_band__bin
   FROM "sqlmatch".annual_pass_measures AS m
