@@ -73,7 +73,7 @@ def test_manifest_lists_reads_and_writes(spec):
     assert manifest["work_tables"] == [
         "sqlmatch.annual_pass_units",
         "sqlmatch.annual_pass_measures",
-        "sqlmatch.annual_pass_cem_cells",
+        "sqlmatch.annual_pass_cells",
         "sqlmatch.annual_pass_weights",
     ]
 

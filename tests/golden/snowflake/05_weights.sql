@@ -1,7 +1,7 @@
 -- sqlmatch study 'annual_pass', step 05: weights (snowflake)
 -- Matching weights for the effect on the treated (matched units only).
 -- kind: writes a table
--- reads: sqlmatch.annual_pass_measures, sqlmatch.annual_pass_cem_cells
+-- reads: sqlmatch.annual_pass_measures, sqlmatch.annual_pass_cells
 -- writes: sqlmatch.annual_pass_weights
 
 DROP TABLE IF EXISTS "sqlmatch".annual_pass_weights;
@@ -61,7 +61,7 @@ WITH coarsened AS (
   SELECT
     SUM(n_treated) AS matched_treated,
     SUM(n_control) AS matched_control
-  FROM "sqlmatch".annual_pass_cem_cells
+  FROM "sqlmatch".annual_pass_cells
   WHERE
     NOT stratum IS NULL
 )
@@ -79,7 +79,7 @@ SELECT
     )
   END AS weight
 FROM coarsened AS c
-INNER JOIN "sqlmatch".annual_pass_cem_cells AS s
+INNER JOIN "sqlmatch".annual_pass_cells AS s
   ON s.pre_trips__bin = c.pre_trips__bin AND s.age_band__bin = c.age_band__bin
 CROSS JOIN totals AS t
 WHERE

@@ -1,15 +1,15 @@
--- sqlmatch study 'annual_pass', step 04: cem_cells (redshift)
--- Coarsened exact matching: cells of coarsened features with treated/control counts.
+-- sqlmatch study 'annual_pass', step 04: strata_cells (bigquery)
+-- Coarsened exact matching: cells with treated/control counts; cells with both become strata.
 -- kind: writes a table
 -- reads: sqlmatch.annual_pass_measures
--- writes: sqlmatch.annual_pass_cem_cells
+-- writes: sqlmatch.annual_pass_cells
 
-DROP TABLE IF EXISTS "sqlmatch".annual_pass_cem_cells;
+DROP TABLE IF EXISTS `sqlmatch`.annual_pass_cells;
 
-CREATE TABLE "sqlmatch".annual_pass_cem_cells AS
-/* Coarsened exact matching, cells: every unit falls in the cell given by its coarsened
-   features (pre_trips, age_band). A cell with at least one treated and one control unit becomes
-   a stratum; cells lacking either group are kept here (stratum NULL) so the drop is counted. */
+CREATE TABLE `sqlmatch`.annual_pass_cells AS
+/* Coarsened exact matching, cells: every unit falls in the cell given by its coarsened features (pre_trips, age_band).
+   A cell with at least one treated and one control unit becomes a stratum; cells lacking
+   either group are kept here (stratum NULL) so the drop is counted. */
 WITH coarsened AS (
   SELECT
     m.treated,
@@ -55,7 +55,7 @@ WITH coarsened AS (
       ELSE 18
     END AS pre_trips__bin,
     COALESCE(m.age_band, '(missing)') AS age_band__bin
-  FROM "sqlmatch".annual_pass_measures AS m
+  FROM `sqlmatch`.annual_pass_measures AS m
 ), cells AS (
   SELECT
     pre_trips__bin,
@@ -75,7 +75,7 @@ SELECT
   CASE
     WHEN n_treated > 0 AND n_control > 0
     THEN DENSE_RANK() OVER (
-      ORDER BY CASE WHEN n_treated > 0 AND n_control > 0 THEN 0 ELSE 1 END, pre_trips__bin, age_band__bin
+      ORDER BY CASE WHEN n_treated > 0 AND n_control > 0 THEN 0 ELSE 1 END NULLS LAST, pre_trips__bin NULLS LAST, age_band__bin NULLS LAST
     )
   END AS stratum
 FROM cells;

@@ -1,15 +1,15 @@
--- sqlmatch study 'annual_pass', step 04: cem_cells (trino)
--- Coarsened exact matching: cells of coarsened features with treated/control counts.
+-- sqlmatch study 'annual_pass', step 04: strata_cells (postgres)
+-- Coarsened exact matching: cells with treated/control counts; cells with both become strata.
 -- kind: writes a table
 -- reads: sqlmatch.annual_pass_measures
--- writes: sqlmatch.annual_pass_cem_cells
+-- writes: sqlmatch.annual_pass_cells
 
-DROP TABLE IF EXISTS "sqlmatch".annual_pass_cem_cells;
+DROP TABLE IF EXISTS "sqlmatch".annual_pass_cells;
 
-CREATE TABLE "sqlmatch".annual_pass_cem_cells AS
-/* Coarsened exact matching, cells: every unit falls in the cell given by its coarsened
-   features (pre_trips, age_band). A cell with at least one treated and one control unit becomes
-   a stratum; cells lacking either group are kept here (stratum NULL) so the drop is counted. */
+CREATE TABLE "sqlmatch".annual_pass_cells AS
+/* Coarsened exact matching, cells: every unit falls in the cell given by its coarsened features (pre_trips, age_band).
+   A cell with at least one treated and one control unit becomes a stratum; cells lacking
+   either group are kept here (stratum NULL) so the drop is counted. */
 WITH coarsened AS (
   SELECT
     m.treated,
