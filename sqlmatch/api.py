@@ -26,7 +26,13 @@ load = load_spec
 
 
 def compile_plan(spec: Spec, dialect: str = "duckdb") -> Plan:
-    return build_plan(spec, dialect)
+    """The study's SQL for `dialect`. A score-based method bakes the fitted model kept beside the
+    spec (<spec>.model.json) into pure SQL; without one the plan stops where the model is fitted."""
+    from sqlmatch.matching import method_for
+    from sqlmatch.propensity import load_model
+
+    model = load_model(spec) if method_for(spec.matching.method).NEEDS_SCORE else None
+    return build_plan(spec, dialect, model=model)
 
 
 def write_plan(plan: Plan, out_dir: str | Path) -> list[Path]:
@@ -45,8 +51,13 @@ def write_plan(plan: Plan, out_dir: str | Path) -> list[Path]:
     return written
 
 
-def open_engine(spec: Spec, database: str | None = None) -> Engine:
-    """The engine for a run: DuckDB on the file given on the command line or in the spec."""
+def open_engine(spec: Spec, database: str | None = None, engine_url: str | None = None) -> Engine:
+    """The engine for a run: the one `engine_url` names (see sqlmatch.engines.open_engine_url; it
+    wins over `database`), else DuckDB on the file given on the command line or in the spec."""
+    if engine_url is not None:
+        from sqlmatch.engines import open_engine_url
+
+        return open_engine_url(engine_url)
     if database is None and spec.database is not None:
         base = spec.source_path.parent if spec.source_path else Path.cwd()
         database = str((base / spec.database).resolve())
@@ -62,31 +73,39 @@ def run(
     engine: Engine | None = None,
     database: str | None = None,
     progress: Progress | None = None,
+    engine_url: str | None = None,
 ) -> StudyResults:
     """Run the study in the warehouse and estimate from the aggregates it returns."""
     own = engine is None
-    engine = engine or open_engine(spec, database)
+    engine = engine or open_engine(spec, database, engine_url)
     try:
-        plan = build_plan(spec, engine.dialect)
-        output = run_plan(plan, spec, engine, progress=progress)
+        output = run_plan(build_plan(spec, engine.dialect), spec, engine, progress=progress)
     finally:
         if own:
             engine.close()
-    return estimate(spec, plan, output)
+    if output.model is not None and spec.source_path is not None:
+        from sqlmatch.propensity import model_path
+
+        output.model.save(model_path(spec))
+    return estimate(spec, output.plan, output)
 
 
 def estimate(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
     """Balance and effects from the aggregates of one run (pure: no database)."""
     r = output.results
     summary = r["matching_summary"].one()
+    sizes = {int(row[0]): int(row[1]) for row in r["group_sizes"].rows}
+    in_cells_t, in_cells_c = int(summary["n_treated"] or 0), int(summary["n_control"] or 0)
     matching = MatchingSummary(
         method=spec.matching.method,
-        n_treated=int(summary["n_treated"]),
+        n_treated=sizes.get(1, 0),
         n_treated_matched=int(summary["n_treated_matched"] or 0),
-        n_control=int(summary["n_control"]),
+        n_control=sizes.get(0, 0),
         n_control_matched=int(summary["n_control_matched"] or 0),
         strata=int(summary["n_strata"]),
         strata_dropped=int(summary["n_cells_dropped"]),
+        n_treated_outside_support=sizes.get(1, 0) - in_cells_t,
+        n_control_outside_support=sizes.get(0, 0) - in_cells_c,
     )
     balance = aggregates.numeric_balance(r["balance_numeric"], [f.name for f in spec.numeric_features])
     if "balance_levels" in r:

@@ -28,6 +28,12 @@ def _parser() -> argparse.ArgumentParser:
     r.add_argument("spec", help="study spec (.toml)")
     r.add_argument("--out", required=True, help="folder for results.json and report.md")
     r.add_argument("--database", help="DuckDB file holding the tables (overrides study.database)")
+    r.add_argument(
+        "--engine",
+        metavar="URL",
+        help="engine to run on, overriding --database: duckdb:///path.duckdb, postgresql://user@host:port/db "
+        "(password from the URL, PGPASSWORD or ~/.pgpass), spark://local or sc://host:port",
+    )
     r.add_argument("--cohort", help="enrolment month to study, YYYY-MM (overrides treatment.cohort)")
     r.add_argument("--method", help="matching method (overrides matching.method); see `sqlmatch methods`")
     r.add_argument("--quiet", action="store_true", help="no progress lines on stderr")
@@ -67,12 +73,18 @@ def _dispatch(args) -> int:
         plan = api.compile_plan(spec, dialect)
         written = api.write_plan(plan, args.out)
         print(f"sqlmatch: wrote {len(written)} files to {args.out}")
+        if not plan.complete:
+            print(
+                "sqlmatch: the plan stops before the propensity model: run `sqlmatch run` once to fit it "
+                "(it writes the coefficients beside the spec), then compile again for the remaining steps.",
+                file=sys.stderr,
+            )
         return 0
     if args.command == "run":
         spec = api.load(args.spec)
         if args.cohort or args.method:
             spec = spec.with_overrides(cohort=args.cohort, method=args.method)
-        results = api.run(spec, database=args.database, progress=Progress(quiet=args.quiet))
+        results = api.run(spec, database=args.database, progress=Progress(quiet=args.quiet), engine_url=args.engine)
         paths = api.write_results(results, args.out)
         print(f"sqlmatch: wrote {', '.join(str(p) for p in paths)}")
         return 0

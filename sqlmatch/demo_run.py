@@ -58,6 +58,6 @@ def run_demo(out: Path, riders: int = 20_000, seed: int = 20260301, progress: Pr
     api.write_plan(plan, out / "sql")
     with DuckDBEngine(str(out / DEMO_DATABASE)) as engine:
         output = run_plan(plan, spec, engine, progress=progress)
-        results = api.estimate(spec, plan, output)
+        results = api.estimate(spec, output.plan, output)
         results.demo_truth = read_truth(engine)
     return results, api.write_results(results, out)

@@ -90,6 +90,23 @@ class PlanContext:
             statements=tuple(dialects.generate(s, self.dialect) for s in statements),
         )
 
+    def score_step(self, model, exact: list[str]) -> Step:
+        """Propensity scores (logit scale) of every unit, from a fitted model."""
+        return self.table_step(
+            "propensity_scores",
+            "propensity_scores",
+            writes="scores",
+            reads=[self.display("measures")],
+            purpose="Propensity score (logit scale) of every unit in the study.",
+            columns=model.columns,
+            beta=model.coefficients,
+            exact=exact,
+            fitted_on=model.fitted_on,
+            iterations=model.iterations,
+            fingerprint=model.fingerprint,
+            measures_table=self.table("measures"),
+        )
+
     def query_step(self, name: str, template: str, reads: list[str], purpose: str, kind: str = "query", **context) -> Step:
         sql, written_in = render.render(template, self.dialect, **context)
         statements = dialects.parse(sql, written_in)
@@ -110,6 +127,7 @@ class Plan:
     steps: tuple[Step, ...]
     work_tables: tuple[str, ...]  # display names of every table the plan writes, in order
     outcomes: tuple[OutcomeColumns, ...]
+    complete: bool = True  # False: the plan stops where a propensity model must be fitted first
 
     def step(self, name: str) -> Step:
         for s in self.steps:
@@ -155,6 +173,15 @@ class Plan:
                 for i, s in enumerate(self.steps)
             ],
             "work_tables": list(self.work_tables),
+            "complete": self.complete,
+            **(
+                {}
+                if self.complete
+                else {
+                    "continues_after": "the propensity model is fitted: `sqlmatch run` fits it (one aggregate query per "
+                    "Newton step) and writes <spec>.model.json beside the spec; compile again to get the remaining steps."
+                }
+            ),
         }
 
 
@@ -184,7 +211,46 @@ def measure_columns(spec: Spec) -> tuple[list[MeasureColumn], list[OutcomeColumn
     return cols, outcomes
 
 
-def build_plan(spec: Spec, dialect: str = "duckdb") -> Plan:
+def newton_statement(spec: Spec, dialect: str, columns, beta) -> str:
+    """The aggregate query of one Newton step of the propensity model at coefficients `beta`."""
+    ctx = PlanContext(spec=spec, dialect=dialect)
+    return _newton_step(ctx, columns, beta).statements[0]
+
+
+def _newton_step(ctx: "PlanContext", columns, beta, name: str = "propensity_newton") -> Step:
+    from sqlmatch.propensity import ETA_CLAMP
+
+    return ctx.query_step(
+        name,
+        "propensity_newton",
+        reads=[ctx.display("measures")],
+        purpose="Propensity model: score vector, information matrix and log-likelihood at the coefficients shown.",
+        columns=columns,
+        beta=[float(b) for b in beta],
+        clamp=ETA_CLAMP,
+        measures_table=ctx.table("measures"),
+    )
+
+
+def levels_step(ctx: "PlanContext") -> Step | None:
+    spec = ctx.spec
+    cats = [n for n in spec.propensity.features if spec.feature(n).categorical]
+    if not cats:
+        return None
+    return ctx.query_step(
+        "categorical_levels",
+        "categorical_levels",
+        reads=[ctx.display("measures")],
+        purpose="Levels of the categorical features of the propensity model.",
+        features=cats,
+        measures_table=ctx.table("measures"),
+    )
+
+
+def build_plan(spec: Spec, dialect: str = "duckdb", model=None) -> Plan:
+    """The study's steps. For a score-based method without a fitted `model` the plan is partial:
+    it ends with the query for the categorical levels, and the runner fits the model and then
+    builds the full plan."""
     dialect = dialects.check_dialect(dialect)
     ctx = PlanContext(spec=spec, dialect=dialect)
     w = spec.windows
@@ -238,7 +304,14 @@ def build_plan(spec: Spec, dialect: str = "duckdb") -> Plan:
         ),
     ]
     method = method_for(spec.matching.method)
-    steps += method.steps(ctx)
+    if method.NEEDS_SCORE and model is None:
+        levels = levels_step(ctx)
+        steps += [levels] if levels else []
+        work_tables = tuple(t for s in steps for t in s.writes)
+        return Plan(study=spec.name, dialect=dialect, steps=tuple(steps), work_tables=work_tables, outcomes=tuple(outcomes), complete=False)
+    if method.NEEDS_SCORE:
+        steps.append(_newton_step(ctx, model.columns, model.coefficients, name="propensity_check"))
+    steps += method.steps(ctx, model)
     numeric = [f.name for f in spec.numeric_features]
     categorical = [f.name for f in spec.categorical_features]
     both = [ctx.display("measures"), ctx.display("weights")]

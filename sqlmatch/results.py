@@ -70,6 +70,8 @@ class MatchingSummary:
     n_control_matched: int
     strata: int
     strata_dropped: int
+    n_treated_outside_support: int = 0
+    n_control_outside_support: int = 0
 
 
 @dataclass

@@ -24,6 +24,8 @@ TIME_TYPE_WORDS = ("DATE", "TIMESTAMP")
 
 @dataclass
 class RunOutput:
+    plan: Plan | None = None
+    model: object = None  # propensity.FittedModel when the method needed a score
     results: dict[str, QueryResult] = field(default_factory=dict)
     timings: dict[str, float] = field(default_factory=dict)
     rows_fetched: int = 0
@@ -39,6 +41,10 @@ class Progress:
     def step(self, index: int, total: int, name: str, seconds: float) -> None:
         if not self.quiet:
             print(f"sqlmatch: [{index + 1:>2}/{total}] {name:<20} {seconds:8.2f}s", file=self.stream, flush=True)
+
+    def note(self, text: str) -> None:
+        if not self.quiet:
+            print(f"sqlmatch: {text}", file=self.stream, flush=True)
 
 
 def _find(columns: dict[str, str], name: str) -> str | None:
@@ -120,30 +126,71 @@ def _check_matched(result: QueryResult) -> None:
         )
 
 
+def _run_steps(plan: Plan, spec: Spec, engine: Engine, out: RunOutput, progress: Progress) -> None:
+    """Run the plan's steps not yet run (by name), collecting query results into `out`."""
+    total = len(plan.steps)
+    for i, step in enumerate(plan.steps):
+        if step.name in out.timings:
+            continue
+        t0 = time.perf_counter()
+        if step.kind in ("setup", "table"):
+            for statement in step.statements:
+                engine.execute(statement)
+        else:
+            (statement,) = step.statements
+            out.results[step.name] = engine.fetch(statement)
+            if step.name == "group_sizes":
+                _check_groups(spec, out.results[step.name])
+            if step.name == "matching_summary":
+                _check_matched(out.results[step.name])
+        out.timings[step.name] = time.perf_counter() - t0
+        progress.step(i, total, step.name, out.timings[step.name])
+
+
+def fit_propensity(spec: Spec, engine: Engine, out: RunOutput, progress: Progress):
+    """Newton-Raphson in the warehouse: one aggregate query per step (see propensity.py)."""
+    from sqlmatch import propensity
+    from sqlmatch.plan import newton_statement
+
+    levels: dict[str, list[str]] = {}
+    if "categorical_levels" in out.results:
+        for row in out.results["categorical_levels"].records():
+            levels.setdefault(row["feature"], []).append(str(row["level"]))
+    levels = {k: sorted(v) for k, v in levels.items()}
+    columns = propensity.design_columns(spec, levels)
+    t0 = time.perf_counter()
+    model = propensity.newton(
+        lambda beta: engine.fetch(newton_statement(spec, engine.dialect, columns, beta)).one(),
+        columns,
+        ridge=spec.propensity.ridge,
+        max_iterations=spec.propensity.max_iterations,
+    )
+    model.levels = levels
+    out.timings["propensity_fit"] = time.perf_counter() - t0
+    progress.note(f"propensity model: {model.iterations} Newton steps, {out.timings['propensity_fit']:.2f}s")
+    return model
+
+
 def run_plan(plan: Plan, spec: Spec, engine: Engine, progress: Progress | None = None, keep_tables: bool = True) -> RunOutput:
+    """Run a study. A partial plan (score-based method, no model yet) is run up to the model, the
+    model is fitted in the warehouse, then the full plan is built and its remaining steps run;
+    `out.plan` is the plan that ran in full and `out.model` the fitted model."""
+    from sqlmatch.plan import build_plan
+
     progress = progress or Progress(quiet=True)
     preflight(spec, engine)
-    out = RunOutput()
+    out = RunOutput(plan=plan)
     start_rows = engine.rows_fetched
     try:
-        for i, step in enumerate(plan.steps):
-            t0 = time.perf_counter()
-            if step.kind in ("setup", "table"):
-                for statement in step.statements:
-                    engine.execute(statement)
-            else:
-                (statement,) = step.statements
-                out.results[step.name] = engine.fetch(statement)
-                if step.name == "group_sizes":
-                    _check_groups(spec, out.results[step.name])
-                if step.name == "matching_summary":
-                    _check_matched(out.results[step.name])
-            out.timings[step.name] = time.perf_counter() - t0
-            progress.step(i, len(plan.steps), step.name, out.timings[step.name])
+        _run_steps(plan, spec, engine, out, progress)
+        if not plan.complete:
+            out.model = fit_propensity(spec, engine, out, progress)
+            out.plan = build_plan(spec, plan.dialect, model=out.model)
+            _run_steps(out.plan, spec, engine, out, progress)
     except BaseException:
-        drop_work_tables(plan, engine)
+        drop_work_tables(out.plan, engine)
         raise
     out.rows_fetched = engine.rows_fetched - start_rows
     if not keep_tables:
-        drop_work_tables(plan, engine)
+        drop_work_tables(out.plan, engine)
     return out

@@ -28,7 +28,7 @@ FEATURE_AGGREGATES = ("count", "sum", "mean", "active_days", "days_since_last", 
 OUTCOME_AGGREGATES = ("count", "sum", "active_days", "ratio", "active_at_end")
 CONTROL_POOLS = ("never_by_post_end", "not_yet_enrolled")
 WINDOW_UNITS = ("month", "day")
-METHODS = ("coarsened_exact",)
+METHODS = ("coarsened_exact", "score_bins")
 
 # Statement-level nodes that must never appear inside a filter expression.
 _FORBIDDEN_IN_FILTER = (
@@ -110,6 +110,19 @@ class Matching:
     method: str
     on: tuple[str, ...]
     cut_points: dict[str, tuple[float, ...]] = field(default_factory=dict)
+    bins: int = 5  # score_bins: subclasses at treated-score quantiles
+    exact: tuple[str, ...] = ()  # categorical features matched exactly on top of the score
+    common_support: bool = True  # drop units outside the overlap of treated and control scores
+
+
+@dataclass(frozen=True)
+class Propensity:
+    """Logistic model of enrolment on the features (see propensity.py)."""
+
+    features: tuple[str, ...]
+    log1p: tuple[str, ...] = ()
+    ridge: float = 0.0
+    max_iterations: int = 25
 
 
 @dataclass(frozen=True)
@@ -131,6 +144,7 @@ class Spec:
     features: tuple[Feature, ...]
     outcomes: tuple[Outcome, ...]
     matching: Matching
+    propensity: Propensity
     min_cell_size: int = 10
     source_path: Path | None = None
 
@@ -348,7 +362,7 @@ def load_spec(path: str | Path) -> Spec:
 
 
 def parse_spec(raw: dict, source_path: Path | None = None) -> Spec:
-    _check_keys(raw, "", {"study", "units", "events", "treatment", "windows", "eligibility", "features", "outcomes", "matching", "report"})
+    _check_keys(raw, "", {"study", "units", "events", "treatment", "windows", "eligibility", "features", "outcomes", "matching", "propensity", "report"})
 
     study = _table(raw, "study")
     _check_keys(study, "study", {"name", "work_schema", "database"})
@@ -400,6 +414,7 @@ def parse_spec(raw: dict, source_path: Path | None = None) -> Spec:
             raise SpecError("features/outcomes", f"the name {n!r} is used twice.", "give every feature and outcome its own name.")
 
     matching = _matching(raw.get("matching", {}), features)
+    propensity = _propensity(raw.get("propensity", {}), features, matching)
 
     report = raw.get("report", {})
     if not isinstance(report, dict):
@@ -425,6 +440,7 @@ def parse_spec(raw: dict, source_path: Path | None = None) -> Spec:
         features=features,
         outcomes=outcomes,
         matching=matching,
+        propensity=propensity,
         min_cell_size=min_cell,
         source_path=source_path,
         _raw=raw,
@@ -496,7 +512,7 @@ def _outcomes(value: Any, windows: Windows) -> list[Outcome]:
 def _matching(value: Any, features: tuple[Feature, ...]) -> Matching:
     if not isinstance(value, dict):
         raise SpecError("matching", "must be a table.", "write it as [matching].")
-    _check_keys(value, "matching", {"method", "on", "cut_points"})
+    _check_keys(value, "matching", {"method", "on", "cut_points", "bins", "exact", "common_support"})
     method = _choice(value, "matching", "method", METHODS, default="coarsened_exact")
     names = [f.name for f in features]
     on = value.get("on", names)
@@ -527,4 +543,43 @@ def _matching(value: Any, features: tuple[Feature, ...]) -> Matching:
                     f"numeric feature {n!r} has no cut points for coarsened exact matching.",
                     f"add {n} = [..] under [matching.cut_points], or leave it out of matching.on.",
                 )
-    return Matching(method=method, on=tuple(on), cut_points=cut_points)
+    bins = _int(value, "matching", "bins", default=5, low=2, high=50)
+    if "bins" in value and not 5 <= bins <= 50:
+        raise SpecError("matching.bins", f"must be between 5 and 50, got {bins}.", "5 subclasses remove most of the bias (Cochran 1968); use more for large samples.")
+    feats = {f.name: f for f in features}
+    exact = value.get("exact", [])
+    if not isinstance(exact, list) or not all(isinstance(x, str) for x in exact):
+        raise SpecError("matching.exact", "must be a list of categorical feature names.")
+    for n in exact:
+        if n not in feats or not feats[n].categorical:
+            cats = ", ".join(f.name for f in features if f.categorical) or "(none)"
+            raise SpecError("matching.exact", f"{n!r} is not a categorical feature.", f"use categorical features: {cats}.")
+    support = value.get("common_support", True)
+    if not isinstance(support, bool):
+        raise SpecError("matching.common_support", f"must be true or false, got {support!r}.")
+    return Matching(method=method, on=tuple(on), cut_points=cut_points, bins=bins, exact=tuple(exact), common_support=support)
+
+
+def _propensity(value: Any, features: tuple[Feature, ...], matching: Matching) -> Propensity:
+    if not isinstance(value, dict):
+        raise SpecError("propensity", "must be a table.", "write it as [propensity].")
+    _check_keys(value, "propensity", {"features", "log1p", "ridge", "max_iterations"})
+    names = [f.name for f in features]
+    chosen = value.get("features", [n for n in matching.on if n not in matching.exact])
+    for key, items in (("propensity.features", chosen), ("propensity.log1p", value.get("log1p", []))):
+        if not isinstance(items, list) or not all(isinstance(x, str) for x in items):
+            raise SpecError(key, "must be a list of feature names.")
+        for n in items:
+            if n not in names:
+                raise SpecError(key, f"{n!r} is not a feature.", f"use names from [[features]]: {', '.join(names)}.")
+    if not chosen:
+        raise SpecError("propensity.features", "is empty.", "list the features the propensity model uses.")
+    log1p = value.get("log1p", [])
+    for n in log1p:
+        if next(f for f in features if f.name == n).categorical:
+            raise SpecError("propensity.log1p", f"{n!r} is categorical; log1p applies to numeric features.")
+    ridge = value.get("ridge", 0.0)
+    if isinstance(ridge, bool) or not isinstance(ridge, (int, float)) or ridge < 0:
+        raise SpecError("propensity.ridge", f"must be a number >= 0, got {ridge!r}.")
+    iterations = _int(value, "propensity", "max_iterations", default=25, low=1, high=200)
+    return Propensity(features=tuple(chosen), log1p=tuple(log1p), ridge=float(ridge), max_iterations=iterations)

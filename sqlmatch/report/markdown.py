@@ -41,7 +41,9 @@ def render_markdown(r: StudyResults) -> str:
         "|---|---:|---:|",
         f"| in the study | {_n(m.n_treated, mc)} | {_n(m.n_control, mc)} |",
         f"| matched | {_n(m.n_treated_matched, mc)} | {_n(m.n_control_matched, mc)} |",
-        f"| dropped (no comparable unit) | {_n(m.n_treated - m.n_treated_matched, mc)} | {_n(m.n_control - m.n_control_matched, mc)} |",
+        f"| dropped: outside the common support | {_n(m.n_treated_outside_support, mc)} | {_n(m.n_control_outside_support, mc)} |",
+        f"| dropped: no comparable unit in the stratum | {_n(m.n_treated - m.n_treated_matched - m.n_treated_outside_support, mc)} | "
+        f"{_n(m.n_control - m.n_control_matched - m.n_control_outside_support, mc)} |",
         "",
         f"Strata used: {m.strata:,}; cells dropped for lacking an enrolled or a non-enrolled unit: {m.strata_dropped:,}.",
         "",

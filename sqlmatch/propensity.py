@@ -1,0 +1,240 @@
+"""Propensity score: logistic regression of treatment on the features, fitted in the warehouse.
+
+Newton-Raphson where each iteration is ONE aggregate query: for coefficients b, the engine
+returns the score vector  g = sum (t - p) x  and the information matrix  H = sum p (1 - p) x x'
+(p + p(p+1)/2 numbers, p = number of design columns) plus the log-likelihood; Python solves
+H d = g with numpy and updates b <- b + d. An optional ridge penalty lam * |b|^2 / 2 (intercept
+not penalised) adds -lam*b to g and lam*I to H.
+
+The fitted model is a small JSON file (design columns, coefficients, a fingerprint of the data
+it was fitted on, the date) that a reviewer can read and `compile` can bake into pure SQL.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import hashlib
+import json
+import math
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from sqlmatch.errors import DataError, SqlmatchError
+
+MODEL_VERSION = 1
+ETA_CLAMP = 30.0  # |linear predictor| cap inside exp(): p stays in (1e-13, 1 - 1e-13), no overflow anywhere
+SEPARATION_P = 1e-12  # a fitted p this close to 0 or 1 means |b'x| > 27.6: separation
+
+
+@dataclass(frozen=True)
+class DesignColumn:
+    """One column of the design matrix, built in SQL from the per-unit measures table."""
+
+    name: str
+    kind: str  # intercept | numeric | log1p | level
+    feature: str | None = None
+    level: str | None = None
+
+    @property
+    def describes(self) -> str:
+        """For SQL comments: a level value from the data can never close the comment."""
+        return describe_column(self).replace("*/", "* /").replace("/*", "/ *")
+
+
+def design_columns(spec, levels: dict[str, list[str]]) -> list[DesignColumn]:
+    """Intercept, numeric features (log1p where asked), and one indicator per categorical level
+    except the first (the reference level), in a fixed order."""
+    cols = [DesignColumn(name="intercept", kind="intercept")]
+    for name in spec.propensity.features:
+        feature = spec.feature(name)
+        if feature.categorical:
+            found = levels.get(name, [])
+            if len(found) < 2:
+                continue  # a single level carries no information
+            for i, level in enumerate(found[1:], start=1):
+                cols.append(DesignColumn(name=f"{name}__l{i}", kind="level", feature=name, level=level))
+        elif name in spec.propensity.log1p:
+            cols.append(DesignColumn(name=f"log1p_{name}", kind="log1p", feature=name))
+        else:
+            cols.append(DesignColumn(name=name, kind="numeric", feature=name))
+    return cols
+
+
+def describe_column(col: DesignColumn) -> str:
+    if col.kind == "level":
+        return f"{col.feature} = {col.level!r}"
+    if col.kind == "log1p":
+        return f"log(1 + {col.feature})"
+    return col.feature or "intercept"
+
+
+@dataclass
+class FittedModel:
+    columns: list[DesignColumn]
+    coefficients: list[float]
+    iterations: int
+    log_likelihood: float
+    n_units: int
+    fingerprint: str
+    levels: dict[str, list[str]]
+    ridge: float = 0.0
+    fitted_on: str = field(default_factory=lambda: dt.date.today().isoformat())
+
+    def to_json(self) -> str:
+        body = {
+            "sqlmatch_propensity_model": MODEL_VERSION,
+            "fitted_on": self.fitted_on,
+            "data_fingerprint": self.fingerprint,
+            "n_units": self.n_units,
+            "iterations": self.iterations,
+            "log_likelihood": self.log_likelihood,
+            "ridge": self.ridge,
+            "levels": self.levels,
+            "coefficients": [
+                {**asdict(c), "describes": describe_column(c), "coefficient": b} for c, b in zip(self.columns, self.coefficients)
+            ],
+        }
+        return json.dumps(body, indent=2) + "\n"
+
+    @classmethod
+    def from_json(cls, text: str, source: str = "model file") -> "FittedModel":
+        try:
+            body = json.loads(text)
+            if body.get("sqlmatch_propensity_model") != MODEL_VERSION:
+                raise ValueError("not a sqlmatch propensity model file")
+            cols = [DesignColumn(name=c["name"], kind=c["kind"], feature=c.get("feature"), level=c.get("level")) for c in body["coefficients"]]
+            coefs = [float(c["coefficient"]) for c in body["coefficients"]]
+            return cls(
+                columns=cols,
+                coefficients=coefs,
+                iterations=int(body["iterations"]),
+                log_likelihood=float(body["log_likelihood"]),
+                n_units=int(body["n_units"]),
+                fingerprint=str(body["data_fingerprint"]),
+                levels={k: list(v) for k, v in body.get("levels", {}).items()},
+                ridge=float(body.get("ridge", 0.0)),
+                fitted_on=str(body.get("fitted_on", "")),
+            )
+        except (ValueError, KeyError, TypeError) as err:
+            raise SqlmatchError(f"{source}: not a readable propensity model ({err}). Fix: delete it and run the study to fit a new one.") from None
+
+    def save(self, path: str | Path) -> Path:
+        path = Path(path)
+        path.write_text(self.to_json(), encoding="utf-8")
+        return path
+
+
+def model_path(spec) -> Path | None:
+    """Where a study keeps its fitted model: beside the spec, `<spec name>.model.json`."""
+    if spec.source_path is None:
+        return None
+    return spec.source_path.with_name(spec.source_path.stem + ".model.json")
+
+
+def load_model(spec) -> FittedModel | None:
+    path = model_path(spec)
+    if path is None or not path.is_file():
+        return None
+    return FittedModel.from_json(path.read_text(encoding="utf-8"), source=str(path))
+
+
+# --------------------------------------------------------------------------------------------
+# Newton-Raphson on aggregates
+
+
+def unpack(row: dict, p: int) -> tuple[float, np.ndarray, np.ndarray, float, float, float]:
+    """n, gradient, information matrix, log-likelihood, min and max fitted p from one result row."""
+    g = np.array([float(row[f"g_{i}"]) for i in range(p)])
+    h = np.empty((p, p))
+    for i in range(p):
+        for j in range(i, p):
+            h[i, j] = h[j, i] = float(row[f"h_{i}_{j}"])
+    return float(row["n_units"]), g, h, float(row["log_likelihood"]), float(row["p_min"]), float(row["p_max"])
+
+
+def fingerprint(n: float, h0: np.ndarray) -> str:
+    """A digest of the data the model was fitted on: the unit count and the cross-products at the
+    start (sum x x' / 4), rounded so that engines' last-digit differences do not change it."""
+    rounded = [float(f"{v:.10g}") for v in h0.ravel()]
+    return hashlib.sha256(json.dumps([n, rounded]).encode()).hexdigest()[:16]
+
+
+def newton(evaluate, columns: list[DesignColumn], ridge: float = 0.0, max_iterations: int = 25, tolerance: float = 1e-10):
+    """Fit by Newton-Raphson; `evaluate(beta)` runs the aggregate query and returns its row.
+
+    Stops when the largest step is below `tolerance` (relative to the coefficient size).
+    Raises DataError naming the features on (quasi-)complete separation or non-convergence."""
+    p = len(columns)
+    beta = np.zeros(p)
+    penalty = np.eye(p) * ridge
+    penalty[0, 0] = 0.0
+    first = None
+    for iteration in range(1, max_iterations + 1):
+        n, g, h, loglik, p_min, p_max = unpack(evaluate(beta), p)
+        if first is None:
+            first = (n, h.copy())
+        g = g - penalty @ beta
+        h = h + penalty
+        try:
+            step = np.linalg.solve(h, g)
+        except np.linalg.LinAlgError:
+            raise DataError(
+                "propensity.features",
+                f"the propensity model cannot be fitted: the features {_collinear(h, columns)} are collinear or constant.",
+                "drop one of them from propensity.features, or set propensity.ridge > 0.",
+            ) from None
+        beta = beta + step
+        if np.max(np.abs(step)) < tolerance * max(1.0, np.max(np.abs(beta))):
+            break
+    else:
+        _raise_not_converged(beta, columns, max_iterations)
+    n, g, h, loglik, p_min, p_max = unpack(evaluate(beta), p)
+    # Separation pushes some scores to the cap of the linear predictor (|b'x| ~ 30, p ~ 1e-13);
+    # a legitimately tiny score (a high earner who would never enrol) stays far from it.
+    if p_min < SEPARATION_P or p_max > 1 - SEPARATION_P:
+        _raise_separation(beta, columns)
+    return FittedModel(
+        columns=columns,
+        coefficients=[float(b) for b in beta],
+        iterations=iteration,
+        log_likelihood=loglik,
+        n_units=int(n),
+        fingerprint=fingerprint(*first),
+        levels={},
+        ridge=ridge,
+    )
+
+
+def _suspects(beta: np.ndarray, columns: list[DesignColumn]) -> str:
+    order = np.argsort(-np.abs(beta[1:]))[:3] + 1
+    return ", ".join(describe_column(columns[i]) for i in order)
+
+
+def _raise_separation(beta, columns):
+    raise DataError(
+        "propensity.features",
+        f"enrolment is (almost) perfectly predicted by the features, so scores reach 0 or 1 "
+        f"(separation); the largest coefficients are on: {_suspects(beta, columns)}.",
+        "remove or coarsen those features, restrict eligibility to units that could enrol, or set propensity.ridge > 0.",
+    )
+
+
+def _raise_not_converged(beta, columns, iterations):
+    raise DataError(
+        "propensity.max_iterations",
+        f"the propensity model did not converge in {iterations} Newton steps; coefficients keep growing on: {_suspects(beta, columns)}.",
+        "this usually means separation: remove or coarsen those features, or set propensity.ridge > 0.",
+    )
+
+
+def _collinear(h: np.ndarray, columns: list[DesignColumn]) -> str:
+    w, v = np.linalg.eigh(h)
+    vec = v[:, int(np.argmin(np.abs(w)))]
+    order = np.argsort(-np.abs(vec))[:3]
+    return ", ".join(describe_column(columns[i]) for i in order if abs(vec[i]) > 1e-3)
+
+
+def logit(p: float) -> float:
+    return math.log(p / (1 - p))
