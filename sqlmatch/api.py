@@ -17,7 +17,7 @@ from sqlmatch.engines.duckdb import DuckDBEngine
 from sqlmatch.errors import SpecError
 from sqlmatch.estimate.att import normal_interval, stratified_att
 from sqlmatch.estimate.ratio import ratio_effect
-from sqlmatch.plan import Plan, build_plan
+from sqlmatch.plan import L1_BINS, Plan, build_plan
 from sqlmatch.results import Effect, MatchingSummary, StudyResults
 from sqlmatch.runner import Progress, RunOutput, run_plan
 from sqlmatch.spec import Spec, load_spec
@@ -111,6 +111,12 @@ def estimate(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
     if "balance_levels" in r:
         balance += aggregates.level_balance(r["balance_levels"])
     effects = [_effect(o, r["outcome_strata"], r["outcome_unmatched"]) for o in plan.outcomes]
+    l1 = r["imbalance_l1"].one()
+    imbalance = {
+        "l1_before": float(l1["l1_before"]),
+        "l1_after": float(l1["l1_after"]),
+        "histogram": f"{L1_BINS} equal-width bins per numeric matching feature x categorical levels ({int(l1['n_cells'])} cells)",
+    }
     w = spec.windows
     return StudyResults(
         study=spec.name,
@@ -127,6 +133,7 @@ def estimate(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
         effects=effects,
         rows_fetched=output.rows_fetched,
         min_cell_size=spec.min_cell_size,
+        imbalance=imbalance,
         timings=output.timings,
     )
 

@@ -19,6 +19,7 @@ from sqlmatch.matching import method_for
 from sqlmatch.spec import Spec, last_period_start
 
 MANIFEST_VERSION = 1
+L1_BINS = 10  # equal-width bins per numeric feature in the fixed histogram of the L1 imbalance
 _KIND_TEXT = {"setup": "prepares the work schema", "table": "writes a table", "query": "returns aggregates to sqlmatch"}
 
 
@@ -50,6 +51,7 @@ class OutcomeColumns:
     kind: str  # continuous | binary | ratio
     num: str | None = None
     den: str | None = None
+    twin: str | None = None  # pre-window feature subtracted for the difference-in-differences
 
 
 @dataclass
@@ -207,7 +209,7 @@ def measure_columns(spec: Spec) -> tuple[list[MeasureColumn], list[OutcomeColumn
             outcomes.append(OutcomeColumns(name=o.name, kind="binary"))
         else:
             cols.append(MeasureColumn(name=o.name, agg=o.aggregate, start=w.post_start, end=w.post_end, fill=0.0, measure=o.measure))
-            outcomes.append(OutcomeColumns(name=o.name, kind="continuous"))
+            outcomes.append(OutcomeColumns(name=o.name, kind="continuous", twin=o.twin))
     return cols, outcomes
 
 
@@ -338,6 +340,20 @@ def build_plan(spec: Spec, dialect: str = "duckdb", model=None) -> Plan:
                 weights_table=ctx.table("weights"),
             )
         )
+    on = [spec.feature(n) for n in spec.matching.on]
+    steps.append(
+        ctx.query_step(
+            "imbalance_l1",
+            "imbalance_l1",
+            reads=both,
+            purpose="Multivariate L1 imbalance on a fixed histogram, before and after matching.",
+            bins=L1_BINS,
+            numeric=[f.name for f in on if not f.categorical],
+            categorical=[f.name for f in on if f.categorical],
+            measures_table=ctx.table("measures"),
+            weights_table=ctx.table("weights"),
+        )
+    )
     for matched in (True, False):
         steps.append(
             ctx.query_step(
@@ -355,5 +371,17 @@ def build_plan(spec: Spec, dialect: str = "duckdb", model=None) -> Plan:
                 weights_table=ctx.table("weights"),
             )
         )
+    steps.append(
+        ctx.query_step(
+            "outcome_regression",
+            "outcome_regression",
+            reads=both,
+            purpose="Weighted regression of each outcome on treatment and the numeric features among matched units, as sums (X'WX, X'Wy, y'Wy) for the sensitivity analysis.",
+            features=numeric,
+            outcomes=outcomes,
+            measures_table=ctx.table("measures"),
+            weights_table=ctx.table("weights"),
+        )
+    )
     work_tables = tuple(t for s in steps for t in s.writes)
     return Plan(study=spec.name, dialect=dialect, steps=tuple(steps), work_tables=work_tables, outcomes=tuple(outcomes))

@@ -85,6 +85,7 @@ class StudyResults:
     effects: list[Effect]
     rows_fetched: int
     min_cell_size: int
+    imbalance: dict | None = None  # multivariate L1 before/after matching (Iacus, King & Porro)
     assumptions: tuple[str, ...] = ASSUMPTIONS
     demo_truth: dict[str, float] | None = None
     timings: dict[str, float] = field(default_factory=dict)
@@ -100,6 +101,7 @@ class StudyResults:
             "windows": self.windows,
             "matching": asdict(self.matching),
             "balance": [{k: _num(v) for k, v in asdict(b).items()} for b in self.balance],
+            "imbalance": self.imbalance,
             "effects": [{k: _num(v) for k, v in asdict(e).items()} for e in self.effects],
             "rows_fetched": self.rows_fetched,
             "min_cell_size": self.min_cell_size,

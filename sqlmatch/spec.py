@@ -27,8 +27,9 @@ _COHORT_RE = re.compile(r"^(\d{4})-(\d{2})$")
 FEATURE_AGGREGATES = ("count", "sum", "mean", "active_days", "days_since_last", "attribute")
 OUTCOME_AGGREGATES = ("count", "sum", "active_days", "ratio", "active_at_end")
 CONTROL_POOLS = ("never_by_post_end", "not_yet_enrolled")
+COARSEN_RULES = ("quantiles", "sturges")
 WINDOW_UNITS = ("month", "day")
-METHODS = ("coarsened_exact", "score_bins")
+METHODS = ("coarsened_exact", "score_bins", "nearest")
 
 # Statement-level nodes that must never appear inside a filter expression.
 _FORBIDDEN_IN_FILTER = (
@@ -95,6 +96,7 @@ class Outcome:
     numerator: str | None = None  # ratio: events column summed on top
     denominator: str | None = None  # ratio: events column summed below; None = count of events
     last: int = 1  # active_at_end: how many window units at the end of the post window
+    twin: str | None = None  # pre-window feature measuring the same thing (difference-in-differences)
 
     @property
     def kind(self) -> str:
@@ -110,9 +112,16 @@ class Matching:
     method: str
     on: tuple[str, ...]
     cut_points: dict[str, tuple[float, ...]] = field(default_factory=dict)
+    coarsen: str | None = None  # automatic cut points for numeric features without explicit ones
+    coarsen_bins: int = 5  # number of equal-count bins for coarsen = "quantiles"
     bins: int = 5  # score_bins: subclasses at treated-score quantiles
     exact: tuple[str, ...] = ()  # categorical features matched exactly on top of the score
     common_support: bool = True  # drop units outside the overlap of treated and control scores
+    distance: str = "logit"  # nearest: logit | mahalanobis | robust_mahalanobis
+    caliper: float = 0.2  # nearest: in SDs of the logit score (pooled over the two groups)
+    ratio: int = 1  # nearest: controls per treated unit (k:1)
+    replacement: bool = True  # nearest: a control may serve several treated units
+    max_candidate_pairs: int = 50_000_000  # nearest: refuse a candidate join larger than this
 
 
 @dataclass(frozen=True)
@@ -407,7 +416,7 @@ def parse_spec(raw: dict, source_path: Path | None = None) -> Spec:
     filters = tuple(parse_filter(t, f"eligibility.filters[{i}]") for i, t in enumerate(filter_texts))
 
     features = tuple(_features(raw.get("features"), windows))
-    outcomes = tuple(_outcomes(raw.get("outcomes"), windows))
+    outcomes = tuple(_outcomes(raw.get("outcomes"), windows, features))
     names = [f.name for f in features] + [o.name for o in outcomes]
     for n in names:
         if names.count(n) > 1:
@@ -489,11 +498,11 @@ def _features(value: Any, windows: Windows) -> list[Feature]:
     return out
 
 
-def _outcomes(value: Any, windows: Windows) -> list[Outcome]:
+def _outcomes(value: Any, windows: Windows, features: tuple[Feature, ...] = ()) -> list[Outcome]:
     out = []
     for i, item in enumerate(_list_of_tables(value, "outcomes")):
         key = f"outcomes[{i}]"
-        _check_keys(item, key, {"name", "aggregate", "measure", "numerator", "denominator", "last"})
+        _check_keys(item, key, {"name", "aggregate", "measure", "numerator", "denominator", "last", "twin"})
         name = _name(_str(item, key, "name"), f"{key}.name")
         key = f"outcomes[{i}] ({name})"
         agg = _choice(item, key, "aggregate", OUTCOME_AGGREGATES)
@@ -505,14 +514,29 @@ def _outcomes(value: Any, windows: Windows) -> list[Outcome]:
         last = _int(item, key, "last", default=1, high=max(windows.post, 1))
         if agg != "active_at_end" and "last" in item:
             raise SpecError(f"{key}.last", "is only used with aggregate = \"active_at_end\".", "remove it.")
-        out.append(Outcome(name=name, aggregate=agg, measure=measure, numerator=numerator, denominator=denominator, last=last))
+        twin = _str(item, key, "twin", required=False)
+        if twin is not None:
+            # The twin is the same measure over the pre window: the outcome minus its twin is
+            # compared between groups (difference-in-differences on the matched sample).
+            if agg not in ("count", "sum", "active_days"):
+                raise SpecError(f"{key}.twin", f"is only used with count, sum or active_days outcomes, not {agg}.", "remove it.")
+            event_numeric = [f.name for f in features if f.aggregate != "attribute" and not f.categorical]
+            twin_feature = next((f for f in features if f.name == twin), None)
+            if twin_feature is None or twin not in event_numeric:
+                what = "is not a feature" if twin_feature is None else "is not a numeric pre-window event feature"
+                raise SpecError(
+                    f"{key}.twin",
+                    f"{twin!r} {what}.",
+                    f"name a pre-window feature built from events that measures the same thing: {', '.join(event_numeric) or '(none)'}.",
+                )
+        out.append(Outcome(name=name, aggregate=agg, measure=measure, numerator=numerator, denominator=denominator, last=last, twin=twin))
     return out
 
 
 def _matching(value: Any, features: tuple[Feature, ...]) -> Matching:
     if not isinstance(value, dict):
         raise SpecError("matching", "must be a table.", "write it as [matching].")
-    _check_keys(value, "matching", {"method", "on", "cut_points", "bins", "exact", "common_support"})
+    _check_keys(value, "matching", {"method", "on", "cut_points", "coarsen", "coarsen_bins", "bins", "exact", "common_support", "distance", "caliper", "ratio", "replacement", "max_candidate_pairs"})
     method = _choice(value, "matching", "method", METHODS, default="coarsened_exact")
     names = [f.name for f in features]
     on = value.get("on", names)
@@ -534,14 +558,18 @@ def _matching(value: Any, features: tuple[Feature, ...]) -> Matching:
         if any(b <= a for a, b in zip(pts, pts[1:])):
             raise SpecError(key, f"cut points {pts} are not strictly increasing.", "sort them and remove repeats.")
         cut_points[n] = tuple(float(p) for p in pts)
-    if method == "coarsened_exact":
+    coarsen = value.get("coarsen")
+    if coarsen is not None and coarsen not in COARSEN_RULES:
+        raise SpecError("matching.coarsen", f"must be one of {', '.join(COARSEN_RULES)}; got {coarsen!r}.")
+    coarsen_bins = _int(value, "matching", "coarsen_bins", default=5, low=2, high=100)
+    if method == "coarsened_exact" and coarsen is None:
         feats = {f.name: f for f in features}
         for n in on:
             if not feats[n].categorical and n not in cut_points:
                 raise SpecError(
                     f"matching.cut_points.{n}",
                     f"numeric feature {n!r} has no cut points for coarsened exact matching.",
-                    f"add {n} = [..] under [matching.cut_points], or leave it out of matching.on.",
+                    f"add {n} = [..] under [matching.cut_points], set matching.coarsen = \"quantiles\" or \"sturges\", or leave it out of matching.on.",
                 )
     bins = _int(value, "matching", "bins", default=5, low=2, high=50)
     if "bins" in value and not 5 <= bins <= 50:
@@ -557,7 +585,26 @@ def _matching(value: Any, features: tuple[Feature, ...]) -> Matching:
     support = value.get("common_support", True)
     if not isinstance(support, bool):
         raise SpecError("matching.common_support", f"must be true or false, got {support!r}.")
-    return Matching(method=method, on=tuple(on), cut_points=cut_points, bins=bins, exact=tuple(exact), common_support=support)
+    # nearest neighbours within blocks (sqlmatch/matching/neighbours.py)
+    distance = _choice(value, "matching", "distance", ("logit", "mahalanobis", "robust_mahalanobis"), default="logit")
+    caliper = value.get("caliper", 0.2)
+    if isinstance(caliper, bool) or not isinstance(caliper, (int, float)) or not 0 < caliper <= 10:
+        raise SpecError(
+            "matching.caliper",
+            f"must be a number of standard deviations of the logit score above 0 (at most 10), got {caliper!r}.",
+            "0.2 is common practice (Austin 2011).",
+        )
+    ratio = _int(value, "matching", "ratio", default=1, low=1, high=20)
+    replacement = value.get("replacement", True)
+    if not isinstance(replacement, bool):
+        raise SpecError("matching.replacement", f"must be true or false, got {replacement!r}.")
+    if not replacement and ratio != 1:
+        raise SpecError("matching.ratio", f"must be 1 when matching.replacement = false, got {ratio}.", "set ratio = 1, or replacement = true for k:1 matching.")
+    max_pairs = _int(value, "matching", "max_candidate_pairs", default=50_000_000, low=1, high=10**12)
+    return Matching(
+        method=method, on=tuple(on), cut_points=cut_points, coarsen=coarsen, coarsen_bins=coarsen_bins, bins=bins, exact=tuple(exact), common_support=support,
+        distance=distance, caliper=float(caliper), ratio=ratio, replacement=replacement, max_candidate_pairs=max_pairs,
+    )
 
 
 def _propensity(value: Any, features: tuple[Feature, ...], matching: Matching) -> Propensity:

@@ -90,5 +90,5 @@ def test_rows_fetched_does_not_grow_with_the_data(tmp_path):
     assert fetched[0] == fetched[1]
     plan = api.compile_plan(spec)
     n_levels = 4 + 6  # age bands and districts of the demo
-    bound = 2 + 1 + 2 + 2 * n_levels + 2 * 24 + 2  # group sizes, summary, balance, levels, strata, unmatched
+    bound = 2 + 1 + 2 + 2 * n_levels + 1 + 2 * 24 + 2  # group sizes, summary, balance, levels, L1, strata, unmatched
     assert fetched[0] <= bound, (fetched[0], bound, [s.name for s in plan.steps])

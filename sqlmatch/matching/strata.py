@@ -24,7 +24,7 @@ class Axis:
 
     @property
     def column(self) -> str:
-        return f"{self.feature}__bin"
+        return self.feature if self.kind == "given" else f"{self.feature}__bin"
 
 
 def strata_steps(ctx, axes: list[Axis], source: str, title: str, cell_text: str):

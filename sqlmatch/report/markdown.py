@@ -74,6 +74,12 @@ def render_markdown(r: StudyResults) -> str:
         lines.append(
             f"| {b.covariate} | {_x(b.smd_before)} | {_x(b.smd_after)}{flag} | {_x(b.variance_ratio_before, 2)} | {_x(b.variance_ratio_after, 2)} |"
         )
+    if r.imbalance:
+        lines += [
+            "",
+            f"Multivariate imbalance L1 (0 = same distribution, 1 = no overlap; Iacus, King & Porro): "
+            f"{r.imbalance['l1_before']:.3f} before matching, {r.imbalance['l1_after']:.3f} after, on {r.imbalance['histogram']}.",
+        ]
     lines += ["", "## Assumptions and cautions", ""]
     lines += [f"- {a}" for a in r.assumptions]
     lines += [

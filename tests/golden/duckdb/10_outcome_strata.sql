@@ -1,17 +1,17 @@
--- sqlmatch study 'annual_pass', step 10: outcome_unmatched (duckdb)
--- Outcome sums per group before matching (the naive comparison).
+-- sqlmatch study 'annual_pass', step 10: outcome_strata (duckdb)
+-- Outcome sums per stratum and group among matched units.
 -- kind: returns aggregates to sqlmatch
--- reads: sqlmatch.annual_pass_measures
+-- reads: sqlmatch.annual_pass_measures, sqlmatch.annual_pass_weights
 
-/* Outcomes per group, before matching (one stratum: every unit in the study):
+/* Outcomes per stratum and group among matched units:
    counts, sums, sums of squares (and, for ratio outcomes, the cross-product) from which the
    effect and its variance are computed. Rows grow with the number of strata, never with the
    number of units. */
 SELECT
-  0 AS stratum,
+  w.stratum,
   m.treated,
   COUNT(*) AS n_units,
-  CAST(COUNT(*) AS DOUBLE) AS sum_w,
+  SUM(w.weight) AS sum_w,
   SUM(m.post_trips) AS post_trips__sum,
   SUM(m.post_trips * m.post_trips) AS post_trips__sumsq,
   SUM(m.post_minutes) AS post_minutes__sum,
@@ -24,7 +24,11 @@ SELECT
   SUM(m.active_last_month) AS active_last_month__sum,
   SUM(m.active_last_month * m.active_last_month) AS active_last_month__sumsq
 FROM "sqlmatch".annual_pass_measures AS m
+INNER JOIN "sqlmatch".annual_pass_weights AS w
+  ON w.unit_key = m.unit_key
 GROUP BY
+  w.stratum,
   m.treated
 ORDER BY
+  w.stratum,
   m.treated;

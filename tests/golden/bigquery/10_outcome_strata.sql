@@ -1,4 +1,4 @@
--- sqlmatch study 'annual_pass', step 09: outcome_strata (postgres)
+-- sqlmatch study 'annual_pass', step 10: outcome_strata (bigquery)
 -- Outcome sums per stratum and group among matched units.
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_measures, sqlmatch.annual_pass_weights
@@ -23,12 +23,12 @@ SELECT
   SUM(m.fare_per_trip__num * m.fare_per_trip__den) AS fare_per_trip__sum_xy,
   SUM(m.active_last_month) AS active_last_month__sum,
   SUM(m.active_last_month * m.active_last_month) AS active_last_month__sumsq
-FROM "sqlmatch".annual_pass_measures AS m
-INNER JOIN "sqlmatch".annual_pass_weights AS w
+FROM `sqlmatch`.annual_pass_measures AS m
+INNER JOIN `sqlmatch`.annual_pass_weights AS w
   ON w.unit_key = m.unit_key
 GROUP BY
   w.stratum,
   m.treated
 ORDER BY
-  w.stratum,
-  m.treated;
+  w.stratum NULLS LAST,
+  m.treated NULLS LAST;

@@ -1,17 +1,17 @@
--- sqlmatch study 'annual_pass', step 09: outcome_strata (databricks)
--- Outcome sums per stratum and group among matched units.
+-- sqlmatch study 'annual_pass', step 11: outcome_unmatched (databricks)
+-- Outcome sums per group before matching (the naive comparison).
 -- kind: returns aggregates to sqlmatch
--- reads: sqlmatch.annual_pass_measures, sqlmatch.annual_pass_weights
+-- reads: sqlmatch.annual_pass_measures
 
-/* Outcomes per stratum and group among matched units:
+/* Outcomes per group, before matching (one stratum: every unit in the study):
    counts, sums, sums of squares (and, for ratio outcomes, the cross-product) from which the
    effect and its variance are computed. Rows grow with the number of strata, never with the
    number of units. */
 SELECT
-  w.stratum,
+  0 AS stratum,
   m.treated,
   COUNT(*) AS n_units,
-  SUM(w.weight) AS sum_w,
+  CAST(COUNT(*) AS DOUBLE) AS sum_w,
   SUM(m.post_trips) AS post_trips__sum,
   SUM(m.post_trips * m.post_trips) AS post_trips__sumsq,
   SUM(m.post_minutes) AS post_minutes__sum,
@@ -24,11 +24,7 @@ SELECT
   SUM(m.active_last_month) AS active_last_month__sum,
   SUM(m.active_last_month * m.active_last_month) AS active_last_month__sumsq
 FROM `sqlmatch`.annual_pass_measures AS m
-INNER JOIN `sqlmatch`.annual_pass_weights AS w
-  ON w.unit_key = m.unit_key
 GROUP BY
-  w.stratum,
   m.treated
 ORDER BY
-  w.stratum NULLS LAST,
   m.treated NULLS LAST;

@@ -1,4 +1,4 @@
--- sqlmatch study 'annual_pass', step 09: outcome_strata (snowflake)
+-- sqlmatch study 'annual_pass', step 10: outcome_strata (redshift)
 -- Outcome sums per stratum and group among matched units.
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_measures, sqlmatch.annual_pass_weights

@@ -1,4 +1,4 @@
--- sqlmatch study 'annual_pass', step 10: outcome_unmatched (databricks)
+-- sqlmatch study 'annual_pass', step 11: outcome_unmatched (spark)
 -- Outcome sums per group before matching (the naive comparison).
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_measures

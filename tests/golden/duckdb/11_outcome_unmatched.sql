@@ -1,4 +1,4 @@
--- sqlmatch study 'annual_pass', step 10: outcome_unmatched (spark)
+-- sqlmatch study 'annual_pass', step 11: outcome_unmatched (duckdb)
 -- Outcome sums per group before matching (the naive comparison).
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_measures
@@ -23,8 +23,8 @@ SELECT
   SUM(m.fare_per_trip__num * m.fare_per_trip__den) AS fare_per_trip__sum_xy,
   SUM(m.active_last_month) AS active_last_month__sum,
   SUM(m.active_last_month * m.active_last_month) AS active_last_month__sumsq
-FROM `sqlmatch`.annual_pass_measures AS m
+FROM "sqlmatch".annual_pass_measures AS m
 GROUP BY
   m.treated
 ORDER BY
-  m.treated NULLS LAST;
+  m.treated;
