@@ -37,12 +37,18 @@ def _parser() -> argparse.ArgumentParser:
     r.add_argument("--cohort", help="enrolment month to study, YYYY-MM (overrides treatment.cohort)")
     r.add_argument("--method", help="matching method (overrides matching.method); see `sqlmatch methods`")
     r.add_argument("--quiet", action="store_true", help="no progress lines on stderr")
+    r.add_argument("--keep", action="store_true", help="keep the study's work tables after the run (for debugging)")
 
     d = sub.add_parser("demo", help="build the bike-share demo warehouse and run the demo study end to end")
     d.add_argument("--out", required=True, help="folder for the demo database, compiled SQL, results.json and report.md")
     d.add_argument("--riders", type=int, default=20_000, help="number of riders to simulate (default 20000; trips are about 20x)")
     d.add_argument("--seed", type=int, default=20260301, help="seed of the simulation")
     d.add_argument("--quiet", action="store_true", help="no progress lines on stderr")
+
+    k = sub.add_parser("cleanup", help="drop the study's work tables from the warehouse")
+    k.add_argument("spec", help="study spec (.toml)")
+    k.add_argument("--database", help="DuckDB file holding the tables (overrides study.database)")
+    k.add_argument("--engine", help="engine URL (overrides --database)")
 
     sub.add_parser("methods", help="list the matching methods")
     return p
@@ -84,9 +90,15 @@ def _dispatch(args) -> int:
         spec = api.load(args.spec)
         if args.cohort or args.method:
             spec = spec.with_overrides(cohort=args.cohort, method=args.method)
-        results = api.run(spec, database=args.database, progress=Progress(quiet=args.quiet), engine_url=args.engine)
+        results = api.run(
+            spec, database=args.database, progress=Progress(quiet=args.quiet), engine_url=args.engine, keep_tables=args.keep
+        )
         paths = api.write_results(results, args.out)
         print(f"sqlmatch: wrote {', '.join(str(p) for p in paths)}")
+        return 0
+    if args.command == "cleanup":
+        dropped = api.cleanup(api.load(args.spec), database=args.database, engine_url=args.engine)
+        print(f"sqlmatch: dropped {len(dropped)} tables" + (f": {', '.join(dropped)}" if dropped else ""))
         return 0
     if args.command == "demo":
         from sqlmatch.demo_run import run_demo

@@ -36,9 +36,31 @@ def generate(tree: exp.Expression, dialect: str) -> str:
     return tree.sql(dialect=dialect, pretty=True, unsupported_level=ErrorLevel.RAISE)
 
 
-def create_table_as(table: exp.Table, query: exp.Expression) -> list[exp.Expression]:
-    """DROP + CREATE TABLE AS: the form that behaves the same on DuckDB, PostgreSQL and Spark
-    (CREATE OR REPLACE fails on PostgreSQL and on Spark's default catalog)."""
-    drop = exp.Drop(tables=[table.copy()], kind="TABLE", exists=True)
-    create = exp.Create(this=table.copy(), kind="TABLE", expression=query)
-    return [drop, create]
+BUILDING_SUFFIX = "__building"
+
+# Dialects whose ALTER TABLE ... RENAME TO resolves an unqualified new name in the session's
+# current schema rather than the table's own: the new name is qualified there.
+_QUALIFIED_RENAME = {"spark", "databricks", "snowflake", "trino"}
+
+
+def building_name(table: exp.Table) -> exp.Table:
+    building = table.copy()
+    building.set("this", exp.to_identifier(table.name + BUILDING_SUFFIX, quoted=table.this.quoted))
+    return building
+
+
+def create_table_as(table: exp.Table, query: exp.Expression, dialect: str) -> list[exp.Expression]:
+    """Build under a temporary name, then swap it in: readers and later steps never see a half-built
+    table, and a run killed mid-step leaves only a `__building` table that the next run drops.
+
+    DROP + CREATE TABLE AS (not CREATE OR REPLACE: it fails on PostgreSQL and on Spark's default
+    catalog), then DROP the old table and RENAME the new one; the runner executes the last two in
+    one transaction where the engine has transactional DDL (DuckDB, PostgreSQL)."""
+    building = building_name(table)
+    target = table.copy() if dialect in _QUALIFIED_RENAME else exp.Table(this=table.this.copy())
+    return [
+        exp.Drop(tables=[building.copy()], kind="TABLE", exists=True),
+        exp.Create(this=building.copy(), kind="TABLE", expression=query),
+        exp.Drop(tables=[table.copy()], kind="TABLE", exists=True),
+        exp.Alter(this=building.copy(), kind="TABLE", actions=[exp.AlterRename(this=target)]),
+    ]

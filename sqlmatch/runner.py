@@ -7,12 +7,14 @@ leaves nothing half-written behind.
 
 from __future__ import annotations
 
+import os
 import sys
 import time
 from dataclasses import dataclass, field
 
 from sqlglot import exp
 
+from sqlmatch.dialects import BUILDING_SUFFIX
 from sqlmatch.engines.base import Engine, QueryResult
 from sqlmatch.errors import DataError, SpecError
 from sqlmatch.plan import Plan
@@ -93,12 +95,30 @@ def preflight(spec: Spec, engine: Engine) -> None:
                 need(events, spec.events.display, f"outcomes[{i}] ({o.name}).{attr}", col, NUMERIC_TYPE_WORDS, "numeric")
 
 
+def _drop(engine: Engine, schema: str, name: str) -> None:
+    drop = exp.Drop(tables=[exp.table_(name, db=schema, quoted=True)], kind="TABLE", exists=True)
+    engine.execute(drop.sql(engine.dialect))
+
+
+def drop_stray_tables(spec: Spec, engine: Engine) -> list[str]:
+    """Tables a killed run left half-built (`<study>_*__building`); dropped before a new run."""
+    stray = [
+        name
+        for name in engine.table_names(spec.work_schema)
+        if name.startswith(f"{spec.name}_") and name.endswith(BUILDING_SUFFIX)
+    ]
+    for name in stray:
+        _drop(engine, spec.work_schema, name)
+    return stray
+
+
 def drop_work_tables(plan: Plan, engine: Engine) -> None:
+    """Drop every table the plan writes (and any half-built one), last written first."""
     for table in reversed(plan.work_tables):
         schema, name = table.split(".", 1)
-        if engine.columns(schema, name) is not None:
-            drop = exp.Drop(tables=[exp.table_(name, db=schema, quoted=True)], kind="TABLE", exists=True)
-            engine.execute(drop.sql(engine.dialect))
+        for candidate in (name + BUILDING_SUFFIX, name):
+            if engine.columns(schema, candidate) is not None:
+                _drop(engine, schema, candidate)
 
 
 def _check_groups(spec: Spec, result: QueryResult) -> None:
@@ -126,6 +146,14 @@ def _check_matched(result: QueryResult) -> None:
         )
 
 
+def _pause_for_tests(step: str) -> None:
+    """Test hook: SQLMATCH_PAUSE_BEFORE_SWAP=<step> halts a run with that step's table half-built,
+    so a test can kill the process there (see tests/test_interruptions.py)."""
+    if os.environ.get("SQLMATCH_PAUSE_BEFORE_SWAP") == step:
+        print(f"sqlmatch: paused before swapping in {step}", file=sys.stderr, flush=True)
+        time.sleep(300)
+
+
 def _run_steps(plan: Plan, spec: Spec, engine: Engine, out: RunOutput, progress: Progress) -> None:
     """Run the plan's steps not yet run (by name), collecting query results into `out`."""
     total = len(plan.steps)
@@ -133,9 +161,15 @@ def _run_steps(plan: Plan, spec: Spec, engine: Engine, out: RunOutput, progress:
         if step.name in out.timings:
             continue
         t0 = time.perf_counter()
-        if step.kind in ("setup", "table"):
+        if step.kind == "setup":
             for statement in step.statements:
                 engine.execute(statement)
+        elif step.kind == "table":
+            # build under a temporary name, then drop the old table and rename in one transaction
+            for statement in step.statements[:2]:
+                engine.execute(statement)
+            _pause_for_tests(step.name)
+            engine.execute_atomic(list(step.statements[2:]))
         else:
             (statement,) = step.statements
             out.results[step.name] = engine.fetch(statement)
@@ -143,6 +177,10 @@ def _run_steps(plan: Plan, spec: Spec, engine: Engine, out: RunOutput, progress:
                 _check_groups(spec, out.results[step.name])
             if step.name == "matching_summary":
                 _check_matched(out.results[step.name])
+            if step.name == "candidate_pairs":
+                from sqlmatch.matching.neighbours import check_candidates as _check_candidates
+
+                _check_candidates(spec, out.results[step.name])
         out.timings[step.name] = time.perf_counter() - t0
         progress.step(i, total, step.name, out.timings[step.name])
 
@@ -179,6 +217,7 @@ def run_plan(plan: Plan, spec: Spec, engine: Engine, progress: Progress | None =
 
     progress = progress or Progress(quiet=True)
     preflight(spec, engine)
+    drop_stray_tables(spec, engine)
     out = RunOutput(plan=plan)
     start_rows = engine.rows_fetched
     try:

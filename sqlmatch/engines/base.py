@@ -27,6 +27,7 @@ class QueryResult:
 
 class Engine(ABC):
     dialect: str = ""
+    transactional_ddl: bool = False  # DROP/ALTER can run inside BEGIN ... COMMIT
 
     def __init__(self) -> None:
         self.rows_fetched = 0
@@ -34,6 +35,22 @@ class Engine(ABC):
     @abstractmethod
     def execute(self, sql: str) -> None:
         """Run one statement that returns nothing of interest."""
+
+    def execute_atomic(self, statements: list[str]) -> None:
+        """Run statements as one transaction where the engine allows DDL in transactions;
+        elsewhere one after another (the swap then has a short window without the table)."""
+        if not self.transactional_ddl:
+            for sql in statements:
+                self.execute(sql)
+            return
+        self.execute("BEGIN TRANSACTION")
+        try:
+            for sql in statements:
+                self.execute(sql)
+        except BaseException:
+            self.execute("ROLLBACK")
+            raise
+        self.execute("COMMIT")
 
     @abstractmethod
     def _query(self, sql: str, params: tuple = ()) -> QueryResult: ...

@@ -10,6 +10,7 @@ from sqlmatch.errors import EngineError
 
 class DuckDBEngine(Engine):
     dialect = "duckdb"
+    transactional_ddl = True
 
     def __init__(self, database: str = ":memory:", connection: "duckdb.DuckDBPyConnection | None" = None):
         super().__init__()
