@@ -57,6 +57,21 @@ def write_plan(plan: Plan, out_dir: str | Path) -> list[Path]:
     return written
 
 
+def check_plan(plan: Plan, folder: str | Path) -> str:
+    """Unified diff between the SQL committed in `folder` and `plan`; empty when they agree."""
+    import difflib
+
+    folder = Path(folder)
+    expected = plan.files()
+    present = {p.name for p in folder.glob("[0-9][0-9]_*.sql")} | ({"manifest.json"} if (folder / "manifest.json").exists() else set())
+    chunks = []
+    for name in sorted(set(expected) | present):
+        old = (folder / name).read_text(encoding="utf-8").splitlines(keepends=True) if name in present else []
+        new = expected[name].splitlines(keepends=True) if name in expected else []
+        chunks += difflib.unified_diff(old, new, fromfile=f"{folder}/{name}", tofile=f"compiled/{name}")
+    return "".join(chunks)
+
+
 def open_engine(spec: Spec, database: str | None = None, engine_url: str | None = None) -> Engine:
     """The engine for a run: the one `engine_url` names (see sqlmatch.engines.open_engine_url; it
     wins over `database`), else DuckDB on the file given on the command line or in the spec."""

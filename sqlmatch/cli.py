@@ -22,7 +22,9 @@ def _parser() -> argparse.ArgumentParser:
     c = sub.add_parser("compile", help="write the study's SQL plan as numbered .sql files and a manifest")
     c.add_argument("spec", help="study spec (.toml)")
     c.add_argument("--dialect", default="duckdb", help=f"target SQL dialect: {', '.join(DIALECTS)} (default duckdb)")
-    c.add_argument("--out", required=True, help="folder for the .sql files and manifest.json")
+    target = c.add_mutually_exclusive_group(required=True)
+    target.add_argument("--out", help="folder for the .sql files and manifest.json")
+    target.add_argument("--check", metavar="DIR", help="compare with the SQL committed in DIR; print a unified diff and exit 1 if they differ")
 
     r = sub.add_parser("run", help="run the study in the warehouse and write results.json and report.md")
     r.add_argument("spec", help="study spec (.toml)")
@@ -77,6 +79,14 @@ def _dispatch(args) -> int:
         dialect = check_dialect(args.dialect)
         spec = api.load(args.spec)
         plan = api.compile_plan(spec, dialect)
+        if args.check:
+            diff = api.check_plan(plan, args.check)
+            if diff:
+                sys.stdout.write(diff)
+                print(f"sqlmatch: the SQL in {args.check} differs from what {args.spec} compiles to; run `sqlmatch compile {args.spec} --dialect {dialect} --out {args.check}` and review the diff.", file=sys.stderr)
+                return 1
+            print(f"sqlmatch: {args.check} matches {args.spec}")
+            return 0
         written = api.write_plan(plan, args.out)
         print(f"sqlmatch: wrote {len(written)} files to {args.out}")
         if not plan.complete:
