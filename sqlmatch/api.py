@@ -17,7 +17,7 @@ import numpy as np
 from sqlmatch import aggregates
 from sqlmatch.engines.base import Engine
 from sqlmatch.engines.duckdb import DuckDBEngine
-from sqlmatch.errors import SpecError
+from sqlmatch.errors import SpecError, SqlmatchError
 from sqlmatch.estimate.att import normal_interval, relative_lift, stratified_att
 from sqlmatch.estimate.binary import risk_ratio
 from sqlmatch.estimate.ratio import ratio_effect
@@ -86,6 +86,17 @@ def open_engine(spec: Spec, database: str | None = None, engine_url: str | None 
         raise SpecError("study.database", "no database to run on.", "set database = \"file.duckdb\" under [study] or pass --database.")
     if database != ":memory:" and not Path(database).exists():
         raise SpecError("study.database", f"DuckDB file {database!r} does not exist.", "check the path (relative paths are read from the spec's folder).")
+    return DuckDBEngine(database)
+
+
+def open_url_or_database(engine_url: str | None, database: str | None) -> Engine:
+    """An engine without a spec (for `init`): a URL, or a DuckDB file that must exist."""
+    if engine_url is not None:
+        from sqlmatch.engines import open_engine_url
+
+        return open_engine_url(engine_url)
+    if database is None or not Path(database).exists():
+        raise SqlmatchError(f"--database: DuckDB file {database!r} does not exist. Fix: pass --database FILE or --engine URL.")
     return DuckDBEngine(database)
 
 

@@ -52,6 +52,15 @@ def _parser() -> argparse.ArgumentParser:
     k.add_argument("--database", help="DuckDB file holding the tables (overrides study.database)")
     k.add_argument("--engine", help="engine URL (overrides --database)")
 
+    i = sub.add_parser("init", help="write a commented starter spec for your tables (reads column names and types only)")
+    i.add_argument("--units", required=True, help="units table, e.g. riders or analytics.riders")
+    i.add_argument("--events", required=True, help="events table, e.g. trips")
+    i.add_argument("--database", help="DuckDB file holding the tables")
+    i.add_argument("--engine", help="engine URL (overrides --database)")
+    i.add_argument("--name", default="my_study", help="study name (prefix of the tables sqlmatch writes)")
+    i.add_argument("--cohort", default="2026-01", help="enrolment month to study, YYYY-MM")
+    i.add_argument("--out", required=True, help="path of the spec to write (refuses to overwrite)")
+
     sub.add_parser("methods", help="list the matching methods")
     return p
 
@@ -105,6 +114,20 @@ def _dispatch(args) -> int:
         )
         paths = api.write_results(results, args.out)
         print(f"sqlmatch: wrote {', '.join(str(p) for p in paths)}")
+        return 0
+    if args.command == "init":
+        from sqlmatch.init_spec import starter_spec
+
+        out = Path(args.out)
+        if out.exists():
+            raise SqlmatchError(f"--out: {out} exists; sqlmatch init does not overwrite. Fix: choose another path or remove it.")
+        engine = api.open_url_or_database(args.engine, args.database)
+        try:
+            text = starter_spec(engine, args.units, args.events, study=args.name, cohort=args.cohort)
+        finally:
+            engine.close()
+        out.write_text(text, encoding="utf-8")
+        print(f"sqlmatch: wrote {out}; review the lines marked GUESS, then `sqlmatch compile {out} --out sql/`")
         return 0
     if args.command == "cleanup":
         dropped = api.cleanup(api.load(args.spec), database=args.database, engine_url=args.engine)
