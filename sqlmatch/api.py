@@ -116,6 +116,11 @@ def run(
     engine = engine or open_engine(spec, database, engine_url)
     try:
         output = run_plan(build_plan(spec, engine.dialect), spec, engine, progress=progress, keep_tables=keep_tables)
+        results = estimate(spec, output.plan, output)
+        if spec.results_table:
+            from sqlmatch.history import record
+
+            results.run_id = record(spec, results, engine)
     finally:
         if own:
             engine.close()
@@ -123,7 +128,7 @@ def run(
         from sqlmatch.propensity import model_path
 
         output.model.save(model_path(spec))
-    return estimate(spec, output.plan, output)
+    return results
 
 
 def cleanup(spec: Spec, engine: Engine | None = None, database: str | None = None, engine_url: str | None = None) -> list[str]:

@@ -66,6 +66,8 @@ def work_table_sql(schema: str, name: str) -> str:
 
 
 def literal(value) -> str:
+    if value is None:
+        return "NULL"
     if isinstance(value, bool):
         return "TRUE" if value else "FALSE"
     if isinstance(value, float) and value.is_integer() and abs(value) < 1e15:

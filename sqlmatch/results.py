@@ -20,9 +20,13 @@ ASSUMPTIONS = (
 
 
 def _num(x):
-    """JSON-safe number: NaN and infinities become null."""
+    """JSON-safe number: NaN and infinities become null (inside dicts and lists too)."""
     if x is None:
         return None
+    if isinstance(x, dict):
+        return {k: _num(v) for k, v in x.items()}
+    if isinstance(x, (list, tuple)):
+        return [_num(v) for v in x]
     if isinstance(x, float) and not math.isfinite(x):
         return None
     return x
@@ -45,6 +49,24 @@ class Effect:
     naive_std_error: float | None
     naive_ci_low: float | None
     naive_ci_high: float | None
+    # relative lift: effect / comparison mean (= mean_treated / mean_control - 1); binary: RR - 1
+    lift: float | None = None
+    lift_std_error: float | None = None
+    lift_ci_low: float | None = None
+    lift_ci_high: float | None = None
+    # binary outcomes: risk ratio p_1 / p_0 (the risk difference is `estimate`)
+    risk_ratio: float | None = None
+    risk_ratio_ci_low: float | None = None
+    risk_ratio_ci_high: float | None = None
+    # difference-in-differences: effect on (outcome - did_twin), the twin a pre-window feature
+    did_twin: str | None = None
+    did_estimate: float | None = None
+    did_std_error: float | None = None
+    did_ci_low: float | None = None
+    did_ci_high: float | None = None
+    # e_value, e_value_ci, robustness_value, robustness_value_alpha, partial_r2, t_statistic, df,
+    # rosenbaum (+ rosenbaum_reason when null), sentence, and what they were computed from
+    sensitivity: dict = field(default_factory=dict)
 
 
 @dataclass(frozen=True)
@@ -88,6 +110,7 @@ class StudyResults:
     imbalance: dict | None = None  # multivariate L1 before/after matching (Iacus, King & Porro)
     assumptions: tuple[str, ...] = ASSUMPTIONS
     demo_truth: dict[str, float] | None = None
+    run_id: str | None = None  # set when the run was recorded in the results history table
     timings: dict[str, float] = field(default_factory=dict)
 
     def effect(self, outcome: str) -> Effect:

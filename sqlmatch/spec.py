@@ -155,6 +155,7 @@ class Spec:
     matching: Matching
     propensity: Propensity
     min_cell_size: int = 10
+    results_table: str | None = None  # a table in work_schema keeping one row per run, cohort, method and outcome
     source_path: Path | None = None
 
     @property
@@ -374,10 +375,13 @@ def parse_spec(raw: dict, source_path: Path | None = None) -> Spec:
     _check_keys(raw, "", {"study", "units", "events", "treatment", "windows", "eligibility", "features", "outcomes", "matching", "propensity", "report"})
 
     study = _table(raw, "study")
-    _check_keys(study, "study", {"name", "work_schema", "database"})
+    _check_keys(study, "study", {"name", "work_schema", "database", "results_table"})
     name = _name(_str(study, "study", "name"), "study.name")
     work_schema = _str(study, "study", "work_schema", default="sqlmatch")
     database = _str(study, "study", "database", required=False)
+    results_table = _str(study, "study", "results_table", required=False)
+    if results_table is not None:
+        results_table = _name(results_table, "study.results_table")
 
     units = _table(raw, "units")
     _check_keys(units, "units", {"table", "key", "enrolled_on"})
@@ -451,6 +455,7 @@ def parse_spec(raw: dict, source_path: Path | None = None) -> Spec:
         matching=matching,
         propensity=propensity,
         min_cell_size=min_cell,
+        results_table=results_table,
         source_path=source_path,
         _raw=raw,
     )
@@ -588,10 +593,10 @@ def _matching(value: Any, features: tuple[Feature, ...]) -> Matching:
     # nearest neighbours within blocks (sqlmatch/matching/neighbours.py)
     distance = _choice(value, "matching", "distance", ("logit", "mahalanobis", "robust_mahalanobis"), default="logit")
     caliper = value.get("caliper", 0.2)
-    if isinstance(caliper, bool) or not isinstance(caliper, (int, float)) or not 0 < caliper <= 10:
+    if isinstance(caliper, bool) or not isinstance(caliper, (int, float)) or not 0.0001 <= caliper <= 10:
         raise SpecError(
             "matching.caliper",
-            f"must be a number of standard deviations of the logit score above 0 (at most 10), got {caliper!r}.",
+            f"must be a number of standard deviations of the logit score between 0.0001 and 10, got {caliper!r}.",
             "0.2 is common practice (Austin 2011).",
         )
     ratio = _int(value, "matching", "ratio", default=1, low=1, high=20)
