@@ -404,3 +404,28 @@ def write_results(results: StudyResults, out_dir: str | Path) -> list[Path]:
     md_path = out / "report.md"
     md_path.write_text(render_markdown(results), encoding="utf-8")
     return [json_path, md_path]
+
+
+def run_cohorts(spec: Spec, months: str, **run_options):
+    """Run the study for every month of `months` ("FIRST:LAST") and pool each outcome's effect."""
+    from sqlmatch.cohorts import CohortResults, month_range
+
+    results = []
+    for month in month_range(months):
+        progress = run_options.get("progress")
+        if progress is not None:
+            progress.note(f"cohort {month}")
+        results.append(run(spec.with_overrides(cohort=month), **run_options))
+    return CohortResults.combine(results)
+
+
+def write_cohort_results(combined, out_dir: str | Path) -> list[Path]:
+    from sqlmatch.report.cohorts import render_cohorts_markdown
+
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    json_path = out / "results.json"
+    json_path.write_text(combined.to_json(), encoding="utf-8")
+    md_path = out / "report.md"
+    md_path.write_text(render_cohorts_markdown(combined), encoding="utf-8")
+    return [json_path, md_path]

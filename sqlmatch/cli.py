@@ -36,7 +36,9 @@ def _parser() -> argparse.ArgumentParser:
         help="engine to run on, overriding --database: duckdb:///path.duckdb, postgresql://user@host:port/db "
         "(password from the URL, PGPASSWORD or ~/.pgpass), spark://local or sc://host:port",
     )
-    r.add_argument("--cohort", help="enrolment month to study, YYYY-MM (overrides treatment.cohort)")
+    months = r.add_mutually_exclusive_group()
+    months.add_argument("--cohort", help="enrolment month to study, YYYY-MM (overrides treatment.cohort)")
+    months.add_argument("--cohorts", metavar="FIRST:LAST", help="run every month from FIRST to LAST (YYYY-MM:YYYY-MM) and pool the effects")
     r.add_argument("--method", help="matching method (overrides matching.method); see `sqlmatch methods`")
     r.add_argument("--quiet", action="store_true", help="no progress lines on stderr")
     r.add_argument("--keep", action="store_true", help="keep the study's work tables after the run (for debugging)")
@@ -109,6 +111,13 @@ def _dispatch(args) -> int:
         spec = api.load(args.spec)
         if args.cohort or args.method:
             spec = spec.with_overrides(cohort=args.cohort, method=args.method)
+        if args.cohorts:
+            combined = api.run_cohorts(
+                spec, args.cohorts, database=args.database, progress=Progress(quiet=args.quiet), engine_url=args.engine, keep_tables=args.keep
+            )
+            paths = api.write_cohort_results(combined, args.out)
+            print(f"sqlmatch: wrote {', '.join(str(p) for p in paths)}")
+            return 0
         results = api.run(
             spec, database=args.database, progress=Progress(quiet=args.quiet), engine_url=args.engine, keep_tables=args.keep
         )

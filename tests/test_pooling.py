@@ -1,0 +1,51 @@
+"""Pooling across cohorts against statsmodels' meta-analysis (combine_effects, fixed effect)."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from statsmodels.stats.meta_analysis import combine_effects
+
+from sqlmatch.estimate.pooling import pool
+
+
+def test_fixed_effect_pool_equals_statsmodels():
+    est = np.array([4.1, 4.9, 3.7, 5.6, 4.4])
+    se = np.array([0.5, 0.4, 0.6, 0.7, 0.45])
+    ours = pool(list(est), list(se))
+    ref = combine_effects(est, se**2, method_re="chi2")
+    frame = ref.summary_frame()
+    assert ours.estimate == pytest.approx(frame.loc["fixed effect", "eff"], rel=1e-12)
+    assert ours.std_error == pytest.approx(frame.loc["fixed effect", "sd_eff"], rel=1e-12)
+    assert ours.ci_low == pytest.approx(frame.loc["fixed effect", "ci_low"], rel=1e-9)
+    assert ours.q == pytest.approx(ref.q, rel=1e-12)  # Cochran's Q
+    assert ours.i_squared == pytest.approx(ref.i2, rel=1e-9)  # Higgins & Thompson (2002) I^2
+
+
+def test_identical_cohorts_have_no_heterogeneity():
+    ours = pool([2.0, 2.0, 2.0], [1.0, 1.0, 1.0])
+    assert ours.q == 0.0 and ours.i_squared == 0.0
+    assert ours.std_error == pytest.approx(1 / np.sqrt(3))
+
+
+def test_cohorts_run_each_month_and_pool(demo_dir, tmp_path, capsys):
+    import json
+    import shutil
+
+    from sqlmatch.cli import main
+
+    from conftest import DEMO_SPEC
+
+    shutil.copyfile(demo_dir / "bikeshare.duckdb", tmp_path / "bikeshare.duckdb")
+    shutil.copyfile(DEMO_SPEC, tmp_path / "annual_pass.toml")
+    code = main(["run", str(tmp_path / "annual_pass.toml"), "--out", str(tmp_path / "out"), "--cohorts", "2026-02:2026-04", "--quiet"])
+    assert code == 0
+    body = json.loads((tmp_path / "out" / "results.json").read_text())
+    assert [c["cohort"] for c in body["cohorts"]] == ["2026-02", "2026-03", "2026-04"]
+    trips = next(p for p in body["pooled"] if p["outcome"] == "post_trips")
+    est = [next(e for e in c["effects"] if e["outcome"] == "post_trips") for c in body["cohorts"]]
+    expected = pool([e["estimate"] for e in est], [e["std_error"] for e in est])
+    assert trips["estimate"] == pytest.approx(expected.estimate, rel=1e-12)
+    assert "pooled effect" in (tmp_path / "out" / "report.md").read_text()
+    assert main(["run", str(tmp_path / "annual_pass.toml"), "--out", str(tmp_path / "x"), "--cohorts", "2026-05:2026-01"]) == 2
+    assert "--cohorts: '2026-05:2026-01' ends before it starts" in capsys.readouterr().err
