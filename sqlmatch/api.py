@@ -208,8 +208,31 @@ def estimate(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
         rows_fetched=output.rows_fetched,
         min_cell_size=spec.min_cell_size,
         imbalance=imbalance,
+        histograms=_histograms(r),
         timings=output.timings,
     )
+
+
+def _histograms(r) -> dict:
+    """feature name (or "propensity score") -> bins with low edge, width, group, count and weight."""
+    out: dict[str, list[dict]] = {}
+    if "feature_histograms" in r:
+        for row in r["feature_histograms"].records():
+            out.setdefault(row["feature"], []).append(_bin(row))
+    if "score_histogram" in r:
+        out["propensity score (logit)"] = [_bin(row) for row in r["score_histogram"].records()]
+    return out
+
+
+def _bin(row: dict) -> dict:
+    low, width, b = float(row["low"]), float(row["width"] or 0.0), int(row["bin"])
+    return {
+        "low": low + b * width,
+        "high": low + (b + 1) * width,
+        "treated": int(row["treated"]),
+        "n_units": int(row["n_units"]),
+        "sum_w": float(row["sum_w"] or 0.0),
+    }
 
 
 def _effect(outcome, matched, unmatched, regression=None, features=(), method: str = "", pair_ranks=None) -> Effect:
@@ -403,7 +426,11 @@ def write_results(results: StudyResults, out_dir: str | Path) -> list[Path]:
     json_path.write_text(results.to_json(), encoding="utf-8")
     md_path = out / "report.md"
     md_path.write_text(render_markdown(results), encoding="utf-8")
-    return [json_path, md_path]
+    from sqlmatch.report.html import render_html
+
+    html_path = out / "report.html"
+    html_path.write_text(render_html(results), encoding="utf-8")
+    return [json_path, md_path, html_path]
 
 
 def run_cohorts(spec: Spec, months: str, **run_options):

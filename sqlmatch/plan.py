@@ -19,6 +19,7 @@ from sqlmatch.matching import method_for
 from sqlmatch.spec import Spec, last_period_start
 
 MANIFEST_VERSION = 1
+HISTOGRAM_BINS = 20  # bins of the report's distribution plots
 L1_BINS = 10  # equal-width bins per numeric feature in the fixed histogram of the L1 imbalance
 _KIND_TEXT = {"setup": "prepares the work schema", "table": "writes a table", "query": "returns aggregates to sqlmatch"}
 
@@ -82,7 +83,7 @@ class PlanContext:
     def table_step(self, name: str, template: str, writes: str, reads: list[str], purpose: str, **context) -> Step:
         sql, written_in = render.render(template, self.dialect, **context)
         (query,) = dialects.parse(sql, written_in)
-        statements = dialects.create_table_as(self.table_node(writes), query)
+        statements = dialects.create_table_as(self.table_node(writes), query, self.dialect)
         return Step(
             name=name,
             kind="table",
@@ -354,6 +355,32 @@ def build_plan(spec: Spec, dialect: str = "duckdb", model=None) -> Plan:
             weights_table=ctx.table("weights"),
         )
     )
+    numeric = [f.name for f in spec.numeric_features]
+    if numeric:
+        steps.append(
+            ctx.query_step(
+                "feature_histograms",
+                "feature_histograms",
+                reads=both,
+                purpose="Binned distribution of each numeric feature by group, before and after matching (for plots).",
+                bins=HISTOGRAM_BINS,
+                features=numeric,
+                measures_table=ctx.table("measures"),
+                weights_table=ctx.table("weights"),
+            )
+        )
+    if method.NEEDS_SCORE:
+        steps.append(
+            ctx.query_step(
+                "score_histogram",
+                "score_histogram",
+                reads=[ctx.display("scores"), ctx.display("weights")],
+                purpose="Binned propensity scores by group, before and after matching (overlap plot).",
+                bins=HISTOGRAM_BINS,
+                scores_table=ctx.table("scores"),
+                weights_table=ctx.table("weights"),
+            )
+        )
     for matched in (True, False):
         steps.append(
             ctx.query_step(

@@ -32,6 +32,18 @@ def _num(x):
     return x
 
 
+def suppress_histograms(histograms: dict | None, min_cell: int) -> dict | None:
+    """Bins whose unit count is below the minimum cell size lose their counts and weights."""
+    if histograms is None:
+        return None
+    out = {}
+    for name, bins in histograms.items():
+        out[name] = [
+            {**b, "n_units": None, "sum_w": None} if b["n_units"] is not None and 0 < b["n_units"] < min_cell else b for b in bins
+        ]
+    return out
+
+
 @dataclass(frozen=True)
 class Effect:
     outcome: str
@@ -108,6 +120,7 @@ class StudyResults:
     rows_fetched: int
     min_cell_size: int
     imbalance: dict | None = None  # multivariate L1 before/after matching (Iacus, King & Porro)
+    histograms: dict | None = None  # binned feature and score distributions by group, for plots
     assumptions: tuple[str, ...] = ASSUMPTIONS
     demo_truth: dict[str, float] | None = None
     run_id: str | None = None  # set when the run was recorded in the results history table
@@ -125,6 +138,7 @@ class StudyResults:
             "matching": asdict(self.matching),
             "balance": [{k: _num(v) for k, v in asdict(b).items()} for b in self.balance],
             "imbalance": self.imbalance,
+            "histograms": suppress_histograms(self.histograms, self.min_cell_size),
             "effects": [{k: _num(v) for k, v in asdict(e).items()} for e in self.effects],
             "rows_fetched": self.rows_fetched,
             "min_cell_size": self.min_cell_size,

@@ -1,0 +1,71 @@
+"""The HTML report: self-contained, drawn from aggregates, and it renders in a real browser."""
+
+from __future__ import annotations
+
+import os
+import re
+import shutil
+import subprocess
+
+import numpy as np
+import pytest
+
+from sqlmatch.demo_run import run_demo
+
+
+@pytest.fixture(scope="module")
+def report(tmp_path_factory):
+    out = tmp_path_factory.mktemp("html")
+    run_demo(out, riders=4000, seed=11)
+    return out / "report.html"
+
+
+def test_report_is_self_contained(report):
+    text = report.read_text()
+    assert "<svg" in text
+    # nothing is fetched when the file is opened: no scripts, stylesheets or images from elsewhere
+    assert not re.search(r"<(script|link|img|iframe)\b", text)
+    assert not re.search(r"(src|href)\s*=\s*[\"']?(https?:)?//", text)
+    for words in ("No unmeasured confounding", "Overlap", "No interference", "inform, and do not replace, judgement"):
+        assert words in text
+
+
+def _browser() -> str | None:
+    return shutil.which("chromium") or shutil.which("chromium-browser") or shutil.which("google-chrome")
+
+
+def test_report_renders_in_a_headless_browser(report, tmp_path):
+    browser = _browser()
+    if browser is None:
+        if os.environ.get("CI"):
+            pytest.fail("chromium is missing in CI: .ci/run must install it")
+        pytest.skip("no chromium on this machine (CI installs it)")
+    shot = tmp_path / "report.png"
+    subprocess.run(
+        [
+            browser,
+            "--headless",
+            "--no-sandbox",
+            "--disable-gpu",
+            "--disable-quic",
+            "--no-first-run",
+            "--disable-background-networking",
+            "--disable-component-update",
+            "--disable-sync",
+            f"--user-data-dir={tmp_path / 'profile'}",
+            "--window-size=1000,1800",
+            f"--screenshot={shot}",
+            report.as_uri(),
+        ],
+        check=True,
+        capture_output=True,
+        timeout=120,
+    )
+    import matplotlib.image
+
+    pixels = matplotlib.image.imread(str(shot))[..., :3]
+    assert pixels.shape[0] >= 1000 and pixels.shape[1] >= 900
+    ink = (pixels.mean(axis=2) < 0.85).mean()  # share of pixels clearly darker than the page
+    colour = (np.abs(pixels[..., 0] - pixels[..., 2]) > 0.25).mean()  # vermillion/blue plot marks
+    assert ink > 0.01, f"the screenshot is (almost) blank: {ink:.4f} of pixels carry ink"
+    assert colour > 0.001, "no coloured plot marks in the screenshot"
