@@ -88,7 +88,6 @@ def test_rows_fetched_does_not_grow_with_the_data(tmp_path):
         assert results.matching.strata == 6 * 4  # every cell matched at both sizes
         fetched.append(results.rows_fetched)
     assert fetched[0] == fetched[1]
-    plan = api.compile_plan(spec)
-    n_levels = 4 + 6  # age bands and districts of the demo
-    bound = 2 + 1 + 2 + 2 * n_levels + 1 + 2 * 24 + 2  # group sizes, summary, balance, levels, L1, strata, unmatched
-    assert fetched[0] <= bound, (fetched[0], bound, [s.name for s in plan.steps])
+    # per step: 2 group sizes, 2 balance rows, 2 x 10 categorical levels, 1 L1 row, 5 features x 20 bins
+    # x 2 groups of histograms, 2 x 24 strata, 2 unmatched groups, and a handful of one-row summaries
+    assert fetched[0] < 2 + 2 + 20 + 1 + 200 + 48 + 2 + 10
