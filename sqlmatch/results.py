@@ -32,6 +32,11 @@ def _num(x):
     return x
 
 
+def _suppress_counts(record: dict, min_cell: int) -> dict:
+    """Unit counts (keys n_...) below the minimum cell size become null: never written anywhere."""
+    return {k: (None if k.startswith("n_") and isinstance(v, int) and 0 < v < min_cell else v) for k, v in record.items()}
+
+
 def suppress_histograms(histograms: dict | None, min_cell: int) -> dict | None:
     """Bins whose unit count is below the minimum cell size lose their counts and weights."""
     if histograms is None:
@@ -135,11 +140,11 @@ class StudyResults:
             "cohort": self.cohort,
             "dialect": self.dialect,
             "windows": self.windows,
-            "matching": asdict(self.matching),
+            "matching": _suppress_counts(asdict(self.matching), self.min_cell_size),
             "balance": [{k: _num(v) for k, v in asdict(b).items()} for b in self.balance],
             "imbalance": self.imbalance,
             "histograms": suppress_histograms(self.histograms, self.min_cell_size),
-            "effects": [{k: _num(v) for k, v in asdict(e).items()} for e in self.effects],
+            "effects": [_suppress_counts({k: _num(v) for k, v in asdict(e).items()}, self.min_cell_size) for e in self.effects],
             "rows_fetched": self.rows_fetched,
             "min_cell_size": self.min_cell_size,
             "assumptions": list(self.assumptions),

@@ -57,6 +57,8 @@ def _count(v, min_cell) -> str:
 def balance_plot(r: StudyResults) -> str:
     plt = _pyplot()
     rows = [b for b in r.balance if b.smd_before is not None]
+    if not rows:
+        return ""
     rows.sort(key=lambda b: abs(b.smd_before))
     fig, ax = plt.subplots(figsize=(6.2, 0.28 * len(rows) + 1.0))
     y = range(len(rows))
@@ -75,6 +77,8 @@ def balance_plot(r: StudyResults) -> str:
 def effects_plot(r: StudyResults) -> str:
     plt = _pyplot()
     n = len(r.effects)
+    if n == 0:
+        return ""
     fig, axes = plt.subplots(n, 1, figsize=(6.2, 0.9 * n + 0.4), squeeze=False)
     for ax, e in zip(axes[:, 0], r.effects):
         if e.ci_low is not None:
