@@ -456,3 +456,52 @@ def write_cohort_results(combined, out_dir: str | Path) -> list[Path]:
     md_path = out / "report.md"
     md_path.write_text(render_cohorts_markdown(combined), encoding="utf-8")
     return [json_path, md_path]
+
+
+def compile_for_scheduler(spec: Spec, dialect: str = "duckdb") -> Plan:
+    """The plan with every aggregate written to a table (`<study>_agg_<step>`), for orchestrators
+    that run the SQL themselves; `report_from_tables` then builds the results. A score-based
+    method needs its fitted model beside the spec."""
+    from sqlmatch.matching import method_for
+    from sqlmatch.propensity import load_model
+
+    model = None
+    if method_for(spec.matching.method).NEEDS_SCORE:
+        model = load_model(spec)
+        if model is None:
+            raise SqlmatchError(
+                "matching.method: a scheduled plan needs the fitted propensity model beside the spec. "
+                "Fix: run `sqlmatch run` once (it writes <spec>.model.json), then compile again."
+            )
+    return build_plan(spec, dialect, model=model, materialize=True)
+
+
+def report_from_tables(spec: Spec, engine: Engine | None = None, database: str | None = None, engine_url: str | None = None) -> StudyResults:
+    """Results from the aggregate tables a scheduled run of `compile_for_scheduler`'s plan wrote:
+    reads only those small tables, never the source tables."""
+    from sqlglot import exp
+
+    from sqlmatch.runner import RunOutput
+
+    own = engine is None
+    engine = engine or open_engine(spec, database, engine_url)
+    try:
+        plan = compile_for_scheduler(spec, engine.dialect)
+        output = RunOutput(plan=plan)
+        start = engine.rows_fetched
+        for step in plan.steps:
+            if not step.writes or not step.writes[0].split(".", 1)[1].startswith(f"{spec.name}_agg_"):
+                continue
+            schema, name = step.writes[0].split(".", 1)
+            if engine.columns(schema, name) is None:
+                raise SqlmatchError(
+                    f"table {step.writes[0]} was not found: the scheduled plan has not run (completely). "
+                    "Fix: run every step of the compiled plan in order, then `sqlmatch report` again."
+                )
+            query = exp.select("*").from_(exp.table_(name, db=schema, quoted=True))
+            output.results[step.name] = engine.fetch(query.sql(engine.dialect))
+        output.rows_fetched = engine.rows_fetched - start
+    finally:
+        if own:
+            engine.close()
+    return estimate(spec, plan, output)

@@ -25,6 +25,7 @@ def _parser() -> argparse.ArgumentParser:
     target = c.add_mutually_exclusive_group(required=True)
     target.add_argument("--out", help="folder for the .sql files and manifest.json")
     target.add_argument("--check", metavar="DIR", help="compare with the SQL committed in DIR; print a unified diff and exit 1 if they differ")
+    c.add_argument("--for-scheduler", action="store_true", help="write every aggregate to a table so a scheduler can run the plan; then `sqlmatch report`")
 
     r = sub.add_parser("run", help="run the study in the warehouse and write results.json and report.md")
     r.add_argument("spec", help="study spec (.toml)")
@@ -48,6 +49,12 @@ def _parser() -> argparse.ArgumentParser:
     d.add_argument("--riders", type=int, default=20_000, help="number of riders to simulate (default 20000; trips are about 20x)")
     d.add_argument("--seed", type=int, default=20260301, help="seed of the simulation")
     d.add_argument("--quiet", action="store_true", help="no progress lines on stderr")
+
+    rp = sub.add_parser("report", help="results and reports from the aggregate tables a scheduled plan wrote (see compile --for-scheduler)")
+    rp.add_argument("spec", help="study spec (.toml)")
+    rp.add_argument("--out", required=True, help="folder for results.json, report.md and report.html")
+    rp.add_argument("--database", help="DuckDB file holding the tables (overrides study.database)")
+    rp.add_argument("--engine", help="engine URL (overrides --database)")
 
     k = sub.add_parser("cleanup", help="drop the study's work tables from the warehouse")
     k.add_argument("spec", help="study spec (.toml)")
@@ -89,7 +96,7 @@ def _dispatch(args) -> int:
     if args.command == "compile":
         dialect = check_dialect(args.dialect)
         spec = api.load(args.spec)
-        plan = api.compile_plan(spec, dialect)
+        plan = api.compile_for_scheduler(spec, dialect) if args.for_scheduler else api.compile_plan(spec, dialect)
         if args.check:
             diff = api.check_plan(plan, args.check)
             if diff:
@@ -137,6 +144,11 @@ def _dispatch(args) -> int:
             engine.close()
         out.write_text(text, encoding="utf-8")
         print(f"sqlmatch: wrote {out}; review the lines marked GUESS, then `sqlmatch compile {out} --out sql/`")
+        return 0
+    if args.command == "report":
+        results = api.report_from_tables(api.load(args.spec), database=args.database, engine_url=args.engine)
+        paths = api.write_results(results, args.out)
+        print(f"sqlmatch: wrote {', '.join(str(p) for p in paths)}")
         return 0
     if args.command == "cleanup":
         dropped = api.cleanup(api.load(args.spec), database=args.database, engine_url=args.engine)

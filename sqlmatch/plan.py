@@ -110,6 +110,21 @@ class PlanContext:
             measures_table=self.table("measures"),
         )
 
+    def materialized(self, step: Step) -> Step:
+        """An aggregate query turned into a table step writing <study>_agg_<step name>."""
+        (sql,) = step.statements
+        (query,) = dialects.parse(sql, self.dialect)
+        logical = f"agg_{step.name}"
+        statements = dialects.create_table_as(self.table_node(logical), query, self.dialect)
+        return Step(
+            name=step.name,
+            kind="table",
+            purpose=step.purpose + " Written to a table for `sqlmatch report`.",
+            reads=step.reads,
+            writes=(self.display(logical),),
+            statements=tuple(dialects.generate(s, self.dialect) for s in statements),
+        )
+
     def query_step(self, name: str, template: str, reads: list[str], purpose: str, kind: str = "query", **context) -> Step:
         sql, written_in = render.render(template, self.dialect, **context)
         statements = dialects.parse(sql, written_in)
@@ -250,10 +265,13 @@ def levels_step(ctx: "PlanContext") -> Step | None:
     )
 
 
-def build_plan(spec: Spec, dialect: str = "duckdb", model=None) -> Plan:
+def build_plan(spec: Spec, dialect: str = "duckdb", model=None, materialize: bool = False) -> Plan:
     """The study's steps. For a score-based method without a fitted `model` the plan is partial:
     it ends with the query for the categorical levels, and the runner fits the model and then
-    builds the full plan."""
+    builds the full plan.
+
+    With `materialize`, every aggregate query instead writes a small table `<study>_agg_<step>`,
+    so a scheduler can run the whole plan and `sqlmatch report` read the results afterwards."""
     dialect = dialects.check_dialect(dialect)
     ctx = PlanContext(spec=spec, dialect=dialect)
     w = spec.windows
@@ -410,5 +428,7 @@ def build_plan(spec: Spec, dialect: str = "duckdb", model=None) -> Plan:
             weights_table=ctx.table("weights"),
         )
     )
+    if materialize:
+        steps = [ctx.materialized(s) if s.kind == "query" else s for s in steps]
     work_tables = tuple(t for s in steps for t in s.writes)
     return Plan(study=spec.name, dialect=dialect, steps=tuple(steps), work_tables=work_tables, outcomes=tuple(outcomes))
