@@ -42,6 +42,7 @@ def _parser() -> argparse.ArgumentParser:
     months.add_argument("--cohorts", metavar="FIRST:LAST", help="run every month from FIRST to LAST (YYYY-MM:YYYY-MM) and pool the effects")
     r.add_argument("--method", help="matching method (overrides matching.method); see `sqlmatch methods`")
     r.add_argument("--quiet", action="store_true", help="no progress lines on stderr")
+    r.add_argument("--verbose", action="store_true", help="also say what each step computes and reads")
     r.add_argument("--keep", action="store_true", help="keep the study's work tables after the run (for debugging)")
 
     d = sub.add_parser("demo", help="build the bike-share demo warehouse and run the demo study end to end")
@@ -49,6 +50,7 @@ def _parser() -> argparse.ArgumentParser:
     d.add_argument("--riders", type=int, default=20_000, help="number of riders to simulate (default 20000; trips are about 20x)")
     d.add_argument("--seed", type=int, default=20260301, help="seed of the simulation")
     d.add_argument("--quiet", action="store_true", help="no progress lines on stderr")
+    d.add_argument("--verbose", action="store_true", help="also say what each step computes and reads")
 
     rp = sub.add_parser("report", help="results and reports from the aggregate tables a scheduled plan wrote (see compile --for-scheduler)")
     rp.add_argument("spec", help="study spec (.toml)")
@@ -120,13 +122,13 @@ def _dispatch(args) -> int:
             spec = spec.with_overrides(cohort=args.cohort, method=args.method)
         if args.cohorts:
             combined = api.run_cohorts(
-                spec, args.cohorts, database=args.database, progress=Progress(quiet=args.quiet), engine_url=args.engine, keep_tables=args.keep
+                spec, args.cohorts, database=args.database, progress=Progress(quiet=args.quiet, verbose=args.verbose), engine_url=args.engine, keep_tables=args.keep
             )
             paths = api.write_cohort_results(combined, args.out)
             print(f"sqlmatch: wrote {', '.join(str(p) for p in paths)}")
             return 0
         results = api.run(
-            spec, database=args.database, progress=Progress(quiet=args.quiet), engine_url=args.engine, keep_tables=args.keep
+            spec, database=args.database, progress=Progress(quiet=args.quiet, verbose=args.verbose), engine_url=args.engine, keep_tables=args.keep
         )
         paths = api.write_results(results, args.out)
         print(f"sqlmatch: wrote {', '.join(str(p) for p in paths)}")
@@ -159,7 +161,7 @@ def _dispatch(args) -> int:
 
         if args.riders < 500:
             raise SqlmatchError("--riders: the demo needs at least 500 riders to have a cohort worth matching.")
-        results, paths = run_demo(Path(args.out), riders=args.riders, seed=args.seed, progress=Progress(quiet=args.quiet))
+        results, paths = run_demo(Path(args.out), riders=args.riders, seed=args.seed, progress=Progress(quiet=args.quiet, verbose=args.verbose))
         print(f"sqlmatch: wrote {', '.join(str(p) for p in paths)}")
         return 0
     raise AssertionError(args.command)  # argparse guarantees a known command

@@ -36,13 +36,16 @@ class RunOutput:
 class Progress:
     """One line per step on stderr, so a scheduler's log shows where time went."""
 
-    def __init__(self, quiet: bool = False, stream=None):
+    def __init__(self, quiet: bool = False, stream=None, verbose: bool = False):
         self.quiet = quiet
+        self.verbose = verbose and not quiet
         self.stream = stream or sys.stderr
 
-    def step(self, index: int, total: int, name: str, seconds: float) -> None:
-        if not self.quiet:
-            print(f"sqlmatch: [{index + 1:>2}/{total}] {name:<20} {seconds:8.2f}s", file=self.stream, flush=True)
+    def step(self, index: int, total: int, name: str, seconds: float, rows: int | None = None, fetched: bool = False) -> None:
+        if self.quiet:
+            return
+        what = "" if rows is None else (f"{rows:>12,} rows fetched" if fetched else f"{rows:>12,} rows written")
+        print(f"sqlmatch: [{index + 1:>2}/{total}] {name:<22} {seconds:8.2f}s {what}".rstrip(), file=self.stream, flush=True)
 
     def note(self, text: str) -> None:
         if not self.quiet:
@@ -160,14 +163,17 @@ def _run_steps(plan: Plan, spec: Spec, engine: Engine, out: RunOutput, progress:
     for i, step in enumerate(plan.steps):
         if step.name in out.timings:
             continue
+        if progress.verbose:
+            progress.note(f"{step.name}: {step.purpose} (reads {', '.join(step.reads) or '-'})")
         t0 = time.perf_counter()
+        written = None
         if step.kind == "setup":
             for statement in step.statements:
                 engine.execute(statement)
         elif step.kind == "table":
             # build under a temporary name, then drop the old table and rename in one transaction
-            for statement in step.statements[:2]:
-                engine.execute(statement)
+            engine.execute(step.statements[0])
+            written = engine.execute(step.statements[1])
             _pause_for_tests(step.name)
             engine.execute_atomic(list(step.statements[2:]))
         else:
@@ -182,7 +188,8 @@ def _run_steps(plan: Plan, spec: Spec, engine: Engine, out: RunOutput, progress:
 
                 _check_candidates(spec, out.results[step.name])
         out.timings[step.name] = time.perf_counter() - t0
-        progress.step(i, total, step.name, out.timings[step.name])
+        rows = written if step.kind == "table" else (len(out.results[step.name].rows) if step.kind == "query" else None)
+        progress.step(i, total, step.name, out.timings[step.name], rows=rows, fetched=step.kind == "query")
 
 
 def fit_propensity(spec: Spec, engine: Engine, out: RunOutput, progress: Progress):

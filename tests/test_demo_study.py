@@ -91,3 +91,14 @@ def test_rows_fetched_does_not_grow_with_the_data(tmp_path):
     # per step: 2 group sizes, 2 balance rows, 2 x 10 categorical levels, 1 L1 row, 5 features x 20 bins
     # x 2 groups of histograms, 2 x 24 strata, 2 unmatched groups, and a handful of one-row summaries
     assert fetched[0] < 2 + 2 + 20 + 1 + 200 + 48 + 2 + 10
+
+
+def test_progress_lines_name_each_step_with_time_and_rows(tmp_path, capsys):
+    assert main(["demo", "--out", str(tmp_path / "p"), "--riders", "2000"]) == 0
+    err = capsys.readouterr().err
+    lines = [line for line in err.splitlines() if line.startswith("sqlmatch: [")]
+    assert any("unit_measures" in line and "rows written" in line for line in lines)
+    assert any("outcome_strata" in line and "rows fetched" in line for line in lines)
+    assert all(line.split("]")[1].split()[1].endswith("s") for line in lines)  # elapsed seconds on every line
+    assert main(["demo", "--out", str(tmp_path / "q"), "--riders", "2000", "--quiet"]) == 0
+    assert "sqlmatch: [" not in capsys.readouterr().err

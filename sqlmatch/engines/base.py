@@ -33,8 +33,9 @@ class Engine(ABC):
         self.rows_fetched = 0
 
     @abstractmethod
-    def execute(self, sql: str) -> None:
-        """Run one statement that returns nothing of interest."""
+    def execute(self, sql: str) -> int | None:
+        """Run one statement that returns no result set; the number of rows it wrote when the
+        driver reports it (for progress lines), else None."""
 
     def execute_atomic(self, statements: list[str]) -> None:
         """Run statements as one transaction where the engine allows DDL in transactions;

@@ -28,9 +28,13 @@ class DuckDBEngine(Engine):
                 ) from None
             self._owns = True
 
-    def execute(self, sql: str) -> None:
+    def execute(self, sql: str) -> int | None:
         try:
-            self.con.execute(sql)
+            cur = self.con.execute(sql)
+            if cur.description and cur.description[0][0] == "Count":
+                rows = cur.fetchall()  # rows written by CREATE TABLE AS / INSERT
+                return int(rows[0][0]) if rows else None
+            return None
         except duckdb.Error as err:
             raise EngineError(f"DuckDB refused a statement: {str(err).splitlines()[0]}") from err
 
