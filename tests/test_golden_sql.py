@@ -90,3 +90,41 @@ def test_events_are_scanned_once(spec):
             tree = sqlglot.parse_one(statement, read="duckdb")
             scans += sum(1 for t in tree.find_all(sqlglot.exp.Table) if t.name == "trips")
     assert scans == 1
+
+
+HOSTILE = GOLDEN / "hostile_names"
+
+
+def hostile_spec():
+    """Source names with quotes, backticks, a semicolon, spaces, unicode and reserved words."""
+    import tomllib
+
+    from sqlmatch.spec import parse_spec
+
+    raw = tomllib.loads(DEMO_SPEC.read_text())
+    raw["units"] = {"table": {"schema": 'bike "share"', "name": "riders; DROP TABLE riders"}, "key": "select", "enrolled_on": "päss `bought` on"}
+    raw["events"] = {"table": {"schema": 'bike "share"', "name": "order"}, "unit_key": "select", "time": "started at"}
+    raw["features"] = [
+        {"name": "pre_trips", "aggregate": "count"},
+        {"name": "pre_fare", "aggregate": "sum", "measure": "fare'; --"},
+        {"name": "age_band", "aggregate": "attribute", "attribute": "Age Band", "type": "categorical"},
+    ]
+    raw["outcomes"] = [{"name": "post_fare", "aggregate": "sum", "measure": "fare'; --"}]
+    raw["eligibility"] = {"filters": ['"Age Band" <> \'50+\'']}
+    raw["matching"] = {"on": ["pre_trips", "age_band"], "cut_points": {"pre_trips": [1, 5, 10]}}
+    return parse_spec(raw)
+
+
+@pytest.mark.parametrize("dialect", DIALECTS)
+def test_hostile_names_are_quoted_on_every_dialect(dialect, update_golden, tmp_path):
+    plan = api.compile_plan(hostile_spec(), dialect)
+    folder = HOSTILE / dialect
+    if update_golden:
+        shutil.rmtree(folder, ignore_errors=True)
+        api.write_plan(plan, folder)
+    api.write_plan(plan, tmp_path)
+    for path in sorted(folder.iterdir()):
+        assert (tmp_path / path.name).read_text() == path.read_text(), f"hostile_names/{dialect}/{path.name} differs"
+    for step in plan.steps:
+        trees = [t for t in sqlglot.parse(";\n".join(step.statements), read=dialect) if t is not None]
+        assert len(trees) == len(step.statements)
