@@ -209,8 +209,45 @@ def estimate(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
         min_cell_size=spec.min_cell_size,
         imbalance=imbalance,
         histograms=_histograms(r),
+        warnings=_warnings(spec, r, balance),
         timings=output.timings,
     )
+
+
+def _warnings(spec: Spec, r, balance) -> list[str]:
+    """Plain-words warnings from the aggregates: windows the events do not cover, features that
+    carry no information."""
+    import datetime as dt
+
+    out = []
+    w = spec.windows
+    if "data_coverage" in r:
+        c = r["data_coverage"].one()
+        last, first = c["last_event_at"], c["first_event_at"]
+        if last is not None and _as_date(last) < w.post_end - dt.timedelta(days=7):
+            out.append(
+                f"The events end on {_as_date(last)}, more than a week before the post window ends ({w.post_end}): "
+                "if the data is still arriving, the outcomes are cut short for everyone. Wait for the data or use a shorter post window."
+            )
+        if first is not None and _as_date(first) > w.pre_start + dt.timedelta(days=7):
+            out.append(
+                f"The events start on {_as_date(first)}, more than a week after the pre window starts ({w.pre_start}): "
+                "pre-window features may be incomplete."
+            )
+        if c["n_units"] and c["n_units_without_events"] / c["n_units"] > 0.5:
+            out.append(f"{c['n_units_without_events'] / c['n_units']:.0%} of the units have no event in either window.")
+    for b in balance:
+        if b.kind != "level" and b.mean_treated_before is None and b.mean_control_before is None:
+            out.append(f"Feature {b.covariate!r} is NULL for every unit: it carries no information. Fix its definition or drop it.")
+        elif b.kind != "level" and b.smd_before == 0.0 and b.variance_ratio_before is None:
+            out.append(f"Feature {b.covariate!r} has the same value for every unit: it carries no information and can be dropped.")
+    return out
+
+
+def _as_date(value):
+    import datetime as dt
+
+    return value if isinstance(value, dt.date) and not isinstance(value, dt.datetime) else dt.date.fromisoformat(str(value)[:10])
 
 
 def _histograms(r) -> dict:
@@ -218,9 +255,10 @@ def _histograms(r) -> dict:
     out: dict[str, list[dict]] = {}
     if "feature_histograms" in r:
         for row in r["feature_histograms"].records():
-            out.setdefault(row["feature"], []).append(_bin(row))
+            if row["low"] is not None:  # a feature NULL for every unit has no distribution to draw
+                out.setdefault(row["feature"], []).append(_bin(row))
     if "score_histogram" in r:
-        out["propensity score (logit)"] = [_bin(row) for row in r["score_histogram"].records()]
+        out["propensity score (logit)"] = [_bin(row) for row in r["score_histogram"].records() if row["low"] is not None]
     return out
 
 

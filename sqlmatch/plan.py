@@ -309,6 +309,15 @@ def build_plan(spec: Spec, dialect: str = "duckdb", model=None, materialize: boo
             purpose="Count treated and control units (refuse an empty cohort or control pool).",
             units_table=ctx.table("units"),
         ),
+        ctx.query_step(
+            "unit_key_check",
+            "unit_key_check",
+            reads=[ctx.display("units")],
+            purpose="Rows and distinct keys among the study's units (refuse duplicate keys).",
+            key=spec.unit_key,
+            units_display=units_src,
+            units_table=ctx.table("units"),
+        ),
         ctx.table_step(
             "unit_measures",
             "unit_measures",
@@ -324,6 +333,16 @@ def build_plan(spec: Spec, dialect: str = "duckdb", model=None, materialize: boo
             units_table=ctx.table("units"),
         ),
     ]
+    steps.append(
+        ctx.query_step(
+            "data_coverage",
+            "data_coverage",
+            reads=[ctx.display("measures")],
+            purpose="First and last event within the windows, and units without events (warn on gaps).",
+            windows=w,
+            measures_table=ctx.table("measures"),
+        )
+    )
     method = method_for(spec.matching.method)
     if method.NEEDS_SCORE and model is None:
         levels = levels_step(ctx)

@@ -129,6 +129,7 @@ class StudyResults:
     assumptions: tuple[str, ...] = ASSUMPTIONS
     demo_truth: dict[str, float] | None = None
     run_id: str | None = None  # set when the run was recorded in the results history table
+    warnings: list[str] = field(default_factory=list)  # data problems worth a reader's attention
     timings: dict[str, float] = field(default_factory=dict)
 
     def effect(self, outcome: str) -> Effect:
@@ -145,6 +146,7 @@ class StudyResults:
             "imbalance": self.imbalance,
             "histograms": suppress_histograms(self.histograms, self.min_cell_size),
             "effects": [_suppress_counts({k: _num(v) for k, v in asdict(e).items()}, self.min_cell_size) for e in self.effects],
+            "warnings": list(self.warnings),
             "rows_fetched": self.rows_fetched,
             "min_cell_size": self.min_cell_size,
             "assumptions": list(self.assumptions),

@@ -140,6 +140,17 @@ def _check_groups(spec: Spec, result: QueryResult) -> None:
         )
 
 
+def _check_keys_unique(spec: Spec, result: QueryResult) -> None:
+    row = result.one()
+    if row["n_rows"] != row["n_keys"]:
+        raise DataError(
+            "units.key",
+            f"{spec.unit_key!r} is not unique in {spec.units.display!r}: {row['n_rows'] - row['n_keys']:,} of the study's "
+            f"{row['n_rows']:,} rows repeat a key, so those units would count twice.",
+            "deduplicate the units table (e.g. a view keeping one row per key) or name the right key column.",
+        )
+
+
 def _check_matched(result: QueryResult) -> None:
     if not result.one()["n_treated_matched"]:
         raise DataError(
@@ -183,6 +194,8 @@ def _run_steps(plan: Plan, spec: Spec, engine: Engine, out: RunOutput, progress:
                 _check_groups(spec, out.results[step.name])
             if step.name == "matching_summary":
                 _check_matched(out.results[step.name])
+            if step.name == "unit_key_check":
+                _check_keys_unique(spec, out.results[step.name])
             if step.name == "candidate_pairs":
                 from sqlmatch.matching.neighbours import check_candidates as _check_candidates
 

@@ -219,6 +219,8 @@ def render_html(r: StudyResults) -> str:
         parts += ["<h2>Overlap of propensity scores</h2>", overlap_plot(score)]
     if hist:
         parts += ["<h2>Feature distributions</h2>", distribution_plots(hist)]
+    if r.warnings:
+        parts += ["<h2>Warnings</h2>", "<div class='caution'><ul>"] + [f"<li>{_e(t)}</li>" for t in r.warnings] + ["</ul></div>"]
     parts += ["<h2>Assumptions and cautions</h2>", "<div class='caution'><ul>"]
     parts += [f"<li>{_e(a)}</li>" for a in r.assumptions]
     parts += [

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import datetime as dt
+
 from sqlmatch.results import StudyResults
 
 SMD_REFERENCE = 0.1  # |SMD| below 0.1 read as balanced: common practice (Austin 2009)
@@ -20,6 +22,90 @@ def _x(value: float | None, digits: int = 3) -> str:
 
 def _interval(lo: float | None, hi: float | None, digits: int = 3) -> str:
     return "–" if lo is None or hi is None else f"[{lo:,.{digits}f}, {hi:,.{digits}f}]"
+
+
+def _pct(value: float | None) -> str:
+    return "–" if value is None else f"{100.0 * value:+.1f}%"
+
+
+def _pct_interval(lo: float | None, hi: float | None) -> str:
+    return "–" if lo is None or hi is None else f"[{100.0 * lo:+.1f}%, {100.0 * hi:+.1f}%]"
+
+
+def _length(window: list[str], unit: str) -> str:
+    """Length of a [start, end) window in the study's window unit."""
+    start, end = dt.date.fromisoformat(window[0]), dt.date.fromisoformat(window[1])
+    if unit == "month":
+        n = (end.year - start.year) * 12 + end.month - start.month
+    else:
+        n = (end - start).days
+    return f"{n} {unit}{'s' if n != 1 else ''}"
+
+
+def _effect_notes(r: StudyResults) -> list[str]:
+    """Risk ratios of binary outcomes and differences-in-differences, in words."""
+    lines = []
+    for e in r.effects:
+        if e.kind == "binary" and e.risk_ratio is not None:
+            lines.append(
+                f"- **{e.outcome}** (binary): the effect above is the risk difference; the risk ratio is "
+                f"{_x(e.risk_ratio, 2)} {_interval(e.risk_ratio_ci_low, e.risk_ratio_ci_high, 2)}, i.e. the enrolled were "
+                f"{_x(e.risk_ratio, 2)} times as likely to have the outcome as comparable non-enrolled units."
+            )
+    w = r.windows
+    for e in r.effects:
+        if e.did_twin:
+            lines.append(
+                f"- **{e.outcome} − {e.did_twin}** (difference-in-differences on the matched sample): "
+                f"{_x(e.did_estimate)} {_interval(e.did_ci_low, e.did_ci_high)}. The two measures are compared as they "
+                f"are: {e.did_twin} covers the pre window ({_length(w['pre'], w['unit'])}), {e.outcome} the post window "
+                f"({_length(w['post'], w['unit'])}); no rescaling to a common length."
+            )
+    if lines:
+        lines = ["", *lines]
+    return lines
+
+
+def _sensitivity_section(r: StudyResults) -> list[str]:
+    lines = [
+        "",
+        "## Sensitivity to unmeasured confounding",
+        "",
+        "How strong would a factor that is not among the features have to be to explain each effect away?",
+        "",
+        "| outcome | E-value | E-value of the interval | robustness value | robustness value (95% interval) | partial R² of enrolment |",
+        "|---|---:|---:|---:|---:|---:|",
+    ]
+    for e in r.effects:
+        s = e.sensitivity or {}
+        rv, rva, r2 = s.get("robustness_value"), s.get("robustness_value_alpha"), s.get("partial_r2")
+        lines.append(
+            f"| {e.outcome} | {_x(s.get('e_value'), 2)} | {_x(s.get('e_value_ci'), 2)} | "
+            f"{'–' if rv is None else f'{100 * rv:.1f}%'} | {'–' if rva is None else f'{100 * rva:.1f}%'} | "
+            f"{'–' if r2 is None else f'{100 * r2:.1f}%'} |"
+        )
+    lines.append("")
+    for e in r.effects:
+        s = e.sensitivity or {}
+        if s.get("sentence"):
+            lines.append(f"- **{e.outcome}**: {s['sentence']}")
+        if s.get("robustness_value") is None and s.get("robustness_reason"):
+            lines.append(f"- **{e.outcome}**: no robustness value: {s['robustness_reason']}")
+    adjusted = next((e.sensitivity.get("adjusted_for") for e in r.effects if e.sensitivity and e.sensitivity.get("adjusted_for")), None)
+    lines += [
+        "",
+        "E-values (VanderWeele & Ding 2017) are on the risk-ratio scale: for binary outcomes from the risk ratio; "
+        "for other outcomes from the standardized effect d = effect / SD through RR ≈ exp(0.91 d), with the pooled SD "
+        "of the outcome among the matched units. Robustness values (Cinelli & Hazlett 2020) come from a weighted "
+        "regression of each outcome on enrolment among the matched units, with the matching weights as analytic weights, "
+        + (f"adjusting for the numeric features ({', '.join(adjusted)})" if adjusted else "adjusting for the numeric features")
+        + "; the categorical features are not in that regression, and its enrolment coefficient can differ a little "
+        "from the stratified effect above. Ratio outcomes enter it as each unit's own ratio, weighted by its denominator.",
+    ]
+    reasons = sorted({e.sensitivity.get("rosenbaum_reason") for e in r.effects if e.sensitivity and e.sensitivity.get("rosenbaum") is None} - {None})
+    if reasons:
+        lines += ["", "Rosenbaum bounds: not computed. " + " ".join(reasons)]
+    return lines
 
 
 def render_markdown(r: StudyResults) -> str:
@@ -49,14 +135,20 @@ def render_markdown(r: StudyResults) -> str:
         "",
         "## Effects on the enrolled",
         "",
-        "| outcome | kind | effect | 95% interval | enrolled mean | matched comparison mean | unmatched difference |",
-        "|---|---|---:|---|---:|---:|---:|",
+        "| outcome | kind | effect | 95% interval | relative lift | lift 95% interval | enrolled mean | matched comparison mean | unmatched difference |",
+        "|---|---|---:|---|---:|---|---:|---:|---:|",
     ]
     for e in r.effects:
         lines.append(
-            f"| {e.outcome} | {e.kind} | {_x(e.estimate)} | {_interval(e.ci_low, e.ci_high)} | "
-            f"{_x(e.mean_treated)} | {_x(e.mean_control)} | {_x(e.naive_estimate)} |"
+            f"| {e.outcome} | {e.kind} | {_x(e.estimate)} | {_interval(e.ci_low, e.ci_high)} | {_pct(e.lift)} | "
+            f"{_pct_interval(e.lift_ci_low, e.lift_ci_high)} | {_x(e.mean_treated)} | {_x(e.mean_control)} | {_x(e.naive_estimate)} |"
         )
+    lines += [
+        "",
+        "Relative lift: the effect as a share of the matched comparison mean (enrolled mean ÷ comparison mean − 1; "
+        "for binary outcomes the risk ratio − 1).",
+    ]
+    lines += _effect_notes(r)
     if r.demo_truth:
         lines += ["", "Simulated truth (demo only): " + ", ".join(f"{k} = {v:.3f}" for k, v in sorted(r.demo_truth.items())) + "."]
     lines += [
@@ -80,6 +172,9 @@ def render_markdown(r: StudyResults) -> str:
             f"Multivariate imbalance L1 (0 = same distribution, 1 = no overlap; Iacus, King & Porro): "
             f"{r.imbalance['l1_before']:.3f} before matching, {r.imbalance['l1_after']:.3f} after, on {r.imbalance['histogram']}.",
         ]
+    lines += _sensitivity_section(r)
+    if r.warnings:
+        lines += ["", "## Warnings", ""] + [f"- {text}" for text in r.warnings]
     lines += ["", "## Assumptions and cautions", ""]
     lines += [f"- {a}" for a in r.assumptions]
     lines += [

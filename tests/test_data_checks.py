@@ -1,0 +1,67 @@
+"""Checks on the data itself: duplicate unit keys are refused; windows the events do not cover
+and features that carry no information are reported in plain words."""
+
+from __future__ import annotations
+
+import shutil
+import tomllib
+
+import duckdb
+import pytest
+
+from sqlmatch import api
+from sqlmatch.errors import DataError
+from sqlmatch.spec import parse_spec
+
+from conftest import DEMO_SPEC
+
+
+@pytest.fixture
+def db(demo_dir, tmp_path):
+    path = tmp_path / "bikeshare.duckdb"
+    shutil.copyfile(demo_dir / "bikeshare.duckdb", path)
+    return path
+
+
+def spec_for(db, **changes):
+    raw = tomllib.loads(DEMO_SPEC.read_text())
+    raw["study"]["database"] = str(db)
+    raw.update(changes)
+    return parse_spec(raw)
+
+
+def tables(db):
+    with duckdb.connect(str(db), read_only=True) as con:
+        return con.execute("SELECT table_name FROM information_schema.tables WHERE table_schema = 'sqlmatch'").fetchall()
+
+
+def test_duplicate_unit_keys_are_refused(db):
+    with duckdb.connect(str(db)) as con:
+        con.execute("CREATE TABLE riders_dup AS SELECT * FROM riders UNION ALL SELECT * FROM riders WHERE rider_id <= 5")
+    raw_units = {"table": "riders_dup", "key": "rider_id", "enrolled_on": "pass_bought_on"}
+    with pytest.raises(DataError) as info:
+        api.run(spec_for(db, units=raw_units))
+    assert "'units.key'" in str(info.value) and "deduplicate" in str(info.value)
+    assert tables(db) == []
+
+
+def test_events_that_stop_before_the_post_window_ends_are_reported(db):
+    with duckdb.connect(str(db)) as con:
+        con.execute("DELETE FROM trips WHERE started_at >= TIMESTAMP '2026-06-10'")
+    results = api.run(spec_for(db), keep_tables=False)
+    assert any("events end on 2026-06-09" in w for w in results.warnings), results.warnings
+
+
+def test_constant_and_all_null_features_are_reported(db):
+    with duckdb.connect(str(db)) as con:
+        con.execute("ALTER TABLE riders ADD COLUMN fleet_size DOUBLE DEFAULT 400")
+        con.execute("ALTER TABLE riders ADD COLUMN survey_score DOUBLE")
+    raw = tomllib.loads(DEMO_SPEC.read_text())
+    features = raw["features"] + [
+        {"name": "fleet_size", "aggregate": "attribute", "attribute": "fleet_size"},
+        {"name": "survey_score", "aggregate": "attribute", "attribute": "survey_score"},
+    ]
+    results = api.run(spec_for(db, features=features), keep_tables=False)
+    text = " ".join(results.warnings)
+    assert "'fleet_size' has the same value for every unit" in text
+    assert "'survey_score' is NULL for every unit" in text
