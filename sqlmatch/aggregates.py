@@ -7,6 +7,7 @@ works on a handful of rows per group or stratum.
 from __future__ import annotations
 
 import math
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -103,14 +104,19 @@ def _aligned(result: QueryResult) -> tuple[list[dict], list[dict]]:
     return [by_stratum[s].get(1, {}) for s in strata], [by_stratum[s].get(0, {}) for s in strata]
 
 
-def outcome_moments(result: QueryResult, outcome: str) -> tuple[StratumMoments, StratumMoments]:
+def outcome_moments(result: QueryResult, outcome: str, suffix: str = "") -> tuple[StratumMoments, StratumMoments]:
+    """Per-stratum count, sum and sum of squares of an outcome, treated and control. `suffix`
+    picks another pair of columns of the same query: "did" reads `<outcome>__did_sum` and
+    `<outcome>__did_sumsq`, the sums of (outcome - its pre-window twin)."""
     treated, control = _aligned(result)
+    sum_key = f"{outcome}__{suffix + '_' if suffix else ''}sum"
+    sq_key = f"{outcome}__{suffix + '_' if suffix else ''}sumsq"
 
     def moments(rows):
         return StratumMoments.of(
             [_f(r.get("n_units", 0)) for r in rows],
-            [_f(r.get(f"{outcome}__sum", 0.0)) for r in rows],
-            [_f(r.get(f"{outcome}__sumsq", 0.0)) for r in rows],
+            [_f(r.get(sum_key, 0.0)) for r in rows],
+            [_f(r.get(sq_key, 0.0)) for r in rows],
         )
 
     return moments(treated), moments(control)
@@ -131,3 +137,51 @@ def ratio_sums(result: QueryResult, outcome: str) -> tuple[RatioSums, RatioSums]
         )
 
     return sums(treated), sums(control)
+
+
+@dataclass(frozen=True)
+class RegressionSums:
+    """One outcome's weighted regression on treatment and the numeric features, as sums over the
+    matched units (see sql_templates/outcome_regression.sql.j2): X'WX, X'Wy, y'Wy on centred
+    columns, the centres, and the outcome's weighted moments per group (for its SD)."""
+
+    names: tuple[str, ...]  # "intercept", "treated", then the numeric features
+    xtx: np.ndarray
+    xty: np.ndarray
+    yty: float
+    n: int
+    x_centres: dict[str, float]
+    y_centre: float
+    treated: GroupMoments  # weights, squared weights, weighted sums and squares of the centred outcome
+    control: GroupMoments
+
+
+def regression_sums(result: QueryResult, outcome: str, kind: str, features: list[str]) -> RegressionSums:
+    """Unpack one outcome from the one-row regression query. Ratio outcomes carry their own
+    weight set (matching weight x denominator): its columns are prefixed with the outcome name."""
+    row = result.one()
+    names = ("intercept", "treated", *features)
+    p = len(names)
+    prefix = f"{outcome}__" if kind == "ratio" else ""
+    xtx = np.empty((p, p))
+    for i in range(p):
+        for j in range(i, p):
+            xtx[i, j] = xtx[j, i] = _f(row[f"{prefix}xtx_{i}_{j}"])
+    xty = np.array([_f(row[f"{outcome}__xty_{i}"]) for i in range(p)])
+    yty = _f(row[f"{outcome}__yty"])
+    n = int(row[f"{prefix}n_units"] or 0)
+    sum_w, sum_w_t = xtx[0, 0], xtx[0, 1]  # treated is 0/1, so sum w t is the treated weight
+    sum_w2, sum_w2_t = _f(row[f"{prefix}sum_w2"]), _f(row[f"{prefix}sum_w2_t"])
+    sum_y, sum_ty = xty[0], xty[1]
+    sum_yy, sum_tyy = yty, _f(row[f"{outcome}__tyy"])
+    return RegressionSums(
+        names=names,
+        xtx=xtx,
+        xty=xty,
+        yty=yty,
+        n=n,
+        x_centres={f: _f(row[f"{f}__centre"]) for f in features},
+        y_centre=_f(row[f"{outcome}__centre"]),
+        treated=GroupMoments(sum_w_t, sum_w2_t, sum_ty, sum_tyy),
+        control=GroupMoments(sum_w - sum_w_t, sum_w2 - sum_w2_t, sum_y - sum_ty, sum_yy - sum_tyy),
+    )

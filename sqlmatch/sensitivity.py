@@ -21,6 +21,7 @@ __all__ = [
     "EValue",
     "rosenbaum_bound",
     "rosenbaum_scan",
+    "rosenbaum_from_signed_rank",
     "robustness_value",
     "e_value",
     "e_value_continuous",
@@ -155,6 +156,26 @@ def rosenbaum_scan(
                 break
         at_alpha = math.exp(0.5 * (lo + hi))
     return RosenbaumScan(alpha, alternative, stat, rows, first, at_alpha, float(gamma_max))
+
+
+def rosenbaum_from_signed_rank(
+    t_plus: float,
+    n_nonzero: int,
+    tie_term: float = 0.0,
+    alpha: float = 0.05,
+    gamma_max: float = 20.0,
+    step: float = 0.1,
+    alternative: str = "greater",
+) -> RosenbaumScan:
+    """Rosenbaum bounds from the signed-rank aggregates of 1:1 matched pairs, as a query over the
+    pairs returns them: T+ (sum of the average ranks of |d| over pairs with d > 0), the number of
+    pairs with d != 0 and the tie term sum (t^3 - t) over groups of tied |d|. The ranks 1..n with
+    ties averaged have sum q = n(n+1)/2 and sum q^2 = n(n+1)(2n+1)/6 - tie_term/12
+    (see estimate.pairs.signed_rank), which is all the bounds need besides T+."""
+    from sqlmatch.estimate.pairs import signed_rank
+
+    sr = signed_rank(t_plus, n_nonzero, tie_term)
+    return rosenbaum_scan(sr.t_plus, sr.sum_ranks, sr.sum_ranks_sq, alpha=alpha, gamma_max=gamma_max, step=step, alternative=alternative)
 
 
 # ---------------------------------------------------------------------------------------------

@@ -60,6 +60,8 @@ class Estimate:
     n_strata: int
     mean_treated: float
     mean_control: float  # weighted to the treated's strata
+    var_mean_treated: float = math.nan  # sum_s w_s^2 s2_1s / n_1s
+    var_mean_control: float = math.nan  # sum_s w_s^2 s2_0s / n_0s
 
 
 def normal_interval(estimate: float, se: float | None, level: float = 0.95) -> tuple[float | None, float | None]:
@@ -79,7 +81,9 @@ def stratified_att(treated: StratumMoments, control: StratumMoments, level: floa
     m1, m0 = treated.mean[keep], control.mean[keep]
     tau = float(np.sum(w * (m1 - m0)))
     v1, v0 = treated.variance()[keep], control.variance()[keep]
-    var = float(np.sum(w**2 * (v1 / treated.n[keep] + v0 / control.n[keep])))
+    var1 = float(np.sum(w**2 * v1 / treated.n[keep]))
+    var0 = float(np.sum(w**2 * v0 / control.n[keep]))
+    var = var1 + var0
     se = math.sqrt(var) if math.isfinite(var) else None
     lo, hi = normal_interval(tau, se, level)
     return Estimate(
@@ -92,4 +96,40 @@ def stratified_att(treated: StratumMoments, control: StratumMoments, level: floa
         n_strata=int(keep.sum()),
         mean_treated=float(np.sum(w * m1)),
         mean_control=float(np.sum(w * m0)),
+        var_mean_treated=var1,
+        var_mean_control=var0,
     )
+
+
+@dataclass(frozen=True)
+class Lift:
+    estimate: float  # m1 / m0 - 1 (= effect / m0)
+    std_error: float | None  # delta method, on the lift scale
+    ci_low: float | None
+    ci_high: float | None
+    scale: str  # "log": interval built for log(m1 / m0); "linear": for m1 / m0 itself
+
+
+def relative_lift(mean_treated: float, var_treated: float, mean_control: float, var_control: float, level: float = 0.95) -> Lift:
+    """Relative lift m1 / m0 - 1 of two independent group means, with a delta-method interval.
+
+    Delta method for a ratio of independent estimates (e.g. Casella & Berger 2002, *Statistical
+    Inference*, 2nd ed., §5.5.4 - section recalled):
+        Var(log(m1/m0)) ~= v1 / m1^2 + v0 / m0^2,      Var(m1/m0) ~= (m1/m0)^2 (v1 / m1^2 + v0 / m0^2).
+    When both means are positive the interval is built on the log scale and mapped back,
+    exp(log(m1/m0) +/- z se_log) - 1, as ratio.py and binary.py do for their lifts; otherwise the
+    linear interval m1/m0 - 1 +/- z sqrt(v1 / m0^2 + m1^2 v0 / m0^4). Undefined (NaN) when m0 = 0.
+    """
+    m1, m0, v1, v0 = float(mean_treated), float(mean_control), float(var_treated), float(var_control)
+    nan = math.nan
+    if m0 == 0.0 or not math.isfinite(m0) or not math.isfinite(m1):
+        return Lift(nan, None, None, None, "linear")
+    rho = m1 / m0
+    z = NormalDist().inv_cdf(0.5 + level / 2)
+    if not (math.isfinite(v1) and math.isfinite(v0)):
+        return Lift(rho - 1.0, None, None, None, "linear")
+    if m1 > 0.0 and m0 > 0.0:
+        log_se = math.sqrt(v1 / (m1 * m1) + v0 / (m0 * m0))
+        return Lift(rho - 1.0, rho * log_se, math.exp(math.log(rho) - z * log_se) - 1.0, math.exp(math.log(rho) + z * log_se) - 1.0, "log")
+    se = math.sqrt(v1 / (m0 * m0) + m1 * m1 * v0 / m0**4)
+    return Lift(rho - 1.0, se, rho - 1.0 - z * se, rho - 1.0 + z * se, "linear")

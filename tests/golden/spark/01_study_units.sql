@@ -4,9 +4,9 @@
 -- reads: riders
 -- writes: sqlmatch.annual_pass_units
 
-DROP TABLE IF EXISTS `sqlmatch`.annual_pass_units;
+DROP TABLE IF EXISTS `sqlmatch`.annual_pass_units__building;
 
-CREATE TABLE `sqlmatch`.annual_pass_units AS
+CREATE TABLE `sqlmatch`.annual_pass_units__building AS
 /* Units in the study: the cohort that enrolled in 2026-03 (treated = 1) and the control
    pool (treated = 0): never enrolled, or enrolled on or after 2026-07-01 (after the post window).
    Units that enrolled before 2026-03 are not in the study. */
@@ -33,3 +33,8 @@ WHERE
   AND /* eligibility.filters[0] */ (
     u.`signup_date` < CAST('2025-09-01' AS DATE)
   );
+
+DROP TABLE IF EXISTS `sqlmatch`.annual_pass_units;
+
+ALTER TABLE `sqlmatch`.annual_pass_units__building
+RENAME TO `sqlmatch`.annual_pass_units;
