@@ -462,13 +462,18 @@ def write_results(results: StudyResults, out_dir: str | Path) -> list[Path]:
     out.mkdir(parents=True, exist_ok=True)
     json_path = out / "results.json"
     json_path.write_text(results.to_json(), encoding="utf-8")
+    from sqlmatch.report.html import balance_plot, render_html
+
+    svg = balance_plot(results)
+    image = out / "balance.svg"
+    if svg:
+        image.write_text(svg, encoding="utf-8")
     md_path = out / "report.md"
-    md_path.write_text(render_markdown(results), encoding="utf-8")
-    from sqlmatch.report.html import render_html
+    md_path.write_text(render_markdown(results, balance_image=image.name if svg else None), encoding="utf-8")
 
     html_path = out / "report.html"
     html_path.write_text(render_html(results), encoding="utf-8")
-    return [json_path, md_path, html_path]
+    return [json_path, md_path, html_path] + ([image] if svg else [])
 
 
 def run_cohorts(spec: Spec, months: str, **run_options):

@@ -69,3 +69,10 @@ def test_report_renders_in_a_headless_browser(report, tmp_path):
     colour = (np.abs(pixels[..., 0] - pixels[..., 2]) > 0.25).mean()  # vermillion/blue plot marks
     assert ink > 0.01, f"the screenshot is (almost) blank: {ink:.4f} of pixels carry ink"
     assert colour > 0.001, "no coloured plot marks in the screenshot"
+
+
+def test_markdown_report_links_the_balance_plot_beside_it(report):
+    folder = report.parent
+    md = (folder / "report.md").read_text()
+    assert "](balance.svg)" in md
+    assert (folder / "balance.svg").read_text().startswith("<svg")

@@ -108,7 +108,9 @@ def _sensitivity_section(r: StudyResults) -> list[str]:
     return lines
 
 
-def render_markdown(r: StudyResults) -> str:
+def render_markdown(r: StudyResults, balance_image: str | None = None) -> str:
+    """Markdown sized for a pull-request comment; `balance_image` names the balance plot written
+    beside the report, if any."""
     mc = r.min_cell_size
     m = r.matching
     w = r.windows
@@ -157,6 +159,7 @@ def render_markdown(r: StudyResults) -> str:
         "",
         f"Standardized mean difference (SMD) of each feature, before and after matching; |SMD| < {SMD_REFERENCE} "
         "is usually read as balanced (common practice). Variance ratios near 1 are good.",
+        *([ "", f"![|SMD| before (hollow) and after (filled) matching]({balance_image})"] if balance_image else []),
         "",
         "| feature | SMD before | SMD after | variance ratio before | variance ratio after |",
         "|---|---:|---:|---:|---:|",
