@@ -10,6 +10,7 @@ never stopped here.
 from __future__ import annotations
 
 import shutil
+import socket
 import tempfile
 from pathlib import Path
 
@@ -101,6 +102,16 @@ class SparkEngine(Engine):
         return spark
 
     def _connect(self, SparkSession):
+        # The Connect client retries an unreachable server for minutes; find out at once instead.
+        authority = self.url[len("sc://") :].split("/", 1)[0].split(";", 1)[0]
+        host, _, port = authority.rpartition(":") if ":" in authority else (authority, "", "15002")
+        try:
+            socket.create_connection((host.strip("[]"), int(port)), timeout=10).close()
+        except (OSError, ValueError) as err:
+            raise EngineError(
+                f"could not reach Spark Connect at {redact(self.url, self.url)}: {redact(first_line(err), self.url)} "
+                "Fix: check host and port (default 15002) and that the server is running."
+            ) from None
         try:
             return SparkSession.builder.remote(self.url).getOrCreate()
         except ImportError as err:
