@@ -236,6 +236,14 @@ def _warnings(spec: Spec, r, balance) -> list[str]:
             )
         if c["n_units"] and c["n_units_without_events"] / c["n_units"] > 0.5:
             out.append(f"{c['n_units_without_events'] / c['n_units']:.0%} of the units have no event in either window.")
+    if spec.matching.method == "nearest" and spec.matching.replacement and "matching_summary" in r:
+        m = r["matching_summary"].one()
+        out.append(
+            f"Nearest-neighbour matching with replacement used {int(m['n_control_matched'] or 0):,} distinct controls for "
+            f"{int(m['n_treated_matched'] or 0):,} matched enrolled units. The standard errors treat a reused control as if it "
+            "were a new one, so they are too small when controls are reused often (Abadie & Imbens 2006 give a variance "
+            "that accounts for reuse); read the intervals as too narrow, or match without replacement."
+        )
     for b in balance:
         if b.kind != "level" and b.mean_treated_before is None and b.mean_control_before is None:
             out.append(f"Feature {b.covariate!r} is NULL for every unit: it carries no information. Fix its definition or drop it.")

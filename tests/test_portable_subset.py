@@ -39,6 +39,11 @@ def demo_plans():
         levels={},
     )
     plans["score_bins"] = build_plan(parse_spec(scored), "duckdb", model=model)
+    for distance in ("logit", "mahalanobis", "robust_mahalanobis"):
+        nearest = dict(raw, matching={"method": "nearest", "distance": distance, "exact": ["age_band"]})
+        plans[f"nearest_{distance}"] = build_plan(parse_spec(nearest), "duckdb", model=model)
+    pairs = dict(raw, matching={"method": "nearest", "replacement": False})
+    plans["nearest_pairs"] = build_plan(parse_spec(pairs), "duckdb", model=model)
     return plans
 
 
@@ -75,7 +80,7 @@ def test_no_construct_outside_the_portable_subset(method):
             if isinstance(node, exp.Window) and isinstance(node.this, (exp.RowNumber, exp.Anonymous)):
                 order = node.args.get("order")
                 keys = [o.this.name for o in order.expressions] if order else []
-                assert "unit_key" in keys, f"{method}/{step}: ROW_NUMBER needs the unit key as tiebreak, got {keys}"
+                assert {"unit_key", "treated_key", "control_key"} & set(keys), f"{method}/{step}: ROW_NUMBER needs a unit key as tiebreak, got {keys}"
             if isinstance(node, exp.Div):
                 # every division is either by a literal, by NULLIF(...) or by a value proven non-zero in a CASE
                 right = node.expression

@@ -10,11 +10,12 @@ Balance, effects and reports read only that shape, so they need no method-specif
 from __future__ import annotations
 
 from sqlmatch.errors import SqlmatchError
-from sqlmatch.matching import coarsened, score_bins
+from sqlmatch.matching import coarsened, neighbours, score_bins
 
 METHODS = {
     "coarsened_exact": coarsened,
     "score_bins": score_bins,
+    "nearest": neighbours,
 }
 
 

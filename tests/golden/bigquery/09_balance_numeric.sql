@@ -56,7 +56,14 @@ SELECT
   SUM(w.weight * m.pre_days_since_last) AS pre_days_since_last__wsum,
   SUM(w.weight * m.pre_days_since_last * m.pre_days_since_last) AS pre_days_since_last__wsumsq
 FROM `sqlmatch`.annual_pass_measures AS m
-LEFT JOIN `sqlmatch`.annual_pass_weights AS w
+LEFT JOIN (
+  SELECT
+    unit_key,
+    SUM(weight) AS weight
+  FROM `sqlmatch`.annual_pass_weights
+  GROUP BY
+    unit_key
+) AS w
   ON w.unit_key = m.unit_key
 GROUP BY
   m.treated

@@ -101,7 +101,14 @@ WITH grid AS (
     COUNT(*) AS n_units,
     SUM(COALESCE(w.weight, 0)) AS sum_w
   FROM "sqlmatch".annual_pass_measures AS m
-  LEFT JOIN "sqlmatch".annual_pass_weights AS w
+  LEFT JOIN (
+    SELECT
+      unit_key,
+      SUM(weight) AS weight
+    FROM "sqlmatch".annual_pass_weights
+    GROUP BY
+      unit_key
+  ) AS w
     ON w.unit_key = m.unit_key
   CROSS JOIN pre_trips__range AS r
   WHERE
@@ -139,7 +146,14 @@ WITH grid AS (
     COUNT(*) AS n_units,
     SUM(COALESCE(w.weight, 0)) AS sum_w
   FROM "sqlmatch".annual_pass_measures AS m
-  LEFT JOIN "sqlmatch".annual_pass_weights AS w
+  LEFT JOIN (
+    SELECT
+      unit_key,
+      SUM(weight) AS weight
+    FROM "sqlmatch".annual_pass_weights
+    GROUP BY
+      unit_key
+  ) AS w
     ON w.unit_key = m.unit_key
   CROSS JOIN pre_minutes__range AS r
   WHERE
@@ -177,7 +191,14 @@ WITH grid AS (
     COUNT(*) AS n_units,
     SUM(COALESCE(w.weight, 0)) AS sum_w
   FROM "sqlmatch".annual_pass_measures AS m
-  LEFT JOIN "sqlmatch".annual_pass_weights AS w
+  LEFT JOIN (
+    SELECT
+      unit_key,
+      SUM(weight) AS weight
+    FROM "sqlmatch".annual_pass_weights
+    GROUP BY
+      unit_key
+  ) AS w
     ON w.unit_key = m.unit_key
   CROSS JOIN pre_fare_per_trip__range AS r
   WHERE
@@ -215,7 +236,14 @@ WITH grid AS (
     COUNT(*) AS n_units,
     SUM(COALESCE(w.weight, 0)) AS sum_w
   FROM "sqlmatch".annual_pass_measures AS m
-  LEFT JOIN "sqlmatch".annual_pass_weights AS w
+  LEFT JOIN (
+    SELECT
+      unit_key,
+      SUM(weight) AS weight
+    FROM "sqlmatch".annual_pass_weights
+    GROUP BY
+      unit_key
+  ) AS w
     ON w.unit_key = m.unit_key
   CROSS JOIN pre_active_days__range AS r
   WHERE
@@ -255,7 +283,14 @@ WITH grid AS (
     COUNT(*) AS n_units,
     SUM(COALESCE(w.weight, 0)) AS sum_w
   FROM "sqlmatch".annual_pass_measures AS m
-  LEFT JOIN "sqlmatch".annual_pass_weights AS w
+  LEFT JOIN (
+    SELECT
+      unit_key,
+      SUM(weight) AS weight
+    FROM "sqlmatch".annual_pass_weights
+    GROUP BY
+      unit_key
+  ) AS w
     ON w.unit_key = m.unit_key
   CROSS JOIN pre_days_since_last__range AS r
   WHERE

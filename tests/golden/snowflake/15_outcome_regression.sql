@@ -28,7 +28,14 @@ WITH matched AS (
     CAST(m.fare_per_trip__den AS DOUBLE) AS den2,
     CAST(m.active_last_month AS DOUBLE) AS y3
   FROM "sqlmatch".annual_pass_measures AS m
-  INNER JOIN "sqlmatch".annual_pass_weights AS w
+  INNER JOIN (
+    SELECT
+      unit_key,
+      SUM(weight) AS weight
+    FROM "sqlmatch".annual_pass_weights
+    GROUP BY
+      unit_key
+  ) AS w
     ON w.unit_key = m.unit_key
   WHERE
     NOT m.pre_trips IS NULL

@@ -29,7 +29,14 @@ SELECT
   SUM(w.weight * m.pre_fare) AS pre_fare__wsum,
   SUM(w.weight * m.pre_fare * m.pre_fare) AS pre_fare__wsumsq
 FROM "sqlmatch".annual_pass_measures AS m
-LEFT JOIN "sqlmatch".annual_pass_weights AS w
+LEFT JOIN (
+  SELECT
+    unit_key,
+    SUM(weight) AS weight
+  FROM "sqlmatch".annual_pass_weights
+  GROUP BY
+    unit_key
+) AS w
   ON w.unit_key = m.unit_key
 GROUP BY
   m.treated

@@ -21,7 +21,14 @@ WITH matched AS (
     CAST(m.pre_fare AS DOUBLE) AS v1,
     CAST(m.post_fare AS DOUBLE) AS y0
   FROM "sqlmatch".annual_pass_measures AS m
-  INNER JOIN "sqlmatch".annual_pass_weights AS w
+  INNER JOIN (
+    SELECT
+      unit_key,
+      SUM(weight) AS weight
+    FROM "sqlmatch".annual_pass_weights
+    GROUP BY
+      unit_key
+  ) AS w
     ON w.unit_key = m.unit_key
   WHERE
     NOT m.pre_trips IS NULL AND NOT m.pre_fare IS NULL

@@ -12,7 +12,14 @@ SELECT
   COUNT(*) AS n_units,
   SUM(COALESCE(w.weight, 0)) AS sum_w
 FROM "sqlmatch".annual_pass_measures AS m
-LEFT JOIN "sqlmatch".annual_pass_weights AS w
+LEFT JOIN (
+  SELECT
+    unit_key,
+    SUM(weight) AS weight
+  FROM "sqlmatch".annual_pass_weights
+  GROUP BY
+    unit_key
+) AS w
   ON w.unit_key = m.unit_key
 GROUP BY
   COALESCE(m.age_band, '(missing)'),
