@@ -318,6 +318,19 @@ def _effect(outcome, matched, unmatched, regression=None, features=(), method: s
             mean_treated=m.mean_treated,
             mean_control=m.mean_control,
         )
+        if pair_ranks is not None and f"{outcome.name}__sum_d" in pair_ranks.columns:
+            # 1:1 pairs: the paired-difference t interval (the pairs are not independent samples)
+            from sqlmatch.estimate.pairs import paired_difference
+
+            row = pair_ranks.one()
+            pd_ = paired_difference(int(row["n_pairs"]), float(row[f"{outcome.name}__sum_d"]), float(row[f"{outcome.name}__sum_d2"]))
+            fields.update(
+                estimator="mean within-pair difference, paired t interval" + (" (risk difference)" if outcome.kind == "binary" else ""),
+                estimate=pd_.estimate,
+                std_error=pd_.std_error,
+                ci_low=pd_.ci_low,
+                ci_high=pd_.ci_high,
+            )
         if outcome.kind == "binary":
             # Events per stratum and group are the sums of the 0/1 outcome; ATT stratum weights
             # n_1s / n_1 over the strata holding both groups (estimate/binary.py).

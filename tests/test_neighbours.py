@@ -442,3 +442,42 @@ def test_rows_fetched_at_two_sizes(tmp_path, monkeypatch):
     assert small[1] <= 2 * small[2] and large[1] <= 2 * large[2]
     assert fetched["matches", 3_000][0] == fetched["matches", 30_000][0]
     assert fetched["matches", 3_000][2] == fetched["matches", 30_000][2] == 1  # ratio 1: one stratum
+
+
+def test_pairs_give_paired_t_and_rosenbaum_bounds_equal_to_scipy(demo_dir, tmp_path):
+    """1:1 pairs without replacement: the effect's interval is the paired t interval (scipy's
+    one-sample t on the within-pair differences), and the Rosenbaum bound at Gamma = 1 equals the
+    one-sided Wilcoxon signed-rank p-value (scipy.stats.wilcoxon, normal approximation; Rosenbaum
+    2002, §4.3)."""
+    import shutil
+    import tomllib
+
+    import duckdb
+    from scipy import stats
+
+    from sqlmatch import api
+    from sqlmatch.spec import parse_spec
+
+    from conftest import DEMO_SPEC
+
+    shutil.copyfile(demo_dir / "bikeshare.duckdb", tmp_path / "bikeshare.duckdb")
+    raw = tomllib.loads(DEMO_SPEC.read_text())
+    raw["study"]["database"] = str(tmp_path / "bikeshare.duckdb")
+    raw["matching"] = {"method": "nearest", "replacement": False}
+    results = api.run(parse_spec(raw))
+    with duckdb.connect(str(tmp_path / "bikeshare.duckdb"), read_only=True) as con:
+        d = con.execute(
+            "SELECT mt.post_trips - mc.post_trips FROM sqlmatch.annual_pass_pairs p "
+            "JOIN sqlmatch.annual_pass_measures mt ON mt.unit_key = p.treated_key "
+            "JOIN sqlmatch.annual_pass_measures mc ON mc.unit_key = p.control_key"
+        ).fetchnumpy()
+    d = next(iter(d.values())).astype(float)
+    effect = results.effect("post_trips")
+    t = stats.ttest_1samp(d, 0.0)
+    low, high = t.confidence_interval(0.95)
+    assert effect.estimate == pytest.approx(d.mean(), rel=1e-12)
+    assert effect.ci_low == pytest.approx(low, rel=1e-9) and effect.ci_high == pytest.approx(high, rel=1e-9)
+    w = stats.wilcoxon(d, zero_method="wilcox", correction=False, method="approx", alternative="greater")
+    bounds = effect.sensitivity["rosenbaum"]
+    assert bounds["p_upper_at_gamma_1"] == pytest.approx(w.pvalue, rel=1e-6)
+    assert bounds["gamma_at_alpha"] > 1.0

@@ -222,6 +222,19 @@ def steps(ctx, model):
             )
         )
         matches, rounds_table = "pairs", previous
+        pair_outcomes = [o.name for o in ctx.spec.outcomes if o.kind != "ratio"]
+        if pair_outcomes:
+            out.append(
+                ctx.query_step(
+                    "pair_signed_rank",
+                    "pair_signed_rank",
+                    reads=[ctx.display("pairs"), ctx.display("measures")],
+                    purpose="Within-pair differences per outcome: sums for the paired t interval, signed-rank statistic for Rosenbaum bounds.",
+                    outcomes=pair_outcomes,
+                    pairs_table=ctx.table("pairs"),
+                    measures_table=ctx.table("measures"),
+                )
+            )
     out += [
         ctx.table_step(
             "weights",
