@@ -246,6 +246,7 @@ def _newton_step(ctx: "PlanContext", columns, beta, name: str = "propensity_newt
         columns=columns,
         beta=[float(b) for b in beta],
         clamp=ETA_CLAMP,
+        sample_per_10000=int(round(ctx.spec.propensity.sample_controls * 10000)),
         measures_table=ctx.table("measures"),
     )
 

@@ -81,6 +81,7 @@ class FittedModel:
     levels: dict[str, list[str]]
     ridge: float = 0.0
     fitted_on: str = field(default_factory=lambda: dt.date.today().isoformat())
+    sampled_controls: float = 1.0  # share of controls the fit used; the intercept is corrected for it
 
     def to_json(self) -> str:
         body = {
@@ -91,6 +92,7 @@ class FittedModel:
             "iterations": self.iterations,
             "log_likelihood": self.log_likelihood,
             "ridge": self.ridge,
+            "sampled_controls": self.sampled_controls,
             "levels": self.levels,
             "coefficients": [
                 {**asdict(c), "describes": describe_column(c), "coefficient": b} for c, b in zip(self.columns, self.coefficients)
@@ -115,6 +117,7 @@ class FittedModel:
                 fingerprint=str(body["data_fingerprint"]),
                 levels={k: list(v) for k, v in body.get("levels", {}).items()},
                 ridge=float(body.get("ridge", 0.0)),
+                sampled_controls=float(body.get("sampled_controls", 1.0)),
                 fitted_on=str(body.get("fitted_on", "")),
             )
         except (ValueError, KeyError, TypeError) as err:

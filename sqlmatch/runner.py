@@ -7,6 +7,7 @@ leaves nothing half-written behind.
 
 from __future__ import annotations
 
+import math
 import os
 import sys
 import time
@@ -78,6 +79,8 @@ def preflight(spec: Spec, engine: Engine) -> None:
             raise SpecError(key, f"column {column!r} of {table!r} has type {cols[found]}, not {kind_text}.", f"name a {kind_text} column or cast it in a view.")
 
     need(units, spec.units.display, "units.key", spec.unit_key)
+    if spec.propensity.sample_controls < 1.0:
+        need(units, spec.units.display, "propensity.sample_controls", spec.unit_key, ("INT",), "integer (the sample hashes integer unit keys)")
     need(units, spec.units.display, "units.enrolled_on", spec.enrolled_on, TIME_TYPE_WORDS, "date or timestamp")
     for i, f in enumerate(spec.features):
         if f.attribute:
@@ -224,6 +227,12 @@ def fit_propensity(spec: Spec, engine: Engine, out: RunOutput, progress: Progres
         max_iterations=spec.propensity.max_iterations,
     )
     model.levels = levels
+    share = round(spec.propensity.sample_controls * 10000) / 10000
+    if share < 1.0:
+        # Controls sampled at rate r shift the logit by log(r): the intercept fitted on the sample is
+        # b0 - log(r) (prior correction, King & Zeng 2001, Political Analysis 9:137), so add log(r) back.
+        model.coefficients[0] += math.log(share)
+        model.sampled_controls = share
     out.timings["propensity_fit"] = time.perf_counter() - t0
     progress.note(f"propensity model: {model.iterations} Newton steps, {out.timings['propensity_fit']:.2f}s")
     return model

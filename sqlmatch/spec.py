@@ -132,6 +132,7 @@ class Propensity:
     log1p: tuple[str, ...] = ()
     ridge: float = 0.0
     max_iterations: int = 25
+    sample_controls: float = 1.0  # fit on all treated and this share of controls (integer unit keys)
 
 
 @dataclass(frozen=True)
@@ -615,7 +616,7 @@ def _matching(value: Any, features: tuple[Feature, ...]) -> Matching:
 def _propensity(value: Any, features: tuple[Feature, ...], matching: Matching) -> Propensity:
     if not isinstance(value, dict):
         raise SpecError("propensity", "must be a table.", "write it as [propensity].")
-    _check_keys(value, "propensity", {"features", "log1p", "ridge", "max_iterations"})
+    _check_keys(value, "propensity", {"features", "log1p", "ridge", "max_iterations", "sample_controls"})
     names = [f.name for f in features]
     chosen = value.get("features", [n for n in matching.on if n not in matching.exact])
     for key, items in (("propensity.features", chosen), ("propensity.log1p", value.get("log1p", []))):
@@ -634,4 +635,7 @@ def _propensity(value: Any, features: tuple[Feature, ...], matching: Matching) -
     if isinstance(ridge, bool) or not isinstance(ridge, (int, float)) or ridge < 0:
         raise SpecError("propensity.ridge", f"must be a number >= 0, got {ridge!r}.")
     iterations = _int(value, "propensity", "max_iterations", default=25, low=1, high=200)
-    return Propensity(features=tuple(chosen), log1p=tuple(log1p), ridge=float(ridge), max_iterations=iterations)
+    sample = value.get("sample_controls", 1.0)
+    if isinstance(sample, bool) or not isinstance(sample, (int, float)) or not 0.0001 <= sample <= 1.0:
+        raise SpecError("propensity.sample_controls", f"must be a share between 0.0001 and 1, got {sample!r}.", "e.g. 0.1 fits on a tenth of the controls.")
+    return Propensity(features=tuple(chosen), log1p=tuple(log1p), ridge=float(ridge), max_iterations=iterations, sample_controls=float(sample))

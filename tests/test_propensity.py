@@ -166,3 +166,40 @@ def test_method_override_on_the_command_line(demo_dir, tmp_path, capsys):
     results = json.loads((tmp_path / "out" / "results.json").read_text())
     assert results["matching"]["method"] == "score_bins"
     assert (tmp_path / "annual_pass.model.json").exists()
+
+
+def test_fit_on_a_sample_of_controls_with_the_intercept_corrected(demo_dir, tmp_path):
+    """All treated and a hashed 30% of controls: slopes equal statsmodels Logit on exactly those rows,
+    and the intercept is the sample's plus log(0.3) (prior correction, King & Zeng 2001)."""
+    shutil.copyfile(demo_dir / "bikeshare.duckdb", tmp_path / "bikeshare.duckdb")
+    raw = demo_score_spec(tmp_path, bins=5)
+    raw["propensity"] = {"features": ["pre_trips", "pre_active_days"], "sample_controls": 0.3}
+    spec = parse_spec(raw, source_path=tmp_path / "study.toml")
+    api.run(spec)
+    model = load_model(spec)
+    assert model.sampled_controls == 0.3
+    with duckdb.connect(str(tmp_path / "bikeshare.duckdb"), read_only=True) as con:
+        m = con.execute("SELECT * FROM sqlmatch.annual_pass_measures").df()
+    key = m.unit_key.astype("int64")
+    sampled = (m.treated == 1) | ((((key.abs() % 4294967296) * 40503 + 12345) % 4294967296 % 10000) < 3000)
+    rows = m[sampled]
+    assert 0.25 < (rows.treated == 0).sum() / (m.treated == 0).sum() < 0.35
+    fit = sm.Logit(rows.treated.astype(float), sm.add_constant(rows[["pre_trips", "pre_active_days"]])).fit(disp=0, tol=1e-12)
+    np.testing.assert_allclose(model.coefficients[1:], fit.params.to_numpy()[1:], rtol=1e-6)
+    assert model.coefficients[0] == pytest.approx(fit.params["const"] + np.log(0.3), rel=1e-6)
+    full = sm.Logit(m.treated.astype(float), sm.add_constant(m[["pre_trips", "pre_active_days"]])).fit(disp=0)
+    assert model.coefficients[0] == pytest.approx(full.params["const"], abs=0.15)  # close to the fit on every unit
+
+
+def test_rows_fetched_for_subclassification_does_not_grow_with_the_data(tmp_path):
+    """Ten times the riders: the same rows reach Python (levels, Newton steps, strata, bins)."""
+    from sqlmatch.demo_run import build_demo
+
+    fetched = []
+    for riders in (3_000, 30_000):
+        spec_path = build_demo(tmp_path / str(riders), riders=riders, seed=7)
+        raw = tomllib.loads(spec_path.read_text())
+        raw["matching"] = {"method": "score_bins", "bins": 10}
+        results = api.run(parse_spec(raw, source_path=spec_path), keep_tables=False)
+        fetched.append(results.rows_fetched)
+    assert fetched[0] == fetched[1]
