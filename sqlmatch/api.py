@@ -519,7 +519,14 @@ def write_cohort_results(combined, out_dir: str | Path) -> list[Path]:
     json_path.write_text(combined.to_json(), encoding="utf-8")
     md_path = out / "report.md"
     md_path.write_text(render_cohorts_markdown(combined), encoding="utf-8")
-    return [json_path, md_path]
+    from sqlmatch.report.html import render_html
+
+    pages = []
+    for r in combined.cohorts:
+        page = out / f"report-{r.cohort}.html"
+        page.write_text(render_html(r), encoding="utf-8")
+        pages.append(page)
+    return [json_path, md_path] + pages
 
 
 def compile_for_scheduler(spec: Spec, dialect: str = "duckdb") -> Plan:

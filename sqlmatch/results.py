@@ -157,3 +157,15 @@ class StudyResults:
 
     def to_json(self) -> str:
         return json.dumps(self.to_dict(), indent=2) + "\n"
+
+    def summary(self) -> str:
+        """The Markdown report as text (what `sqlmatch run` writes to report.md)."""
+        from sqlmatch.report.markdown import render_markdown
+
+        return render_markdown(self)
+
+    def to_html(self) -> str:
+        """The self-contained HTML report (what `sqlmatch run` writes to report.html)."""
+        from sqlmatch.report.html import render_html
+
+        return render_html(self)

@@ -76,3 +76,9 @@ def test_markdown_report_links_the_balance_plot_beside_it(report):
     md = (folder / "report.md").read_text()
     assert "](balance.svg)" in md
     assert (folder / "balance.svg").read_text().startswith("<svg")
+
+
+def test_results_object_gives_text_and_html_summaries(tmp_path):
+    results, _ = run_demo(tmp_path / "api", riders=2000, seed=3)
+    assert results.summary().startswith("# sqlmatch study")
+    assert results.to_html().startswith("<!DOCTYPE html>")

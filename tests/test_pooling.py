@@ -47,5 +47,6 @@ def test_cohorts_run_each_month_and_pool(demo_dir, tmp_path, capsys):
     expected = pool([e["estimate"] for e in est], [e["std_error"] for e in est])
     assert trips["estimate"] == pytest.approx(expected.estimate, rel=1e-12)
     assert "pooled effect" in (tmp_path / "out" / "report.md").read_text()
+    assert (tmp_path / "out" / "report-2026-03.html").read_text().startswith("<!DOCTYPE html>")
     assert main(["run", str(tmp_path / "annual_pass.toml"), "--out", str(tmp_path / "x"), "--cohorts", "2026-05:2026-01"]) == 2
     assert "--cohorts: '2026-05:2026-01' ends before it starts" in capsys.readouterr().err
