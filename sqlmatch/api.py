@@ -89,6 +89,13 @@ def open_engine(spec: Spec, database: str | None = None, engine_url: str | None 
     return DuckDBEngine(database)
 
 
+def connect(connection, dialect: str) -> Engine:
+    """An engine over an open DB-API 2.0 connection: `api.run(spec, engine=api.connect(conn, "snowflake"))`."""
+    from sqlmatch.engines.dbapi import DBAPIEngine
+
+    return DBAPIEngine(connection, dialect)
+
+
 def open_url_or_database(engine_url: str | None, database: str | None) -> Engine:
     """An engine without a spec (for `init`): a URL, or a DuckDB file that must exist."""
     if engine_url is not None:
