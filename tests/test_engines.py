@@ -354,3 +354,83 @@ def test_duckdb_users_need_no_other_driver():
         "assert not loaded, loaded\n"
     )
     subprocess.run([sys.executable, "-c", code], check=True)
+
+
+# ---------------------------------------------------------------------------------------------
+# The NSW study (Dehejia & Wahba 1999 data from causaldata) on every engine, with the propensity
+# model fitted in each warehouse: the same numbers as on DuckDB.
+
+NSW_TABLES = ("men", "earnings")
+
+
+@pytest.fixture(scope="session")
+def nsw_tables(tmp_path_factory):
+    from nsw import load_nsw
+
+    db = str(tmp_path_factory.mktemp("nsw_engines") / "nsw.duckdb")
+    load_nsw(db)
+    con = duckdb.connect(db, read_only=True)
+    try:
+        tables = {}
+        for name in NSW_TABLES:
+            cols = [(r[0], r[1]) for r in con.execute(f"DESCRIBE {name}").fetchall()]
+            rows = con.execute(f"SELECT * FROM {name} ORDER BY 1, 2").fetchall()
+            tables[name] = (cols, rows)
+    finally:
+        con.close()
+    return db, tables
+
+
+def nsw_engine_spec(schema: str, work_schema: str):
+    from nsw import nsw_spec
+
+    raw = nsw_spec(":memory:", "score_bins", bins=10)
+    raw["study"].update(work_schema=work_schema)
+    raw["units"]["table"] = {"schema": schema, "name": "men"}
+    raw["events"]["table"] = {"schema": schema, "name": "earnings"}
+    return parse_spec(raw)
+
+
+@pytest.fixture(scope="session")
+def nsw_duckdb_results(nsw_tables):
+    db, _ = nsw_tables
+    with DuckDBEngine(db) as engine:
+        results = api.run(nsw_engine_spec("main", "sqlmatch_nsw"), engine=engine)
+    assert results.matching.n_treated_matched > 150
+    return _comparable(results)
+
+
+def test_postgres_runs_the_nsw_study_with_duckdbs_numbers(postgres, nsw_tables, nsw_duckdb_results):
+    engine, tag = postgres
+    schema = f"{tag}_nsw"
+    engine.execute(f'CREATE SCHEMA "{schema}"')
+    try:
+        for name, (cols, rows) in nsw_tables[1].items():
+            ddl = ", ".join(f'"{c}" {PG_TYPES[t]}' for c, t in cols)
+            engine.execute(f'CREATE TABLE "{schema}"."{name}" ({ddl})')
+            with engine.con.cursor() as cur:
+                with cur.copy(f'COPY "{schema}"."{name}" FROM STDIN') as copy:
+                    for row in rows:
+                        copy.write_row(row)
+        results = api.run(nsw_engine_spec(schema, f"{schema}_work"), engine=engine, keep_tables=False)
+        assert_same_numbers(_comparable(results), nsw_duckdb_results)
+    finally:
+        for s in (schema, f"{schema}_work"):
+            engine.execute(f'DROP SCHEMA IF EXISTS "{s}" CASCADE')
+
+
+def test_spark_runs_the_nsw_study_with_duckdbs_numbers(spark_engine, nsw_tables, nsw_duckdb_results):
+    from pyspark.sql import types as T
+
+    spark_types = {"BIGINT": T.LongType(), "DATE": T.DateType(), "TIMESTAMP": T.TimestampNTZType(), "DOUBLE": T.DoubleType()}
+    tag = f"{_session_tag()}_nsw"
+    spark_engine.execute(f"CREATE DATABASE `{tag}`")
+    try:
+        for name, (cols, rows) in nsw_tables[1].items():
+            schema = T.StructType([T.StructField(c, spark_types[t], True) for c, t in cols])
+            spark_engine.spark.createDataFrame(rows, schema=schema).write.saveAsTable(f"`{tag}`.`{name}`")
+        results = api.run(nsw_engine_spec(tag, f"{tag}_work"), engine=spark_engine, keep_tables=False)
+        assert_same_numbers(_comparable(results), nsw_duckdb_results)
+    finally:
+        for db in (tag, f"{tag}_work"):
+            spark_engine.execute(f"DROP DATABASE IF EXISTS `{db}` CASCADE")
