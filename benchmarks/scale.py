@@ -700,6 +700,22 @@ def run_benchmark(args) -> dict:
     from sqlmatch.matching import METHODS
 
     spec_master = code / "demo_warehouse" / "annual_pass.toml"
+    code_proposal = None
+    if args.proposal:
+        # A proposed change: files under --proposal laid out like the repository (e.g.
+        # sql_templates/feature_histograms.sql.j2) copied over a second snapshot; the spec's method
+        # then also runs on that code, as "sqlmatch:<method>+proposal", beside the current code.
+        overlay = Path(args.proposal).resolve()
+        code_proposal = workdir / "code_proposal"
+        if code_proposal.exists():
+            shutil.rmtree(code_proposal)
+        shutil.copytree(code, code_proposal)
+        files = sorted(str(f.relative_to(overlay)) for f in overlay.rglob("*") if f.is_file() and "__pycache__" not in f.parts)
+        for rel in files:
+            if not (code / rel).exists():
+                raise SystemExit(f"--proposal file {rel} replaces nothing in the code snapshot")
+            shutil.copyfile(overlay / rel, code_proposal / rel)
+        log(f"proposal {overlay}: {', '.join(files)} (fingerprint {code_fingerprint(code_proposal)})")
     generator_sha = code_fingerprint_file(code / "demo_warehouse" / "generate.sql.j2")
     check_windows(api.load(spec_master))
     methods = [m for m in (args.methods.split(",") if args.methods else list(METHODS))]
@@ -728,8 +744,11 @@ def run_benchmark(args) -> dict:
         },
         "floor_sql": FLOOR_SQL,
         "code_fingerprint": fingerprint,
+        "proposal": None,
         "sizes": [],
     }
+    if code_proposal is not None:
+        raw["proposal"] = {"dir": str(Path(args.proposal).resolve()), "files": files, "fingerprint": code_fingerprint(code_proposal)}
     largest = sizes[-1]
     refused_earlier: dict[str, str] = {}
     for size in sizes:
@@ -785,6 +804,11 @@ def run_benchmark(args) -> dict:
                     {"variant": f"sqlmatch:{raw['settings']['spec_method']} @{limit}", "kind": "sqlmatch",
                      "method": raw["settings"]["spec_method"], "memory_limit": limit, "limited": True}
                 )
+        if code_proposal is not None:
+            for v in [v for v in variants if v.get("method") == raw["settings"]["spec_method"]]:
+                twin = dict(v, code=str(code_proposal))
+                twin["variant"] = v["variant"].replace(f"sqlmatch:{v['method']}", f"sqlmatch:{v['method']}+proposal")
+                variants.insert(variants.index(v) + 1, twin)
         entry["not_run"] = {}
         for v in list(variants):
             if v["variant"] in refused_earlier:
@@ -798,7 +822,7 @@ def run_benchmark(args) -> dict:
             task = {k: v[k] for k in ("kind", "method", "memory_limit") if k in v}
             task.update({"db": str(db), "spec": str(spec_path), "label": label})
             log(f"{label} rep {rep + 1}/{repeats}: {v['variant']} ...")
-            r = run_child(task, workdir, rss_cap=rss_cap if v["kind"] == "inmem" else None, code=code)
+            r = run_child(task, workdir, rss_cap=rss_cap if v["kind"] == "inmem" else None, code=Path(v["code"]) if v.get("code") else code)
             r.update({"variant": v["variant"], "rep": rep, "pair": pair, "limited": bool(v.get("limited"))})
             entry["runs"].append(r)
             log(f"{label} rep {rep + 1}/{repeats}: {v['variant']}: {brief(r)}")
@@ -989,7 +1013,9 @@ def render(raw: dict) -> str:
         f"- Software: DuckDB {m['versions']['duckdb']}, Python {m['versions']['python']}, pandas {m['versions'].get('pandas')}, "
         f"numpy {m['versions'].get('numpy')}, statsmodels {m['versions'].get('statsmodels')}",
         f"- Code: commit `{(m.get('git_commit') or 'unknown')[:12]}`" + (" plus uncommitted changes in the working tree" if m.get("git_dirty") else "")
-        + f"; every child imported one snapshot of sqlmatch/, sql_templates/ and demo_warehouse/ taken at the start (fingerprint `{raw.get('code_fingerprint')}`)",
+        + f"; every child imported one snapshot of sqlmatch/, sql_templates/ and demo_warehouse/ taken at the start (fingerprint `{raw.get('code_fingerprint')}`)"
+        + (f"; `+proposal` variants ran the same snapshot with {', '.join('`' + f + '`' for f in raw['proposal']['files'])} replaced by the files in `{os.path.relpath(raw['proposal']['dir'], REPO)}/`"
+           if raw.get("proposal") else ""),
         f"- Repetitions: {st['repeats']} per size, variants alternated (order rotated each repetition), each variant in its own child process",
         f"- Data: the demo generator (`sqlmatch.demo.build_demo_warehouse`, seed {st['seed']}) with riders = size / {st['trips_per_rider']}, "
         f"in a DuckDB file on local disk (generator memory_limit {st['gen_memory_limit']})",
@@ -1186,15 +1212,15 @@ def render_targets(raw: dict) -> list[str]:
     else:
         out.append("- Targets at 100M: not measured (100M was not run).")
     # 3. 500M with a 4GB limit: peak RSS <= 6 GB (other limits are reported beside it)
-    limited: dict[tuple[str, str], list[dict]] = {}
+    limited: dict[tuple[str, str, str], list[dict]] = {}
     for e in raw["sizes"]:
         for r in e["runs"]:
             if r.get("limited"):
-                limited.setdefault((e["label"], r["memory_limit"]), []).append(r)
-    if not any(lim == "4GB" and where == "500M" for where, lim in limited):
+                limited.setdefault((e["label"], r["memory_limit"], r["variant"].split(" @")[0]), []).append(r)
+    if not any(lim == "4GB" and where == "500M" for where, lim, _ in limited):
         out.append("- Peak RSS ≤ 6 GB with memory_limit 4GB at 500M: **not measured** (500M was not run)"
                    + ("; the limited runs at smaller sizes follow." if limited else "."))
-    for (where, lim), runs in limited.items():
+    for (where, lim, name), runs in limited.items():
         ok = [r for r in runs if r.get("ok")]
         what = "the target" if (lim == "4GB" and where == "500M") else "not the target's size" if lim == "4GB" else "an extra, tighter limit"
         verdict = (lambda ok_: f": ≤ 6 GB {status(ok_)}") if lim == "4GB" else (lambda ok_: " (no target; reported for information)")
@@ -1202,14 +1228,14 @@ def render_targets(raw: dict) -> list[str]:
             peaks = [r["peak_rss_bytes"] for r in ok]
             spill = [r["spill_peak_bytes"] for r in ok]
             out.append(
-                f"- Peak RSS with memory_limit {lim} at {where} ({what}): {_gib(statistics.median(peaks))} median, {_gib(max(peaks))} max "
+                f"- {name}, peak RSS with memory_limit {lim} at {where} ({what}): {_gib(statistics.median(peaks))} median, {_gib(max(peaks))} max "
                 f"({max(peaks) / 10**9:.2f} GB); spill {_gib(statistics.median(spill))} median, {_gib(max(spill))} max; "
                 f"{len(ok)} / {len(runs)} runs completed{verdict(max(peaks) <= 6 * 10**9)}."
             )
         else:
             step = f" in step {runs[0]['failed_step']}" if runs[0].get("failed_step") else ""
             out.append(
-                f"- memory_limit {lim} at {where} ({what}): every run failed{step} ({runs[0].get('error')}) after spilling "
+                f"- {name}, memory_limit {lim} at {where} ({what}): every run failed{step} ({runs[0].get('error')}) after spilling "
                 f"{_gib(max(r['spill_peak_bytes'] for r in runs))}" + (": **not met**." if lim == "4GB" else " (no target; reported for information).")
             )
     # 4. rows_fetched identical at every size
@@ -1274,6 +1300,7 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--gen-memory-limit", default="8GB", help="DuckDB memory_limit while generating the data")
     p.add_argument("--retry-failed", action="store_true", help="re-run a variant in later repetitions after it failed")
     p.add_argument("--no-profile", action="store_true", help="skip the EXPLAIN ANALYZE profile of the heaviest step")
+    p.add_argument("--proposal", help="directory of changed files laid out like the repository; the spec's method also runs on them")
     p.add_argument("--out", default=str(HERE / "RESULTS.md"))
     p.add_argument("--raw", default=str(HERE / "scale_raw.json"))
     p.add_argument("--render-only", metavar="RAW_JSON[,RAW_JSON...]", help="only re-render --out from raw JSON file(s); several are merged")
