@@ -37,6 +37,10 @@ sums of weights to 1e-9 relative):
                   (feature, bin, treated); the same grid and output
   grouping_sets   one range scan, one join, GROUP BY GROUPING SETS ((bin_f, treated) per feature)
 
+--step query_joins (no variants): every query step of the compiled plan that reads the study's
+tables, run --repeats times under DuckDB's JSON profiler; per step the latency and the share of
+operator time spent in hash joins (most of them join the measures to the weights again).
+
 Each variant runs as CREATE TABLE AS on one connection, alternated for --repeats rounds (order
 rotated each round); time is wall time, and DuckDB's JSON profiler gives peak buffer memory.
 Writes a Markdown table to stdout (and --out if given).
@@ -333,9 +337,49 @@ def _same_row(x: tuple, y: tuple) -> bool:
     return True
 
 
+def query_joins(args, duckdb) -> int:
+    from sqlmatch import api
+
+    sys.path.insert(0, str(HERE))
+    from scale import _profile_summary
+
+    spec = api.load(args.spec)
+    steps = [s for s in api.compile_plan(spec).steps if s.kind == "query"]
+    con = duckdb.connect(args.database, read_only=True)
+    prof = Path(tempfile.mkdtemp(prefix="step_variants_")) / "profile.json"
+    rows = {}
+    for rep in range(args.repeats):
+        for step in steps:
+            (sql,) = step.statements
+            con.execute("SET enable_profiling = 'json'")
+            con.execute(f"SET profiling_output = '{prof}'")
+            t0 = time.perf_counter()
+            con.execute(sql).fetchall()
+            wall = time.perf_counter() - t0
+            con.execute("PRAGMA disable_profiling")
+            summ = _profile_summary(prof)
+            total = sum(o["seconds"] for o in summ["operators"]) or 1e-12
+            joins = sum(o["seconds"] for o in summ["operators"] if o["operator"].startswith("HASH_JOIN"))
+            rows.setdefault(step.name, []).append((wall, joins / total))
+    con.close()
+    lines = [
+        f"query steps on {args.database} ({args.repeats} rounds; DuckDB {duckdb.__version__}, {os.cpu_count()} CPUs)",
+        "",
+        "| step | time, median | share of operator time in hash joins |",
+        "|---|---|---|",
+    ]
+    for name, vals in sorted(rows.items(), key=lambda kv: -statistics.median(v[0] for v in kv[1])):
+        lines.append(f"| {name} | {statistics.median(v[0] for v in vals):.2f} s | {100 * statistics.median(v[1] for v in vals):.0f}% |")
+    text = "\n".join(lines) + "\n"
+    print(text)
+    if args.out:
+        Path(args.out).write_text(text, encoding="utf-8")
+    return 0
+
+
 def main() -> int:
     p = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
-    p.add_argument("--step", choices=("unit_measures", "feature_histograms"), default="unit_measures")
+    p.add_argument("--step", choices=("unit_measures", "feature_histograms", "query_joins"), default="unit_measures")
     p.add_argument("--database", required=True)
     p.add_argument("--spec", required=True, help="the demo spec the study ran with (a copy beside the database)")
     p.add_argument("--repeats", type=int, default=3)
@@ -349,6 +393,8 @@ def main() -> int:
         sys.path.insert(0, args.code)
     import duckdb
 
+    if args.step == "query_joins":
+        return query_joins(args, duckdb)
     vs = unit_measures_variants(args.spec) if args.step == "unit_measures" else histogram_variants(args.spec)
     if args.only:
         vs = {k: v for k, v in vs.items() if k == "compiled" or k in args.only.split(",")}
