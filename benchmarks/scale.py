@@ -1,38 +1,44 @@
 """Scale benchmark: sqlmatch on the demo warehouse at 10M, 100M (and optionally 500M) trips.
 
 A script, not a test: it measures, it never asserts on time. For each size it builds the demo
-warehouse in a DuckDB file on disk, then runs, alternated in one process for --repeats
-repetitions (the order rotates every repetition), each variant in its own child process:
+warehouse in a DuckDB file on disk, then runs, for --repeats repetitions (the order rotates every
+repetition), each variant in its own child process and each right beside a floor run (before it in
+even repetitions, after it in odd ones), so that every ratio to the floor divides two runs a few
+seconds apart on this shared machine:
 
   floor      the least any tool must do: ONE hand-written GROUP BY over trips computing the same
              per-rider pre/post aggregates as the study's unit_measures step, materialised with
              CREATE TABLE AS (as sqlmatch materialises its tables);
   sqlmatch   the whole study through sqlmatch.api.run, once per matching method in
              sqlmatch.matching.METHODS (coarsened_exact as in the demo spec, the others through
-             spec.with_overrides(method=...)); a method that fails is reported, not fatal;
+             spec.with_overrides(method=...)); a method that fails is reported, not fatal, and one
+             refused by a data guard is not run at larger sizes;
   in-memory  what a user without sqlmatch would do: pull the trips into pandas, aggregate per
              rider with groupby, fit a statsmodels Logit, subclassify into 5 bins on the score
              and estimate the effect on the treated (only at sizes up to --inmem-max, default
              100M; above it the script only estimates whether it would fit in memory);
-  limited    sqlmatch (the spec's method) at the largest size with DuckDB memory_limit = 4GB
-             and a temp_directory to spill to.
+  @LIMIT     sqlmatch (the spec's method) with a DuckDB memory_limit and a temp_directory to spill
+             to (--limited-memory: 4GB at the largest size by default, or SIZE:LIMIT pairs);
+  +proposal  with --proposal DIR, the spec's method on a copy of the code with DIR's files swapped in.
 
-Per run: wall time of the work inside the child (and of the whole child), the child's peak RSS
-(os.wait4 returns the rusage of that one child: the per-child form of
+Per run: wall and CPU time of the work inside the child (and the wall time of the whole child),
+the child's peak RSS (os.wait4 returns the rusage of that one child: the per-child form of
 getrusage(RUSAGE_CHILDREN), so peaks of different variants never mix), the peak size on disk of
 the child's DuckDB temp_directory (sampled every 0.1 s by the parent) and rows_fetched (result
-rows that reached Python). The in-memory child is killed if its RSS passes --inmem-rss-cap-gb
-(the machine is shared); that is reported as a failure, like a MemoryError or an OOM kill.
+rows that reached Python); for sqlmatch the time per step, and the step a failed run stopped in.
+The in-memory child is killed if its RSS passes --inmem-rss-cap-gb (the machine is shared); that
+is reported as a failure, like a MemoryError or an OOM kill. Every child imports one snapshot of
+the code taken at the start: other engineers edit the working tree while the benchmark runs.
 
-Afterwards the heaviest sqlmatch step at the largest size is profiled with EXPLAIN ANALYZE (text
-saved next to RESULTS.md) and DuckDB's JSON profiler (per-operator summary in RESULTS.md), and so
-is the floor query, for comparison.
+Afterwards the heaviest sqlmatch step (at 100M and above, and at the largest size) is profiled with
+EXPLAIN ANALYZE (text saved next to RESULTS.md) and DuckDB's JSON profiler (per-operator summary
+in RESULTS.md), and so is the floor query, for comparison.
 
 Results: benchmarks/RESULTS.md (rendered) and benchmarks/scale_raw.json (every measurement).
 Anything below the ANALYSIS_MARKER line of an existing RESULTS.md is kept when it is rewritten.
 
     python3 benchmarks/scale.py --sizes 10M,100M --repeats 3
-    python3 benchmarks/scale.py --sizes 10M,100M,500M --repeats 2 --workdir /big/disk/tmp
+    python3 benchmarks/scale.py --sizes 10M,100M,500M --repeats 3,3,2 --workdir /big/disk/tmp --memory-limit 12GB
     python3 benchmarks/scale.py --render-only benchmarks/scale_raw.json
 """
 
@@ -1000,8 +1006,9 @@ def render(raw: dict) -> str:
         "# Scale benchmark: sqlmatch beyond memory",
         "",
         "Written by `benchmarks/scale.py` (see `benchmarks/README.md`). Every number below was measured in the",
-        "run described here; ratios are formed within one repetition (same minute, same machine load) and then",
-        "summarised. Cells read `median [min–max]` over the repetitions.",
+        "run described here. Each variant ran right beside a floor run, and every ratio to the floor divides the",
+        "two runs of such a pair (the machine is shared and its load drifts over minutes); ratios are then",
+        "summarised. Cells read `median [min–max]` over the runs or pairs.",
         "",
         "## Run",
         "",
@@ -1021,7 +1028,7 @@ def render(raw: dict) -> str:
         f"in a DuckDB file on local disk (generator memory_limit {st['gen_memory_limit']})",
         "- DuckDB settings for floor, sqlmatch and in-memory: "
         + (f"memory_limit {st['memory_limit']} (below DuckDB's default of 80% of RAM: the machine is shared), " if st.get("memory_limit") else "the default memory_limit (80% of RAM), ")
-        + f"threads = CPUs, a fresh temp_directory per child; the limited runs: memory_limit {st['limited_memory']}",
+        + f"threads = CPUs, a fresh temp_directory per child; the variants marked `@LIMIT` ran with that memory_limit instead (`--limited-memory {st['limited_memory']}`)",
         "",
         "Measures: **time** = wall time of the work inside the child, from opening the connection to the result",
         "in hand, with library imports done before the clock starts for every variant (sqlmatch imports scipy.stats",
@@ -1065,7 +1072,7 @@ def render(raw: dict) -> str:
             runs = [r for r in entry["runs"] if r["variant"] == v]
             ok = [r for r in runs if r.get("ok")]
             if not ok:
-                errs = "; ".join(sorted(set(str(r.get("error")) + (f" (in step {r['failed_step']})" if r.get("failed_step") else "") for r in runs)))
+                errs = "; ".join(sorted(set(str(r.get("error")).split(". (")[0] + (f" (in step {r['failed_step']})" if r.get("failed_step") else "") for r in runs)))
                 lines.append(f"| {v} | 0 / {len(runs)} | failed: {errs} | | {_s(runs[0]['wall_seconds'])} | {_gib(max(r['peak_rss_bytes'] for r in runs))} | {_spill([r['spill_peak_bytes'] for r in runs])} | | |")
                 continue
             att = [r["effects"]["post_trips"]["estimate"] for r in ok if r.get("effects")]

@@ -25,6 +25,8 @@ is checked against it unit by unit, to 1e-9 relative):
                   active days = number of pre-window day rows, so no COUNT(DISTINCT)
   day_preagg_first day_preagg without the join before the aggregation (units joined afterwards)
   floor           scale.py's floor query (all riders, no join; diagnostic, not the same table)
+  bitmask_days    compiled shape, active days as the bit count of an OR of one bit per day (DuckDB
+                  syntax; would need a dialect-specific template), no COUNT(DISTINCT)
   no_distinct     compiled with pre_active_days left out (diagnostic: the cost of COUNT DISTINCT)
 
 --step feature_histograms (every variant returns the compiled query's rows; checked row by row,
@@ -51,6 +53,7 @@ from __future__ import annotations
 import argparse
 import json
 import os
+import shutil
 import statistics
 import sys
 import tempfile
@@ -113,14 +116,34 @@ LEFT JOIN event_totals AS t
   ON t.unit_key = u.unit_key"""
 
 
-def _flat_aggregates(with_distinct: bool = True) -> str:
+def _bitmask_days() -> str:
+    """Active pre-window days without COUNT(DISTINCT): OR together one bit per day (63 days per
+    BIGINT lane, so the sign bit is never used) and count the bits. DuckDB syntax (<<, bit_or,
+    bit_count); PostgreSQL and Spark have the same aggregates under other spellings, so this
+    would be a dialect-specific template."""
+    import datetime as dt
+
+    days = (dt.date.fromisoformat(COHORT_START) - dt.date.fromisoformat(PRE_START)).days
+    lanes = (days + 62) // 63
+    d = f"DATE_DIFF('DAY', CAST('{PRE_START}' AS DATE), CAST(e.started_at AS DATE))"
+    parts = [
+        f"bit_count(BIT_OR(CASE WHEN {PRE} AND {d} >= {63 * k} AND {d} < {63 * (k + 1)} "
+        f"THEN CAST(1 AS BIGINT) << ({d} - {63 * k}) ELSE CAST(0 AS BIGINT) END))"
+        for k in range(lanes)
+    ]
+    return "(" + " + ".join(parts) + ")"
+
+
+def _flat_aggregates(with_distinct: bool = True, bitmask: bool = False) -> str:
     days_since = f"DATE_DIFF('DAY', CAST(MAX(CASE WHEN {PRE} THEN e.started_at END) AS DATE), CAST('{COHORT_START}' AS DATE))"
     parts = [
         f"COUNT(CASE WHEN {PRE} THEN 1 END) AS pre_trips",
         f"SUM(CASE WHEN {PRE} THEN CAST(e.minutes AS DOUBLE) END) AS pre_minutes",
         f"AVG(CASE WHEN {PRE} THEN CAST(e.fare AS DOUBLE) END) AS pre_fare_per_trip",
     ]
-    if with_distinct:
+    if bitmask:
+        parts.append(f"{_bitmask_days()} AS pre_active_days")
+    elif with_distinct:
         parts.append(f"COUNT(DISTINCT CASE WHEN {PRE} THEN CAST(e.started_at AS DATE) END) AS pre_active_days")
     parts += [
         f"{days_since} AS pre_days_since_last",
@@ -135,15 +158,15 @@ def _flat_aggregates(with_distinct: bool = True) -> str:
     return ",\n    ".join(parts)
 
 
-def flat(join: str, with_distinct: bool = True) -> str:
+def flat(join: str, with_distinct: bool = True, bitmask: bool = False) -> str:
     """join: 'inner' (compiled shape), 'semi' or 'none' (aggregate first)."""
     join_sql = {"inner": f"INNER JOIN {UNITS} AS u ON e.rider_id = u.unit_key", "semi": "", "none": ""}[join]
     semi = f" AND e.rider_id IN (SELECT unit_key FROM {UNITS})" if join == "semi" else ""
-    cols = OUT_COLUMNS if with_distinct else [c for c in OUT_COLUMNS if c[0] != "pre_active_days"]
+    cols = OUT_COLUMNS if (with_distinct or bitmask) else [c for c in OUT_COLUMNS if c[0] != "pre_active_days"]
     cte = f"""WITH event_totals AS (
   SELECT
     e.rider_id AS unit_key,
-    {_flat_aggregates(with_distinct)}
+    {_flat_aggregates(with_distinct, bitmask)}
   FROM trips AS e
   {join_sql}
   WHERE {SPAN}{semi}
@@ -218,6 +241,7 @@ def unit_measures_variants(spec_path: str) -> dict[str, tuple[str, bool]]:
         "semi_join": (flat("semi"), True),
         "day_preagg": (day_preagg("inner"), True),
         "day_preagg_first": (day_preagg("none"), True),
+        "bitmask_days": (flat("inner", bitmask=True), True),
         "floor": (FLOOR_SQL.split(" AS\n", 1)[1], False),
         "no_distinct": (flat("inner", with_distinct=False), False),
     }
@@ -362,6 +386,7 @@ def query_joins(args, duckdb) -> int:
             joins = sum(o["seconds"] for o in summ["operators"] if o["operator"].startswith("HASH_JOIN"))
             rows.setdefault(step.name, []).append((wall, joins / total))
     con.close()
+    shutil.rmtree(prof.parent, ignore_errors=True)
     lines = [
         f"query steps on {args.database} ({args.repeats} rounds; DuckDB {duckdb.__version__}, {os.cpu_count()} CPUs)",
         "",
@@ -457,6 +482,9 @@ def main() -> int:
     con.execute("DROP TABLE IF EXISTS bench_step_reference")
     con.execute(f"DROP TABLE IF EXISTS {FLOOR_TABLE}")
     con.close()
+    shutil.rmtree(prof.parent, ignore_errors=True)
+    if config:
+        shutil.rmtree(config["temp_directory"], ignore_errors=True)
     base = statistics.median(times["compiled"]) if times.get("compiled") else None
     what = "units" if args.step == "unit_measures" else "rows"
     lines = [
