@@ -332,6 +332,7 @@ def build_plan(spec: Spec, dialect: str = "duckdb", model=None, materialize: boo
             columns=columns,
             attributes=spec.attribute_features,
             units_table=ctx.table("units"),
+            target=dialect,
         ),
     ]
     steps.append(
@@ -357,14 +358,25 @@ def build_plan(spec: Spec, dialect: str = "duckdb", model=None, materialize: boo
     categorical = [f.name for f in spec.categorical_features]
     both = [ctx.display("measures"), ctx.display("weights")]
     steps.append(
+        ctx.table_step(
+            "weighted_units",
+            "weighted_units",
+            writes="weighted",
+            reads=both,
+            purpose="Every unit's measures with its matching weight (NULL if unmatched), joined once for the steps after.",
+            measures_table=ctx.table("measures"),
+            weights_table=ctx.table("weights"),
+        )
+    )
+    weighted = [ctx.display("weighted")]
+    steps.append(
         ctx.query_step(
             "balance_numeric",
             "balance_numeric",
-            reads=both,
+            reads=weighted,
             purpose="Per-group counts, sums and sums of squares of numeric features, before and after matching.",
             features=numeric,
-            measures_table=ctx.table("measures"),
-            weights_table=ctx.table("weights"),
+            weighted_table=ctx.table("weighted"),
         )
     )
     if categorical:
@@ -372,11 +384,10 @@ def build_plan(spec: Spec, dialect: str = "duckdb", model=None, materialize: boo
             ctx.query_step(
                 "balance_levels",
                 "balance_levels",
-                reads=both,
+                reads=weighted,
                 purpose="Per-level counts of categorical features, before and after matching.",
                 features=categorical,
-                measures_table=ctx.table("measures"),
-                weights_table=ctx.table("weights"),
+                weighted_table=ctx.table("weighted"),
             )
         )
     on = [spec.feature(n) for n in spec.matching.on]
@@ -384,13 +395,12 @@ def build_plan(spec: Spec, dialect: str = "duckdb", model=None, materialize: boo
         ctx.query_step(
             "imbalance_l1",
             "imbalance_l1",
-            reads=both,
+            reads=weighted,
             purpose="Multivariate L1 imbalance on a fixed histogram, before and after matching.",
             bins=L1_BINS,
             numeric=[f.name for f in on if not f.categorical],
             categorical=[f.name for f in on if f.categorical],
-            measures_table=ctx.table("measures"),
-            weights_table=ctx.table("weights"),
+            weighted_table=ctx.table("weighted"),
         )
     )
     numeric = [f.name for f in spec.numeric_features]
@@ -399,12 +409,11 @@ def build_plan(spec: Spec, dialect: str = "duckdb", model=None, materialize: boo
             ctx.query_step(
                 "feature_histograms",
                 "feature_histograms",
-                reads=both,
+                reads=weighted,
                 purpose="Binned distribution of each numeric feature by group, before and after matching (for plots).",
                 bins=HISTOGRAM_BINS,
                 features=numeric,
-                measures_table=ctx.table("measures"),
-                weights_table=ctx.table("weights"),
+                weighted_table=ctx.table("weighted"),
             )
         )
     if method.NEEDS_SCORE:
@@ -440,12 +449,11 @@ def build_plan(spec: Spec, dialect: str = "duckdb", model=None, materialize: boo
         ctx.query_step(
             "outcome_regression",
             "outcome_regression",
-            reads=both,
+            reads=weighted,
             purpose="Weighted regression of each outcome on treatment and the numeric features among matched units, as sums (X'WX, X'Wy, y'Wy) for the sensitivity analysis.",
             features=numeric,
             outcomes=outcomes,
-            measures_table=ctx.table("measures"),
-            weights_table=ctx.table("weights"),
+            weighted_table=ctx.table("weighted"),
         )
     )
     if materialize:

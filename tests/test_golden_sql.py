@@ -77,6 +77,7 @@ def test_manifest_lists_reads_and_writes(spec):
         "sqlmatch.annual_pass_measures",
         "sqlmatch.annual_pass_cells",
         "sqlmatch.annual_pass_weights",
+        "sqlmatch.annual_pass_weighted",
     ]
 
 

@@ -82,9 +82,9 @@ def test_keep_and_cleanup(demo_dir, tmp_path, capsys):
     spec = setup_copy(demo_dir, tmp_path / "kept")
     assert main(["run", str(spec), "--out", str(tmp_path / "out"), "--quiet", "--keep"]) == 0
     kept = study_tables(spec.parent / "bikeshare.duckdb")
-    assert kept == ["annual_pass_cells", "annual_pass_measures", "annual_pass_units", "annual_pass_weights"]
+    assert kept == ["annual_pass_cells", "annual_pass_measures", "annual_pass_units", "annual_pass_weighted", "annual_pass_weights"]
     assert main(["cleanup", str(spec)]) == 0
-    assert "dropped 4 tables" in capsys.readouterr().out
+    assert "dropped 5 tables" in capsys.readouterr().out
     assert study_tables(spec.parent / "bikeshare.duckdb") == []
 
 

@@ -35,12 +35,47 @@ WITH event_totals AS (
         THEN CAST(e."fare" AS DOUBLE)
       END
     ) AS pre_fare_per_trip,
-    COUNT(
-      DISTINCT CASE
-        WHEN e."started_at" >= CAST('2025-09-01' AS DATE)
-        AND e."started_at" < CAST('2026-03-01' AS DATE)
-        THEN CAST(e."started_at" AS DATE)
-      END
+    (
+      BIT_COUNT(
+        BIT_OR(
+          CASE
+            WHEN e."started_at" >= CAST('2025-09-01' AS DATE)
+            AND e."started_at" < CAST('2026-03-01' AS DATE)
+            AND DATE_DIFF('DAY', CAST('2025-09-01' AS DATE), CAST(e."started_at" AS DATE)) >= 0
+            AND DATE_DIFF('DAY', CAST('2025-09-01' AS DATE), CAST(e."started_at" AS DATE)) < 63
+            THEN CAST(1 AS BIGINT) << (
+              DATE_DIFF('DAY', CAST('2025-09-01' AS DATE), CAST(e."started_at" AS DATE)) - 0
+            )
+            ELSE CAST(0 AS BIGINT)
+          END
+        )
+      ) + BIT_COUNT(
+        BIT_OR(
+          CASE
+            WHEN e."started_at" >= CAST('2025-09-01' AS DATE)
+            AND e."started_at" < CAST('2026-03-01' AS DATE)
+            AND DATE_DIFF('DAY', CAST('2025-09-01' AS DATE), CAST(e."started_at" AS DATE)) >= 63
+            AND DATE_DIFF('DAY', CAST('2025-09-01' AS DATE), CAST(e."started_at" AS DATE)) < 126
+            THEN CAST(1 AS BIGINT) << (
+              DATE_DIFF('DAY', CAST('2025-09-01' AS DATE), CAST(e."started_at" AS DATE)) - 63
+            )
+            ELSE CAST(0 AS BIGINT)
+          END
+        )
+      ) + BIT_COUNT(
+        BIT_OR(
+          CASE
+            WHEN e."started_at" >= CAST('2025-09-01' AS DATE)
+            AND e."started_at" < CAST('2026-03-01' AS DATE)
+            AND DATE_DIFF('DAY', CAST('2025-09-01' AS DATE), CAST(e."started_at" AS DATE)) >= 126
+            AND DATE_DIFF('DAY', CAST('2025-09-01' AS DATE), CAST(e."started_at" AS DATE)) < 189
+            THEN CAST(1 AS BIGINT) << (
+              DATE_DIFF('DAY', CAST('2025-09-01' AS DATE), CAST(e."started_at" AS DATE)) - 126
+            )
+            ELSE CAST(0 AS BIGINT)
+          END
+        )
+      )
     ) AS pre_active_days,
     DATE_DIFF(
       'DAY',
