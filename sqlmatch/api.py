@@ -171,7 +171,8 @@ def estimate(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
     """Balance and effects from the aggregates of one run (pure: no database)."""
     r = output.results
     summary = r["matching_summary"].one()
-    sizes = {int(row[0]): int(row[1]) for row in r["group_sizes"].rows}
+    # Units per group left in the study (after units with a NULL attribute under missing = "drop")
+    sizes = {int(g["treated"]): int(g["n_units"]) - int(g.get("n_dropped") or 0) for g in r["group_sizes"].records()}
     in_cells_t, in_cells_c = int(summary["n_treated"] or 0), int(summary["n_control"] or 0)
     matching = MatchingSummary(
         method=spec.matching.method,
@@ -251,11 +252,37 @@ def _warnings(spec: Spec, r, balance) -> list[str]:
             "were a new one, so they are too small when controls are reused often (Abadie & Imbens 2006 give a variance "
             "that accounts for reuse); read the intervals as too narrow, or match without replacement."
         )
+    out += _missing_warnings(spec, r)
     for b in balance:
         if b.kind != "level" and b.mean_treated_before is None and b.mean_control_before is None:
             out.append(f"Feature {b.covariate!r} is NULL for every unit: it carries no information. Fix its definition or drop it.")
         elif b.kind != "level" and b.smd_before == 0.0 and b.variance_ratio_before is None:
             out.append(f"Feature {b.covariate!r} has the same value for every unit: it carries no information and can be dropped.")
+    return out
+
+
+def _missing_warnings(spec: Spec, r) -> list[str]:
+    """What each attribute's `missing` policy did, in counts (a count under the minimum cell size
+    is not printed: it could single out a few people)."""
+    if "group_sizes" not in r or not spec.attribute_features:
+        return []
+    groups = {int(g["treated"]): g for g in r["group_sizes"].records()}
+
+    def count(n: int) -> str:
+        return f"fewer than {spec.min_cell_size}" if 0 < n < spec.min_cell_size else f"{n:,}"
+
+    out = []
+    for f in spec.attribute_features:
+        t, c = (int(groups.get(g, {}).get(f"{f.name}__null") or 0) for g in (1, 0))
+        if not t + c:
+            continue
+        who = f"{count(t + c)} units ({count(t)} treated, {count(c)} control) have no value for {f.name!r}"
+        if f.missing == "fill":
+            out.append(f"{who}: filled with {f.fill:g} and flagged in the feature {f.indicator!r} ({f.key}.missing = \"fill\").")
+        elif f.missing == "drop":
+            out.append(f"{who}: they were left out of the study ({f.key}.missing = \"drop\"); the effect is for units with a value.")
+        elif f.missing == "level":
+            out.append(f"{who}: they form a level of their own, '(missing)' ({f.key}.missing = \"level\").")
     return out
 
 

@@ -307,8 +307,10 @@ def build_plan(spec: Spec, dialect: str = "duckdb", model=None, materialize: boo
             "group_sizes",
             "group_sizes",
             reads=[ctx.display("units")],
-            purpose="Count treated and control units (refuse an empty cohort or control pool).",
+            purpose="Count treated and control units (refuse an empty cohort or control pool), and NULL attributes.",
             units_table=ctx.table("units"),
+            attributes=spec.attribute_features,
+            dropped=[f for f in spec.attribute_features if f.missing == "drop"],
         ),
         ctx.query_step(
             "unit_key_check",

@@ -143,6 +143,32 @@ def _check_groups(spec: Spec, result: QueryResult) -> None:
         )
 
 
+def _check_missing(spec: Spec, result: QueryResult) -> None:
+    """Refuse NULL numeric attributes that have no policy, and a study that dropping units with
+    NULL attributes (missing = "drop") would leave without a treated or a control unit."""
+    rows = result.records()
+    by_group = {int(r["treated"]): r for r in rows}
+    for f in spec.attribute_features:
+        nulls = {g: int(r.get(f"{f.name}__null") or 0) for g, r in by_group.items()}
+        if f.missing == "error" and sum(nulls.values()):
+            raise DataError(
+                f"{f.key}.missing",
+                f"{sum(nulls.values()):,} units in the study ({nulls.get(1, 0):,} treated, {nulls.get(0, 0):,} control) have no value "
+                f"for {f.name!r} (column {f.attribute!r} of {spec.units.display!r}).",
+                f'say what a missing value means: missing = "fill" with fill = <number> (adds the indicator feature {f.name}_missing) '
+                'or missing = "drop" (those units leave the study).',
+            )
+    dropped = [f.name for f in spec.attribute_features if f.missing == "drop"]
+    for group, what, key in ((1, "treated", "treatment.cohort"), (0, "control", "treatment.control_pool")):
+        r = by_group.get(group)
+        if dropped and r is not None and int(r["n_units"]) - int(r.get("n_dropped") or 0) <= 0:
+            raise DataError(
+                key,
+                f"every {what} unit has a NULL in {', '.join(dropped)} (missing = \"drop\"), so none is left in the study.",
+                f'fill those values instead (missing = "fill" with fill = <number>), or fix the source column.',
+            )
+
+
 def _check_keys_unique(spec: Spec, result: QueryResult) -> None:
     row = result.one()
     if row["n_rows"] != row["n_keys"]:
@@ -154,12 +180,34 @@ def _check_keys_unique(spec: Spec, result: QueryResult) -> None:
         )
 
 
-def _check_matched(result: QueryResult) -> None:
-    if not result.one()["n_treated_matched"]:
+# How to keep more treated units, per matching method (for the matching.min_treated error).
+_LOOSEN = {
+    "coarsened_exact": "coarser cut points (matching.cut_points or matching.coarsen_bins) or fewer features in matching.on",
+    "score_bins": "fewer exact features (matching.exact) or fewer matching.bins",
+    "nearest": "a wider matching.caliper or fewer exact features (matching.exact)",
+}
+
+
+def _check_matched(spec: Spec, result: QueryResult, group_sizes: QueryResult | None = None) -> None:
+    """Refuse a run that matched no treated unit, or fewer than matching.min_treated of them."""
+    row = result.one()
+    kept = int(row["n_treated_matched"] or 0)
+    if not kept:
         raise DataError(
             "matching",
             "no treated unit found a control unit to match, so nothing was matched.",
             "match on fewer features (matching.on) or coarser cut points (matching.cut_points).",
+        )
+    minimum = spec.matching.min_treated
+    if kept < minimum:
+        sizes = {r[0]: r[1] for r in group_sizes.rows} if group_sizes is not None else {}
+        cohort = int(sizes.get(1) or row["n_treated"] or 0)
+        loosen = _LOOSEN.get(spec.matching.method, "looser matching settings")
+        raise DataError(
+            "matching.min_treated",
+            f"only {kept:,} of the {cohort:,} treated units in the cohort were matched, fewer than "
+            f"matching.min_treated = {minimum:,}, too few to estimate an effect from.",
+            f"loosen the matching with {loosen}, or lower matching.min_treated if an effect on so few units is acceptable.",
         )
 
 
@@ -195,8 +243,9 @@ def _run_steps(plan: Plan, spec: Spec, engine: Engine, out: RunOutput, progress:
             out.results[step.name] = engine.fetch(statement)
             if step.name == "group_sizes":
                 _check_groups(spec, out.results[step.name])
+                _check_missing(spec, out.results[step.name])
             if step.name == "matching_summary":
-                _check_matched(out.results[step.name])
+                _check_matched(spec, out.results[step.name], out.results.get("group_sizes"))
             if step.name == "unit_key_check":
                 _check_keys_unique(spec, out.results[step.name])
             if step.name == "candidate_pairs":
@@ -246,19 +295,24 @@ def run_plan(plan: Plan, spec: Spec, engine: Engine, progress: Progress | None =
 
     progress = progress or Progress(quiet=True)
     preflight(spec, engine)
-    drop_stray_tables(spec, engine)
-    out = RunOutput(plan=plan)
-    start_rows = engine.rows_fetched
-    try:
-        _run_steps(plan, spec, engine, out, progress)
-        if not plan.complete:
-            out.model = fit_propensity(spec, engine, out, progress)
-            out.plan = build_plan(spec, plan.dialect, model=out.model)
-            _run_steps(out.plan, spec, engine, out, progress)
-    except BaseException:
-        drop_work_tables(out.plan, engine)
-        raise
-    out.rows_fetched = engine.rows_fetched - start_rows
-    if not keep_tables:
-        drop_work_tables(out.plan, engine)
+    # Held from before the leftovers are dropped until the last table is dropped: a second run of
+    # the same study on the same database (where the engine can tell) is refused here, before it
+    # could drop this run's half-built tables or swap its own in under them. A refused run drops
+    # nothing, since every table it would drop belongs to the run holding the lock.
+    with engine.study_lock(spec.work_schema, spec.name):
+        drop_stray_tables(spec, engine)
+        out = RunOutput(plan=plan)
+        start_rows = engine.rows_fetched
+        try:
+            _run_steps(plan, spec, engine, out, progress)
+            if not plan.complete:
+                out.model = fit_propensity(spec, engine, out, progress)
+                out.plan = build_plan(spec, plan.dialect, model=out.model)
+                _run_steps(out.plan, spec, engine, out, progress)
+        except BaseException:
+            drop_work_tables(out.plan, engine)
+            raise
+        out.rows_fetched = engine.rows_fetched - start_rows
+        if not keep_tables:
+            drop_work_tables(out.plan, engine)
     return out

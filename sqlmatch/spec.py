@@ -25,6 +25,10 @@ _NAME_RE = re.compile(r"^[a-z](?!.*__)[a-z0-9_]{0,47}$")
 _COHORT_RE = re.compile(r"^(\d{4})-(\d{2})$")
 
 FEATURE_AGGREGATES = ("count", "sum", "mean", "active_days", "days_since_last", "attribute")
+# "missing_indicator" features are not written in specs: a numeric attribute with missing = "fill"
+# adds one (1 where the attribute was NULL, else 0), so matching and balance see who was filled.
+MISSING_INDICATOR = "missing_indicator"
+MISSING_POLICIES = {"numeric": ("error", "fill", "drop"), "categorical": ("level", "drop")}
 OUTCOME_AGGREGATES = ("count", "sum", "active_days", "ratio", "active_at_end")
 CONTROL_POOLS = ("never_by_post_end", "not_yet_enrolled")
 COARSEN_RULES = ("quantiles", "sturges")
@@ -85,7 +89,17 @@ class Feature:
     measure: str | None = None  # events column for sum/mean
     attribute: str | None = None  # units column for attribute features
     categorical: bool = False
-    fill: float | None = None  # value used when a unit has no events in the window
+    fill: float | None = None  # event features: value for a unit with no events in the window; attributes: see missing
+    # What a NULL attribute becomes (MISSING_POLICIES): "error" refuses the run, "fill" puts `fill` in
+    # its place and flags it in the indicator feature <name>_missing, "drop" takes the unit out of
+    # the study, "level" (categorical) makes it a level of its own. Event features are never NULL.
+    missing: str | None = None
+    key: str = field(default="", compare=False)  # the spec key naming this feature, for messages
+
+    @property
+    def indicator(self) -> str | None:
+        """Name of the missing-value indicator feature this feature adds (missing = "fill")."""
+        return f"{self.name}_missing" if self.missing == "fill" else None
 
 
 @dataclass(frozen=True)
@@ -122,6 +136,7 @@ class Matching:
     ratio: int = 1  # nearest: controls per treated unit (k:1)
     replacement: bool = True  # nearest: a control may serve several treated units
     max_candidate_pairs: int = 50_000_000  # nearest: refuse a candidate join larger than this
+    min_treated: int = 10  # refuse a run that matches fewer treated units than this (see _matching)
 
 
 @dataclass(frozen=True)
@@ -165,7 +180,11 @@ class Spec:
 
     @property
     def event_features(self) -> tuple[Feature, ...]:
-        return tuple(f for f in self.features if f.aggregate != "attribute")
+        return tuple(f for f in self.features if f.aggregate not in ("attribute", MISSING_INDICATOR))
+
+    @property
+    def missing_indicators(self) -> tuple[Feature, ...]:
+        return tuple(f for f in self.features if f.aggregate == MISSING_INDICATOR)
 
     @property
     def numeric_features(self) -> tuple[Feature, ...]:
@@ -479,7 +498,7 @@ def _features(value: Any, windows: Windows) -> list[Feature]:
     out = []
     for i, item in enumerate(_list_of_tables(value, "features")):
         key = f"features[{i}]"
-        _check_keys(item, key, {"name", "aggregate", "measure", "attribute", "type", "fill"})
+        _check_keys(item, key, {"name", "aggregate", "measure", "attribute", "type", "fill", "missing"})
         name = _name(_str(item, key, "name"), f"{key}.name")
         key = f"features[{i}] ({name})"
         agg = _choice(item, key, "aggregate", FEATURE_AGGREGATES)
@@ -500,8 +519,39 @@ def _features(value: Any, windows: Windows) -> list[Feature]:
                 fill = 0.0
             elif agg == "days_since_last":
                 fill = float(windows.pre_days)
-        out.append(Feature(name=name, aggregate=agg, measure=measure, attribute=attribute, categorical=kind == "categorical", fill=fill))
+        missing = None
+        if agg == "attribute":
+            missing = _missing_policy(item, key, kind, fill)
+        elif "missing" in item:
+            raise SpecError(
+                f"{key}.missing",
+                "only applies to attribute features: a feature built from events is never NULL (a unit without events in the window gets `fill`).",
+                "remove it, or set fill = <number> for units without events.",
+            )
+        feature = Feature(name=name, aggregate=agg, measure=measure, attribute=attribute, categorical=kind == "categorical", fill=fill, missing=missing, key=key)
+        out.append(feature)
+        if feature.indicator:
+            out.append(Feature(name=feature.indicator, aggregate=MISSING_INDICATOR, attribute=attribute, key=f"{key}.missing"))
+    names = [f.name for f in out]
+    for f in out:
+        if f.aggregate == MISSING_INDICATOR and names.count(f.name) > 1:
+            raise SpecError(f.key, f"the indicator feature {f.name!r} it adds has the name of another feature.", "rename that feature.")
     return out
+
+
+def _missing_policy(item: dict, key: str, kind: str, fill: Any) -> str:
+    """The NULL policy of an attribute feature: explicit, with a default that never guesses for a
+    number (refuse the run if any value is NULL) and keeps NULL as a level of a category."""
+    choices = MISSING_POLICIES[kind]
+    default = "level" if kind == "categorical" else ("fill" if fill is not None else "error")
+    missing = _choice(item, key, "missing", choices, default=default)
+    if kind == "categorical" and fill is not None:
+        raise SpecError(f"{key}.fill", "is not used by a categorical attribute.", 'remove it; NULL is a level of its own (missing = "level") or the unit is dropped (missing = "drop").')
+    if missing == "fill" and fill is None:
+        raise SpecError(f"{key}.fill", 'is needed with missing = "fill".', "add fill = <number>, the value given to units where the attribute is NULL.")
+    if missing != "fill" and fill is not None:
+        raise SpecError(f"{key}.fill", f'is only used with missing = "fill", not {missing!r}.', 'remove fill, or set missing = "fill".')
+    return missing
 
 
 def _outcomes(value: Any, windows: Windows, features: tuple[Feature, ...] = ()) -> list[Outcome]:
@@ -542,7 +592,7 @@ def _outcomes(value: Any, windows: Windows, features: tuple[Feature, ...] = ()) 
 def _matching(value: Any, features: tuple[Feature, ...]) -> Matching:
     if not isinstance(value, dict):
         raise SpecError("matching", "must be a table.", "write it as [matching].")
-    _check_keys(value, "matching", {"method", "on", "cut_points", "coarsen", "coarsen_bins", "bins", "exact", "common_support", "distance", "caliper", "ratio", "replacement", "max_candidate_pairs"})
+    _check_keys(value, "matching", {"method", "on", "cut_points", "coarsen", "coarsen_bins", "bins", "exact", "common_support", "distance", "caliper", "ratio", "replacement", "max_candidate_pairs", "min_treated"})
     method = _choice(value, "matching", "method", METHODS, default="coarsened_exact")
     names = [f.name for f in features]
     on = value.get("on", names)
@@ -551,6 +601,7 @@ def _matching(value: Any, features: tuple[Feature, ...]) -> Matching:
     for n in on:
         if n not in names:
             raise SpecError("matching.on", f"{n!r} is not a feature.", f"use names from [[features]]: {', '.join(names)}.")
+    on = _with_indicators(on, features)
     cuts_raw = value.get("cut_points", {})
     if not isinstance(cuts_raw, dict):
         raise SpecError("matching.cut_points", "must be a table of feature name = [cut points].")
@@ -564,6 +615,9 @@ def _matching(value: Any, features: tuple[Feature, ...]) -> Matching:
         if any(b <= a for a, b in zip(pts, pts[1:])):
             raise SpecError(key, f"cut points {pts} are not strictly increasing.", "sort them and remove repeats.")
         cut_points[n] = tuple(float(p) for p in pts)
+    for f in features:
+        if f.aggregate == MISSING_INDICATOR and f.name in on:
+            cut_points.setdefault(f.name, (0.5,))  # 0 = observed, 1 = filled: matched exactly
     coarsen = value.get("coarsen")
     if coarsen is not None and coarsen not in COARSEN_RULES:
         raise SpecError("matching.coarsen", f"must be one of {', '.join(COARSEN_RULES)}; got {coarsen!r}.")
@@ -607,10 +661,29 @@ def _matching(value: Any, features: tuple[Feature, ...]) -> Matching:
     if not replacement and ratio != 1:
         raise SpecError("matching.ratio", f"must be 1 when matching.replacement = false, got {ratio}.", "set ratio = 1, or replacement = true for k:1 matching.")
     max_pairs = _int(value, "matching", "max_candidate_pairs", default=50_000_000, low=1, high=10**12)
+    # Fewest matched treated units a run may report an effect for (runner._check_matched). Default 10,
+    # common practice: below about ten units per group the per-stratum variances behind the standard
+    # error and the normal-approximation interval are too unstable to report (no single source).
+    min_treated = value.get("min_treated", 10)
+    if isinstance(min_treated, bool) or not isinstance(min_treated, int) or min_treated < 1:
+        raise SpecError(
+            "matching.min_treated",
+            f"must be a whole number of treated units >= 1, got {min_treated!r}.",
+            "write e.g. min_treated = 10 under [matching] (1 accepts any run that matches a treated unit).",
+        )
     return Matching(
         method=method, on=tuple(on), cut_points=cut_points, coarsen=coarsen, coarsen_bins=coarsen_bins, bins=bins, exact=tuple(exact), common_support=support,
-        distance=distance, caliper=float(caliper), ratio=ratio, replacement=replacement, max_candidate_pairs=max_pairs,
+        distance=distance, caliper=float(caliper), ratio=ratio, replacement=replacement, max_candidate_pairs=max_pairs, min_treated=min_treated,
     )
+
+
+def _with_indicators(names: list[str], features: tuple[Feature, ...]) -> list[str]:
+    """A filled attribute brings its missing-value indicator along wherever it is used."""
+    out = list(names)
+    for f in features:
+        if f.indicator and f.name in out and f.indicator not in out:
+            out.insert(out.index(f.name) + 1, f.indicator)
+    return out
 
 
 def _propensity(value: Any, features: tuple[Feature, ...], matching: Matching) -> Propensity:
@@ -627,6 +700,7 @@ def _propensity(value: Any, features: tuple[Feature, ...], matching: Matching) -
                 raise SpecError(key, f"{n!r} is not a feature.", f"use names from [[features]]: {', '.join(names)}.")
     if not chosen:
         raise SpecError("propensity.features", "is empty.", "list the features the propensity model uses.")
+    chosen = _with_indicators(chosen, features)
     log1p = value.get("log1p", [])
     for n in log1p:
         if next(f for f in features if f.name == n).categorical:

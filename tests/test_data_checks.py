@@ -59,9 +59,13 @@ def test_constant_and_all_null_features_are_reported(db):
     raw = tomllib.loads(DEMO_SPEC.read_text())
     features = raw["features"] + [
         {"name": "fleet_size", "aggregate": "attribute", "attribute": "fleet_size"},
-        {"name": "survey_score", "aggregate": "attribute", "attribute": "survey_score"},
+        {"name": "survey_score", "aggregate": "attribute", "attribute": "survey_score", "missing": "fill", "fill": 0},
     ]
     results = api.run(spec_for(db, features=features), keep_tables=False)
     text = " ".join(results.warnings)
     assert "'fleet_size' has the same value for every unit" in text
-    assert "'survey_score' is NULL for every unit" in text
+    # All NULL, filled: every unit is flagged, and both the feature and its indicator are constant.
+    n = results.matching.n_treated + results.matching.n_control
+    assert f"{n:,} units ({results.matching.n_treated:,} treated, {results.matching.n_control:,} control) have no value for 'survey_score'" in text
+    assert "'survey_score' has the same value for every unit" in text
+    assert "'survey_score_missing' has the same value for every unit" in text

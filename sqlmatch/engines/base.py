@@ -8,6 +8,7 @@ the catalog for preflight checks. It counts every result row it hands to Python 
 from __future__ import annotations
 
 from abc import ABC, abstractmethod
+from contextlib import AbstractContextManager, nullcontext
 from dataclasses import dataclass
 
 
@@ -69,6 +70,14 @@ class Engine(ABC):
     @abstractmethod
     def table_names(self, schema: str) -> list[str]:
         """Tables in a schema (used to find a study's leftover work tables)."""
+
+    def study_lock(self, work_schema: str, study: str) -> AbstractContextManager:
+        """A context manager the runner holds for the whole of one run of a study. Inside it no
+        other run of the same study (work schema + name) may run on the same database: entering
+        raises a SqlmatchError naming the study when another run holds it (fail fast, no waiting).
+        Default: no lock. DuckDB needs none across processes (one process at a time opens a
+        database file for writing); the PostgreSQL adapter takes an advisory lock."""
+        return nullcontext()
 
     def close(self) -> None:  # pragma: no cover - adapters override when they hold resources
         pass

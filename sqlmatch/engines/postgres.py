@@ -3,9 +3,19 @@
 The connection is in autocommit mode: every statement of the plan commits on its own, as on
 DuckDB, so a refused statement does not leave the session in an aborted transaction and the
 runner can still drop the study's work tables. Credentials never appear in error messages.
+
+One run of a study at a time: `study_lock` takes a session-level advisory lock keyed on the work
+schema and study name for the whole run, so a second run of the same study on the same database
+fails fast instead of dropping the first run's `__building` tables (see runner.run_plan). The server
+releases the lock when the session ends, so a killed run never leaves it held.
 """
 
 from __future__ import annotations
+
+import hashlib
+import re
+from collections.abc import Iterator
+from contextlib import contextmanager
 
 from sqlmatch.engines import first_line, plain, redact
 from sqlmatch.engines.base import Engine, QueryResult
@@ -15,6 +25,9 @@ try:
     import psycopg
 except ImportError:  # pragma: no cover - exercised only without the extra installed
     psycopg = None
+
+# CREATE SCHEMA / TABLE ... IF NOT EXISTS, after any leading comments (see execute).
+_CREATE_IF_NOT_EXISTS = re.compile(r"\s*(?:/\*.*?\*/\s*|--[^\n]*\n\s*)*CREATE\s+(?:SCHEMA|TABLE)\s+IF\s+NOT\s+EXISTS\b", re.S | re.I)
 
 
 class PostgresEngine(Engine):
@@ -49,10 +62,26 @@ class PostgresEngine(Engine):
 
     def execute(self, sql: str) -> None:
         try:
-            with self.con.cursor() as cur:
-                cur.execute(sql)
+            self._execute(sql)
+        except psycopg.errors.UniqueViolation as err:
+            # CREATE ... IF NOT EXISTS is not atomic in PostgreSQL: two sessions creating the same
+            # schema at once (two studies sharing a new work schema) can both find it missing, and
+            # the later one then fails on the catalog's unique index once the other commits. The
+            # statement is idempotent and the other object is committed by then, so run it once
+            # more (outside a transaction only): it now finds the object and does nothing.
+            idle = self.con.info.transaction_status == psycopg.pq.TransactionStatus.IDLE
+            if not (idle and _CREATE_IF_NOT_EXISTS.match(sql)):
+                raise EngineError(f"PostgreSQL refused a statement: {self._message(err)}") from None
+            try:
+                self._execute(sql)
+            except psycopg.Error as again:
+                raise EngineError(f"PostgreSQL refused a statement: {self._message(again)}") from None
         except psycopg.Error as err:
             raise EngineError(f"PostgreSQL refused a statement: {self._message(err)}") from None
+
+    def _execute(self, sql: str) -> None:
+        with self.con.cursor() as cur:
+            cur.execute(sql)
 
     def _query(self, sql: str, params: tuple = ()) -> QueryResult:
         try:
@@ -92,6 +121,44 @@ class PostgresEngine(Engine):
         )
         return [r[0] for r in result.rows]
 
+    @contextmanager
+    def study_lock(self, work_schema: str, study: str) -> Iterator[None]:
+        key = study_lock_key(work_schema, study)
+        if not self._query("SELECT pg_try_advisory_lock(%s)", (key,)).rows[0][0]:
+            raise EngineError(
+                f"study {study!r} (work schema {work_schema!r}) is already being run on this database by another "
+                f"sqlmatch run{self._lock_holder(key)}; two runs of one study would drop and replace each other's tables. "
+                "Fix: wait until that run ends and run again, or give this run its own [study] name or work_schema."
+            )
+        try:
+            yield
+        finally:
+            try:
+                self._query("SELECT pg_advisory_unlock(%s)", (key,))
+            except EngineError:
+                pass  # the session is gone (and the server released its locks with it)
+
+    def _lock_holder(self, key: int) -> str:
+        """' (PostgreSQL backend pid N)' for the session holding the lock, when the catalog shows it."""
+        unsigned = key & 0xFFFFFFFFFFFFFFFF
+        try:
+            rows = self._query(
+                "SELECT pid FROM pg_catalog.pg_locks WHERE locktype = 'advisory' AND granted AND objsubid = 1 "
+                "AND database = (SELECT oid FROM pg_catalog.pg_database WHERE datname = current_database()) "
+                "AND classid::bigint = %s AND objid::bigint = %s",
+                (unsigned >> 32, unsigned & 0xFFFFFFFF),
+            ).rows
+        except EngineError:
+            return ""
+        return f" (PostgreSQL backend pid {rows[0][0]})" if rows else ""
+
     def close(self) -> None:
         if self._owns and not self.con.closed:
             self.con.close()
+
+
+def study_lock_key(work_schema: str, study: str) -> int:
+    """The advisory lock key of a study: a signed 64-bit hash (BLAKE2b, 8 bytes) of the work schema and
+    study name, stable across processes and versions (Python's hash() is salted per process)."""
+    digest = hashlib.blake2b(f"{work_schema}\x00{study}".encode("utf-8"), digest_size=8, person=b"sqlmatch").digest()
+    return int.from_bytes(digest, "big", signed=True)
