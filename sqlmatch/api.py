@@ -145,11 +145,13 @@ def cleanup(spec: Spec, engine: Engine | None = None, database: str | None = Non
     own = engine is None
     engine = engine or open_engine(spec, database, engine_url)
     try:
-        present = set(engine.table_names(spec.work_schema))
-        plan = build_plan(spec, engine.dialect, model=_stand_in_model(spec))
-        dropped = [t for t in plan.work_tables if t.split(".", 1)[1] in present]
-        dropped += [f"{spec.work_schema}.{n}" for n in drop_stray_tables(spec, engine)]
-        drop_work_tables(plan, engine)
+        # Under the study's lock: cleanup must not drop the tables of a run still going.
+        with engine.study_lock(spec.work_schema, spec.name):
+            present = set(engine.table_names(spec.work_schema))
+            plan = build_plan(spec, engine.dialect, model=_stand_in_model(spec))
+            dropped = [t for t in plan.work_tables if t.split(".", 1)[1] in present]
+            dropped += [f"{spec.work_schema}.{n}" for n in drop_stray_tables(spec, engine)]
+            drop_work_tables(plan, engine)
     finally:
         if own:
             engine.close()
@@ -609,4 +611,12 @@ def report_from_tables(spec: Spec, engine: Engine | None = None, database: str |
     finally:
         if own:
             engine.close()
+    # The same refusals as a direct run: the scheduler ran the SQL without them.
+    from sqlmatch.runner import _check_groups, _check_keys_unique, _check_matched, _check_missing
+
+    r = output.results
+    _check_groups(spec, r["group_sizes"])
+    _check_missing(spec, r["group_sizes"])
+    _check_keys_unique(spec, r["unit_key_check"])
+    _check_matched(spec, r["matching_summary"], r["group_sizes"])
     return estimate(spec, plan, output)

@@ -32,8 +32,10 @@ def record(spec: Spec, results: StudyResults, engine: Engine, run_at: dt.datetim
     """Append this run's effects; returns the run id."""
     table = render.work_table_sql(spec.work_schema, spec.results_table)
     view = render.work_table_sql(spec.work_schema, spec.results_table + "_current")
-    run_at = run_at or dt.datetime.now(dt.timezone.utc).replace(tzinfo=None, microsecond=0)
-    run_id = f"{run_at:%Y%m%dT%H%M%S}-{uuid.uuid4().hex[:8]}"
+    # Microseconds kept: two runs within one second must still order by time in the _current view
+    # (a tie would fall to the random suffix of run_id).
+    run_at = run_at or dt.datetime.now(dt.timezone.utc).replace(tzinfo=None)
+    run_id = f"{run_at:%Y%m%dT%H%M%S%f}-{uuid.uuid4().hex[:8]}"
     rows = [
         {
             "study": spec.name,

@@ -128,7 +128,7 @@ def drop_work_tables(plan: Plan, engine: Engine) -> None:
 
 
 def _check_groups(spec: Spec, result: QueryResult) -> None:
-    sizes = {row[0]: row[1] for row in result.rows}
+    sizes = {int(g["treated"]): int(g["n_units"]) for g in result.records()}
     if not sizes.get(1):
         raise DataError(
             "treatment.cohort",
@@ -200,7 +200,7 @@ def _check_matched(spec: Spec, result: QueryResult, group_sizes: QueryResult | N
         )
     minimum = spec.matching.min_treated
     if kept < minimum:
-        sizes = {r[0]: r[1] for r in group_sizes.rows} if group_sizes is not None else {}
+        sizes = {int(g["treated"]): int(g["n_units"]) - int(g.get("n_dropped") or 0) for g in group_sizes.records()} if group_sizes is not None else {}
         cohort = int(sizes.get(1) or row["n_treated"] or 0)
         loosen = _LOOSEN.get(spec.matching.method, "looser matching settings")
         raise DataError(

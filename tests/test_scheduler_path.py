@@ -52,3 +52,23 @@ def test_scheduled_plan_then_report_equals_run(demo_dir, tmp_path):
     b = json.loads((tmp_path / "direct" / "results.json").read_text())
     close(a, b)
     assert (tmp_path / "from_tables" / "report.html").exists()
+
+
+def test_report_refuses_what_run_refuses(demo_dir, tmp_path, capsys):
+    """A scheduler runs the SQL without sqlmatch's checks; `report` applies them to the aggregate
+    tables, so a run that matched too few treated units is refused there as well."""
+    shutil.copyfile(demo_dir / "bikeshare.duckdb", tmp_path / "bikeshare.duckdb")
+    spec = tmp_path / "annual_pass.toml"
+    spec.write_text(DEMO_SPEC.read_text().replace("[matching]\n", "[matching]\nmin_treated = 100000\n"))
+    sql = tmp_path / "sql"
+    assert main(["compile", str(spec), "--out", str(sql), "--for-scheduler"]) == 0
+    manifest = json.loads((sql / "manifest.json").read_text())
+    with duckdb.connect(str(tmp_path / "bikeshare.duckdb")) as con:
+        for step in manifest["steps"]:
+            for statement in sqlglot.parse((sql / step["file"]).read_text(), read="duckdb"):
+                if statement is not None:
+                    con.execute(statement.sql("duckdb"))
+    code = main(["report", str(spec), "--out", str(tmp_path / "from_tables")])
+    err = capsys.readouterr().err
+    assert code != 0 and "matching.min_treated" in err and "Traceback" not in err
+    assert not (tmp_path / "from_tables" / "results.json").exists()
