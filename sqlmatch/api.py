@@ -255,6 +255,16 @@ def _warnings(spec: Spec, r, balance) -> list[str]:
             "that accounts for reuse); read the intervals as too narrow, or match without replacement."
         )
     out += _missing_warnings(spec, r)
+    if "unknown_units" in r:
+        u = r["unknown_units"].one()
+        events, units = int(u["n_events_unknown"] or 0), int(u["n_units_unknown"] or 0)
+        if events:
+            n_units = f"fewer than {spec.min_cell_size}" if units < spec.min_cell_size else f"{units:,}"
+            out.append(
+                f"{events:,} events in the windows belong to {n_units} units that are not in {spec.units.display!r}: "
+                "they are left out of every feature and outcome. If that is more than a few, check that events.unit_key "
+                "and units.key name the same thing, and that the units table is complete."
+            )
     for b in balance:
         if b.kind != "level" and b.mean_treated_before is None and b.mean_control_before is None:
             out.append(f"Feature {b.covariate!r} is NULL for every unit: it carries no information. Fix its definition or drop it.")

@@ -321,6 +321,24 @@ def build_plan(spec: Spec, dialect: str = "duckdb", model=None, materialize: boo
             units_display=units_src,
             units_table=ctx.table("units"),
         ),
+        *(
+            [
+                ctx.query_step(
+                    "unknown_units",
+                    "unknown_units",
+                    reads=[events_src, units_src],
+                    purpose="Events in the windows whose unit is not in the units table (counted and reported; they are left out).",
+                    events=spec.events,
+                    event_key=spec.event_unit_key,
+                    event_time=spec.event_time,
+                    units=spec.units,
+                    key=spec.unit_key,
+                    windows=w,
+                )
+            ]
+            if spec.check_unknown_units
+            else []
+        ),
         ctx.table_step(
             "unit_measures",
             "unit_measures",

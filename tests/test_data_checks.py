@@ -69,3 +69,27 @@ def test_constant_and_all_null_features_are_reported(db):
     assert f"{n:,} units ({results.matching.n_treated:,} treated, {results.matching.n_control:,} control) have no value for 'survey_score'" in text
     assert "'survey_score' has the same value for every unit" in text
     assert "'survey_score_missing' has the same value for every unit" in text
+
+
+def test_events_of_units_not_in_the_units_table_are_counted_and_reported(db):
+    """Events whose rider is not in riders are left out and reported; the reference count is a
+    plain SQL count over the rows inserted here."""
+    with duckdb.connect(str(db)) as con:
+        top = con.execute("SELECT MAX(rider_id) FROM riders").fetchone()[0]
+        con.execute(
+            f"INSERT INTO trips SELECT * REPLACE (rider_id + {top} AS rider_id) FROM trips "
+            "WHERE rider_id <= 40 AND started_at >= TIMESTAMP '2025-09-01' AND started_at < TIMESTAMP '2026-07-01'"
+        )
+        events, units = con.execute(
+            f"SELECT COUNT(*), COUNT(DISTINCT rider_id) FROM trips WHERE rider_id > {top} "
+            "AND started_at >= TIMESTAMP '2025-09-01' AND started_at < TIMESTAMP '2026-07-01'"
+        ).fetchone()
+    assert events > 0 and units >= 10
+    before = api.run(spec_for(db), keep_tables=False)
+    (line,) = [w for w in before.warnings if "not in 'riders'" in w]
+    assert line.startswith(f"{events:,} events in the windows belong to {units:,} units")
+    # Switched off: no such line, and the same estimates (the unknown events never counted).
+    raw_events = {**tomllib.loads(DEMO_SPEC.read_text())["events"], "check_unknown_units": False}
+    after = api.run(spec_for(db, events=raw_events), keep_tables=False)
+    assert not [w for w in after.warnings if "not in 'riders'" in w]
+    assert [e.estimate for e in after.effects] == pytest.approx([e.estimate for e in before.effects], rel=1e-9)

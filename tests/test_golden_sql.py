@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import json
 import shutil
+import tomllib
 from pathlib import Path
 
 import pytest
@@ -15,6 +16,7 @@ import sqlglot
 
 from sqlmatch import api
 from sqlmatch.dialects import DIALECTS
+from sqlmatch.spec import parse_spec
 
 from conftest import DEMO_SPEC
 
@@ -83,14 +85,26 @@ def test_manifest_lists_reads_and_writes(spec):
 
 def test_events_are_scanned_once(spec):
     """Features and outcomes come from one pass over the events table: it appears in exactly one
-    FROM/JOIN of the whole plan."""
-    plan = api.compile_plan(spec, "duckdb")
-    scans = 0
-    for step in plan.steps:
-        for statement in step.statements:
-            tree = sqlglot.parse_one(statement, read="duckdb")
-            scans += sum(1 for t in tree.find_all(sqlglot.exp.Table) if t.name == "trips")
-    assert scans == 1
+    FROM/JOIN of the whole plan; the unknown-units check is the only other read, and it reads two
+    columns."""
+
+    def scans(plan):
+        found = {}
+        for step in plan.steps:
+            for statement in step.statements:
+                tree = sqlglot.parse_one(statement, read="duckdb")
+                n = sum(1 for t in tree.find_all(sqlglot.exp.Table) if t.name == "trips")
+                if n:
+                    found[step.name] = n
+                    columns = {c.name for c in tree.find_all(sqlglot.exp.Column) if c.table == "e"}
+                    if step.name == "unknown_units":
+                        assert columns == {"rider_id", "started_at"}
+        return found
+
+    assert scans(api.compile_plan(spec, "duckdb")) == {"unknown_units": 1, "unit_measures": 1}
+    raw = tomllib.loads(DEMO_SPEC.read_text())
+    raw["events"]["check_unknown_units"] = False
+    assert scans(api.compile_plan(parse_spec(raw), "duckdb")) == {"unit_measures": 1}
 
 
 HOSTILE = GOLDEN / "hostile_names"

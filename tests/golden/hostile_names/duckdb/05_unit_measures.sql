@@ -1,0 +1,65 @@
+-- sqlmatch study 'annual_pass', step 05: unit_measures (duckdb)
+-- Per-unit pre-window features and post-window outcomes, one pass over the events.
+-- kind: writes a table
+-- reads: bike "share".order, sqlmatch.annual_pass_units
+-- writes: sqlmatch.annual_pass_measures
+
+DROP TABLE IF EXISTS "sqlmatch".annual_pass_measures__building;
+
+CREATE TABLE "sqlmatch".annual_pass_measures__building AS
+/* Features over the pre window [2025-09-01, 2026-03-01) and outcomes
+   over the post window [2026-04-01, 2026-07-01) for every unit in the
+   study, from ONE pass over the events: read once, filtered to the span of both windows,
+   aggregated per unit with conditional aggregates. Units without events get the fill value. */
+WITH event_totals AS (
+  SELECT
+    e."select" AS unit_key,
+    COUNT(
+      CASE
+        WHEN e."started at" >= CAST('2025-09-01' AS DATE)
+        AND e."started at" < CAST('2026-03-01' AS DATE)
+        THEN 1
+      END
+    ) AS pre_trips,
+    SUM(
+      CASE
+        WHEN e."started at" >= CAST('2025-09-01' AS DATE)
+        AND e."started at" < CAST('2026-03-01' AS DATE)
+        THEN CAST(e."fare'; --" AS DOUBLE)
+      END
+    ) AS pre_fare,
+    SUM(
+      CASE
+        WHEN e."started at" >= CAST('2026-04-01' AS DATE)
+        AND e."started at" < CAST('2026-07-01' AS DATE)
+        THEN CAST(e."fare'; --" AS DOUBLE)
+      END
+    ) AS post_fare,
+    CAST(MIN(e."started at") AS DATE) AS first_event_at,
+    CAST(MAX(e."started at") AS DATE) AS last_event_at
+  FROM "bike ""share"""."order" AS e
+  INNER JOIN "sqlmatch".annual_pass_units AS u
+    ON e."select" = u.unit_key
+  WHERE
+    e."started at" >= CAST('2025-09-01' AS DATE)
+    AND e."started at" < CAST('2026-07-01' AS DATE)
+  GROUP BY
+    e."select"
+)
+SELECT
+  u.unit_key,
+  u.treated,
+  COALESCE(CAST(t.pre_trips AS DOUBLE), 0.0) AS pre_trips,
+  COALESCE(CAST(t.pre_fare AS DOUBLE), 0.0) AS pre_fare,
+  COALESCE(CAST(t.post_fare AS DOUBLE), 0.0) AS post_fare,
+  t.first_event_at,
+  t.last_event_at,
+  u.age_band
+FROM "sqlmatch".annual_pass_units AS u
+LEFT JOIN event_totals AS t
+  ON t.unit_key = u.unit_key;
+
+DROP TABLE IF EXISTS "sqlmatch".annual_pass_measures;
+
+ALTER TABLE "sqlmatch".annual_pass_measures__building
+RENAME TO annual_pass_measures;
