@@ -255,8 +255,8 @@ def _warnings(spec: Spec, r, balance) -> list[str]:
             "that accounts for reuse); read the intervals as too narrow, or match without replacement."
         )
     out += _missing_warnings(spec, r)
-    if "unknown_units" in r:
-        u = r["unknown_units"].one()
+    if "data_coverage" in r and "n_events_unknown" in r["data_coverage"].columns:
+        u = r["data_coverage"].one()
         events, units = int(u["n_events_unknown"] or 0), int(u["n_units_unknown"] or 0)
         if events:
             n_units = f"fewer than {spec.min_cell_size}" if units < spec.min_cell_size else f"{units:,}"

@@ -16,7 +16,7 @@ from sqlglot import exp
 
 from sqlmatch import dialects, render
 from sqlmatch.matching import method_for
-from sqlmatch.spec import Spec, last_period_start
+from sqlmatch.spec import MISSING_INDICATOR, Spec, last_period_start
 
 MANIFEST_VERSION = 1
 HISTOGRAM_BINS = 20  # bins of the report's distribution plots
@@ -321,30 +321,12 @@ def build_plan(spec: Spec, dialect: str = "duckdb", model=None, materialize: boo
             units_display=units_src,
             units_table=ctx.table("units"),
         ),
-        *(
-            [
-                ctx.query_step(
-                    "unknown_units",
-                    "unknown_units",
-                    reads=[events_src, units_src],
-                    purpose="Events in the windows whose unit is not in the units table (counted and reported; they are left out).",
-                    events=spec.events,
-                    event_key=spec.event_unit_key,
-                    event_time=spec.event_time,
-                    units=spec.units,
-                    key=spec.unit_key,
-                    windows=w,
-                )
-            ]
-            if spec.check_unknown_units
-            else []
-        ),
         ctx.table_step(
             "unit_measures",
             "unit_measures",
             writes="measures",
             reads=[events_src, ctx.display("units")],
-            purpose="Per-unit pre-window features and post-window outcomes, one pass over the events.",
+            purpose="Per-unit pre-window features and post-window outcomes, one pass over the events (which also counts events of unknown units).",
             events=spec.events,
             event_key=spec.event_unit_key,
             event_time=spec.event_time,
@@ -353,6 +335,9 @@ def build_plan(spec: Spec, dialect: str = "duckdb", model=None, materialize: boo
             attributes=spec.attribute_features,
             units_table=ctx.table("units"),
             target=dialect,
+            check_unknown=spec.check_unknown_units,
+            units_source=spec.units,
+            units_key=spec.unit_key,
         ),
     ]
     steps.append(
@@ -360,8 +345,9 @@ def build_plan(spec: Spec, dialect: str = "duckdb", model=None, materialize: boo
             "data_coverage",
             "data_coverage",
             reads=[ctx.display("measures")],
-            purpose="First and last event within the windows, and units without events (warn on gaps).",
+            purpose="First and last event within the windows, units without events (warn on gaps), events of unknown units.",
             windows=w,
+            check_unknown=spec.check_unknown_units,
             measures_table=ctx.table("measures"),
         )
     )
@@ -383,9 +369,12 @@ def build_plan(spec: Spec, dialect: str = "duckdb", model=None, materialize: boo
             "weighted_units",
             writes="weighted",
             reads=both,
-            purpose="Every unit's measures with its matching weight (NULL if unmatched), joined once for the steps after.",
+            purpose="Every unit's features and outcomes with its matching weight (NULL if unmatched), joined once for the steps after.",
             measures_table=ctx.table("measures"),
             weights_table=ctx.table("weights"),
+            columns=[c.name for c in columns] + [f.name for f in spec.features if f.aggregate in ("attribute", MISSING_INDICATOR)],
+            # nearest neighbours may list a control once per treated unit it serves: sum its weights
+            per_pair=getattr(method, "WEIGHTS_PER_PAIR", False),
         )
     )
     weighted = [ctx.display("weighted")]

@@ -172,8 +172,8 @@ class Spec:
     propensity: Propensity
     min_cell_size: int = 10
     results_table: str | None = None  # a table in work_schema keeping one row per run, cohort, method and outcome
-    # Count events in the windows whose unit is not in the units table (a second, narrow read of
-    # the events: about half the cost of the pass over them on DuckDB; see benchmarks/RESULTS.md).
+    # Count, in the pass over the events, those whose unit is not in the units table (the pass then
+    # joins the events to every unit key, not only the study's; see benchmarks/RESULTS.md).
     check_unknown_units: bool = True
     source_path: Path | None = None
 

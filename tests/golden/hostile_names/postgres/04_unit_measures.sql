@@ -1,0 +1,93 @@
+-- sqlmatch study 'annual_pass', step 04: unit_measures (postgres)
+-- Per-unit pre-window features and post-window outcomes, one pass over the events (which also counts events of unknown units).
+-- kind: writes a table
+-- reads: bike "share".order, sqlmatch.annual_pass_units
+-- writes: sqlmatch.annual_pass_measures
+
+DROP TABLE IF EXISTS "sqlmatch".annual_pass_measures__building;
+
+CREATE TABLE "sqlmatch".annual_pass_measures__building AS
+/* Features over the pre window [2025-09-01, 2026-03-01) and outcomes
+   over the post window [2026-04-01, 2026-07-01) for every unit in the
+   study, from ONE pass over the events: read once, filtered to the span of both windows,
+   aggregated per unit with conditional aggregates. Units without events get the fill value.   The same pass counts the events whose unit is not in bike "share".riders; DROP TABLE riders at all (they are
+   left out of everything): every row carries the two totals, read back by data_coverage. */
+WITH known_units AS (
+  SELECT DISTINCT
+    "select" AS unit_key
+  FROM "bike ""share"""."riders; DROP TABLE riders"
+), unit_keys AS (
+  /* every unit key in bike "share".riders; DROP TABLE riders, flagged 1 when the unit is in the study */
+  SELECT
+    k.unit_key,
+    CASE WHEN s.unit_key IS NULL THEN 0 ELSE 1 END AS in_study
+  FROM known_units AS k
+  LEFT JOIN "sqlmatch".annual_pass_units AS s
+    ON s.unit_key = k.unit_key
+), event_totals AS (
+  SELECT
+    e."select" AS unit_key,
+    COUNT(
+      CASE
+        WHEN e."started at" >= CAST('2025-09-01' AS DATE)
+        AND e."started at" < CAST('2026-03-01' AS DATE)
+        THEN 1
+      END
+    ) AS pre_trips,
+    SUM(
+      CASE
+        WHEN e."started at" >= CAST('2025-09-01' AS DATE)
+        AND e."started at" < CAST('2026-03-01' AS DATE)
+        THEN CAST(e."fare'; --" AS DOUBLE PRECISION)
+      END
+    ) AS pre_fare,
+    SUM(
+      CASE
+        WHEN e."started at" >= CAST('2026-04-01' AS DATE)
+        AND e."started at" < CAST('2026-07-01' AS DATE)
+        THEN CAST(e."fare'; --" AS DOUBLE PRECISION)
+      END
+    ) AS post_fare,
+    COUNT(*) AS n_events,
+    MAX(u.in_study) AS in_study,
+    CAST(MIN(e."started at") AS DATE) AS first_event_at,
+    CAST(MAX(e."started at") AS DATE) AS last_event_at
+  FROM "bike ""share"""."order" AS e
+  LEFT JOIN unit_keys AS u
+    ON e."select" = u.unit_key
+  WHERE
+    e."started at" >= CAST('2025-09-01' AS DATE)
+    AND e."started at" < CAST('2026-07-01' AS DATE)
+    AND /* units of the study, and units unknown to bike "share".riders; DROP TABLE riders (in_study NULL) */ (
+      u.in_study = 1 OR u.unit_key IS NULL
+    )
+  GROUP BY
+    e."select"
+), unknown_units AS (
+  SELECT
+    COUNT(*) AS n_units,
+    COALESCE(SUM(n_events), 0) AS n_events
+  FROM event_totals
+  WHERE
+    in_study IS NULL
+)
+SELECT
+  u.unit_key,
+  u.treated,
+  COALESCE(CAST(t.pre_trips AS DOUBLE PRECISION), 0.0) AS pre_trips,
+  COALESCE(CAST(t.pre_fare AS DOUBLE PRECISION), 0.0) AS pre_fare,
+  COALESCE(CAST(t.post_fare AS DOUBLE PRECISION), 0.0) AS post_fare,
+  x.n_units AS unknown__units,
+  x.n_events AS unknown__events,
+  t.first_event_at,
+  t.last_event_at,
+  u.age_band
+FROM "sqlmatch".annual_pass_units AS u
+LEFT JOIN event_totals AS t
+  ON t.unit_key = u.unit_key
+CROSS JOIN unknown_units AS x;
+
+DROP TABLE IF EXISTS "sqlmatch".annual_pass_measures;
+
+ALTER TABLE "sqlmatch".annual_pass_measures__building
+RENAME TO annual_pass_measures;
