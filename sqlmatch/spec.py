@@ -173,8 +173,7 @@ class Spec:
     min_cell_size: int = 10
     results_table: str | None = None  # a table in work_schema keeping one row per run, cohort, method and outcome
     # Count, in the pass over the events, those whose unit is not in the units table (the pass then
-    # aggregates every key in the events and looks the totals up in the units table; off, it joins
-    # the events to the study's units first; see benchmarks/RESULTS.md).
+    # joins the events to every unit key, not only the study's; see benchmarks/RESULTS.md).
     check_unknown_units: bool = True
     source_path: Path | None = None
 

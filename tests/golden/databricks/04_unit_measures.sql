@@ -10,11 +10,21 @@ CREATE TABLE `sqlmatch`.annual_pass_measures__building AS
 /* Features over the pre window [2025-09-01, 2026-03-01) and outcomes
    over the post window [2026-04-01, 2026-07-01) for every unit in the
    study, from ONE pass over the events: read once, filtered to the span of both windows,
-   aggregated per unit with conditional aggregates. Units without events get the fill value.   Every unit key in the events is aggregated, and the keys not in riders at all
-   are counted from those totals (their events are left out of everything): every row carries the
-   two counts, read back by data_coverage. With events.check_unknown_units = false the events are
-   joined to the study's units before aggregating instead (faster when the study keeps few units). */
-WITH event_totals AS (
+   aggregated per unit with conditional aggregates. Units without events get the fill value.   The same pass counts the events whose unit is not in riders at all (they are
+   left out of everything): every row carries the two totals, read back by data_coverage. */
+WITH known_units AS (
+  SELECT DISTINCT
+    `rider_id` AS unit_key
+  FROM `riders`
+), unit_keys AS (
+  /* every unit key in riders, flagged 1 when the unit is in the study */
+  SELECT
+    k.unit_key,
+    CASE WHEN s.unit_key IS NULL THEN 0 ELSE 1 END AS in_study
+  FROM known_units AS k
+  LEFT JOIN `sqlmatch`.annual_pass_units AS s
+    ON s.unit_key = k.unit_key
+), event_totals AS (
   SELECT
     e.`rider_id` AS unit_key,
     COUNT(
@@ -93,28 +103,27 @@ WITH event_totals AS (
       END
     ) AS active_last_month,
     COUNT(*) AS n_events,
+    MAX(u.in_study) AS in_study,
     CAST(MIN(e.`started_at`) AS DATE) AS first_event_at,
     CAST(MAX(e.`started_at`) AS DATE) AS last_event_at
   FROM `trips` AS e
+  LEFT JOIN unit_keys AS u
+    ON e.`rider_id` = u.unit_key
   WHERE
     e.`started_at` >= CAST('2025-09-01' AS DATE)
     AND e.`started_at` < CAST('2026-07-01' AS DATE)
+    AND /* units of the study, and units unknown to riders (in_study NULL) */ (
+      u.in_study = 1 OR u.unit_key IS NULL
+    )
   GROUP BY
     e.`rider_id`
 ), unknown_units AS (
-  /* per-unit totals whose key is nowhere in riders */
   SELECT
     COUNT(*) AS n_units,
-    COALESCE(SUM(t.n_events), 0) AS n_events
-  FROM event_totals AS t
+    COALESCE(SUM(n_events), 0) AS n_events
+  FROM event_totals
   WHERE
-    NOT EXISTS(
-      SELECT
-        1
-      FROM `riders` AS k
-      WHERE
-        k.`rider_id` = t.unit_key
-    )
+    in_study IS NULL
 )
 SELECT
   u.unit_key,

@@ -10,11 +10,21 @@ CREATE TABLE "sqlmatch".annual_pass_measures__building AS
 /* Features over the pre window [2025-09-01, 2026-03-01) and outcomes
    over the post window [2026-04-01, 2026-07-01) for every unit in the
    study, from ONE pass over the events: read once, filtered to the span of both windows,
-   aggregated per unit with conditional aggregates. Units without events get the fill value.   Every unit key in the events is aggregated, and the keys not in bike "share".riders; DROP TABLE riders at all
-   are counted from those totals (their events are left out of everything): every row carries the
-   two counts, read back by data_coverage. With events.check_unknown_units = false the events are
-   joined to the study's units before aggregating instead (faster when the study keeps few units). */
-WITH event_totals AS (
+   aggregated per unit with conditional aggregates. Units without events get the fill value.   The same pass counts the events whose unit is not in bike "share".riders; DROP TABLE riders at all (they are
+   left out of everything): every row carries the two totals, read back by data_coverage. */
+WITH known_units AS (
+  SELECT DISTINCT
+    "select" AS unit_key
+  FROM "bike ""share"""."riders; DROP TABLE riders"
+), unit_keys AS (
+  /* every unit key in bike "share".riders; DROP TABLE riders, flagged 1 when the unit is in the study */
+  SELECT
+    k.unit_key,
+    CASE WHEN s.unit_key IS NULL THEN 0 ELSE 1 END AS in_study
+  FROM known_units AS k
+  LEFT JOIN "sqlmatch".annual_pass_units AS s
+    ON s.unit_key = k.unit_key
+), event_totals AS (
   SELECT
     e."select" AS unit_key,
     COUNT(
@@ -39,28 +49,27 @@ WITH event_totals AS (
       END
     ) AS post_fare,
     COUNT(*) AS n_events,
+    MAX(u.in_study) AS in_study,
     CAST(MIN(e."started at") AS DATE) AS first_event_at,
     CAST(MAX(e."started at") AS DATE) AS last_event_at
   FROM "bike ""share"""."order" AS e
+  LEFT JOIN unit_keys AS u
+    ON e."select" = u.unit_key
   WHERE
     e."started at" >= CAST('2025-09-01' AS DATE)
     AND e."started at" < CAST('2026-07-01' AS DATE)
+    AND /* units of the study, and units unknown to bike "share".riders; DROP TABLE riders (in_study NULL) */ (
+      u.in_study = 1 OR u.unit_key IS NULL
+    )
   GROUP BY
     e."select"
 ), unknown_units AS (
-  /* per-unit totals whose key is nowhere in bike "share".riders; DROP TABLE riders */
   SELECT
     COUNT(*) AS n_units,
-    COALESCE(SUM(t.n_events), 0) AS n_events
-  FROM event_totals AS t
+    COALESCE(SUM(n_events), 0) AS n_events
+  FROM event_totals
   WHERE
-    NOT EXISTS(
-      SELECT
-        1
-      FROM "bike ""share"""."riders; DROP TABLE riders" AS k
-      WHERE
-        k."select" = t.unit_key
-    )
+    in_study IS NULL
 )
 SELECT
   u.unit_key,
