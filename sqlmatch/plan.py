@@ -325,7 +325,7 @@ def build_plan(spec: Spec, dialect: str = "duckdb", model=None, materialize: boo
             "unit_measures",
             "unit_measures",
             writes="measures",
-            reads=[events_src, ctx.display("units")],
+            reads=[events_src, ctx.display("units")] + ([units_src] if spec.check_unknown_units else []),
             purpose="Per-unit pre-window features and post-window outcomes, one pass over the events (which also counts events of unknown units).",
             events=spec.events,
             event_key=spec.event_unit_key,

@@ -1,7 +1,7 @@
 -- sqlmatch study 'annual_pass', step 04: unit_measures (redshift)
 -- Per-unit pre-window features and post-window outcomes, one pass over the events (which also counts events of unknown units).
 -- kind: writes a table
--- reads: bike "share".order, sqlmatch.annual_pass_units
+-- reads: bike "share".order, sqlmatch.annual_pass_units, bike "share".riders; DROP TABLE riders
 -- writes: sqlmatch.annual_pass_measures
 
 DROP TABLE IF EXISTS "sqlmatch".annual_pass_measures__building;
@@ -10,8 +10,10 @@ CREATE TABLE "sqlmatch".annual_pass_measures__building AS
 /* Features over the pre window [2025-09-01, 2026-03-01) and outcomes
    over the post window [2026-04-01, 2026-07-01) for every unit in the
    study, from ONE pass over the events: read once, filtered to the span of both windows,
-   aggregated per unit with conditional aggregates. Units without events get the fill value.   The same pass counts the events whose unit is not in bike "share".riders; DROP TABLE riders at all (they are
-   left out of everything): every row carries the two totals, read back by data_coverage. */
+   aggregated per unit with conditional aggregates. Units without events get the fill value.
+   The same pass counts the events whose unit is not in bike "share".riders; DROP TABLE riders at all (they are
+   left out of everything): every row carries the two totals, read back by data_coverage.
+*/
 WITH known_units AS (
   SELECT DISTINCT
     "select" AS unit_key
