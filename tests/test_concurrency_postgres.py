@@ -28,24 +28,12 @@ from sqlmatch import api
 from sqlmatch.errors import EngineError
 
 from conftest import DEMO_SPEC, REPO
-from test_engines import PG_TYPES, POSTGRES_URL_VAR, _session_tag, _unavailable, assert_same_numbers
+from test_engines import PG_TYPES, _session_tag, assert_same_numbers, postgres_url  # noqa: F401 (a fixture, shared)
 from test_spec_errors import base_spec, write_spec
 
 TABLES = ("riders", "trips")
 # A guard against a hung test, never a measurement: how long to wait for a server-side state.
 WAIT_LIMIT_SECONDS = 300
-
-
-@pytest.fixture(scope="session")
-def postgres_url() -> str:
-    url = os.environ.get(POSTGRES_URL_VAR)
-    if not url:
-        _unavailable(f"{POSTGRES_URL_VAR} is not set: no PostgreSQL server to run on (.ci/run starts one)")
-    try:
-        import psycopg  # noqa: F401
-    except ImportError:
-        _unavailable("psycopg is not installed (pip install '.[test]')")
-    return url
 
 
 @pytest.fixture(scope="module")
