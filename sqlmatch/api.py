@@ -259,7 +259,7 @@ def _warnings(spec: Spec, r, balance) -> list[str]:
         u = r["data_coverage"].one()
         events, units = int(u["n_events_unknown"] or 0), int(u["n_units_unknown"] or 0)
         if events:
-            n_units = f"fewer than {spec.min_cell_size}" if units < spec.min_cell_size else f"{units:,}"
+            n_units = _small_count(units, spec.min_cell_size)
             out.append(
                 f"{events:,} events in the windows belong to {n_units} units that are not in {spec.units.display!r}: "
                 "they are left out of every feature and outcome. If that is more than a few, check that events.unit_key "
@@ -273,6 +273,11 @@ def _warnings(spec: Spec, r, balance) -> list[str]:
     return out
 
 
+def _small_count(n: int, min_cell: int) -> str:
+    """A count for a warning: one under the minimum cell size could single out a few people."""
+    return f"fewer than {min_cell}" if 0 < n < min_cell else f"{n:,}"
+
+
 def _missing_warnings(spec: Spec, r) -> list[str]:
     """What each attribute's `missing` policy did, in counts (a count under the minimum cell size
     is not printed: it could single out a few people)."""
@@ -281,7 +286,7 @@ def _missing_warnings(spec: Spec, r) -> list[str]:
     groups = {int(g["treated"]): g for g in r["group_sizes"].records()}
 
     def count(n: int) -> str:
-        return f"fewer than {spec.min_cell_size}" if 0 < n < spec.min_cell_size else f"{n:,}"
+        return _small_count(n, spec.min_cell_size)
 
     out = []
     for f in spec.attribute_features:
@@ -621,12 +626,9 @@ def report_from_tables(spec: Spec, engine: Engine | None = None, database: str |
     finally:
         if own:
             engine.close()
-    # The same refusals as a direct run: the scheduler ran the SQL without them.
-    from sqlmatch.runner import _check_groups, _check_keys_unique, _check_matched, _check_missing
+    # The same refusals as a direct run, in plan order: the scheduler ran the SQL without them.
+    from sqlmatch.runner import check_step
 
-    r = output.results
-    _check_groups(spec, r["group_sizes"])
-    _check_missing(spec, r["group_sizes"])
-    _check_keys_unique(spec, r["unit_key_check"])
-    _check_matched(spec, r["matching_summary"], r["group_sizes"])
+    for name in output.results:
+        check_step(spec, name, output.results)
     return estimate(spec, plan, output)

@@ -211,6 +211,24 @@ def _check_matched(spec: Spec, result: QueryResult, group_sizes: QueryResult | N
         )
 
 
+def check_step(spec: Spec, name: str, results: dict[str, QueryResult]) -> None:
+    """The refusals that follow one aggregate step's result (empty groups, NULLs without a policy,
+    duplicate keys, too few matched, an oversized candidate join). The runner calls it as each
+    step returns, so a run stops early; `sqlmatch report` calls it on a scheduler's tables."""
+    result = results[name]
+    if name == "group_sizes":
+        _check_groups(spec, result)
+        _check_missing(spec, result)
+    elif name == "unit_key_check":
+        _check_keys_unique(spec, result)
+    elif name == "matching_summary":
+        _check_matched(spec, result, results.get("group_sizes"))
+    elif name == "candidate_pairs":
+        from sqlmatch.matching.neighbours import check_candidates
+
+        check_candidates(spec, result)
+
+
 def _pause_for_tests(step: str) -> None:
     """Test hook: SQLMATCH_PAUSE_BEFORE_SWAP=<step> halts a run with that step's table half-built,
     so a test can kill the process there (see tests/test_interruptions.py)."""
@@ -241,17 +259,7 @@ def _run_steps(plan: Plan, spec: Spec, engine: Engine, out: RunOutput, progress:
         else:
             (statement,) = step.statements
             out.results[step.name] = engine.fetch(statement)
-            if step.name == "group_sizes":
-                _check_groups(spec, out.results[step.name])
-                _check_missing(spec, out.results[step.name])
-            if step.name == "matching_summary":
-                _check_matched(spec, out.results[step.name], out.results.get("group_sizes"))
-            if step.name == "unit_key_check":
-                _check_keys_unique(spec, out.results[step.name])
-            if step.name == "candidate_pairs":
-                from sqlmatch.matching.neighbours import check_candidates as _check_candidates
-
-                _check_candidates(spec, out.results[step.name])
+            check_step(spec, step.name, out.results)
         out.timings[step.name] = time.perf_counter() - t0
         rows = written if step.kind == "table" else (len(out.results[step.name].rows) if step.kind == "query" else None)
         progress.step(i, total, step.name, out.timings[step.name], rows=rows, fetched=step.kind == "query")
