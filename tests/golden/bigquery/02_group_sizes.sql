@@ -3,8 +3,10 @@
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_units
 
-/* Units per group in the study: checks the cohort and the control pool are not empty.   Also, per attribute feature, the units whose value is NULL (reported, refused, filled or
-   dropped as the feature's `missing` policy says). */
+/* Units per group in the study: checks the cohort and the control pool are not empty.
+   Also, per attribute feature, the units whose value is NULL (reported, refused, filled or
+   dropped as the feature's `missing` policy says).
+*/
 SELECT
   treated,
   COUNT(*) AS n_units,

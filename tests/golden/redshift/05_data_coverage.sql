@@ -4,8 +4,9 @@
 -- reads: sqlmatch.annual_pass_measures
 
 /* Do the events cover both windows? The first and last event of the study's units within
-   [2025-09-01, 2026-07-01), and how many units have none. Also the events
-   of units not in the units table, counted by unit_measures (the same on every row). One row. */
+   [2025-09-01, 2026-07-01), and how many units have none. One row.
+   Also the events of units not in the units table, counted by unit_measures (the same on every row).
+*/
 SELECT
   MIN(first_event_at) AS first_event_at,
   MAX(last_event_at) AS last_event_at,
