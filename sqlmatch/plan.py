@@ -241,12 +241,30 @@ def _newton_step(ctx: "PlanContext", columns, beta, name: str = "propensity_newt
     return ctx.query_step(
         name,
         "propensity_newton",
-        reads=[ctx.display("measures")],
+        reads=[ctx.display("score_cells")],
         purpose="Propensity model: score vector, information matrix and log-likelihood at the coefficients shown.",
         columns=columns,
         beta=[float(b) for b in beta],
         clamp=ETA_CLAMP,
-        sample_per_10000=int(round(ctx.spec.propensity.sample_controls * 10000)),
+        sample_per_10000=_sample_per_10000(ctx.spec),
+        cells_table=ctx.table("score_cells"),
+    )
+
+
+def _sample_per_10000(spec: Spec) -> int:
+    return int(round(spec.propensity.sample_controls * 10000))
+
+
+def cells_step(ctx: "PlanContext") -> Step:
+    """The units grouped by their propensity features' values: every Newton step reads this."""
+    return ctx.table_step(
+        "propensity_cells",
+        "propensity_cells",
+        writes="score_cells",
+        reads=[ctx.display("measures")],
+        purpose="Units grouped by their values of the propensity features, with unit and treated counts (the data each Newton step sums over).",
+        features=list(ctx.spec.propensity.features),
+        sample_per_10000=_sample_per_10000(ctx.spec),
         measures_table=ctx.table("measures"),
     )
 
@@ -352,6 +370,8 @@ def build_plan(spec: Spec, dialect: str = "duckdb", model=None, materialize: boo
         )
     )
     method = method_for(spec.matching.method)
+    if method.NEEDS_SCORE:
+        steps.append(cells_step(ctx))
     if method.NEEDS_SCORE and model is None:
         levels = levels_step(ctx)
         steps += [levels] if levels else []

@@ -43,6 +43,41 @@ def test_compiled_plan_matches_golden(spec, dialect, update_golden, tmp_path):
         assert (tmp_path / name).read_text() == (folder / name).read_text(), f"{dialect}/{name} differs from golden"
 
 
+SCORE_DIALECTS = ("duckdb", "postgres", "spark")
+
+
+def score_bins_plan(dialect: str):
+    """The demo study with subclassification on the propensity score, compiled with a fixed model
+    (coefficients made up for the golden files: only the SQL's shape is under test here)."""
+    from sqlmatch.plan import build_plan
+    from sqlmatch.propensity import FittedModel, design_columns
+
+    raw = tomllib.loads(DEMO_SPEC.read_text())
+    raw["matching"] = {"method": "score_bins", "bins": 5}
+    raw["propensity"] = {"features": ["pre_trips", "pre_minutes", "age_band"], "log1p": ["pre_minutes"], "sample_controls": 0.5}
+    spec = parse_spec(raw, source_path=DEMO_SPEC)
+    levels = {"age_band": ["16-24", "25-34", "35-49", "50+"]}
+    columns = design_columns(spec, levels)
+    model = FittedModel(
+        columns=columns, coefficients=[-2.5, 0.125, 0.0625, 0.25, -0.25, 0.5][: len(columns)], iterations=6,
+        log_likelihood=-1234.5, n_units=5106, fingerprint="0123456789abcdef", levels=levels, fitted_on="2026-12-02",
+    )
+    return build_plan(spec, dialect, model=model)
+
+
+@pytest.mark.parametrize("dialect", SCORE_DIALECTS)
+def test_score_bins_plan_matches_golden(dialect, update_golden, tmp_path):
+    plan = score_bins_plan(dialect)
+    folder = GOLDEN / "score_bins" / dialect
+    if update_golden:
+        shutil.rmtree(folder, ignore_errors=True)
+        api.write_plan(plan, folder)
+    api.write_plan(plan, tmp_path)
+    assert sorted(p.name for p in tmp_path.iterdir()) == sorted(p.name for p in folder.iterdir())
+    for path in tmp_path.iterdir():
+        assert path.read_text() == (folder / path.name).read_text(), f"score_bins/{dialect}/{path.name} differs from golden"
+
+
 @pytest.mark.parametrize("dialect", DIALECTS)
 def test_compiling_twice_gives_identical_bytes(spec, dialect, tmp_path):
     first, second = tmp_path / "a", tmp_path / "b"

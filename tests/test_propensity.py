@@ -60,6 +60,34 @@ def test_coefficients_equal_statsmodels_logit(demo_scored):
     assert model.log_likelihood == pytest.approx(fit.llf, rel=1e-9)
 
 
+def test_fit_on_grouped_units_equals_statsmodels_on_rows(demo_dir, tmp_path):
+    """With count and category features only, the Newton steps sum over the distinct combinations
+    of feature values (the propensity_cells table), not over the units: the coefficients still equal
+    statsmodels Logit fitted on one row per unit (to 1e-6), and the grouped table has exactly as many
+    rows as pandas finds distinct combinations among the units."""
+    shutil.copyfile(demo_dir / "bikeshare.duckdb", tmp_path / "bikeshare.duckdb")
+    raw = demo_score_spec(tmp_path, bins=5)
+    raw["propensity"] = {"features": ["pre_trips", "age_band", "home_district"]}
+    spec = parse_spec(raw, source_path=tmp_path / "study.toml")
+    api.run(spec)
+    with duckdb.connect(str(tmp_path / "bikeshare.duckdb"), read_only=True) as con:
+        m = con.execute("SELECT * FROM sqlmatch.annual_pass_measures").df()
+        cells = con.execute("SELECT * FROM sqlmatch.annual_pass_score_cells").df()
+    distinct = m[["pre_trips", "age_band", "home_district"]].drop_duplicates()
+    assert len(cells) == len(distinct) < len(m) / 5
+    assert cells.cell__units.sum() == len(m) and cells.cell__treated.sum() == m.treated.sum()
+    X = pd.DataFrame({"intercept": 1.0, "pre_trips": m.pre_trips})
+    for feature in ("age_band", "home_district"):
+        for i, level in enumerate(sorted(m[feature].unique())[1:], start=1):
+            X[f"{feature}__l{i}"] = (m[feature] == level).astype(float)
+    fit = sm.Logit(m.treated.astype(float), X).fit(disp=0, tol=1e-12, maxiter=100)
+    model = load_model(spec)
+    assert [c.name for c in model.columns] == list(X.columns)
+    np.testing.assert_allclose(model.coefficients, fit.params.to_numpy(), rtol=1e-6, atol=1e-8)
+    assert model.log_likelihood == pytest.approx(fit.llf, rel=1e-9)
+    assert model.n_units == len(m)
+
+
 def test_scores_are_the_linear_predictor(demo_scored):
     _, _, m, scores, _, model = demo_scored
     merged = m.merge(scores, on=["unit_key", "treated"])

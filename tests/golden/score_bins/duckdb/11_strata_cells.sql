@@ -1,0 +1,40 @@
+-- sqlmatch study 'annual_pass', step 11: strata_cells (duckdb)
+-- Propensity-score subclassification: cells with treated/control counts; cells with both become strata.
+-- kind: writes a table
+-- reads: sqlmatch.annual_pass_score_strata
+-- writes: sqlmatch.annual_pass_cells
+
+DROP TABLE IF EXISTS "sqlmatch".annual_pass_cells__building;
+
+CREATE TABLE "sqlmatch".annual_pass_cells__building AS
+/* Propensity-score subclassification, cells: every unit falls in the cell given by its propensity-score subclass (1 of 5).
+   A cell with at least one treated and one control unit becomes a stratum; cells lacking
+   either group are kept here (stratum NULL) so the drop is counted. */
+WITH coarsened AS (
+  SELECT
+    m.treated,
+    m.score_bin AS score_bin
+  FROM "sqlmatch".annual_pass_score_strata AS m
+), cells AS (
+  SELECT
+    score_bin,
+    SUM(treated) AS n_treated,
+    SUM(1 - treated) AS n_control
+  FROM coarsened
+  GROUP BY
+    score_bin
+)
+SELECT
+  score_bin,
+  n_treated,
+  n_control,
+  CASE
+    WHEN n_treated > 0 AND n_control > 0
+    THEN DENSE_RANK() OVER (ORDER BY CASE WHEN n_treated > 0 AND n_control > 0 THEN 0 ELSE 1 END, score_bin)
+  END AS stratum
+FROM cells;
+
+DROP TABLE IF EXISTS "sqlmatch".annual_pass_cells;
+
+ALTER TABLE "sqlmatch".annual_pass_cells__building
+RENAME TO annual_pass_cells;
