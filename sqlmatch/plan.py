@@ -75,6 +75,12 @@ class PlanContext:
         self.table(logical)
         return self.table_names[logical]
 
+    def weighted_columns(self) -> list[str]:
+        """The measures carried into <study>_weighted: every feature and outcome column."""
+        columns, _ = measure_columns(self.spec)
+        attributes = [f.name for f in self.spec.features if f.aggregate in ("attribute", MISSING_INDICATOR)]
+        return [c.name for c in columns] + attributes
+
     def table_node(self, logical: str) -> exp.Table:
         return exp.to_table(self.table(logical), dialect=render.SOURCE_DIALECT)
 
@@ -382,21 +388,25 @@ def build_plan(spec: Spec, dialect: str = "duckdb", model=None, materialize: boo
     steps += method.steps(ctx, model)
     numeric = [f.name for f in spec.numeric_features]
     categorical = [f.name for f in spec.categorical_features]
-    both = [ctx.display("measures"), ctx.display("weights")]
-    steps.append(
-        ctx.table_step(
-            "weighted_units",
-            "weighted_units",
-            writes="weighted",
-            reads=both,
-            purpose="Every unit's features and outcomes with its matching weight (NULL if unmatched), joined once for the steps after.",
-            measures_table=ctx.table("measures"),
-            weights_table=ctx.table("weights"),
-            columns=[c.name for c in columns] + [f.name for f in spec.features if f.aggregate in ("attribute", MISSING_INDICATOR)],
-            # nearest neighbours may list a control once per treated unit it serves: sum its weights
-            per_pair=getattr(method, "WEIGHTS_PER_PAIR", False),
+    # Stratum methods write <study>_weighted themselves (one row per unit); a method that lists
+    # matches (nearest neighbours: one row per treated-control pair) writes <study>_weights, and
+    # this step puts the per-unit sum of its weights beside each unit's measures.
+    per_match = not any(ctx.display("weighted") in s.writes for s in steps)
+    if per_match:
+        steps.append(
+            ctx.table_step(
+                "weighted_units",
+                "weighted_units",
+                writes="weighted",
+                reads=[ctx.display("measures"), ctx.display("weights")],
+                purpose="Every unit's features and outcomes with its matching weight (NULL if unmatched), joined once for the steps after.",
+                measures_table=ctx.table("measures"),
+                weights_table=ctx.table("weights"),
+                columns=ctx.weighted_columns(),
+                # nearest neighbours may list a control once per treated unit it serves: sum its weights
+                per_pair=getattr(method, "WEIGHTS_PER_PAIR", False),
+            )
         )
-    )
     weighted = [ctx.display("weighted")]
     steps.append(
         ctx.query_step(
@@ -450,11 +460,11 @@ def build_plan(spec: Spec, dialect: str = "duckdb", model=None, materialize: boo
             ctx.query_step(
                 "score_histogram",
                 "score_histogram",
-                reads=[ctx.display("scores"), ctx.display("weights")],
+                reads=[ctx.display("scores"), ctx.display("weighted")],
                 purpose="Binned propensity scores by group, before and after matching (overlap plot).",
                 bins=HISTOGRAM_BINS,
                 scores_table=ctx.table("scores"),
-                weights_table=ctx.table("weights"),
+                weighted_table=ctx.table("weighted"),
             )
         )
     for matched in (True, False):
@@ -462,16 +472,18 @@ def build_plan(spec: Spec, dialect: str = "duckdb", model=None, materialize: boo
             ctx.query_step(
                 "outcome_strata" if matched else "outcome_unmatched",
                 "outcome_strata",
-                reads=both if matched else [ctx.display("measures")],
+                reads=([ctx.display("measures"), ctx.display("weights")] if per_match else weighted) if matched else [ctx.display("measures")],
                 purpose=(
                     "Outcome sums per stratum and group among matched units."
                     if matched
                     else "Outcome sums per group before matching (the naive comparison)."
                 ),
                 matched=matched,
+                per_match=per_match,
                 outcomes=outcomes,
                 measures_table=ctx.table("measures"),
                 weights_table=ctx.table("weights"),
+                weighted_table=ctx.table("weighted"),
             )
         )
     steps.append(

@@ -113,7 +113,6 @@ def test_manifest_lists_reads_and_writes(spec):
         "sqlmatch.annual_pass_units",
         "sqlmatch.annual_pass_measures",
         "sqlmatch.annual_pass_cells",
-        "sqlmatch.annual_pass_weights",
         "sqlmatch.annual_pass_weighted",
     ]
 

@@ -64,8 +64,8 @@ def test_sigkill_during_matching_then_rerun(demo_dir, tmp_path):
     proc.wait(timeout=60)
     assert proc.returncode == -signal.SIGKILL
     left = study_tables(spec.parent / "bikeshare.duckdb")
-    assert "annual_pass_weights__building" in left  # the half-built table, under its temporary name
-    assert "annual_pass_weights" not in left  # never visible under the real name
+    assert "annual_pass_weighted__building" in left  # the half-built table, under its temporary name
+    assert "annual_pass_weighted" not in left  # never visible under the real name
     assert not (tmp_path / "killed_out" / "results.json").exists()
 
     assert main(["run", str(spec), "--out", str(tmp_path / "rerun"), "--quiet"]) == 0
@@ -82,9 +82,9 @@ def test_keep_and_cleanup(demo_dir, tmp_path, capsys):
     spec = setup_copy(demo_dir, tmp_path / "kept")
     assert main(["run", str(spec), "--out", str(tmp_path / "out"), "--quiet", "--keep"]) == 0
     kept = study_tables(spec.parent / "bikeshare.duckdb")
-    assert kept == ["annual_pass_cells", "annual_pass_measures", "annual_pass_units", "annual_pass_weighted", "annual_pass_weights"]
+    assert kept == ["annual_pass_cells", "annual_pass_measures", "annual_pass_units", "annual_pass_weighted"]
     assert main(["cleanup", str(spec)]) == 0
-    assert "dropped 5 tables" in capsys.readouterr().out
+    assert "dropped 4 tables" in capsys.readouterr().out
     assert study_tables(spec.parent / "bikeshare.duckdb") == []
 
 

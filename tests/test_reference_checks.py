@@ -28,8 +28,8 @@ def study(demo_dir, tmp_path_factory):
     results = api.run(spec, database=str(database))
     with duckdb.connect(str(database), read_only=True) as con:
         rows = con.execute(
-            "SELECT m.*, w.stratum, w.weight FROM sqlmatch.annual_pass_measures m "
-            "LEFT JOIN sqlmatch.annual_pass_weights w USING (unit_key)"
+            "SELECT m.*, w.match__stratum AS stratum, w.match__weight AS weight FROM sqlmatch.annual_pass_measures m "
+            "LEFT JOIN sqlmatch.annual_pass_weighted w USING (unit_key)"
         ).df()
     return spec, results, rows
 

@@ -1,10 +1,16 @@
-"""Matching methods. Each contributes the steps that write the common weights table
+"""Matching methods. Each contributes the steps that write one of two common shapes:
+
+    <study>_weighted(unit_key, treated, <every feature and outcome>, match__stratum, match__weight)
+
+one row per unit in the study, stratum and weight NULL when unmatched (the stratum methods), or
 
     <study>_weights(unit_key, treated, stratum, weight)
 
-(matched units only), plus a one-row summary query named `matching_summary` returning
-n_treated, n_treated_matched, n_control, n_control_matched and n_strata_dropped-like counts.
-Balance, effects and reports read only that shape, so they need no method-specific code.
+one row per match (nearest neighbours, where a control can serve several treated units), from
+which the plan builds <study>_weighted with each unit's summed weight. Plus a one-row summary
+query named `matching_summary` returning n_treated, n_treated_matched, n_control,
+n_control_matched and n_strata_dropped-like counts. Balance, effects and reports read only these
+shapes, so they need no method-specific code.
 """
 
 from __future__ import annotations

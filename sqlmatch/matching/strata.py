@@ -28,7 +28,9 @@ class Axis:
 
 
 def strata_steps(ctx, axes: list[Axis], source: str, title: str, cell_text: str):
-    """Steps writing <study>_cells, <study>_weights and the one-row matching_summary."""
+    """Steps writing <study>_cells, <study>_weighted (every unit's measures with its stratum and
+    weight; one row per unit, so no separate table of weights is needed) and the one-row
+    matching_summary."""
     return [
         ctx.table_step(
             "strata_cells",
@@ -44,11 +46,13 @@ def strata_steps(ctx, axes: list[Axis], source: str, title: str, cell_text: str)
         ctx.table_step(
             "weights",
             "strata_weights",
-            writes="weights",
-            reads=[ctx.display(source), ctx.display("cells")],
-            purpose="Matching weights for the effect on the treated (matched units only).",
+            writes="weighted",
+            reads=list(dict.fromkeys([ctx.display("measures"), ctx.display(source), ctx.display("cells")])),
+            purpose="Matching weights for the effect on the treated, beside every unit's features and outcomes (NULL if unmatched).",
             title=title,
             bins=axes,
+            columns=ctx.weighted_columns(),
+            measures_table=ctx.table("measures"),
             source_table=ctx.table(source),
             cells_table=ctx.table("cells"),
         ),

@@ -1,0 +1,25 @@
+-- sqlmatch study 'annual_pass', step 13: outcome_strata (spark)
+-- Outcome sums per stratum and group among matched units.
+-- kind: returns aggregates to sqlmatch
+-- reads: sqlmatch.annual_pass_weighted
+
+/* Outcomes per stratum and group among matched units:
+   counts, sums, sums of squares (and, for ratio outcomes, the cross-product) from which the
+   effect and its variance are computed. Rows grow with the number of strata, never with the
+   number of units. */
+SELECT
+  m.match__stratum AS stratum,
+  m.treated,
+  COUNT(*) AS n_units,
+  SUM(m.match__weight) AS sum_w,
+  SUM(m.post_fare) AS post_fare__sum,
+  SUM(m.post_fare * m.post_fare) AS post_fare__sumsq
+FROM `sqlmatch`.annual_pass_weighted AS m
+WHERE
+  NOT m.match__weight IS NULL
+GROUP BY
+  m.match__stratum,
+  m.treated
+ORDER BY
+  m.match__stratum NULLS LAST,
+  m.treated NULLS LAST;
