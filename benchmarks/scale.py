@@ -16,7 +16,10 @@ seconds apart on this shared machine:
   in-memory  what a user without sqlmatch would do: pull the trips into pandas, aggregate per
              rider with groupby, fit a statsmodels Logit, subclassify into 5 bins on the score
              and estimate the effect on the treated (only at sizes up to --inmem-max, default
-             100M; above it the script only estimates whether it would fit in memory);
+             100M; above it the script only estimates whether it would fit in memory). Two ways
+             to pull (--inmem-routes): "in-memory" is generous to pandas (the window filter is
+             pushed into SQL and only the four columns used are pulled); "in-memory:whole-table"
+             pulls the trips table as it is (SELECT *) and filters in pandas;
   @LIMIT     sqlmatch (the spec's method) with a DuckDB memory_limit and a temp_directory to spill
              to (--limited-memory: 4GB at the largest size by default, or SIZE:LIMIT pairs);
   +proposal  with --proposal DIR, the spec's method on a copy of the code with DIR's files swapped in.
@@ -360,11 +363,15 @@ def work_inmem(task: dict) -> dict:
     phases = {}
     c0, t0 = time.process_time(), time.perf_counter()
     con = _connect(task, read_only=True)
-    # Generous to this route: the window filter is pushed into SQL, only four columns are pulled.
-    trips = con.execute(
-        f"SELECT rider_id, started_at, minutes, fare FROM trips "
-        f"WHERE started_at >= TIMESTAMP '{PRE_START}' AND started_at < TIMESTAMP '{POST_END}'"
-    ).df()
+    if task.get("pull") == "whole-table":
+        # The trips table as it is; the windows are cut in pandas.
+        trips = con.execute("SELECT * FROM trips").df()
+    else:
+        # Generous to this route: the window filter is pushed into SQL, only four columns are pulled.
+        trips = con.execute(
+            f"SELECT rider_id, started_at, minutes, fare FROM trips "
+            f"WHERE started_at >= TIMESTAMP '{PRE_START}' AND started_at < TIMESTAMP '{POST_END}'"
+        ).df()
     riders = con.execute("SELECT rider_id, signup_date, age_band, home_district, pass_bought_on FROM riders").df()
     con.close()
     rows_pulled = len(trips) + len(riders)
@@ -373,6 +380,8 @@ def work_inmem(task: dict) -> dict:
 
     t1 = time.perf_counter()
     cohort_start, post_start, post_end = pd.Timestamp(COHORT_START), pd.Timestamp(POST_START), pd.Timestamp(POST_END)
+    if task.get("pull") == "whole-table":
+        trips = trips[(trips["started_at"] >= pd.Timestamp(PRE_START)) & (trips["started_at"] < post_end)]
     pre = trips[trips["started_at"] < cohort_start]
     post = trips[(trips["started_at"] >= post_start) & (trips["started_at"] < post_end)]
     g = pre.groupby("rider_id")
@@ -549,6 +558,9 @@ def work_profile(task: dict) -> dict:
     out["seconds"] = out["seconds_profiled"]
     return out
 
+
+# The in-memory routes (see the module docstring): how the trips reach pandas.
+INMEM_VARIANTS = {"window": "in-memory", "whole-table": "in-memory:whole-table"}
 
 WORKERS = {"generate": work_generate, "floor": work_floor, "sqlmatch": work_sqlmatch, "inmem": work_inmem, "profile": work_profile}
 
@@ -800,7 +812,8 @@ def run_benchmark(args) -> dict:
         floor_variant = {"variant": "floor", "kind": "floor"}
         variants: list[dict] = [{"variant": f"sqlmatch:{m}", "kind": "sqlmatch", "method": m} for m in methods]
         if size <= inmem_max and not args.no_inmem:
-            variants.append({"variant": "in-memory", "kind": "inmem"})
+            for route in args.inmem_routes.split(","):
+                variants.append({"variant": INMEM_VARIANTS[route], "kind": "inmem", "pull": route})
         if args.memory_limit:
             for v in variants + [floor_variant]:
                 v["memory_limit"] = args.memory_limit
@@ -825,7 +838,7 @@ def run_benchmark(args) -> dict:
         entry["repeats"] = repeats
 
         def measure(v: dict, rep: int, pair: int) -> dict:
-            task = {k: v[k] for k in ("kind", "method", "memory_limit") if k in v}
+            task = {k: v[k] for k in ("kind", "method", "memory_limit", "pull") if k in v}
             task.update({"db": str(db), "spec": str(spec_path), "label": label})
             log(f"{label} rep {rep + 1}/{repeats}: {v['variant']} ...")
             r = run_child(task, workdir, rss_cap=rss_cap if v["kind"] == "inmem" else None, code=Path(v["code"]) if v.get("code") else code)
@@ -912,11 +925,23 @@ def repeats_for(spec: str, sizes: list[int], size: int) -> int:
 
 
 def inmem_estimates(raw: dict, mem_total: int) -> list[dict]:
+    out = []
+    for variant in INMEM_VARIANTS.values():
+        out += _inmem_estimates(raw, mem_total, variant)
+    return out
+
+
+def _pulled_rows(gen: dict, variant: str) -> int | None:
+    """Trip rows a route pulls: the window span, or the whole table."""
+    return gen.get("trips") if variant == INMEM_VARIANTS["whole-table"] else gen.get("trips_in_window_span")
+
+
+def _inmem_estimates(raw: dict, mem_total: int, variant: str) -> list[dict]:
     basis = None
     for entry in raw["sizes"]:
-        ok = [r for r in entry["runs"] if r["variant"] == "in-memory" and r.get("ok")]
-        if ok and entry.get("generate", {}).get("trips_in_window_span"):
-            span = entry["generate"]["trips_in_window_span"]
+        ok = [r for r in entry["runs"] if r["variant"] == variant and r.get("ok")]
+        if ok and _pulled_rows(entry.get("generate", {}), variant):
+            span = _pulled_rows(entry["generate"], variant)
             per_row = statistics.median(r["peak_rss_bytes"] for r in ok) / span
             frame_per_row = statistics.median(r["trips_frame_bytes"] for r in ok) / span
             basis = {"label": entry["label"], "span_rows": span, "peak_bytes_per_row": per_row, "frame_bytes_per_row": frame_per_row}
@@ -924,16 +949,16 @@ def inmem_estimates(raw: dict, mem_total: int) -> list[dict]:
     if basis is None:
         return out
     for entry in raw["sizes"]:
-        if any(r["variant"] == "in-memory" for r in entry["runs"]):
+        if any(r["variant"] == variant for r in entry["runs"]):
             continue
-        if entry.get("generate", {}).get("trips_in_window_span"):
-            span, how = entry["generate"]["trips_in_window_span"], "counted in the generated table"
+        if _pulled_rows(entry.get("generate", {}), variant):
+            span, how = _pulled_rows(entry["generate"], variant), "counted in the generated table"
         else:
             span = int(basis["span_rows"] * entry["target_trips"] / parse_size(basis["label"]))
             how = f"scaled from {basis['label']}"
         est = span * basis["peak_bytes_per_row"]
         out.append({
-            "label": entry["label"], "span_rows": span, "span_rows_how": how, "basis": basis,
+            "variant": variant, "label": entry["label"], "span_rows": span, "span_rows_how": how, "basis": basis,
             "estimated_peak_bytes": est, "frame_only_bytes": span * basis["frame_bytes_per_row"],
             "mem_total_bytes": mem_total, "fits": est < mem_total,
         })
@@ -1042,8 +1067,9 @@ def render(raw: dict) -> str:
         "Variants: **floor** = one hand-written GROUP BY over trips computing the per-rider aggregates of the",
         "study's unit_measures step, materialised with CREATE TABLE AS (SQL in `scale_raw.json` and in the",
         "profile file); **sqlmatch:&lt;method&gt;** = the whole study via `sqlmatch.api.run`; **in-memory** =",
-        "trips (window span, four columns) pulled into pandas, groupby per rider, statsmodels Logit, 5 score",
-        "subclasses, ATT.",
+        "trips (window span, four columns: the filter pushed into SQL, generous to pandas) pulled into pandas,",
+        "groupby per rider, statsmodels Logit, 5 score subclasses, ATT; **in-memory:whole-table** = the same",
+        "with the trips table pulled as it is (`SELECT * FROM trips`) and the windows cut in pandas.",
         "",
     ]
     for entry in raw["sizes"]:
@@ -1098,17 +1124,18 @@ def render(raw: dict) -> str:
         lines.append("| ratio | time | CPU time | peak RSS |")
         lines.append("|---|---|---|---|")
         sm_variants = [v for v in variants if v.startswith("sqlmatch:") and "@" not in v]
-        for v in sm_variants + [v for v in variants if "@" in v] + (["in-memory"] if "in-memory" in variants else []):
+        inmem_variants = [v for v in INMEM_VARIANTS.values() if v in variants]
+        for v in sm_variants + [v for v in variants if "@" in v] + inmem_variants:
             t = _paired(entry, v, "floor", "seconds")
             if t:
                 lines.append(f"| {v} / floor | {_med_range(t, _ratio)} | {_med_range(_paired(entry, v, 'floor', 'cpu_seconds'), _ratio)} | "
                              f"{_med_range(_paired(entry, v, 'floor', 'peak_rss_bytes'), _ratio)} |")
-        if "in-memory" in variants:
+        for im in inmem_variants:
             for v in sm_variants:
-                t = _paired(entry, "in-memory", v, "seconds")
+                t = _paired(entry, im, v, "seconds")
                 if t:
-                    lines.append(f"| in-memory / {v} | {_med_range(t, _ratio)} | {_med_range(_paired(entry, 'in-memory', v, 'cpu_seconds'), _ratio)} | "
-                                 f"{_med_range(_paired(entry, 'in-memory', v, 'peak_rss_bytes'), _ratio)} |")
+                    lines.append(f"| {im} / {v} | {_med_range(t, _ratio)} | {_med_range(_paired(entry, im, v, 'cpu_seconds'), _ratio)} | "
+                                 f"{_med_range(_paired(entry, im, v, 'peak_rss_bytes'), _ratio)} |")
         lines.append("")
         # step timings of the spec's method
         ok = [r for r in entry["runs"] if r["variant"] == f"sqlmatch:{spec_method}" and r.get("ok")]
@@ -1131,15 +1158,16 @@ def render(raw: dict) -> str:
             outside = [r["seconds"] - sum(r["timings"].values()) for r in ok]
             lines.append(f"| (outside the steps: compile, preflight, estimation in Python) | {_med_range(outside, _s)} | {100 * statistics.median(outside) / total:.0f}% |")
             lines.append("")
-        inm = [r for r in entry["runs"] if r["variant"] == "in-memory" and r.get("ok")]
-        if inm:
-            ph: dict[str, list[float]] = {}
-            for r in inm:
-                for k, s in r["phases"].items():
-                    ph.setdefault(k, []).append(s)
-            lines.append("In-memory phases (median): " + ", ".join(f"{k} {_s(statistics.median(v))}" for k, v in ph.items())
-                         + f"; the trips DataFrame alone: {_gib(statistics.median(r['trips_frame_bytes'] for r in inm))}.")
-            lines.append("")
+        for im in INMEM_VARIANTS.values():
+            inm = [r for r in entry["runs"] if r["variant"] == im and r.get("ok")]
+            if inm:
+                ph: dict[str, list[float]] = {}
+                for r in inm:
+                    for k, s in r["phases"].items():
+                        ph.setdefault(k, []).append(s)
+                lines.append(f"{im} phases (median): " + ", ".join(f"{k} {_s(statistics.median(v))}" for k, v in ph.items())
+                             + f"; the trips DataFrame alone: {_gib(statistics.median(r['trips_frame_bytes'] for r in inm))}.")
+                lines.append("")
         prof = entry.get("profile")
         if prof and prof.get("ok"):
             lines += _render_profile(prof)
@@ -1149,7 +1177,7 @@ def render(raw: dict) -> str:
         for e in raw["inmem_estimates"]:
             b = e["basis"]
             lines.append(
-                f"- {e['label']}: {e['span_rows']:,} trip rows to pull ({e['span_rows_how']}). At the {b['label']} run's measured "
+                f"- {e.get('variant', 'in-memory')}, {e['label']}: {e['span_rows']:,} trip rows to pull ({e['span_rows_how']}). At the {b['label']} run's measured "
                 f"{b['peak_bytes_per_row']:.0f} bytes of peak RSS per pulled row that is about {_gib(e['estimated_peak_bytes'])} "
                 f"(the DataFrame alone {_gib(e['frame_only_bytes'])}) against {_gib(e['mem_total_bytes'])} of RAM: "
                 + ("would fit (not run)." if e["fits"] else "would **not** fit (not run).")
@@ -1201,21 +1229,22 @@ def render_targets(raw: dict) -> list[str]:
             cpu = f" (CPU time {_ratio(statistics.median(c))} [{_ratio(min(c))}–{_ratio(max(c))}])" if c else ""
             tag = " (the demo spec's method: this is the target)" if v == f"sqlmatch:{spec_method}" else ""
             out.append(f"- Whole job ≤ 1.5× floor at 100M, {v}{tag}: wall time {_ratio(med)} [{_ratio(min(t))}–{_ratio(max(t))}]{cpu}: {status(med <= 1.5)}.")
-        # 2. in-memory >= 4x slower and >= 4x memory at 100M
-        for v in sorted(set(r["variant"] for r in e100["runs"] if r["variant"].startswith("sqlmatch:") and "@" not in r["variant"])):
-            t = _paired(e100, "in-memory", v, "seconds")
-            mm = _paired(e100, "in-memory", v, "peak_rss_bytes")
-            c = _paired(e100, "in-memory", v, "cpu_seconds")
-            if t and mm:
-                out.append(
-                    f"- In-memory ≥ 4× slower and ≥ 4× memory than {v} at 100M: time {_ratio(statistics.median(t))} [{_ratio(min(t))}–{_ratio(max(t))}] "
-                    + (f"(CPU time {_ratio(statistics.median(c))}) " if c else "")
-                    + f"({status(statistics.median(t) >= 4)}), peak RSS {_ratio(statistics.median(mm))} [{_ratio(min(mm))}–{_ratio(max(mm))}] "
-                    f"({status(statistics.median(mm) >= 4)})."
-                )
-        inm = [r for r in e100["runs"] if r["variant"] == "in-memory"]
-        if inm and not any(r.get("ok") for r in inm):
-            out.append(f"- In-memory at 100M failed ({inm[0].get('error')}): it did not complete, so the ratio is unbounded; the target is met in that sense.")
+        # 2. in-memory >= 4x slower and >= 4x memory at 100M, for each route
+        for im in INMEM_VARIANTS.values():
+            for v in sorted(set(r["variant"] for r in e100["runs"] if r["variant"].startswith("sqlmatch:") and "@" not in r["variant"])):
+                t = _paired(e100, im, v, "seconds")
+                mm = _paired(e100, im, v, "peak_rss_bytes")
+                c = _paired(e100, im, v, "cpu_seconds")
+                if t and mm:
+                    out.append(
+                        f"- {im} ≥ 4× slower and ≥ 4× memory than {v} at 100M: time {_ratio(statistics.median(t))} [{_ratio(min(t))}–{_ratio(max(t))}] "
+                        + (f"(CPU time {_ratio(statistics.median(c))}) " if c else "")
+                        + f"({status(statistics.median(t) >= 4)}), peak RSS {_ratio(statistics.median(mm))} [{_ratio(min(mm))}–{_ratio(max(mm))}] "
+                        f"({status(statistics.median(mm) >= 4)})."
+                    )
+            inm = [r for r in e100["runs"] if r["variant"] == im]
+            if inm and not any(r.get("ok") for r in inm):
+                out.append(f"- {im} at 100M failed ({inm[0].get('error')}): it did not complete, so the ratio is unbounded; the target is met in that sense.")
     else:
         out.append("- Targets at 100M: not measured (100M was not run).")
     # 3. 500M with a 4GB limit: peak RSS <= 6 GB (other limits are reported beside it)
@@ -1299,7 +1328,9 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--methods", help="comma-separated sqlmatch methods (default: every one in sqlmatch.matching.METHODS)")
     p.add_argument("--seed", type=int, default=SEED)
     p.add_argument("--inmem-max", default="100M", help="largest size at which the in-memory route is run (default 100M)")
-    p.add_argument("--no-inmem", action="store_true", help="do not run the in-memory route")
+    p.add_argument("--no-inmem", action="store_true", help="do not run the in-memory routes")
+    p.add_argument("--inmem-routes", default="window,whole-table",
+                   help="in-memory routes to run: window (window filter in SQL, four columns) and/or whole-table (SELECT * FROM trips)")
     p.add_argument("--inmem-rss-cap-gb", default="16", help="kill the in-memory child above this RSS, GiB (shared machine; '' for none)")
     p.add_argument("--limited-memory", default="4GB",
                    help="extra sqlmatch runs with a DuckDB memory_limit: '4GB' (at the largest size) or 'SIZE:LIMIT', comma-separated ('' for none)")
