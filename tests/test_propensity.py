@@ -107,6 +107,30 @@ def test_subclass_boundaries_equal_numpy_quantiles(demo_scored):
     np.testing.assert_allclose(edges.edge, expected, rtol=1e-9, atol=1e-12)
 
 
+def test_subclass_weights_recomputed_from_the_scores(demo_scored):
+    """Each unit's subclass and weight recomputed with numpy / pandas from its score: common
+    support [max of the groups' lowest scores, min of their highest] (common practice), subclass k
+    holding scores in (edge_k, edge_k+1], then the stratum weights (treated 1, control
+    (n_T,s / n_C,s) * (N_C / N_T); Iacus, King & Porro 2012, as recalled from memory); units outside
+    the support or in a subclass without both groups have NULL weight."""
+    spec, _, _, scores, edges, _ = demo_scored
+    with duckdb.connect(str(spec.source_path.parent / "bikeshare.duckdb"), read_only=True) as con:
+        weighted = con.execute("SELECT unit_key, match__weight FROM sqlmatch.annual_pass_weighted").df()
+    s = scores.merge(weighted, on="unit_key", validate="one_to_one")
+    low = max(s.score[s.treated == 1].min(), s.score[s.treated == 0].min())
+    high = min(s.score[s.treated == 1].max(), s.score[s.treated == 0].max())
+    inside = (s.score >= low) & (s.score <= high)
+    subclass = pd.Series(np.searchsorted(edges.edge.to_numpy(), s.score, side="left"), index=s.index).where(inside)
+    counts = s[inside].groupby(subclass[inside]).treated.agg(n_t="sum", n="count")
+    counts["n_c"] = counts.n - counts.n_t
+    kept = counts[(counts.n_t > 0) & (counts.n_c > 0)]
+    ratio = (kept.n_t / kept.n_c * kept.n_c.sum() / kept.n_t.sum()).reindex(subclass).to_numpy()
+    matched = subclass.isin(kept.index)
+    expected = pd.Series(np.where(s.treated == 1, 1.0, ratio), index=s.index).where(matched)
+    assert (s.match__weight.isna() == expected.isna()).all()
+    np.testing.assert_allclose(s.match__weight[matched], expected[matched], rtol=1e-12)
+
+
 def test_balance_after_subclassification(demo_scored):
     """|SMD| < 0.1 after matching for the features in the model (0.1: common practice, Austin 2009)."""
     _, results, *_ = demo_scored
