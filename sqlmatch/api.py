@@ -219,9 +219,43 @@ def estimate(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
         min_cell_size=spec.min_cell_size,
         imbalance=imbalance,
         histograms=_histograms(r),
-        warnings=_warnings(spec, r, balance),
+        warnings=_warnings(spec, r, balance) + _model_warnings(spec, r, output.model),
         timings=output.timings,
     )
+
+
+def _model_warnings(spec: Spec, r, fitted) -> list[str]:
+    """A propensity model read from its file (baked into compiled SQL, perhaps long ago) may no
+    longer describe the units it scores: say so, from the propensity_check aggregates."""
+    if "propensity_check" not in r:
+        return []
+    from sqlmatch.propensity import check_model, load_model, model_path
+
+    model = fitted if fitted is not None else load_model(spec)
+    if model is None:
+        return []
+    c = check_model(r["propensity_check"].one(), model)
+    where = model_path(spec).name if spec.source_path is not None else "the model file"
+    refit = (
+        f"The scores use that fit's coefficients. Unless the change is small, refit: delete {where} and run "
+        "`sqlmatch run` (then compile again for the scheduler)."
+    )
+    test = (
+        f" (Rao's score test of those coefficients on this run's units: chi-square {c.score_statistic:.1f} on {c.df} df, p = {c.p_value:.2g})"
+        if c.score_statistic is not None
+        else ""
+    )
+    if c.n_units_now != c.n_units_fitted:
+        return [
+            f"The propensity model in {where} was fitted on {model.fitted_on} on {_small_count(c.n_units_fitted, spec.min_cell_size)} units; "
+            f"this run applies it to {_small_count(c.n_units_now, spec.min_cell_size)} units, so the data changed since the fit{test}. " + refit
+        ]
+    if c.p_value is not None and c.p_value < 0.001:
+        return [
+            f"The propensity model in {where} was fitted on {model.fitted_on} on as many units as this run has, but its "
+            f"coefficients no longer fit them{test}: the data changed since the fit. " + refit
+        ]
+    return []
 
 
 def _warnings(spec: Spec, r, balance) -> list[str]:

@@ -210,6 +210,45 @@ def newton(evaluate, columns: list[DesignColumn], ridge: float = 0.0, max_iterat
     )
 
 
+@dataclass(frozen=True)
+class ModelCheck:
+    """A stored model applied to the units of this run: their count, and Rao's score statistic
+    for the stored coefficients on these units (None when the fit sampled the controls: the
+    corrected intercept is not the sample's optimum)."""
+
+    n_units_fitted: int
+    n_units_now: int
+    score_statistic: float | None
+    df: int
+    p_value: float | None
+
+
+def check_model(row: dict, model: FittedModel) -> ModelCheck:
+    """From the propensity_check row (score vector g and information matrix H at the stored
+    coefficients b, over this run's units): Rao's score statistic g' H^-1 g, chi-square on p
+    degrees of freedom if these units follow the model with coefficients b (Rao 1948, Proc.
+    Cambridge Philos. Soc. 44:50; as recalled from memory). It is 0 on the units the model was
+    fitted on, where g = 0; with a ridge the penalised score g - ridge * b is used (the fit's
+    optimum), so the same holds."""
+    p = len(model.columns)
+    n, g, h, *_ = unpack(row, p)
+    statistic = p_value = None
+    if model.sampled_controls >= 1.0:
+        beta = np.asarray(model.coefficients, dtype=float)
+        penalty = np.eye(p) * model.ridge
+        penalty[0, 0] = 0.0
+        g, h = g - penalty @ beta, h + penalty
+        try:
+            statistic = float(max(g @ np.linalg.solve(h, g), 0.0))
+        except np.linalg.LinAlgError:
+            statistic = None
+        if statistic is not None:
+            from scipy import stats  # installed with statsmodels
+
+            p_value = float(stats.chi2.sf(statistic, p))
+    return ModelCheck(n_units_fitted=model.n_units, n_units_now=int(round(n)), score_statistic=statistic, df=p, p_value=p_value)
+
+
 def _suspects(beta: np.ndarray, columns: list[DesignColumn]) -> str:
     order = np.argsort(-np.abs(beta[1:]))[:3] + 1
     return ", ".join(describe_column(columns[i]) for i in order)

@@ -255,3 +255,89 @@ def test_rows_fetched_for_subclassification_does_not_grow_with_the_data(tmp_path
         results = api.run(parse_spec(raw, source_path=spec_path), keep_tables=False)
         fetched.append(results.rows_fetched)
     assert fetched[0] == fetched[1]
+
+
+def _design(m: pd.DataFrame, columns) -> np.ndarray:
+    """The model's design matrix from the unit rows, written out with numpy (not sqlmatch's SQL)."""
+    out = []
+    for c in columns:
+        if c.kind == "intercept":
+            out.append(np.ones(len(m)))
+        elif c.kind == "numeric":
+            out.append(m[c.feature].to_numpy(dtype=float))
+        elif c.kind == "log1p":
+            out.append(np.log1p(np.maximum(m[c.feature].to_numpy(dtype=float), 0.0)))
+        else:
+            out.append((m[c.feature].fillna("(missing)") == c.level).to_numpy(dtype=float))
+    return np.column_stack(out)
+
+
+def test_a_stored_model_on_changed_data_is_flagged(demo_dir, tmp_path):
+    """`sqlmatch run` fits the model and writes its file; a plan compiled with that file (the path a
+    scheduler takes) applies the stored coefficients. On the same data nothing is said. After some
+    controls leave the units table the results say the model was fitted on other units, and the
+    score statistic equals g' H^-1 g computed with numpy from the unit rows at the stored
+    coefficients (Rao 1948, as recalled from memory)."""
+    from sqlmatch.engines.duckdb import DuckDBEngine
+    from sqlmatch.plan import build_plan
+    from sqlmatch.propensity import check_model
+    from sqlmatch.runner import run_plan
+
+    shutil.copyfile(demo_dir / "bikeshare.duckdb", tmp_path / "bikeshare.duckdb")
+    spec = parse_spec(demo_score_spec(tmp_path, bins=5), source_path=tmp_path / "study.toml")
+    fitted = api.run(spec)
+    assert not any("propensity model" in w for w in fitted.warnings)
+    model = load_model(spec)
+
+    def baked_run():
+        with DuckDBEngine(str(tmp_path / "bikeshare.duckdb")) as engine:
+            output = run_plan(build_plan(spec, "duckdb", model=model), spec, engine)
+        assert output.model is None  # nothing refitted: the stored coefficients were applied
+        return output, api.estimate(spec, output.plan, output)
+
+    same, results = baked_run()
+    assert not any("propensity model" in w for w in results.warnings)
+    assert check_model(same.results["propensity_check"].one(), model).score_statistic < 1e-6
+
+    with duckdb.connect(str(tmp_path / "bikeshare.duckdb")) as con:
+        con.execute("DELETE FROM riders WHERE pass_bought_on IS NULL AND rider_id % 5 = 0")
+    output, results = baked_run()
+    with duckdb.connect(str(tmp_path / "bikeshare.duckdb"), read_only=True) as con:
+        m = con.execute("SELECT * FROM sqlmatch.annual_pass_measures").df()
+    assert len(m) < model.n_units - 100
+    (warning,) = [w for w in results.warnings if "propensity model" in w]
+    assert f"on {model.n_units:,} units" in warning and f"to {len(m):,} units" in warning
+
+    check = check_model(output.results["propensity_check"].one(), model)
+    X = _design(m, model.columns)
+    p = 1.0 / (1.0 + np.exp(-(X @ np.asarray(model.coefficients))))
+    g = X.T @ (m.treated.to_numpy(dtype=float) - p)
+    H = (X * (p * (1 - p))[:, None]).T @ X
+    expected = float(g @ np.linalg.solve(H, g))
+    assert check.n_units_now == len(m)
+    assert check.score_statistic == pytest.approx(expected, rel=1e-6)
+    assert expected > 1.0 and check.df == len(model.columns)
+
+
+def test_a_stored_model_whose_coefficients_no_longer_fit_is_flagged(demo_dir, tmp_path):
+    """Same units, changed features: the pre-window trips of a third of the enrolled units are removed,
+    so the unit count matches the model file but the stored coefficients are far from the best fit
+    (the score statistic's p-value far below 0.001): the results say so."""
+    from sqlmatch.engines.duckdb import DuckDBEngine
+    from sqlmatch.plan import build_plan
+    from sqlmatch.runner import run_plan
+
+    shutil.copyfile(demo_dir / "bikeshare.duckdb", tmp_path / "bikeshare.duckdb")
+    spec = parse_spec(demo_score_spec(tmp_path, bins=5), source_path=tmp_path / "study.toml")
+    api.run(spec)
+    model = load_model(spec)
+    with duckdb.connect(str(tmp_path / "bikeshare.duckdb")) as con:
+        con.execute(
+            "DELETE FROM trips WHERE started_at < TIMESTAMP '2026-03-01' AND rider_id % 3 = 0 AND rider_id IN "
+            "(SELECT rider_id FROM riders WHERE pass_bought_on >= DATE '2026-03-01' AND pass_bought_on < DATE '2026-04-01')"
+        )
+    with DuckDBEngine(str(tmp_path / "bikeshare.duckdb")) as engine:
+        output = run_plan(build_plan(spec, "duckdb", model=model), spec, engine)
+    results = api.estimate(spec, output.plan, output)
+    (warning,) = [w for w in results.warnings if "propensity model" in w]
+    assert "as many units as this run has" in warning and "no longer fit" in warning
