@@ -237,8 +237,8 @@ def _model_warnings(spec: Spec, r, fitted) -> list[str]:
     c = check_model(r["propensity_check"].one(), model)
     where = model_path(spec).name if spec.source_path is not None else "the model file"
     refit = (
-        f"The scores use that fit's coefficients. Unless the change is small, refit: delete {where} and run "
-        "`sqlmatch run` (then compile again for the scheduler)."
+        f"The scores use that fit's coefficients. Unless the change is small, refit: `sqlmatch run` fits the model "
+        f"again and rewrites {where}; then compile again for the scheduler."
     )
     test = (
         f" (Rao's score test of those coefficients on this run's units: chi-square {c.score_statistic:.1f} on {c.df} df, p = {c.p_value:.2g})"
