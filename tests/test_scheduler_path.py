@@ -72,3 +72,40 @@ def test_report_refuses_what_run_refuses(demo_dir, tmp_path, capsys):
     err = capsys.readouterr().err
     assert code != 0 and "matching.min_treated" in err and "Traceback" not in err
     assert not (tmp_path / "from_tables" / "results.json").exists()
+
+
+def _run_files(sql, database):
+    manifest = json.loads((sql / "manifest.json").read_text())
+    with duckdb.connect(str(database)) as con:
+        for step in manifest["steps"]:
+            for statement in sqlglot.parse((sql / step["file"]).read_text(), read="duckdb"):
+                if statement is not None:
+                    con.execute(statement.sql("duckdb"))
+
+
+def test_scheduled_score_plan_reports_when_the_stored_model_no_longer_fits(demo_dir, tmp_path):
+    """Subclassification on the propensity score, the way a scheduler runs it: `run` fits the model
+    once, `compile --for-scheduler` bakes it, the files run without sqlmatch, `report` reads the
+    tables. Same data: the report equals `run` and says nothing about the model. After a fifth of
+    the never-enrolled riders leave the units table and the files run again, the report says the
+    stored model was fitted on other units."""
+    shutil.copyfile(demo_dir / "bikeshare.duckdb", tmp_path / "bikeshare.duckdb")
+    spec = tmp_path / "annual_pass.toml"
+    spec.write_text(DEMO_SPEC.read_text().replace('method = "coarsened_exact"', 'method = "score_bins"'))
+    assert main(["run", str(spec), "--out", str(tmp_path / "direct"), "--quiet"]) == 0
+    sql = tmp_path / "sql"
+    assert main(["compile", str(spec), "--out", str(sql), "--for-scheduler"]) == 0
+    _run_files(sql, tmp_path / "bikeshare.duckdb")
+    assert main(["report", str(spec), "--out", str(tmp_path / "same")]) == 0
+    same = json.loads((tmp_path / "same" / "results.json").read_text())
+    close(same["effects"], json.loads((tmp_path / "direct" / "results.json").read_text())["effects"])
+    assert not any("propensity model" in w for w in same["warnings"])
+
+    with duckdb.connect(str(tmp_path / "bikeshare.duckdb")) as con:
+        con.execute("DELETE FROM riders WHERE pass_bought_on IS NULL AND rider_id % 5 = 0")
+    _run_files(sql, tmp_path / "bikeshare.duckdb")
+    assert main(["report", str(spec), "--out", str(tmp_path / "changed")]) == 0
+    changed = json.loads((tmp_path / "changed" / "results.json").read_text())
+    (warning,) = [w for w in changed["warnings"] if "propensity model" in w]
+    assert "annual_pass.model.json" in warning and "refit" in warning
+    assert "propensity model" in (tmp_path / "changed" / "report.md").read_text()
