@@ -236,6 +236,12 @@ def _model_warnings(spec: Spec, r, fitted) -> list[str]:
         return []
     c = check_model(r["propensity_check"].one(), model)
     where = model_path(spec).name if spec.source_path is not None else "the model file"
+    if c is None:
+        return [
+            f"The SQL that ran applied other propensity coefficients than {where} now holds: the model file was "
+            "rewritten after that SQL was compiled, so the scores came from the earlier fit. Compile again and let the "
+            "scheduler run the new files."
+        ]
     refit = (
         f"The scores use that fit's coefficients. Unless the change is small, refit: `sqlmatch run` fits the model "
         f"again and rewrites {where}; then compile again for the scheduler."

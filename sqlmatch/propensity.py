@@ -171,8 +171,7 @@ def newton(evaluate, columns: list[DesignColumn], ridge: float = 0.0, max_iterat
     Raises DataError naming the features on (quasi-)complete separation or non-convergence."""
     p = len(columns)
     beta = np.zeros(p)
-    penalty = np.eye(p) * ridge
-    penalty[0, 0] = 0.0
+    penalty = _ridge_penalty(p, ridge)
     first = None
     for iteration in range(1, max_iterations + 1):
         n, g, h, loglik, p_min, p_max = unpack(evaluate(beta), p)
@@ -223,20 +222,34 @@ class ModelCheck:
     p_value: float | None
 
 
-def check_model(row: dict, model: FittedModel) -> ModelCheck:
+def _ridge_penalty(p: int, ridge: float) -> np.ndarray:
+    """ridge * I, the intercept unpenalised."""
+    penalty = np.eye(p) * ridge
+    penalty[0, 0] = 0.0
+    return penalty
+
+
+def check_model(row: dict, model: FittedModel) -> ModelCheck | None:
     """From the propensity_check row (score vector g and information matrix H at the stored
     coefficients b, over this run's units): Rao's score statistic g' H^-1 g, chi-square on p
     degrees of freedom if these units follow the model with coefficients b (Rao 1948, Proc.
     Cambridge Philos. Soc. 44:50; as recalled from memory). It is 0 on the units the model was
     fitted on, where g = 0; with a ridge the penalised score g - ridge * b is used (the fit's
-    optimum), so the same holds."""
+    optimum), so the same holds.
+
+    None when the row was computed at other coefficients than `model`'s (the model file was
+    rewritten after the SQL that ran was compiled): the row's b_i say which ones it used."""
     p = len(model.columns)
+    used = [row.get(f"b_{i}") for i in range(p + 1)]
+    if used[p] is not None or any(b is None for b in used[:p]):
+        return None
+    if not np.allclose([float(b) for b in used[:p]], model.coefficients, rtol=1e-9, atol=1e-12):
+        return None
     n, g, h, *_ = unpack(row, p)
     statistic = p_value = None
     if model.sampled_controls >= 1.0:
         beta = np.asarray(model.coefficients, dtype=float)
-        penalty = np.eye(p) * model.ridge
-        penalty[0, 0] = 0.0
+        penalty = _ridge_penalty(p, model.ridge)
         g, h = g - penalty @ beta, h + penalty
         try:
             statistic = float(max(g @ np.linalg.solve(h, g), 0.0))

@@ -86,7 +86,8 @@ def _run_files(sql, database):
 def test_scheduled_score_plan_reports_when_the_stored_model_no_longer_fits(demo_dir, tmp_path):
     """Subclassification on the propensity score, the way a scheduler runs it: `run` fits the model
     once, `compile --for-scheduler` bakes it, the files run without sqlmatch, `report` reads the
-    tables. Same data: the report equals `run` and says nothing about the model. After a fifth of
+    tables. Same data: the report equals `run` and says nothing about the model; with the model file
+rewritten after compiling, it says the SQL ran other coefficients. After a fifth of
     the never-enrolled riders leave the units table and the files run again, the report says the
     stored model was fitted on other units."""
     shutil.copyfile(demo_dir / "bikeshare.duckdb", tmp_path / "bikeshare.duckdb")
@@ -100,6 +101,19 @@ def test_scheduled_score_plan_reports_when_the_stored_model_no_longer_fits(demo_
     same = json.loads((tmp_path / "same" / "results.json").read_text())
     close(same["effects"], json.loads((tmp_path / "direct" / "results.json").read_text())["effects"])
     assert not any("propensity model" in w for w in same["warnings"])
+
+    # The model file is rewritten after the files were compiled and run: the report says the SQL that
+    # ran used other coefficients (each Newton-step row returns the coefficients it was computed at).
+    model_file = tmp_path / "annual_pass.model.json"
+    original = model_file.read_text()
+    body = json.loads(original)
+    body["coefficients"][0]["coefficient"] += 0.5
+    model_file.write_text(json.dumps(body))
+    assert main(["report", str(spec), "--out", str(tmp_path / "rewritten")]) == 0
+    rewritten = json.loads((tmp_path / "rewritten" / "results.json").read_text())
+    (warning,) = [w for w in rewritten["warnings"] if "propensity coefficients" in w]
+    assert "annual_pass.model.json" in warning and "Compile again" in warning
+    model_file.write_text(original)
 
     with duckdb.connect(str(tmp_path / "bikeshare.duckdb")) as con:
         con.execute("DELETE FROM riders WHERE pass_bought_on IS NULL AND rider_id % 5 = 0")

@@ -11,7 +11,8 @@
    (n_t - n p) x_i to g_i, n p (1 - p) x_i x_j to h_ij and n_t b'x - n ln(1 + exp(b'x)) to the
    log-likelihood. Fitted on a sample of the controls; sqlmatch adds log(share sampled) to
    the intercept afterwards (case-control correction). The linear predictor is capped at +-30.0 inside
-   exp() so no engine overflows.
+   exp() so no engine overflows. The row also returns b itself (b_0, b_1, ...), so whoever reads it
+   later knows which coefficients the sums belong to.
    Design columns: x0 = intercept; x1 = pre_trips; x2 = log(1 + pre_minutes); x3 = age_band = '25-34'; x4 = age_band = '35-49'; x5 = age_band = '50+'. */
 WITH design AS (
   SELECT
@@ -125,5 +126,11 @@ SELECT
   ) * x5 * x5) AS h_5_5,
   SUM(n_t * eta - n * LN(1.0 + EXP(eta))) AS log_likelihood,
   MIN(p) AS p_min,
-  MAX(p) AS p_max
+  MAX(p) AS p_max,
+  -2.5 AS b_0,
+  0.125 AS b_1,
+  0.0625 AS b_2,
+  0.25 AS b_3,
+  -0.25 AS b_4,
+  0.5 AS b_5
 FROM fitted;
