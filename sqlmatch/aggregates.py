@@ -13,8 +13,8 @@ import numpy as np
 
 from sqlmatch.balance import GroupMoments, compare
 from sqlmatch.engines.base import QueryResult
-from sqlmatch.estimate.att import StratumMoments
-from sqlmatch.estimate.ratio import RatioSums
+from sqlmatch.estimators.att import StratumMoments
+from sqlmatch.estimators.ratio import RatioSums
 from sqlmatch.results import BalanceRow
 
 
@@ -185,3 +185,26 @@ def regression_sums(result: QueryResult, outcome: str, kind: str, features: list
         treated=GroupMoments(sum_w_t, sum_w2_t, sum_ty, sum_tyy),
         control=GroupMoments(sum_w - sum_w_t, sum_w2 - sum_w2_t, sum_y - sum_ty, sum_yy - sum_tyy),
     )
+
+
+def histograms(r) -> dict:
+    """feature name (or "propensity score") -> bins with low edge, width, group, count and weight."""
+    out: dict[str, list[dict]] = {}
+    if "feature_histograms" in r:
+        for row in r["feature_histograms"].records():
+            if row["low"] is not None:  # a feature NULL for every unit has no distribution to draw
+                out.setdefault(row["feature"], []).append(_bin(row))
+    if "score_histogram" in r:
+        out["propensity score (logit)"] = [_bin(row) for row in r["score_histogram"].records() if row["low"] is not None]
+    return out
+
+
+def _bin(row: dict) -> dict:
+    low, width, b = float(row["low"]), float(row["width"] or 0.0), int(row["bin"])
+    return {
+        "low": low + b * width,
+        "high": low + (b + 1) * width,
+        "treated": int(row["treated"]),
+        "n_units": int(row["n_units"]),
+        "sum_w": float(row["sum_w"] or 0.0),
+    }

@@ -1,5 +1,5 @@
 """Several enrolment months in one go (`sqlmatch run --cohorts 2026-01:2026-06`): the study runs
-once per cohort and each outcome's effects are pooled (see estimate/pooling.py)."""
+once per cohort and each outcome's effects are pooled (see estimators/pooling.py)."""
 
 from __future__ import annotations
 
@@ -9,7 +9,7 @@ import re
 from dataclasses import asdict, dataclass
 
 from sqlmatch.errors import SqlmatchError
-from sqlmatch.estimate.pooling import pool
+from sqlmatch.estimators.pooling import pool
 from sqlmatch.results import StudyResults
 from sqlmatch.spec import add_months
 

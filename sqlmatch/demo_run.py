@@ -12,6 +12,7 @@ from pathlib import Path
 
 from sqlglot import exp
 
+from sqlmatch.effects import study_results
 from sqlmatch import api
 from sqlmatch.demo import DEMO_TRUTH_TABLE, build_demo_warehouse
 from sqlmatch.engines.duckdb import DuckDBEngine
@@ -58,6 +59,6 @@ def run_demo(out: Path, riders: int = 20_000, seed: int = 20260301, progress: Pr
     api.write_plan(plan, out / "sql")
     with DuckDBEngine(str(out / DEMO_DATABASE)) as engine:
         output = run_plan(plan, spec, engine, progress=progress)
-        results = api.estimate(spec, output.plan, output)
+        results = study_results(spec, output.plan, output)
         results.demo_truth = read_truth(engine)
     return results, api.write_results(results, out)

@@ -76,7 +76,7 @@ class PlanContext:
         return self.table_names[logical]
 
     def weighted_columns(self) -> list[str]:
-        """The measures carried into <study>_weighted: every feature and outcome column."""
+        """The measures carried into <study>_weighted_units: every feature and outcome column."""
         columns, _ = measure_columns(self.spec)
         attributes = [f.name for f in self.spec.features if f.aggregate in ("attribute", MISSING_INDICATOR)]
         return [c.name for c in columns] + attributes
@@ -376,38 +376,36 @@ def build_plan(spec: Spec, dialect: str = "duckdb", model=None, materialize: boo
         )
     )
     method = method_for(spec.matching.method)
-    if method.NEEDS_SCORE:
+    if method.uses_score:
         steps.append(cells_step(ctx))
-    if method.NEEDS_SCORE and model is None:
+    if method.uses_score and model is None:
         levels = levels_step(ctx)
         steps += [levels] if levels else []
         work_tables = tuple(t for s in steps for t in s.writes)
         return Plan(study=spec.name, dialect=dialect, steps=tuple(steps), work_tables=work_tables, outcomes=tuple(outcomes), complete=False)
-    if method.NEEDS_SCORE:
+    if method.uses_score:
         steps.append(_newton_step(ctx, model.columns, model.coefficients, name="propensity_check"))
     steps += method.steps(ctx, model)
     numeric = [f.name for f in spec.numeric_features]
     categorical = [f.name for f in spec.categorical_features]
-    # Stratum methods write <study>_weighted themselves (one row per unit); a method that lists
-    # matches (nearest neighbours: one row per treated-control pair) writes <study>_weights, and
+    # Stratum methods write <study>_weighted_units themselves (one row per unit); a method that lists
+    # matches (nearest neighbours: one row per treated-control pair) writes <study>_match_weights, and
     # this step puts the per-unit sum of its weights beside each unit's measures.
-    per_match = not any(ctx.display("weighted") in s.writes for s in steps)
+    per_match = not any(ctx.display("weighted_units") in s.writes for s in steps)
     if per_match:
         steps.append(
             ctx.table_step(
                 "weighted_units",
                 "weighted_units",
-                writes="weighted",
-                reads=[ctx.display("measures"), ctx.display("weights")],
+                writes="weighted_units",
+                reads=[ctx.display("measures"), ctx.display("match_weights")],
                 purpose="Every unit's features and outcomes with its matching weight (NULL if unmatched), joined once for the steps after.",
                 measures_table=ctx.table("measures"),
-                weights_table=ctx.table("weights"),
+                weights_table=ctx.table("match_weights"),
                 columns=ctx.weighted_columns(),
-                # nearest neighbours may list a control once per treated unit it serves: sum its weights
-                per_pair=getattr(method, "WEIGHTS_PER_PAIR", False),
             )
         )
-    weighted = [ctx.display("weighted")]
+    weighted = [ctx.display("weighted_units")]
     steps.append(
         ctx.query_step(
             "balance_numeric",
@@ -415,7 +413,7 @@ def build_plan(spec: Spec, dialect: str = "duckdb", model=None, materialize: boo
             reads=weighted,
             purpose="Per-group counts, sums and sums of squares of numeric features, before and after matching.",
             features=numeric,
-            weighted_table=ctx.table("weighted"),
+            weighted_table=ctx.table("weighted_units"),
         )
     )
     if categorical:
@@ -426,7 +424,7 @@ def build_plan(spec: Spec, dialect: str = "duckdb", model=None, materialize: boo
                 reads=weighted,
                 purpose="Per-level counts of categorical features, before and after matching.",
                 features=categorical,
-                weighted_table=ctx.table("weighted"),
+                weighted_table=ctx.table("weighted_units"),
             )
         )
     on = [spec.feature(n) for n in spec.matching.on]
@@ -439,7 +437,7 @@ def build_plan(spec: Spec, dialect: str = "duckdb", model=None, materialize: boo
             bins=L1_BINS,
             numeric=[f.name for f in on if not f.categorical],
             categorical=[f.name for f in on if f.categorical],
-            weighted_table=ctx.table("weighted"),
+            weighted_table=ctx.table("weighted_units"),
         )
     )
     numeric = [f.name for f in spec.numeric_features]
@@ -452,19 +450,19 @@ def build_plan(spec: Spec, dialect: str = "duckdb", model=None, materialize: boo
                 purpose="Binned distribution of each numeric feature by group, before and after matching (for plots).",
                 bins=HISTOGRAM_BINS,
                 features=numeric,
-                weighted_table=ctx.table("weighted"),
+                weighted_table=ctx.table("weighted_units"),
             )
         )
-    if method.NEEDS_SCORE:
+    if method.uses_score:
         steps.append(
             ctx.query_step(
                 "score_histogram",
                 "score_histogram",
-                reads=[ctx.display("scores"), ctx.display("weighted")],
+                reads=[ctx.display("scores"), ctx.display("weighted_units")],
                 purpose="Binned propensity scores by group, before and after matching (overlap plot).",
                 bins=HISTOGRAM_BINS,
                 scores_table=ctx.table("scores"),
-                weighted_table=ctx.table("weighted"),
+                weighted_table=ctx.table("weighted_units"),
             )
         )
     for matched in (True, False):
@@ -472,7 +470,7 @@ def build_plan(spec: Spec, dialect: str = "duckdb", model=None, materialize: boo
             ctx.query_step(
                 "outcome_strata" if matched else "outcome_unmatched",
                 "outcome_strata",
-                reads=([ctx.display("measures"), ctx.display("weights")] if per_match else weighted) if matched else [ctx.display("measures")],
+                reads=([ctx.display("measures"), ctx.display("match_weights")] if per_match else weighted) if matched else [ctx.display("measures")],
                 purpose=(
                     "Outcome sums per stratum and group among matched units."
                     if matched
@@ -482,8 +480,8 @@ def build_plan(spec: Spec, dialect: str = "duckdb", model=None, materialize: boo
                 per_match=per_match,
                 outcomes=outcomes,
                 measures_table=ctx.table("measures"),
-                weights_table=ctx.table("weights"),
-                weighted_table=ctx.table("weighted"),
+                weights_table=ctx.table("match_weights"),
+                weighted_table=ctx.table("weighted_units"),
             )
         )
     steps.append(
@@ -494,7 +492,7 @@ def build_plan(spec: Spec, dialect: str = "duckdb", model=None, materialize: boo
             purpose="Weighted regression of each outcome on treatment and the numeric features among matched units, as sums (X'WX, X'Wy, y'Wy) for the sensitivity analysis.",
             features=numeric,
             outcomes=outcomes,
-            weighted_table=ctx.table("weighted"),
+            weighted_table=ctx.table("weighted_units"),
         )
     )
     if materialize:

@@ -123,7 +123,3 @@ def render(step: str, dialect: str, **context) -> tuple[str, str]:
     """Render one step's template; returns (sql text, the dialect it is written in)."""
     template, written_in = template_for(step, dialect)
     return template.render(**context), written_in
-
-
-def split_statements(sql: str, dialect: str) -> list[exp.Expression]:
-    return [s for s in sqlglot.parse(sql, read=dialect) if s is not None]

@@ -6,6 +6,8 @@ import json
 import math
 from dataclasses import asdict, dataclass, field
 
+from sqlmatch.privacy import suppress_counts as _suppress_counts, suppress_histograms
+
 ASSUMPTIONS = (
     "No unmeasured confounding: after matching on the listed features, enrolment is as good as random. "
     "Anything that drives both enrolment and the outcome and is not among the features biases the estimate; "
@@ -30,23 +32,6 @@ def _num(x):
     if isinstance(x, float) and not math.isfinite(x):
         return None
     return x
-
-
-def _suppress_counts(record: dict, min_cell: int) -> dict:
-    """Unit counts (keys n_...) below the minimum cell size become null: never written anywhere."""
-    return {k: (None if k.startswith("n_") and isinstance(v, int) and 0 < v < min_cell else v) for k, v in record.items()}
-
-
-def suppress_histograms(histograms: dict | None, min_cell: int) -> dict | None:
-    """Bins whose unit count is below the minimum cell size lose their counts and weights."""
-    if histograms is None:
-        return None
-    out = {}
-    for name, bins in histograms.items():
-        out[name] = [
-            {**b, "n_units": None, "sum_w": None} if b["n_units"] is not None and 0 < b["n_units"] < min_cell else b for b in bins
-        ]
-    return out
 
 
 @dataclass(frozen=True)
@@ -157,15 +142,3 @@ class StudyResults:
 
     def to_json(self) -> str:
         return json.dumps(self.to_dict(), indent=2) + "\n"
-
-    def summary(self) -> str:
-        """The Markdown report as text (what `sqlmatch run` writes to report.md)."""
-        from sqlmatch.report.markdown import render_markdown
-
-        return render_markdown(self)
-
-    def to_html(self) -> str:
-        """The self-contained HTML report (what `sqlmatch run` writes to report.html)."""
-        from sqlmatch.report.html import render_html
-
-        return render_html(self)

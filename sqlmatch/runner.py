@@ -18,6 +18,7 @@ from sqlglot import exp
 from sqlmatch.dialects import BUILDING_SUFFIX
 from sqlmatch.engines.base import Engine, QueryResult
 from sqlmatch.errors import DataError, SpecError
+from sqlmatch.matching import method_for
 from sqlmatch.plan import Plan
 from sqlmatch.spec import Spec, filter_columns
 
@@ -180,14 +181,6 @@ def _check_keys_unique(spec: Spec, result: QueryResult) -> None:
         )
 
 
-# How to keep more treated units, per matching method (for the matching.min_treated error).
-_LOOSEN = {
-    "coarsened_exact": "coarser cut points (matching.cut_points or matching.coarsen_bins) or fewer features in matching.on",
-    "score_bins": "fewer exact features (matching.exact) or fewer matching.bins",
-    "nearest": "a wider matching.caliper or fewer exact features (matching.exact)",
-}
-
-
 def _check_matched(spec: Spec, result: QueryResult, group_sizes: QueryResult | None = None) -> None:
     """Refuse a run that matched no treated unit, or fewer than matching.min_treated of them."""
     row = result.one()
@@ -202,7 +195,7 @@ def _check_matched(spec: Spec, result: QueryResult, group_sizes: QueryResult | N
     if kept < minimum:
         sizes = {int(g["treated"]): int(g["n_units"]) - int(g.get("n_dropped") or 0) for g in group_sizes.records()} if group_sizes is not None else {}
         cohort = int(sizes.get(1) or row["n_treated"] or 0)
-        loosen = _LOOSEN.get(spec.matching.method, "looser matching settings")
+        loosen = method_for(spec.matching.method).loosen
         raise DataError(
             "matching.min_treated",
             f"only {kept:,} of the {cohort:,} treated units in the cohort were matched, fewer than "
@@ -223,10 +216,9 @@ def check_step(spec: Spec, name: str, results: dict[str, QueryResult]) -> None:
         _check_keys_unique(spec, result)
     elif name == "matching_summary":
         _check_matched(spec, result, results.get("group_sizes"))
-    elif name == "candidate_pairs":
-        from sqlmatch.matching.neighbours import check_candidates
-
-        check_candidates(spec, result)
+    check = method_for(spec.matching.method).checks.get(name)
+    if check is not None:
+        check(spec, result)
 
 
 def _pause_for_tests(step: str) -> None:

@@ -12,7 +12,8 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
-from statistics import NormalDist
+
+from sqlmatch.estimators.intervals import critical_value
 
 __all__ = [
     "RosenbaumBound",
@@ -172,7 +173,7 @@ def rosenbaum_from_signed_rank(
     pairs with d != 0 and the tie term sum (t^3 - t) over groups of tied |d|. The ranks 1..n with
     ties averaged have sum q = n(n+1)/2 and sum q^2 = n(n+1)(2n+1)/6 - tie_term/12
     (see estimate.pairs.signed_rank), which is all the bounds need besides T+."""
-    from sqlmatch.estimate.pairs import signed_rank
+    from sqlmatch.estimators.pairs import signed_rank
 
     sr = signed_rank(t_plus, n_nonzero, tie_term)
     return rosenbaum_scan(sr.t_plus, sr.sum_ranks, sr.sum_ranks_sq, alpha=alpha, gamma_max=gamma_max, step=step, alternative=alternative)
@@ -288,11 +289,9 @@ def e_value_continuous(estimate: float, std_error: float, sd: float, level: floa
     Uses RR ~= exp(0.91 d) with interval exp(0.91 d +/- z * 0.91 * se_d), se_d = std_error / sd
     (VanderWeele & Ding 2017). ``sd`` is the outcome's standard deviation (e.g. in the control group).
     """
-    if not 0.0 < level < 1.0:
-        raise ValueError(f"level must lie strictly between 0 and 1, got {level!r}")
+    z = critical_value(level)
     if not (sd > 0 and std_error >= 0):
         raise ValueError("need sd > 0 and std_error >= 0")
-    z = NormalDist().inv_cdf(0.5 + level / 2.0)
     d = float(estimate) / float(sd)
     se_d = float(std_error) / float(sd)
     # Approximate conversion of a standardised mean difference to a risk ratio (VanderWeele & Ding 2017).

@@ -18,6 +18,7 @@ from typing import Any
 import sqlglot
 from sqlglot import exp
 
+from sqlmatch import matching as _matching_methods
 from sqlmatch.errors import SpecError
 
 # Names we create columns and tables from: plain identifiers, so generated SQL stays readable.
@@ -33,7 +34,9 @@ OUTCOME_AGGREGATES = ("count", "sum", "active_days", "ratio", "active_at_end")
 CONTROL_POOLS = ("never_by_post_end", "not_yet_enrolled")
 COARSEN_RULES = ("quantiles", "sturges")
 WINDOW_UNITS = ("month", "day")
-METHODS = ("coarsened_exact", "score_bins", "nearest")
+METHODS = tuple(_matching_methods.METHODS)
+# Names of earlier versions, refused with the name to use now.
+RENAMED_METHODS = {"nearest": "nearest_neighbour"}
 
 # Statement-level nodes that must never appear inside a filter expression.
 _FORBIDDEN_IN_FILTER = (
@@ -175,6 +178,7 @@ class Spec:
     # Count, in the pass over the events, those whose unit is not in the units table (the pass then
     # joins the events to every unit key, not only the study's; see benchmarks/RESULTS.md).
     check_unknown_units: bool = True
+    treatment_words: str = "enrolment"  # [treatment] described_as: how sentences name the treatment
     source_path: Path | None = None
 
     @property
@@ -422,9 +426,13 @@ def parse_spec(raw: dict, source_path: Path | None = None) -> Spec:
         raise SpecError("events.check_unknown_units", f"must be true or false, got {check_unknown!r}.")
 
     treatment = _table(raw, "treatment")
-    _check_keys(treatment, "treatment", {"cohort", "control_pool"})
+    _check_keys(treatment, "treatment", {"cohort", "control_pool", "described_as"})
     cohort = _str(treatment, "treatment", "cohort")
     control_pool = _choice(treatment, "treatment", "control_pool", CONTROL_POOLS, default="never_by_post_end")
+    # How sentences name the treatment ("buying the annual pass"); plain "enrolment" by default.
+    described_as = _str(treatment, "treatment", "described_as", required=False, default="enrolment")
+    if not described_as.strip() or len(described_as) > 80 or any(not ch.isprintable() for ch in described_as):
+        raise SpecError("treatment.described_as", "must be a short phrase of printable characters (at most 80).", 'e.g. described_as = "buying the annual pass".')
 
     windows_raw = _table(raw, "windows")
     _check_keys(windows_raw, "windows", {"unit", "pre", "post"})
@@ -474,6 +482,7 @@ def parse_spec(raw: dict, source_path: Path | None = None) -> Spec:
         check_unknown_units=check_unknown,
         cohort=cohort,
         control_pool=control_pool,
+        treatment_words=described_as,
         windows=windows,
         filters=filters,
         filter_texts=tuple(filter_texts),
@@ -600,6 +609,8 @@ def _matching(value: Any, features: tuple[Feature, ...]) -> Matching:
     if not isinstance(value, dict):
         raise SpecError("matching", "must be a table.", "write it as [matching].")
     _check_keys(value, "matching", {"method", "on", "cut_points", "coarsen", "coarsen_bins", "bins", "exact", "common_support", "distance", "caliper", "ratio", "replacement", "max_candidate_pairs", "min_treated"})
+    if value.get("method") in RENAMED_METHODS:
+        raise SpecError("matching.method", f"{value['method']!r} is now called {RENAMED_METHODS[value['method']]!r}.", f"write method = \"{RENAMED_METHODS[value['method']]}\".")
     method = _choice(value, "matching", "method", METHODS, default="coarsened_exact")
     names = [f.name for f in features]
     on = value.get("on", names)
@@ -652,7 +663,7 @@ def _matching(value: Any, features: tuple[Feature, ...]) -> Matching:
     support = value.get("common_support", True)
     if not isinstance(support, bool):
         raise SpecError("matching.common_support", f"must be true or false, got {support!r}.")
-    # nearest neighbours within blocks (sqlmatch/matching/neighbours.py)
+    # nearest neighbours within blocks (sqlmatch/matching/nearest_neighbour.py)
     distance = _choice(value, "matching", "distance", ("logit", "mahalanobis", "robust_mahalanobis"), default="logit")
     caliper = value.get("caliper", 0.2)
     if isinstance(caliper, bool) or not isinstance(caliper, (int, float)) or not 0.0001 <= caliper <= 10:

@@ -167,15 +167,15 @@ def test_the_same_study_twice_at_once_the_second_run_is_refused(pg, tmp_path):
         # the first run stops with its weighted table half-built in the weights step (the test hook in runner.py)
         first = sqlmatch_cli(
             "run", str(spec), "--engine", url, "--out", str(tmp_path / "first"), "--quiet",
-            env=dict(os.environ, SQLMATCH_PAUSE_BEFORE_SWAP="weights"),
+            env=dict(os.environ, SQLMATCH_PAUSE_BEFORE_SWAP="weighted_units"),
         )
         for line in first.stderr:
-            if "paused before swapping in weights" in line:
+            if "paused before swapping in weighted_units" in line:
                 break
         else:
             pytest.fail(f"the first run ended (exit {first.wait()}) without pausing")
         before = tables_in(watch, work)
-        assert "pass_same_weighted__building" in before and "pass_same_weighted" not in before
+        assert "pass_same_weighted__building" in before and "pass_same_weighted_units" not in before
 
         # the second run: one line naming the study, exit 2, and the first run's tables untouched
         code, err = finish(sqlmatch_cli("run", str(spec), "--engine", url, "--out", str(tmp_path / "second"), "--quiet"))

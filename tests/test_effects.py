@@ -20,11 +20,12 @@ import pytest
 import scipy.stats as st
 import statsmodels.api as sm
 
+from sqlmatch.effects import study_results
 from sqlmatch import aggregates, api
 from sqlmatch.engines.duckdb import DuckDBEngine
 from sqlmatch.errors import SpecError
-from sqlmatch.estimate.att import relative_lift
-from sqlmatch.estimate.regression import uncentred_intercept, wls_from_moments
+from sqlmatch.estimators.att import relative_lift
+from sqlmatch.estimators.regression import uncentred_intercept, wls_from_moments
 from sqlmatch.plan import build_plan
 from sqlmatch.report.markdown import render_markdown
 from sqlmatch.runner import run_plan
@@ -51,11 +52,11 @@ def study(demo_dir, tmp_path_factory):
     spec = api.load(DEMO_SPEC)
     with DuckDBEngine(str(database)) as engine:
         output = run_plan(build_plan(spec, "duckdb"), spec, engine)
-    results = api.estimate(spec, output.plan, output)
+    results = study_results(spec, output.plan, output)
     with duckdb.connect(str(database), read_only=True) as con:
         rows = con.execute(
             "SELECT m.*, w.match__stratum AS stratum, w.match__weight AS weight FROM sqlmatch.annual_pass_measures m "
-            "LEFT JOIN sqlmatch.annual_pass_weighted w USING (unit_key)"
+            "LEFT JOIN sqlmatch.annual_pass_weighted_units w USING (unit_key)"
         ).df()
     return spec, output, results, rows
 

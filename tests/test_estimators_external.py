@@ -7,6 +7,7 @@ recomputations of the published formulas, and simulations with a known truth.
 from __future__ import annotations
 
 import math
+from types import SimpleNamespace
 import sys
 
 import numpy as np
@@ -17,9 +18,9 @@ from statsmodels.stats.contingency_tables import Table2x2
 from statsmodels.stats.proportion import confint_proportions_2indep, proportion_confint
 from statsmodels.stats.weightstats import DescrStatsW
 
-from sqlmatch.estimate.binary import binary_effect, risk_difference, risk_ratio
-from sqlmatch.estimate.pairs import paired_difference, signed_rank
-from sqlmatch.estimate.ratio import RatioSums, ratio_effect, ratio_estimate
+from sqlmatch.estimators.binary import risk_ratio
+from sqlmatch.estimators.pairs import paired_difference, signed_rank
+from sqlmatch.estimators.ratio import RatioSums, ratio_effect, ratio_estimate
 
 Z95 = st.norm.ppf(0.975)
 
@@ -208,8 +209,10 @@ def test_ratio_interval_coverage_in_simulation():
 @pytest.mark.parametrize("a,n1,c,n0", [(30, 100, 20, 110), (7, 45, 15, 52), (120, 400, 95, 410)])
 def test_binary_unstratified_matches_statsmodels(a, n1, c, n0):
     # Source: statsmodels Table2x2 (risk ratio with the Katz log interval, Katz et al. 1978) and
-    # confint_proportions_2indep (Wald difference; log-ratio interval) as reference implementations.
-    res = binary_effect(a, n1, c, n0)
+    # confint_proportions_2indep (log-ratio interval) as reference implementations. (The risk
+    # difference users get is the stratified difference in means of the 0/1 outcome, tested with
+    # the other continuous estimators.)
+    res = SimpleNamespace(risk_ratio=risk_ratio(a, n1, c, n0))
     t = Table2x2(np.array([[a, n1 - a], [c, n0 - c]]))
     lo, hi = t.riskratio_confint(alpha=0.05, method="normal")
     assert res.risk_ratio.estimate == pytest.approx(t.riskratio, rel=1e-12)
@@ -218,10 +221,6 @@ def test_binary_unstratified_matches_statsmodels(a, n1, c, n0):
     assert res.risk_ratio.ci_high == pytest.approx(hi, rel=1e-9)
     lo_r, hi_r = confint_proportions_2indep(a, n1, c, n0, method="log", compare="ratio", alpha=0.05)
     assert (res.risk_ratio.ci_low, res.risk_ratio.ci_high) == pytest.approx((lo_r, hi_r), rel=1e-9)
-    lo_d, hi_d = confint_proportions_2indep(a, n1, c, n0, method="wald", compare="diff", alpha=0.05)
-    assert res.risk_difference.estimate == pytest.approx(a / n1 - c / n0, rel=1e-12)
-    assert res.risk_difference.ci_low == pytest.approx(lo_d, rel=1e-9, abs=1e-12)
-    assert res.risk_difference.ci_high == pytest.approx(hi_d, rel=1e-9, abs=1e-12)
     # Relative lift is RR - 1 with the RR interval shifted by one.
     assert res.risk_ratio.lift == pytest.approx(t.riskratio - 1, rel=1e-12)
     assert res.risk_ratio.lift_ci_low == pytest.approx(lo - 1, rel=1e-9)
@@ -229,9 +228,6 @@ def test_binary_unstratified_matches_statsmodels(a, n1, c, n0):
 
 def test_binary_level_parameter_matches_statsmodels_alpha():
     # Source: statsmodels confint_proportions_2indep and Table2x2 at alpha = 0.10.
-    rd = risk_difference(40, 150, 30, 160, level=0.90)
-    lo_d, hi_d = confint_proportions_2indep(40, 150, 30, 160, method="wald", compare="diff", alpha=0.10)
-    assert (rd.ci_low, rd.ci_high) == pytest.approx((lo_d, hi_d), rel=1e-9)
     rr = risk_ratio(40, 150, 30, 160, level=0.90)
     lo, hi = Table2x2(np.array([[40, 110], [30, 130]])).riskratio_confint(alpha=0.10)
     assert (rr.ci_low, rr.ci_high) == pytest.approx((lo, hi), rel=1e-9)
@@ -248,7 +244,7 @@ def test_binary_stratified_matches_row_level_and_statsmodels_per_stratum():
     y0 = [rng.binomial(1, p, n) for p, n in zip([0.2, 0.3, 0.35, 0.1], n0)]
     e1 = np.array([y.sum() for y in y1])
     e0 = np.array([y.sum() for y in y0])
-    res = binary_effect(e1, n1, e0, n0)
+    res = SimpleNamespace(risk_ratio=risk_ratio(e1, n1, e0, n0))
 
     w = n1 / n1.sum()
     p1 = np.sum(w * np.array([y.mean() for y in y1]))
@@ -264,9 +260,6 @@ def test_binary_stratified_matches_row_level_and_statsmodels_per_stratum():
     v0_sm = np.sum(w**2 * np.array([sm_var(e, n) for e, n in zip(e0, n0)]))
     assert v0 == pytest.approx(v0_sm, rel=1e-9)
 
-    rd = res.risk_difference
-    assert rd.estimate == pytest.approx(p1 - p0, rel=1e-12)
-    assert rd.std_error == pytest.approx(math.sqrt(v1 + v0), rel=1e-9)
     rr = res.risk_ratio
     log_se = math.sqrt(v1 / p1**2 + v0 / p0**2)
     assert rr.estimate == pytest.approx(p1 / p0, rel=1e-12)
@@ -276,25 +269,22 @@ def test_binary_stratified_matches_row_level_and_statsmodels_per_stratum():
 
 
 def test_binary_stratified_coverage_in_simulation():
-    # Simulation with a known truth: the ATT-weighted risks are fixed by construction; the Wald RD
-    # and log-scale RR intervals should cover about 95% of the time (large-sample theory).
+    # Simulation with a known truth: the ATT-weighted risks are fixed by construction; the
+    # log-scale RR interval should cover about 95% of the time (large-sample theory).
     rng = np.random.default_rng(17)
     n1 = np.array([80, 60, 100])
     n0 = np.array([150, 90, 120])
     pt = np.array([0.30, 0.45, 0.55])
     pc = np.array([0.20, 0.35, 0.40])
     w = n1 / n1.sum()
-    rd_true = np.sum(w * pt) - np.sum(w * pc)
     rr_true = np.sum(w * pt) / np.sum(w * pc)
     reps = 600
     e1 = rng.binomial(n1, pt, size=(reps, 3))
     e0 = rng.binomial(n0, pc, size=(reps, 3))
-    cov_rd = cov_rr = 0
+    cov_rr = 0
     for i in range(reps):
-        r = binary_effect(e1[i], n1, e0[i], n0)
-        cov_rd += r.risk_difference.ci_low <= rd_true <= r.risk_difference.ci_high
-        cov_rr += r.risk_ratio.ci_low <= rr_true <= r.risk_ratio.ci_high
-    assert 0.92 <= cov_rd / reps <= 0.975
+        r = risk_ratio(e1[i], n1, e0[i], n0)
+        cov_rr += r.ci_low <= rr_true <= r.ci_high
     assert 0.92 <= cov_rr / reps <= 0.975
 
 
@@ -303,13 +293,10 @@ def test_binary_zero_events_give_no_log_interval():
     rr = risk_ratio(5, 50, 0, 40)
     assert math.isinf(rr.estimate)
     assert math.isnan(rr.ci_low) and math.isnan(rr.ci_high)
-    rd = risk_difference(5, 50, 0, 40)
-    assert rd.estimate == pytest.approx(0.1)
-    assert rd.std_error == pytest.approx(math.sqrt(0.1 * 0.9 / 50))  # Wald variance of the treated share only
     with pytest.raises(ValueError):
-        risk_difference([5, 3], [50, 10], [2, 0], [40, 0])  # treated stratum with no controls
+        risk_ratio([5, 3], [50, 10], [2, 0], [40, 0])  # treated stratum with no controls
     with pytest.raises(ValueError):
-        risk_difference(60, 50, 2, 40)  # more events than units
+        risk_ratio(60, 50, 2, 40)  # more events than units
 
 
 # ---------------------------------------------------------------------------------------------

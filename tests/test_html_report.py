@@ -11,6 +11,8 @@ import numpy as np
 import pytest
 
 from sqlmatch.demo_run import run_demo
+from sqlmatch.report.html import render_html
+from sqlmatch.report.markdown import render_markdown
 
 
 @pytest.fixture(scope="module")
@@ -80,5 +82,5 @@ def test_markdown_report_links_the_balance_plot_beside_it(report):
 
 def test_results_object_gives_text_and_html_summaries(tmp_path):
     results, _ = run_demo(tmp_path / "api", riders=2000, seed=3)
-    assert results.summary().startswith("# sqlmatch study")
-    assert results.to_html().startswith("<!DOCTYPE html>")
+    assert render_markdown(results).startswith("# sqlmatch study")
+    assert render_html(results).startswith("<!DOCTYPE html>")

@@ -50,7 +50,7 @@ def setup_copy(demo_dir, folder):
 
 def test_sigkill_during_matching_then_rerun(demo_dir, tmp_path):
     spec = setup_copy(demo_dir, tmp_path / "killed")
-    env = dict(os.environ, SQLMATCH_PAUSE_BEFORE_SWAP="weights")
+    env = dict(os.environ, SQLMATCH_PAUSE_BEFORE_SWAP="weighted_units")
     proc = subprocess.Popen(
         [sys.executable, "-m", "sqlmatch.cli", "run", str(spec), "--out", str(tmp_path / "killed_out")],
         stderr=subprocess.PIPE,
@@ -58,14 +58,14 @@ def test_sigkill_during_matching_then_rerun(demo_dir, tmp_path):
         env=env,
     )
     for line in proc.stderr:
-        if "paused before swapping in weights" in line:
+        if "paused before swapping in weighted_units" in line:
             break
     proc.send_signal(signal.SIGKILL)
     proc.wait(timeout=60)
     assert proc.returncode == -signal.SIGKILL
     left = study_tables(spec.parent / "bikeshare.duckdb")
-    assert "annual_pass_weighted__building" in left  # the half-built table, under its temporary name
-    assert "annual_pass_weighted" not in left  # never visible under the real name
+    assert "annual_pass_weighted_units__building" in left  # the half-built table, under its temporary name
+    assert "annual_pass_weighted_units" not in left  # never visible under the real name
     assert not (tmp_path / "killed_out" / "results.json").exists()
 
     assert main(["run", str(spec), "--out", str(tmp_path / "rerun"), "--quiet"]) == 0
@@ -82,7 +82,7 @@ def test_keep_and_cleanup(demo_dir, tmp_path, capsys):
     spec = setup_copy(demo_dir, tmp_path / "kept")
     assert main(["run", str(spec), "--out", str(tmp_path / "out"), "--quiet", "--keep"]) == 0
     kept = study_tables(spec.parent / "bikeshare.duckdb")
-    assert kept == ["annual_pass_cells", "annual_pass_measures", "annual_pass_units", "annual_pass_weighted"]
+    assert kept == ["annual_pass_cells", "annual_pass_measures", "annual_pass_units", "annual_pass_weighted_units"]
     assert main(["cleanup", str(spec)]) == 0
     assert "dropped 4 tables" in capsys.readouterr().out
     assert study_tables(spec.parent / "bikeshare.duckdb") == []

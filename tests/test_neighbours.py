@@ -24,7 +24,7 @@ from sqlmatch.dialects import DIALECTS
 from sqlmatch.engines.base import QueryResult
 from sqlmatch.engines.duckdb import DuckDBEngine
 from sqlmatch.errors import DataError, SpecError
-from sqlmatch.matching import neighbours
+from sqlmatch.matching import nearest_neighbour as neighbours
 from sqlmatch.plan import build_plan
 from sqlmatch.propensity import DesignColumn, FittedModel
 from sqlmatch.runner import run_plan
@@ -40,7 +40,7 @@ def demo_raw(database: str, study: str, **matching) -> dict:
     raw = tomllib.loads(DEMO_SPEC.read_text())
     raw["study"]["database"] = database
     raw["study"]["name"] = study
-    raw["matching"] = {"method": "nearest", **matching}
+    raw["matching"] = {"method": "nearest_neighbour", **matching}
     raw["propensity"] = {"features": [*MODEL_FEATURES, "age_band", "home_district"], "log1p": ["pre_trips", "pre_minutes"]}
     return raw
 
@@ -78,7 +78,7 @@ CONFIGS = {
     "robust": {"distance": "robust_mahalanobis", "exact": ["home_district"]},
     "greedy": {"replacement": False},
 }
-TABLES = ("scores", "nn_caliper", "nn_units", "measures", "weights")
+TABLES = ("scores", "nearest_neighbour_caliper", "nearest_neighbour_units", "measures", "match_weights")
 
 
 @pytest.fixture(scope="module")
@@ -86,10 +86,10 @@ def runs(demo_db):
     """Each configuration once, on the small demo (6,000 riders), under its own study name."""
     out = {}
     for name, matching in CONFIGS.items():
-        extra = ("nn_features", "nn_whitening") if "distance" in matching else ()
-        matches = "pairs" if matching.get("replacement") is False else "nn_matches"
-        out[name] = run(demo_raw(demo_db, f"nn_{name}", **matching), TABLES + extra + (matches,))
-        out[name][2]["matches"] = out[name][2][matches]
+        extra = ("nearest_neighbour_features", "nearest_neighbour_whitening") if "distance" in matching else ()
+        matches = "pairs" if matching.get("replacement") is False else "nearest_neighbour_matches"
+        out[name] = run(demo_raw(demo_db, f"nearest_neighbour_{name}", **matching), TABLES + extra + (matches,))
+        out[name][2]["found_matches"] = out[name][2][matches]
     return out
 
 
@@ -132,7 +132,7 @@ def test_logit_matches_equal_brute_force_nearest_neighbours(runs, name):
     effect on the treated, e.g. Stuart 2010, Statistical Science 25:1, recalled)."""
     spec, out, tables = runs[name]
     t, c, width = brute_force_candidates(tables, spec)
-    assert tables["nn_caliper"].width[0] == pytest.approx(width, rel=1e-12)
+    assert tables["nearest_neighbour_caliper"].width[0] == pytest.approx(width, rel=1e-12)
     k = spec.matching.ratio
     gap = np.abs(t.score.to_numpy()[:, None] - c.score.to_numpy()[None, :])
     ok = in_block(t, c, list(spec.matching.exact)) & (gap <= width)
@@ -144,18 +144,18 @@ def test_logit_matches_equal_brute_force_nearest_neighbours(runs, name):
         chosen = c.unit_key.to_numpy()[idx[order[:k]]]
         if len(chosen):
             expected[int(t.unit_key[i])] = sorted(int(x) for x in chosen)
-    m = tables["matches"]
+    m = tables["found_matches"]
     got = {int(key): sorted(int(x) for x in g.control_key) for key, g in m.groupby("treated_key")}
     assert got == expected
     assert len(expected) > 300  # a real matching, not an empty one
     # the guard's count of candidate pairs: same block and score bins at most one apart (numpy)
-    bins = np.floor((np.r_[t.score, c.score] - tables["nn_caliper"].score_min[0]) / tables["nn_caliper"].width[0])
+    bins = np.floor((np.r_[t.score, c.score] - tables["nearest_neighbour_caliper"].score_min[0]) / tables["nearest_neighbour_caliper"].width[0])
     tb, cb = bins[: len(t)], bins[len(t) :]
     pairs = (in_block(t, c, list(spec.matching.exact)) & (np.abs(tb[:, None] - cb[None, :]) <= 1)).sum()
     assert out.results["candidate_pairs"].one()["n_candidate_pairs"] == pairs
     # weights
     # one weights row per (treated unit, control) match: a unit's weight is the sum of its rows
-    w = tables["weights"].groupby(["unit_key", "treated"], as_index=False).weight.sum().set_index("unit_key")
+    w = tables["match_weights"].groupby(["unit_key", "treated"], as_index=False).weight.sum().set_index("unit_key")
     assert (w[w.treated == 1].weight == 1.0).all() and set(w[w.treated == 1].index) == set(expected)
     control_w: dict[int, float] = {}
     for controls in expected.values():
@@ -189,7 +189,7 @@ def test_greedy_without_replacement_equals_greedy_by_distance(runs):
             used_t.add(tk[o])
             used_c.add(ck[o])
             expected.add((int(tk[o]), int(ck[o])))
-    pairs = tables["matches"]
+    pairs = tables["found_matches"]
     assert set(zip(pairs.treated_key.astype(int), pairs.control_key.astype(int))) == expected
     assert pairs.treated_key.is_unique and pairs.control_key.is_unique
     assert sorted(pairs.pair_id) == list(range(1, len(pairs) + 1))
@@ -205,7 +205,7 @@ def test_greedy_without_replacement_equals_greedy_by_distance(runs):
 
 
 def scored_features(tables: dict) -> pd.DataFrame:
-    units = tables["nn_units"][["unit_key", "treated"]]
+    units = tables["nearest_neighbour_units"][["unit_key", "treated"]]
     return units.merge(tables["measures"][["unit_key", *MODEL_FEATURES]], on="unit_key").set_index("unit_key")
 
 
@@ -218,13 +218,13 @@ def test_mahalanobis_distances_equal_scipy(runs):
     X = x[MODEL_FEATURES].to_numpy(float)
     cov = np.cov(X, rowvar=False)
     vi = np.linalg.inv(cov)
-    m = tables["matches"]
+    m = tables["found_matches"]
     xs = x[MODEL_FEATURES]
     expected = [mahalanobis(xs.loc[a].to_numpy(float), xs.loc[b].to_numpy(float), vi) for a, b in zip(m.treated_key, m.control_key)]
     np.testing.assert_allclose(m.distance, expected, rtol=1e-9, atol=1e-12)
     sd = np.sqrt(np.diag(cov))
     w_numpy = np.linalg.inv(np.linalg.cholesky(cov / np.outer(sd, sd)))
-    w_row = tables["nn_whitening"].iloc[0]
+    w_row = tables["nearest_neighbour_whitening"].iloc[0]
     p = len(MODEL_FEATURES)
     w_sql = np.array([[w_row[f"w_{i}_{j}"] if j <= i else 0.0 for j in range(1, p + 1)] for i in range(1, p + 1)])
     np.testing.assert_allclose(w_sql, w_numpy, rtol=1e-9, atol=1e-12)
@@ -248,7 +248,7 @@ def test_robust_ranks_equal_scipy_rankdata(runs):
     differ in their last bits depending on the order they were added in."""
     _, _, tables = runs["robust"]
     x = scored_features(tables)
-    ranks = tables["nn_features"].set_index("unit_key").loc[x.index]
+    ranks = tables["nearest_neighbour_features"].set_index("unit_key").loc[x.index]
     for f in MODEL_FEATURES:
         np.testing.assert_array_equal(ranks[f].to_numpy(), rankdata(np.round(x[f].to_numpy(), 10), method="average"))
         assert ranks[f].nunique() < len(ranks)  # ties are exercised
@@ -266,7 +266,7 @@ def test_robust_mahalanobis_distance_follows_rosenbaum(runs):
     rat = np.sqrt(untied / np.diag(cv))
     vi = np.linalg.inv(np.diag(rat) @ cv @ np.diag(rat))
     ranks = pd.DataFrame(r, index=x.index)
-    m = tables["matches"]
+    m = tables["found_matches"]
     expected = [mahalanobis(ranks.loc[a].to_numpy(), ranks.loc[b].to_numpy(), vi) for a, b in zip(m.treated_key, m.control_key)]
     np.testing.assert_allclose(m.distance, expected, rtol=1e-9, atol=1e-12)
     # exact blocks hold: every match is within one home district
@@ -294,12 +294,12 @@ def test_demo_balance_after_matching_on_the_logit_score(runs):
 
 
 def test_candidate_guard_refuses_a_large_join(demo_db):
-    raw = demo_raw(demo_db, "nn_guard", max_candidate_pairs=1000)
+    raw = demo_raw(demo_db, "nearest_neighbour_guard", max_candidate_pairs=1000)
     with pytest.raises(DataError) as info:
         run(raw)
     assert info.value.key == "matching.max_candidate_pairs"
     assert "more than the limit of 1,000" in str(info.value) and "matching.exact" in str(info.value)
-    assert study_tables(demo_db, "nn_guard") == []
+    assert study_tables(demo_db, "nearest_neighbour_guard") == []
 
 
 @pytest.fixture(scope="module")
@@ -314,7 +314,7 @@ def test_a_caliper_that_drops_every_unit_is_refused(nsw_db):
     age, education and earnings, and a caliper of 0.0001 SD: no treated man has a comparison man that
     close (checked independently with statsmodels' Logit on the same rows), so sqlmatch refuses,
     names matching.caliper, and leaves no table behind."""
-    raw = nsw_spec(nsw_db, "nearest", caliper=0.0001)
+    raw = nsw_spec(nsw_db, "nearest_neighbour", caliper=0.0001)
     filters = ["re74 > 0 AND re75 > 0", "(enrolled_on IS NOT NULL OR person_id % 50 = 0)"]
     raw["eligibility"] = {"filters": filters}
     raw["propensity"] = {"features": ["age", "educ", "re74", "re75"]}
@@ -332,7 +332,7 @@ def test_a_caliper_that_drops_every_unit_is_refused(nsw_db):
 
 
 def test_check_candidates_names_a_constant_or_collinear_feature():
-    spec = parse_spec(demo_raw("unused.duckdb", "nn_check", distance="mahalanobis"))
+    spec = parse_spec(demo_raw("unused.duckdb", "nearest_neighbour_check", distance="mahalanobis"))
     base = {"n_candidate_pairs": 10, "n_treated": 5, "n_control": 50, "n_treated_in_reach": 5, "score_sd": 1.0, "width": 0.2, "pivot_1": 1.0, "pivot_2": 0.5, "pivot_3": 0.2}
 
     def check(**row):
@@ -362,7 +362,7 @@ def test_check_candidates_names_a_constant_or_collinear_feature():
 )
 def test_spec_errors_name_the_key(matching, key):
     with pytest.raises(SpecError) as info:
-        parse_spec(demo_raw("unused.duckdb", "nn_spec", **matching))
+        parse_spec(demo_raw("unused.duckdb", "nearest_neighbour_spec", **matching))
     assert info.value.key == key
 
 
@@ -378,15 +378,15 @@ STAND_IN_MODEL = FittedModel(
 
 
 def test_plan_compiles_for_every_dialect():
-    """Every dialect prints the plan (one configuration that uses every nn_ template); the greedy
+    """Every dialect prints the plan (one configuration that uses every nearest_neighbour_ template); the greedy
     rounds are steps of the compiled plan, and the guard runs before the candidate join."""
-    spec = parse_spec(demo_raw("unused.duckdb", "nn_compile", distance="robust_mahalanobis", exact=["home_district"], replacement=False))
+    spec = parse_spec(demo_raw("unused.duckdb", "nearest_neighbour_compile", distance="robust_mahalanobis", exact=["home_district"], replacement=False))
     for dialect in DIALECTS:
         plan = build_plan(spec, dialect, model=STAND_IN_MODEL)
         names = [s.name for s in plan.steps]
-        assert names.index("candidate_pairs") < names.index("nn_candidates")
-        assert [n for n in names if n.startswith("nn_round_")] == [f"nn_round_{r:02d}" for r in range(1, neighbours.MAX_ROUNDS + 1)]
-        assert {"nn_features", "nn_whitening", "pairs", "weights", "matching_summary"} <= set(names)
+        assert names.index("candidate_pairs") < names.index("nearest_neighbour_candidates")
+        assert [n for n in names if n.startswith("nearest_neighbour_round_")] == [f"nearest_neighbour_round_{r:02d}" for r in range(1, neighbours.MAX_ROUNDS + 1)]
+        assert {"nearest_neighbour_features", "nearest_neighbour_whitening", "pairs", "match_weights", "matching_summary"} <= set(names)
         assert all("QUALIFY" not in sql.upper() for s in plan.steps for sql in s.statements)
 
 
@@ -402,13 +402,13 @@ def test_nsw_att_inside_the_experimental_interval(nsw_db, replacement):
     earnings minus the mean of their matches', computed here from the tables) lie inside the
     experimental 95% interval [479, 3110]; the naive difference (-8,498) does not. Beside DW's
     matching estimate 1,582 (SE 1,069): see the report of this change for the values."""
-    results = api.run(parse_spec(nsw_spec(nsw_db, "nearest", replacement=replacement)))
+    results = api.run(parse_spec(nsw_spec(nsw_db, "nearest_neighbour", replacement=replacement)))
     effect = results.effect("earnings_after")
     low, high = EXPERIMENTAL_INTERVAL
     assert low <= effect.estimate <= high, (effect.estimate, DW_MATCHING)
     assert effect.naive_estimate == pytest.approx(-8498, abs=1)
     assert not low <= effect.naive_estimate <= high
-    table = "nn_matches" if replacement else "pairs"
+    table = "nearest_neighbour_matches" if replacement else "pairs"
     with duckdb.connect(nsw_db, read_only=True) as con:
         m = con.execute(f"SELECT treated_key, control_key FROM sqlmatch.nsw_{table}").df()
         y = con.execute("SELECT unit_key, earnings_after FROM sqlmatch.nsw_measures").df().set_index("unit_key").earnings_after
@@ -419,29 +419,18 @@ def test_nsw_att_inside_the_experimental_interval(nsw_db, replacement):
     assert results.matching.n_treated_matched == len(per_treated)
 
 
-def test_rows_fetched_at_two_sizes(tmp_path, monkeypatch):
-    """The demo at 3,000 and 30,000 riders. With one stratum per matched treated unit (the current
-    STRATA = "treated"), the per-stratum outcome query returns a row per stratum and group, so it
-    grows with the cohort: every other query returns the same number of rows at both sizes. With
-    strata by number of matches and one weights row per match (STRATA = "matches",
-    WEIGHTS_PER_PAIR = True), the total is equal at both sizes."""
+def test_rows_fetched_at_two_sizes(tmp_path):
+    """The demo at 3,000 and 30,000 riders: strata by number of matches and one weights row per
+    match, so every query, the per-stratum outcome query included, returns as many rows at both
+    sizes (ratio 1: one stratum)."""
     fetched = {}
-    for mode in ("treated", "matches"):
-        monkeypatch.setattr(neighbours, "STRATA", mode)
-        monkeypatch.setattr(neighbours, "WEIGHTS_PER_PAIR", mode == "matches")
-        for riders in (3_000, 30_000):
-            folder = tmp_path / str(riders)
-            if not (folder / "bikeshare.duckdb").exists():
-                build_demo(folder, riders=riders, seed=7)
-            _, out, _ = run(demo_raw(str(folder / "bikeshare.duckdb"), "nn_rows"))
-            strata_rows = len(out.results["outcome_strata"].rows)
-            fetched[mode, riders] = (out.rows_fetched, strata_rows, out.results["matching_summary"].one()["n_strata"])
-    small, large = fetched["treated", 3_000], fetched["treated", 30_000]
-    assert small[0] - small[1] == large[0] - large[1]  # everything but the per-stratum outcome rows
-    assert large[1] > 5 * small[1]  # those grow with the number of matched treated units
-    assert small[1] <= 2 * small[2] and large[1] <= 2 * large[2]
-    assert fetched["matches", 3_000][0] == fetched["matches", 30_000][0]
-    assert fetched["matches", 3_000][2] == fetched["matches", 30_000][2] == 1  # ratio 1: one stratum
+    for riders in (3_000, 30_000):
+        folder = tmp_path / str(riders)
+        build_demo(folder, riders=riders, seed=7)
+        _, out, _ = run(demo_raw(str(folder / "bikeshare.duckdb"), "nearest_neighbour_rows"))
+        fetched[riders] = (out.rows_fetched, out.results["matching_summary"].one()["n_strata"])
+    assert fetched[3_000][0] == fetched[30_000][0]
+    assert fetched[3_000][1] == fetched[30_000][1] == 1
 
 
 def test_pairs_give_paired_t_and_rosenbaum_bounds_equal_to_scipy(demo_dir, tmp_path):
@@ -463,7 +452,7 @@ def test_pairs_give_paired_t_and_rosenbaum_bounds_equal_to_scipy(demo_dir, tmp_p
     shutil.copyfile(demo_dir / "bikeshare.duckdb", tmp_path / "bikeshare.duckdb")
     raw = tomllib.loads(DEMO_SPEC.read_text())
     raw["study"]["database"] = str(tmp_path / "bikeshare.duckdb")
-    raw["matching"] = {"method": "nearest", "replacement": False}
+    raw["matching"] = {"method": "nearest_neighbour", "replacement": False}
     results = api.run(parse_spec(raw))
     with duckdb.connect(str(tmp_path / "bikeshare.duckdb"), read_only=True) as con:
         d = con.execute(

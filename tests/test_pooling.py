@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 from statsmodels.stats.meta_analysis import combine_effects
 
-from sqlmatch.estimate.pooling import pool
+from sqlmatch.estimators.pooling import pool
 
 
 def test_fixed_effect_pool_equals_statsmodels():

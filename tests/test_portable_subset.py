@@ -41,9 +41,9 @@ def demo_plans():
     )
     plans["score_bins"] = build_plan(parse_spec(scored), "duckdb", model=model)
     for distance in ("logit", "mahalanobis", "robust_mahalanobis"):
-        nearest = dict(raw, matching={"method": "nearest", "distance": distance, "exact": ["age_band"]})
+        nearest = dict(raw, matching={"method": "nearest_neighbour", "distance": distance, "exact": ["age_band"]})
         plans[f"nearest_{distance}"] = build_plan(parse_spec(nearest), "duckdb", model=model)
-    pairs = dict(raw, matching={"method": "nearest", "replacement": False})
+    pairs = dict(raw, matching={"method": "nearest_neighbour", "replacement": False})
     plans["nearest_pairs"] = build_plan(parse_spec(pairs), "duckdb", model=model)
     return plans
 

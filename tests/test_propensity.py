@@ -13,6 +13,7 @@ import pandas as pd
 import pytest
 import statsmodels.api as sm
 
+from sqlmatch.effects import study_results
 from sqlmatch import api
 from sqlmatch.cli import main
 from sqlmatch.errors import DataError
@@ -115,7 +116,7 @@ def test_subclass_weights_recomputed_from_the_scores(demo_scored):
     the support or in a subclass without both groups have NULL weight."""
     spec, _, _, scores, edges, _ = demo_scored
     with duckdb.connect(str(spec.source_path.parent / "bikeshare.duckdb"), read_only=True) as con:
-        weighted = con.execute("SELECT unit_key, match__weight FROM sqlmatch.annual_pass_weighted").df()
+        weighted = con.execute("SELECT unit_key, match__weight FROM sqlmatch.annual_pass_weighted_units").df()
     s = scores.merge(weighted, on="unit_key", validate="one_to_one")
     low = max(s.score[s.treated == 1].min(), s.score[s.treated == 0].min())
     high = min(s.score[s.treated == 1].max(), s.score[s.treated == 0].max())
@@ -293,7 +294,7 @@ def test_a_stored_model_on_changed_data_is_flagged(demo_dir, tmp_path):
         with DuckDBEngine(str(tmp_path / "bikeshare.duckdb")) as engine:
             output = run_plan(build_plan(spec, "duckdb", model=model), spec, engine)
         assert output.model is None  # nothing refitted: the stored coefficients were applied
-        return output, api.estimate(spec, output.plan, output)
+        return output, study_results(spec, output.plan, output)
 
     same, results = baked_run()
     assert not any("propensity model" in w for w in results.warnings)
@@ -338,6 +339,6 @@ def test_a_stored_model_whose_coefficients_no_longer_fit_is_flagged(demo_dir, tm
         )
     with DuckDBEngine(str(tmp_path / "bikeshare.duckdb")) as engine:
         output = run_plan(build_plan(spec, "duckdb", model=model), spec, engine)
-    results = api.estimate(spec, output.plan, output)
+    results = study_results(spec, output.plan, output)
     (warning,) = [w for w in results.warnings if "propensity model" in w]
     assert "as many units as this run has" in warning and "no longer fit" in warning

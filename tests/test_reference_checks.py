@@ -29,7 +29,7 @@ def study(demo_dir, tmp_path_factory):
     with duckdb.connect(str(database), read_only=True) as con:
         rows = con.execute(
             "SELECT m.*, w.match__stratum AS stratum, w.match__weight AS weight FROM sqlmatch.annual_pass_measures m "
-            "LEFT JOIN sqlmatch.annual_pass_weighted w USING (unit_key)"
+            "LEFT JOIN sqlmatch.annual_pass_weighted_units w USING (unit_key)"
         ).df()
     return spec, results, rows
 

@@ -10,7 +10,7 @@ import scipy.stats as st
 import statsmodels.api as sm
 from scipy.optimize import brentq, minimize_scalar
 
-from sqlmatch.estimate.pairs import signed_rank
+from sqlmatch.estimators.pairs import signed_rank
 from sqlmatch.sensitivity import (
     EValue,
     RobustnessValue,

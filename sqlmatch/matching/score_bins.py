@@ -8,10 +8,10 @@ outside the common support are dropped first. Strata and weights: see strata.py.
 
 from __future__ import annotations
 
+from sqlmatch.matching.base import MatchingMethod
 from sqlmatch.matching.strata import Axis, strata_steps
 
 DESCRIPTION = "subclassification on the propensity score (logit scale), boundaries at treated-score quantiles"
-NEEDS_SCORE = True
 
 
 def steps(ctx, model):
@@ -46,3 +46,12 @@ def steps(ctx, model):
     text = f"its propensity-score subclass (1 of {m.bins})" + (f" and its levels of {', '.join(exact)}" if exact else "")
     out += strata_steps(ctx, axes, source="score_strata", title="Propensity-score subclassification", cell_text=text)
     return out
+
+
+METHOD = MatchingMethod(
+    name="score_bins",
+    description=DESCRIPTION,
+    steps=steps,
+    uses_score=True,
+    loosen="fewer exact features (matching.exact) or fewer matching.bins",
+)

@@ -28,7 +28,7 @@ class Axis:
 
 
 def strata_steps(ctx, axes: list[Axis], source: str, title: str, cell_text: str):
-    """Steps writing <study>_cells, <study>_weighted (every unit's measures with its stratum and
+    """Steps writing <study>_cells, <study>_weighted_units (every unit's measures with its stratum and
     weight; one row per unit, so no separate table of weights is needed) and the one-row
     matching_summary."""
     return [
@@ -44,9 +44,9 @@ def strata_steps(ctx, axes: list[Axis], source: str, title: str, cell_text: str)
             source_table=ctx.table(source),
         ),
         ctx.table_step(
-            "weights",
+            "weighted_units",
             "strata_weights",
-            writes="weighted",
+            writes="weighted_units",
             reads=list(dict.fromkeys([ctx.display("measures"), ctx.display(source), ctx.display("cells")])),
             purpose="Matching weights for the effect on the treated, beside every unit's features and outcomes (NULL if unmatched).",
             title=title,

@@ -11,7 +11,8 @@ import html
 import io
 import math
 
-from sqlmatch.results import StudyResults, suppress_histograms
+from sqlmatch.privacy import count_text, suppress_histograms
+from sqlmatch.results import StudyResults
 
 TREATED = "#D55E00"
 CONTROL = "#0072B2"
@@ -46,9 +47,7 @@ def _fmt(v, digits=3) -> str:
 
 
 def _count(v, min_cell) -> str:
-    if v is None:
-        return "–"
-    return f"&lt;{min_cell}" if 0 < v < min_cell else f"{v:,}"
+    return _e(count_text(v, min_cell))
 
 
 # -------------------------------------------------------------------------------------------- plots

@@ -4,16 +4,14 @@ from __future__ import annotations
 
 import datetime as dt
 
+from sqlmatch.privacy import count_text
 from sqlmatch.results import StudyResults
 
 SMD_REFERENCE = 0.1  # |SMD| below 0.1 read as balanced: common practice (Austin 2009)
 
 
 def _n(value: int | None, min_cell: int) -> str:
-    """Counts below the minimum cell size are suppressed."""
-    if value is None:
-        return "–"
-    return f"<{min_cell}" if 0 < value < min_cell else f"{value:,}"
+    return count_text(value, min_cell)
 
 
 def _x(value: float | None, digits: int = 3) -> str:

@@ -1,7 +1,7 @@
 -- sqlmatch study 'annual_pass', step 12: feature_histograms (duckdb)
 -- Binned distribution of each numeric feature by group, before and after matching (for plots).
 -- kind: returns aggregates to sqlmatch
--- reads: sqlmatch.annual_pass_weighted
+-- reads: sqlmatch.annual_pass_weighted_units
 
 /* Distribution of each numeric feature, treated vs control, before and after matching: 20
    equal-width bins over the feature's range among study units; per bin and group the unit count
@@ -118,7 +118,7 @@ WITH grid AS (
     (
       MAX(pre_days_since_last) - MIN(pre_days_since_last)
     ) / 20.0 AS pre_days_since_last__width
-  FROM "sqlmatch".annual_pass_weighted
+  FROM "sqlmatch".annual_pass_weighted_units
 ), ranges AS (
   SELECT
     fl.feature,
@@ -167,7 +167,7 @@ WITH grid AS (
       THEN m.pre_days_since_last
     END AS value,
     COALESCE(m.match__weight, 0) AS weight
-  FROM "sqlmatch".annual_pass_weighted AS m
+  FROM "sqlmatch".annual_pass_weighted_units AS m
   CROSS JOIN ranges AS r
 ), counts AS (
   SELECT

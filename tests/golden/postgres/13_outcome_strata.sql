@@ -1,7 +1,7 @@
 -- sqlmatch study 'annual_pass', step 13: outcome_strata (postgres)
 -- Outcome sums per stratum and group among matched units.
 -- kind: returns aggregates to sqlmatch
--- reads: sqlmatch.annual_pass_weighted
+-- reads: sqlmatch.annual_pass_weighted_units
 
 /* Outcomes per stratum and group among matched units:
    counts, sums, sums of squares (and, for ratio outcomes, the cross-product) from which the
@@ -30,7 +30,7 @@ SELECT
   SUM(m.fare_per_trip__num * m.fare_per_trip__den) AS fare_per_trip__sum_xy,
   SUM(m.active_last_month) AS active_last_month__sum,
   SUM(m.active_last_month * m.active_last_month) AS active_last_month__sumsq
-FROM "sqlmatch".annual_pass_weighted AS m
+FROM "sqlmatch".annual_pass_weighted_units AS m
 WHERE
   NOT m.match__weight IS NULL
 GROUP BY

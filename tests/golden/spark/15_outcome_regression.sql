@@ -1,7 +1,7 @@
 -- sqlmatch study 'annual_pass', step 15: outcome_regression (spark)
 -- Weighted regression of each outcome on treatment and the numeric features among matched units, as sums (X'WX, X'Wy, y'Wy) for the sensitivity analysis.
 -- kind: returns aggregates to sqlmatch
--- reads: sqlmatch.annual_pass_weighted
+-- reads: sqlmatch.annual_pass_weighted_units
 
 /* Weighted regression of each outcome on treatment and the numeric features, among matched units
    with the matching weights (the input of the robustness value). Returns one row of sums only:
@@ -27,7 +27,7 @@ WITH matched AS (
     CAST(m.fare_per_trip__num AS DOUBLE) AS num2,
     CAST(m.fare_per_trip__den AS DOUBLE) AS den2,
     CAST(m.active_last_month AS DOUBLE) AS y3
-  FROM `sqlmatch`.annual_pass_weighted AS m
+  FROM `sqlmatch`.annual_pass_weighted_units AS m
   WHERE
     NOT m.match__weight IS NULL
     AND NOT m.pre_trips IS NULL

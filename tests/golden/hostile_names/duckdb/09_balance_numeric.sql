@@ -1,7 +1,7 @@
 -- sqlmatch study 'annual_pass', step 09: balance_numeric (duckdb)
 -- Per-group counts, sums and sums of squares of numeric features, before and after matching.
 -- kind: returns aggregates to sqlmatch
--- reads: sqlmatch.annual_pass_weighted
+-- reads: sqlmatch.annual_pass_weighted_units
 
 /* Balance of the numeric features, per group: before matching every unit in the study counts
    once; after matching each matched unit counts with its weight (unmatched units weigh 0).
@@ -28,7 +28,7 @@ SELECT
   SUM(CASE WHEN NOT m.pre_fare IS NULL THEN m.match__weight * m.match__weight END) AS pre_fare__w2,
   SUM(m.match__weight * m.pre_fare) AS pre_fare__wsum,
   SUM(m.match__weight * m.pre_fare * m.pre_fare) AS pre_fare__wsumsq
-FROM "sqlmatch".annual_pass_weighted AS m
+FROM "sqlmatch".annual_pass_weighted_units AS m
 GROUP BY
   m.treated
 ORDER BY

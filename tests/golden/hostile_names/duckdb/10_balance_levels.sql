@@ -1,7 +1,7 @@
 -- sqlmatch study 'annual_pass', step 10: balance_levels (duckdb)
 -- Per-level counts of categorical features, before and after matching.
 -- kind: returns aggregates to sqlmatch
--- reads: sqlmatch.annual_pass_weighted
+-- reads: sqlmatch.annual_pass_weighted_units
 
 /* Balance of the categorical features: units per level and group, before matching (count)
    and after matching (sum of weights). One row per feature, level and group. */
@@ -11,7 +11,7 @@ SELECT
   m.treated,
   COUNT(*) AS n_units,
   SUM(COALESCE(m.match__weight, 0)) AS sum_w
-FROM "sqlmatch".annual_pass_weighted AS m
+FROM "sqlmatch".annual_pass_weighted_units AS m
 GROUP BY
   COALESCE(m.age_band, '(missing)'),
   m.treated

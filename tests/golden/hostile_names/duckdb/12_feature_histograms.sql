@@ -1,7 +1,7 @@
 -- sqlmatch study 'annual_pass', step 12: feature_histograms (duckdb)
 -- Binned distribution of each numeric feature by group, before and after matching (for plots).
 -- kind: returns aggregates to sqlmatch
--- reads: sqlmatch.annual_pass_weighted
+-- reads: sqlmatch.annual_pass_weighted_units
 
 /* Distribution of each numeric feature, treated vs control, before and after matching: 20
    equal-width bins over the feature's range among study units; per bin and group the unit count
@@ -97,7 +97,7 @@ WITH grid AS (
     (
       MAX(pre_fare) - MIN(pre_fare)
     ) / 20.0 AS pre_fare__width
-  FROM "sqlmatch".annual_pass_weighted
+  FROM "sqlmatch".annual_pass_weighted_units
 ), ranges AS (
   SELECT
     fl.feature,
@@ -123,7 +123,7 @@ WITH grid AS (
     m.treated,
     CASE r.feature WHEN 'pre_trips' THEN m.pre_trips WHEN 'pre_fare' THEN m.pre_fare END AS value,
     COALESCE(m.match__weight, 0) AS weight
-  FROM "sqlmatch".annual_pass_weighted AS m
+  FROM "sqlmatch".annual_pass_weighted_units AS m
   CROSS JOIN ranges AS r
 ), counts AS (
   SELECT

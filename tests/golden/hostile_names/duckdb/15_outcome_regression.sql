@@ -1,7 +1,7 @@
 -- sqlmatch study 'annual_pass', step 15: outcome_regression (duckdb)
 -- Weighted regression of each outcome on treatment and the numeric features among matched units, as sums (X'WX, X'Wy, y'Wy) for the sensitivity analysis.
 -- kind: returns aggregates to sqlmatch
--- reads: sqlmatch.annual_pass_weighted
+-- reads: sqlmatch.annual_pass_weighted_units
 
 /* Weighted regression of each outcome on treatment and the numeric features, among matched units
    with the matching weights (the input of the robustness value). Returns one row of sums only:
@@ -20,7 +20,7 @@ WITH matched AS (
     CAST(m.pre_trips AS DOUBLE) AS v0,
     CAST(m.pre_fare AS DOUBLE) AS v1,
     CAST(m.post_fare AS DOUBLE) AS y0
-  FROM "sqlmatch".annual_pass_weighted AS m
+  FROM "sqlmatch".annual_pass_weighted_units AS m
   WHERE
     NOT m.match__weight IS NULL AND NOT m.pre_trips IS NULL AND NOT m.pre_fare IS NULL
 ), centre AS (

@@ -1,7 +1,7 @@
 -- sqlmatch study 'annual_pass', step 11: imbalance_l1 (spark)
 -- Multivariate L1 imbalance on a fixed histogram, before and after matching.
 -- kind: returns aggregates to sqlmatch
--- reads: sqlmatch.annual_pass_weighted
+-- reads: sqlmatch.annual_pass_weighted_units
 
 /* Multivariate imbalance L1 = 1/2 * sum over cells |f_cell - g_cell|, f and g the shares of
    treated and control units in each cell of one fixed histogram (Iacus, King & Porro 2011, JASA
@@ -15,7 +15,7 @@ WITH ranges AS (
     (
       MAX(m.pre_trips) - MIN(m.pre_trips)
     ) / 10.0 AS pre_trips__width
-  FROM `sqlmatch`.annual_pass_weighted AS m
+  FROM `sqlmatch`.annual_pass_weighted_units AS m
 ), cells AS (
   SELECT
     m.treated,
@@ -31,7 +31,7 @@ WITH ranges AS (
     COALESCE(m.age_band, '(missing)') AS age_band__h,
     CAST(COUNT(*) AS DOUBLE) AS n,
     SUM(COALESCE(m.match__weight, 0)) AS sum_w
-  FROM `sqlmatch`.annual_pass_weighted AS m
+  FROM `sqlmatch`.annual_pass_weighted_units AS m
   CROSS JOIN ranges AS r
   GROUP BY
     m.treated,

@@ -1,7 +1,7 @@
 -- sqlmatch study 'annual_pass', step 13: outcome_strata (spark)
 -- Outcome sums per stratum and group among matched units.
 -- kind: returns aggregates to sqlmatch
--- reads: sqlmatch.annual_pass_weighted
+-- reads: sqlmatch.annual_pass_weighted_units
 
 /* Outcomes per stratum and group among matched units:
    counts, sums, sums of squares (and, for ratio outcomes, the cross-product) from which the
@@ -14,7 +14,7 @@ SELECT
   SUM(m.match__weight) AS sum_w,
   SUM(m.post_fare) AS post_fare__sum,
   SUM(m.post_fare * m.post_fare) AS post_fare__sumsq
-FROM `sqlmatch`.annual_pass_weighted AS m
+FROM `sqlmatch`.annual_pass_weighted_units AS m
 WHERE
   NOT m.match__weight IS NULL
 GROUP BY

@@ -1,7 +1,7 @@
 -- sqlmatch study 'annual_pass', step 16: imbalance_l1 (duckdb)
 -- Multivariate L1 imbalance on a fixed histogram, before and after matching.
 -- kind: returns aggregates to sqlmatch
--- reads: sqlmatch.annual_pass_weighted
+-- reads: sqlmatch.annual_pass_weighted_units
 
 /* Multivariate imbalance L1 = 1/2 * sum over cells |f_cell - g_cell|, f and g the shares of
    treated and control units in each cell of one fixed histogram (Iacus, King & Porro 2011, JASA
@@ -31,7 +31,7 @@ WITH ranges AS (
     (
       MAX(m.pre_days_since_last) - MIN(m.pre_days_since_last)
     ) / 10.0 AS pre_days_since_last__width
-  FROM "sqlmatch".annual_pass_weighted AS m
+  FROM "sqlmatch".annual_pass_weighted_units AS m
 ), cells AS (
   SELECT
     m.treated,
@@ -90,7 +90,7 @@ WITH ranges AS (
     COALESCE(m.home_district, '(missing)') AS home_district__h,
     CAST(COUNT(*) AS DOUBLE) AS n,
     SUM(COALESCE(m.match__weight, 0)) AS sum_w
-  FROM "sqlmatch".annual_pass_weighted AS m
+  FROM "sqlmatch".annual_pass_weighted_units AS m
   CROSS JOIN ranges AS r
   GROUP BY
     m.treated,

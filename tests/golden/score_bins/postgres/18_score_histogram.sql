@@ -1,7 +1,7 @@
 -- sqlmatch study 'annual_pass', step 18: score_histogram (postgres)
 -- Binned propensity scores by group, before and after matching (overlap plot).
 -- kind: returns aggregates to sqlmatch
--- reads: sqlmatch.annual_pass_scores, sqlmatch.annual_pass_weighted
+-- reads: sqlmatch.annual_pass_scores, sqlmatch.annual_pass_weighted_units
 
 /* Overlap of the propensity score (logit scale), treated vs control, before and after matching:
    20 equal-width bins over the range of all scores; per bin and group the unit count and the
@@ -100,7 +100,7 @@ WITH grid AS (
     COUNT(*) AS n_units,
     SUM(COALESCE(w.match__weight, 0)) AS sum_w
   FROM "sqlmatch".annual_pass_scores AS s
-  LEFT JOIN "sqlmatch".annual_pass_weighted AS w
+  LEFT JOIN "sqlmatch".annual_pass_weighted_units AS w
     ON w.unit_key = s.unit_key
   CROSS JOIN r
   GROUP BY

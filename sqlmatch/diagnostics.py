@@ -1,0 +1,125 @@
+"""Plain-words warnings from a run's aggregates: windows the events do not cover, features that
+carry no information, what the missing-value policies did, a stale propensity model, and each
+matching method's own cautions. Pure: no database."""
+
+from __future__ import annotations
+
+import datetime as dt
+
+from sqlmatch.matching import method_for
+from sqlmatch.privacy import count_text
+from sqlmatch.spec import Spec
+
+
+def run_warnings(spec: Spec, r, balance, fitted_model=None) -> list[str]:
+    """Every warning of one run, in the order reports show them."""
+    return data_warnings(spec, r, balance) + model_warnings(spec, r, fitted_model)
+
+
+def model_warnings(spec: Spec, r, fitted) -> list[str]:
+    """A propensity model read from its file (baked into compiled SQL, perhaps long ago) may no
+    longer describe the units it scores: say so, from the propensity_check aggregates."""
+    if "propensity_check" not in r:
+        return []
+    from sqlmatch.propensity import check_model, load_model, model_path
+
+    model = fitted if fitted is not None else load_model(spec)
+    if model is None:
+        return []
+    c = check_model(r["propensity_check"].one(), model)
+    where = model_path(spec).name if spec.source_path is not None else "the model file"
+    if c is None:
+        return [
+            f"The SQL that ran applied other propensity coefficients than {where} now holds: the model file was "
+            "rewritten after that SQL was compiled, so the scores came from the earlier fit. Compile again and let the "
+            "scheduler run the new files."
+        ]
+    refit = (
+        f"The scores use that fit's coefficients. Unless the change is small, refit: `sqlmatch run` fits the model "
+        f"again and rewrites {where}; then compile again for the scheduler."
+    )
+    test = (
+        f" (Rao's score test of those coefficients on this run's units: chi-square {c.score_statistic:.1f} on {c.df} df, p = {c.p_value:.2g})"
+        if c.score_statistic is not None
+        else ""
+    )
+    if c.n_units_now != c.n_units_fitted:
+        return [
+            f"The propensity model in {where} was fitted on {model.fitted_on} on {count_text(c.n_units_fitted, spec.min_cell_size, words=True)} units; "
+            f"this run applies it to {count_text(c.n_units_now, spec.min_cell_size, words=True)} units, so the data changed since the fit{test}. " + refit
+        ]
+    if c.p_value is not None and c.p_value < 0.001:
+        return [
+            f"The propensity model in {where} was fitted on {model.fitted_on} on as many units as this run has, but its "
+            f"coefficients no longer fit them{test}: the data changed since the fit. " + refit
+        ]
+    return []
+
+
+def data_warnings(spec: Spec, r, balance) -> list[str]:
+    """Plain-words warnings from the aggregates: windows the events do not cover, features that
+    carry no information."""
+    out = []
+    w = spec.windows
+    if "data_coverage" in r:
+        c = r["data_coverage"].one()
+        last, first = c["last_event_at"], c["first_event_at"]
+        if last is not None and _as_date(last) < w.post_end - dt.timedelta(days=7):
+            out.append(
+                f"The events end on {_as_date(last)}, more than a week before the post window ends ({w.post_end}): "
+                "if the data is still arriving, the outcomes are cut short for everyone. Wait for the data or use a shorter post window."
+            )
+        if first is not None and _as_date(first) > w.pre_start + dt.timedelta(days=7):
+            out.append(
+                f"The events start on {_as_date(first)}, more than a week after the pre window starts ({w.pre_start}): "
+                "pre-window features may be incomplete."
+            )
+        if c["n_units"] and c["n_units_without_events"] / c["n_units"] > 0.5:
+            out.append(f"{c['n_units_without_events'] / c['n_units']:.0%} of the units have no event in either window.")
+    out += method_for(spec.matching.method).warnings(spec, r)
+    out += _missing_warnings(spec, r)
+    if "data_coverage" in r and "n_events_unknown" in r["data_coverage"].columns:
+        u = r["data_coverage"].one()
+        events, units = int(u["n_events_unknown"] or 0), int(u["n_units_unknown"] or 0)
+        if events:
+            n_units = count_text(units, spec.min_cell_size, words=True)
+            out.append(
+                f"{events:,} events in the windows belong to {n_units} units that are not in {spec.units.display!r}: "
+                "they are left out of every feature and outcome. If that is more than a few, check that events.unit_key "
+                "and units.key name the same thing, and that the units table is complete."
+            )
+    for b in balance:
+        if b.kind != "level" and b.mean_treated_before is None and b.mean_control_before is None:
+            out.append(f"Feature {b.covariate!r} is NULL for every unit: it carries no information. Fix its definition or drop it.")
+        elif b.kind != "level" and b.smd_before == 0.0 and b.variance_ratio_before is None:
+            out.append(f"Feature {b.covariate!r} has the same value for every unit: it carries no information and can be dropped.")
+    return out
+
+
+def _missing_warnings(spec: Spec, r) -> list[str]:
+    """What each attribute's `missing` policy did, in counts (a count under the minimum cell size
+    is not printed: it could single out a few people)."""
+    if "group_sizes" not in r or not spec.attribute_features:
+        return []
+    groups = {int(g["treated"]): g for g in r["group_sizes"].records()}
+
+    def count(n: int) -> str:
+        return count_text(n, spec.min_cell_size, words=True)
+
+    out = []
+    for f in spec.attribute_features:
+        t, c = (int(groups.get(g, {}).get(f"{f.name}__null") or 0) for g in (1, 0))
+        if not t + c:
+            continue
+        who = f"{count(t + c)} units ({count(t)} treated, {count(c)} control) have no value for {f.name!r}"
+        if f.missing == "fill":
+            out.append(f"{who}: filled with {f.fill:g} and flagged in the feature {f.indicator!r} ({f.key}.missing = \"fill\").")
+        elif f.missing == "drop":
+            out.append(f"{who}: they were left out of the study ({f.key}.missing = \"drop\"); the effect is for units with a value.")
+        elif f.missing == "level":
+            out.append(f"{who}: they form a level of their own, '(missing)' ({f.key}.missing = \"level\").")
+    return out
+
+
+def _as_date(value):
+    return value if isinstance(value, dt.date) and not isinstance(value, dt.datetime) else dt.date.fromisoformat(str(value)[:10])

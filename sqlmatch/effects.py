@@ -1,0 +1,264 @@
+"""Effects from a run's aggregates: per outcome the effect on the treated and its interval, the
+naive comparison, relative lift, risk ratio, difference-in-differences and the sensitivity
+figures, assembled into StudyResults. Pure: no database; the estimators live in estimators/."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from sqlmatch import aggregates
+from sqlmatch.diagnostics import run_warnings
+from sqlmatch.estimators.att import relative_lift, stratified_att
+from sqlmatch.estimators.binary import risk_ratio
+from sqlmatch.estimators.ratio import ratio_effect
+from sqlmatch.estimators.regression import wls_from_moments
+from sqlmatch.plan import L1_BINS, Plan
+from sqlmatch.results import Effect, MatchingSummary, StudyResults
+from sqlmatch.runner import RunOutput
+from sqlmatch.sensitivity import e_value, e_value_continuous, plain_words, robustness_value, rosenbaum_from_signed_rank
+from sqlmatch.spec import Spec
+
+
+def study_results(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
+    """Balance and effects from the aggregates of one run (pure: no database)."""
+    r = output.results
+    summary = r["matching_summary"].one()
+    # Units per group left in the study (after units with a NULL attribute under missing = "drop")
+    sizes = {int(g["treated"]): int(g["n_units"]) - int(g.get("n_dropped") or 0) for g in r["group_sizes"].records()}
+    in_cells_t, in_cells_c = int(summary["n_treated"] or 0), int(summary["n_control"] or 0)
+    matching = MatchingSummary(
+        method=spec.matching.method,
+        n_treated=sizes.get(1, 0),
+        n_treated_matched=int(summary["n_treated_matched"] or 0),
+        n_control=sizes.get(0, 0),
+        n_control_matched=int(summary["n_control_matched"] or 0),
+        strata=int(summary["n_strata"]),
+        strata_dropped=int(summary["n_cells_dropped"]),
+        n_treated_outside_support=sizes.get(1, 0) - in_cells_t,
+        n_control_outside_support=sizes.get(0, 0) - in_cells_c,
+    )
+    balance = aggregates.numeric_balance(r["balance_numeric"], [f.name for f in spec.numeric_features])
+    if "balance_levels" in r:
+        balance += aggregates.level_balance(r["balance_levels"])
+    numeric = [f.name for f in spec.numeric_features]
+    effects = [
+        outcome_effect(o, r["outcome_strata"], r["outcome_unmatched"], r.get("outcome_regression"), numeric, spec.matching.method, r.get("pair_signed_rank"), spec.treatment_words)
+        for o in plan.outcomes
+    ]
+    l1 = r["imbalance_l1"].one()
+    imbalance = {
+        "l1_before": float(l1["l1_before"]),
+        "l1_after": float(l1["l1_after"]),
+        "histogram": f"{L1_BINS} equal-width bins per numeric matching feature x categorical levels ({int(l1['n_cells'])} cells)",
+    }
+    w = spec.windows
+    return StudyResults(
+        study=spec.name,
+        cohort=spec.cohort,
+        dialect=plan.dialect,
+        windows={
+            "unit": w.unit,
+            "pre": [w.pre_start.isoformat(), w.cohort_start.isoformat()],
+            "cohort": [w.cohort_start.isoformat(), w.cohort_end.isoformat()],
+            "post": [w.post_start.isoformat(), w.post_end.isoformat()],
+        },
+        matching=matching,
+        balance=balance,
+        effects=effects,
+        rows_fetched=output.rows_fetched,
+        min_cell_size=spec.min_cell_size,
+        imbalance=imbalance,
+        histograms=aggregates.histograms(r),
+        warnings=run_warnings(spec, r, balance, output.model),
+        timings=output.timings,
+    )
+
+
+def outcome_effect(outcome, matched, unmatched, regression=None, features=(), method: str = "", pair_ranks=None, treatment_words: str = "enrolment") -> Effect:
+    """One outcome's effect, relative lift, risk ratio (binary), difference-in-differences (an
+    outcome with a pre-window twin) and sensitivity figures, all from aggregates."""
+    rr = None
+    extra: dict = {}
+    if outcome.kind == "ratio":
+        m = ratio_effect(*aggregates.ratio_sums(matched, outcome.name), singleton="pool")
+        n = ratio_effect(*aggregates.ratio_sums(unmatched, outcome.name), singleton="pool")
+        t_sums, c_sums = aggregates.ratio_sums(matched, outcome.name)
+        fields = dict(
+            estimator="ratio of weighted sums, delta-method variance",
+            estimate=m.estimate,
+            std_error=m.std_error,
+            ci_low=m.ci_low,
+            ci_high=m.ci_high,
+            n_treated=int(t_sums.n.sum()),
+            n_control=int(c_sums.n.sum()),
+            mean_treated=m.treated.estimate,
+            mean_control=m.control.estimate,
+        )
+        # Lift R_1 / R_0 - 1, interval on the log scale (estimators/ratio.py).
+        extra.update(lift=m.lift, lift_std_error=m.lift_std_error, lift_ci_low=m.lift_ci_low, lift_ci_high=m.lift_ci_high)
+    else:
+        t_mom, c_mom = aggregates.outcome_moments(matched, outcome.name)
+        m = stratified_att(t_mom, c_mom)
+        n = stratified_att(*aggregates.outcome_moments(unmatched, outcome.name))
+        fields = dict(
+            estimator="stratified difference in means" + (" (risk difference)" if outcome.kind == "binary" else ""),
+            estimate=m.estimate,
+            std_error=m.std_error,
+            ci_low=m.ci_low,
+            ci_high=m.ci_high,
+            n_treated=m.n_treated,
+            n_control=m.n_control,
+            mean_treated=m.mean_treated,
+            mean_control=m.mean_control,
+        )
+        if pair_ranks is not None and f"{outcome.name}__sum_d" in pair_ranks.columns:
+            # 1:1 pairs: the paired-difference t interval (the pairs are not independent samples)
+            from sqlmatch.estimators.pairs import paired_difference
+
+            row = pair_ranks.one()
+            pd_ = paired_difference(int(row["n_pairs"]), float(row[f"{outcome.name}__sum_d"]), float(row[f"{outcome.name}__sum_d2"]))
+            fields.update(
+                estimator="mean within-pair difference, paired t interval" + (" (risk difference)" if outcome.kind == "binary" else ""),
+                estimate=pd_.estimate,
+                std_error=pd_.std_error,
+                ci_low=pd_.ci_low,
+                ci_high=pd_.ci_high,
+            )
+        if outcome.kind == "binary":
+            # Events per stratum and group are the sums of the 0/1 outcome; ATT stratum weights
+            # n_1s / n_1 over the strata holding both groups (estimators/binary.py).
+            keep = (t_mom.n > 0) & (c_mom.n > 0)
+            rr = risk_ratio(t_mom.total[keep], t_mom.n[keep], c_mom.total[keep], c_mom.n[keep])
+            extra.update(
+                risk_ratio=rr.estimate,
+                risk_ratio_ci_low=rr.ci_low,
+                risk_ratio_ci_high=rr.ci_high,
+                lift=rr.lift,
+                lift_std_error=rr.std_error,
+                lift_ci_low=rr.lift_ci_low,
+                lift_ci_high=rr.lift_ci_high,
+            )
+        else:
+            lift = relative_lift(m.mean_treated, m.var_mean_treated, m.mean_control, m.var_mean_control)
+            extra.update(lift=lift.estimate, lift_std_error=lift.std_error, lift_ci_low=lift.ci_low, lift_ci_high=lift.ci_high)
+        if getattr(outcome, "twin", None):
+            # Difference-in-differences on the matched sample: the same stratified estimator
+            # applied to (outcome - twin), per-stratum sums from the outcome_strata query.
+            did = stratified_att(*aggregates.outcome_moments(matched, outcome.name, "did"))
+            extra.update(did_twin=outcome.twin, did_estimate=did.estimate, did_std_error=did.std_error, did_ci_low=did.ci_low, did_ci_high=did.ci_high)
+    sensitivity = outcome_sensitivity(outcome, fields, rr, regression, list(features), method, pair_ranks, treatment_words)
+    return Effect(
+        outcome=outcome.name,
+        kind=outcome.kind,
+        **fields,
+        naive_estimate=n.estimate,
+        naive_std_error=n.std_error,
+        naive_ci_low=n.ci_low,
+        naive_ci_high=n.ci_high,
+        **{k: _finite(v) for k, v in extra.items()},
+        sensitivity=sensitivity,
+    )
+
+
+def _finite(x):
+    if isinstance(x, float) and not math.isfinite(x):
+        return None
+    return x
+
+
+def outcome_sensitivity(outcome, fields: dict, rr, regression, features: list[str], method: str, pair_ranks, treatment_words: str = "enrolment") -> dict:
+    """E-value, robustness value and (when the method gives 1:1 pairs) Rosenbaum bounds."""
+    out: dict = {}
+    words: list[str] = []
+    reg = fit = None
+    rv_reason = None
+    if regression is None:
+        rv_reason = "the run has no outcome_regression step"
+    else:
+        try:
+            reg = aggregates.regression_sums(regression, outcome.name, outcome.kind, features)
+            fit = wls_from_moments(reg.xtx, reg.xty, reg.yty, reg.n, reg.names)
+        except (ValueError, KeyError, np.linalg.LinAlgError) as err:
+            rv_reason = f"the weighted regression could not be fitted ({err})"
+            reg = reg if reg is not None and reg.n > 0 else None
+
+    # E-value (VanderWeele & Ding 2017). Binary outcomes: the risk ratio and its interval.
+    # Continuous and ratio outcomes: RR ~= exp(0.91 d), d = effect / SD, where SD is the pooled
+    # SD sqrt((s2_1 + s2_0) / 2) of the outcome among the matched units, each group's variance
+    # weighted by the matching weights (reliability-weight form, as in the balance table; ratio
+    # outcomes: each unit's own ratio, weighted by matching weight x denominator).
+    ev = None
+    sd = None
+    if outcome.kind == "binary":
+        if rr is not None and all(math.isfinite(x) and x > 0 for x in (rr.estimate, rr.ci_low, rr.ci_high)):
+            ev = e_value(rr.estimate, rr.ci_low, rr.ci_high)
+            out["e_value_basis"] = "risk ratio"
+    elif reg is not None:
+        v1, v0 = reg.treated.variance, reg.control.variance
+        sd = math.sqrt((v1 + v0) / 2.0) if math.isfinite(v1 + v0) else math.nan
+        se = fields["std_error"]
+        if sd > 0 and se is not None and math.isfinite(se):
+            ev = e_value_continuous(fields["estimate"], se, sd)
+            out["e_value_basis"] = "RR ~= exp(0.91 d), d = effect / pooled SD of the outcome in the matched sample"
+    out["e_value"] = ev.point if ev else None
+    out["e_value_ci"] = ev.ci if ev else None
+    out["e_value_rr"] = ev.rr if ev else None
+    out["e_value_sd"] = sd if ev and sd is not None else None
+    if ev:
+        words.append(plain_words(ev, treatment=treatment_words, outcome=outcome.name))
+
+    # Robustness value (Cinelli & Hazlett 2020) of the treatment coefficient of the weighted
+    # regression of the outcome on treatment and the numeric features (matched units, matching
+    # weights as analytic weights); categorical features are not in that regression.
+    rv = None
+    if fit is not None and "treated" in fit.names and math.isfinite(fit.t("treated")) and fit.df > 1:
+        rv = robustness_value(fit.t("treated"), fit.df)
+    elif fit is not None and rv_reason is None:
+        rv_reason = "the treatment coefficient of the weighted regression is not estimable"
+    out["robustness_value"] = rv.rv_q if rv else None
+    out["robustness_value_alpha"] = rv.rv_q_alpha if rv else None
+    out["partial_r2"] = rv.partial_r2 if rv else None
+    out["t_statistic"] = rv.t_stat if rv else None
+    out["df"] = int(fit.df) if rv else None
+    out["regression_estimate"] = fit.coef("treated") if rv else None
+    out["regression_std_error"] = fit.se("treated") if rv else None
+    out["regression_units"] = int(fit.n) if rv else None
+    out["adjusted_for"] = [f for f in fit.names if f not in ("intercept", "treated")] if rv else []
+    if rv:
+        words.append(plain_words(rv, treatment=treatment_words, outcome=outcome.name))
+    else:
+        out["robustness_reason"] = rv_reason
+
+    # Rosenbaum bounds need 1:1 matched pairs and their signed-rank aggregates (a `pair_signed_rank`
+    # query with <outcome>__t_plus, __n_nonzero, __tie_term); stratum-based methods have none.
+    scan = None
+    if pair_ranks is not None and f"{outcome.name}__t_plus" in pair_ranks.columns:
+        row = pair_ranks.one()
+        n_nonzero = int(row[f"{outcome.name}__n_nonzero"] or 0)
+        if n_nonzero > 0:
+            alternative = "greater" if fields["estimate"] >= 0 else "less"
+            scan = rosenbaum_from_signed_rank(
+                float(row[f"{outcome.name}__t_plus"]), n_nonzero, float(row[f"{outcome.name}__tie_term"] or 0.0), alternative=alternative
+            )
+    if scan is not None:
+        out["rosenbaum"] = {
+            "alpha": scan.alpha,
+            "alternative": scan.alternative,
+            "gamma_at_alpha": scan.gamma_at_alpha,
+            "first_gamma_above_alpha": scan.first_gamma_above_alpha,
+            "gamma_max": scan.gamma_max,
+            "p_upper_at_gamma_1": scan.rows[0].p_upper,
+        }
+        words.append(plain_words(scan, treatment=treatment_words, outcome=outcome.name))
+    else:
+        out["rosenbaum"] = None
+        out["rosenbaum_reason"] = (
+            f"They need 1:1 matched pairs and the signed-rank aggregates of their differences; this run's method "
+            f"({method or 'unknown'}) returned none."
+            if pair_ranks is None
+            else "no matched pair differs in this outcome, so there is no signed-rank statistic to bound."
+        )
+    out["sentence"] = " ".join(words) if words else None
+    return out

@@ -1,0 +1,62 @@
+-- sqlmatch study 'annual_pass', step 07: weighted_units (postgres)
+-- Matching weights for the effect on the treated, beside every unit's features and outcomes (NULL if unmatched).
+-- kind: writes a table
+-- reads: sqlmatch.annual_pass_measures, sqlmatch.annual_pass_cells
+-- writes: sqlmatch.annual_pass_weighted_units
+
+DROP TABLE IF EXISTS "sqlmatch".annual_pass_weighted_units__building;
+
+CREATE TABLE "sqlmatch".annual_pass_weighted_units__building AS
+/* Coarsened exact matching: weights for the effect on the treated, beside every study
+   unit's features and outcomes. Treated units weigh 1; a control unit in stratum s weighs
+   (n_T,s / n_C,s) * (N_C / N_T), N counting matched units, so control weights sum to the number
+   of matched controls. A unit left unmatched keeps its row with stratum and weight NULL (balance
+   before matching counts it). The balance, plot and effect steps after this one read this table
+   alone. */
+WITH totals AS (
+  SELECT
+    SUM(n_treated) AS matched_treated,
+    SUM(n_control) AS matched_control
+  FROM "sqlmatch".annual_pass_cells
+  WHERE
+    NOT stratum IS NULL
+)
+SELECT
+  m.unit_key,
+  m.treated,
+  m.pre_trips,
+  m.pre_fare,
+  m.post_fare,
+  m.age_band,
+  s.stratum AS match__stratum,
+  CASE
+    WHEN s.stratum IS NULL
+    THEN NULL
+    WHEN m.treated = 1
+    THEN 1.0
+    ELSE (
+      CAST(s.n_treated AS DOUBLE PRECISION) / NULLIF(s.n_control, 0)
+    ) * (
+      CAST(t.matched_control AS DOUBLE PRECISION) / NULLIF(t.matched_treated, 0)
+    )
+  END AS match__weight
+FROM "sqlmatch".annual_pass_measures AS m
+CROSS JOIN totals AS t
+LEFT JOIN "sqlmatch".annual_pass_cells AS s
+  ON s.pre_trips__bin = CASE
+    WHEN m.pre_trips IS NULL
+    THEN -1
+    WHEN m.pre_trips < 1.0
+    THEN 0
+    WHEN m.pre_trips < 5.0
+    THEN 1
+    WHEN m.pre_trips < 10.0
+    THEN 2
+    ELSE 3
+  END
+  AND s.age_band__bin = COALESCE(m.age_band, '(missing)');
+
+DROP TABLE IF EXISTS "sqlmatch".annual_pass_weighted_units;
+
+ALTER TABLE "sqlmatch".annual_pass_weighted_units__building
+RENAME TO annual_pass_weighted_units;

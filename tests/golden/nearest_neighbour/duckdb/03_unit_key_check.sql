@@ -1,0 +1,11 @@
+-- sqlmatch study 'annual_pass', step 03: unit_key_check (duckdb)
+-- Rows and distinct keys among the study's units (refuse duplicate keys).
+-- kind: returns aggregates to sqlmatch
+-- reads: sqlmatch.annual_pass_units
+
+/* Is rider_id a key of riders? Rows and distinct keys among the units in the study;
+   they must be equal, or units would be counted twice. One row. */
+SELECT
+  COUNT(*) AS n_rows,
+  COUNT(DISTINCT unit_key) AS n_keys
+FROM "sqlmatch".annual_pass_units;

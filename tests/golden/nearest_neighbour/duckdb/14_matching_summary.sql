@@ -1,0 +1,38 @@
+-- sqlmatch study 'annual_pass', step 14: matching_summary (duckdb)
+-- Units considered and matched by nearest-neighbour matching.
+-- kind: returns aggregates to sqlmatch
+-- reads: sqlmatch.annual_pass_nearest_neighbour_units, sqlmatch.annual_pass_nearest_neighbour_matches, sqlmatch.annual_pass_match_weights
+
+/* Nearest-neighbour matching, what was kept. Units considered: those with a propensity score.
+   Strata group the matched treated units by their number of controls, so n_cells = n_strata =
+   the number of such groups.
+   n_cells_dropped = treated units left without a control within the caliper. One row. */
+WITH considered AS (
+  SELECT
+    SUM(u.treated) AS n_treated,
+    SUM(1 - u.treated) AS n_control
+  FROM "sqlmatch".annual_pass_nearest_neighbour_units AS u
+), matched AS (
+  SELECT
+    COUNT(DISTINCT m.treated_key) AS n_treated_matched,
+    COUNT(DISTINCT m.control_key) AS n_control_matched,
+    COUNT(*) AS n_matches
+  FROM "sqlmatch".annual_pass_nearest_neighbour_matches AS m
+), strata AS (
+  SELECT
+    COUNT(DISTINCT w.stratum) AS n_strata
+  FROM "sqlmatch".annual_pass_match_weights AS w
+)
+SELECT
+  s.n_strata AS n_cells,
+  s.n_strata,
+  COALESCE(c.n_treated, 0) - m.n_treated_matched AS n_cells_dropped,
+  COALESCE(c.n_treated, 0) AS n_treated,
+  m.n_treated_matched,
+  COALESCE(c.n_control, 0) AS n_control,
+  m.n_control_matched,
+  m.n_matches,
+  0 AS n_treated_still_open
+FROM considered AS c
+CROSS JOIN matched AS m
+CROSS JOIN strata AS s;

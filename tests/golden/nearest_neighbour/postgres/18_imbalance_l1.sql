@@ -1,0 +1,169 @@
+-- sqlmatch study 'annual_pass', step 18: imbalance_l1 (postgres)
+-- Multivariate L1 imbalance on a fixed histogram, before and after matching.
+-- kind: returns aggregates to sqlmatch
+-- reads: sqlmatch.annual_pass_weighted_units
+
+/* Multivariate imbalance L1 = 1/2 * sum over cells |f_cell - g_cell|, f and g the shares of
+   treated and control units in each cell of one fixed histogram (Iacus, King & Porro 2011, JASA
+   106:345, and 2012): before matching every unit counts once, after matching units count with
+   their weights. The histogram: 10 equal-width bins over the range of each numeric
+   feature (pre_trips, pre_minutes, pre_fare_per_trip, pre_active_days, pre_days_since_last) crossed with the levels of the categorical
+   ones (age_band, home_district). 0 = identical distributions, 1 = no overlap. One row. */
+WITH ranges AS (
+  SELECT
+    MIN(m.pre_trips) AS pre_trips__low,
+    CAST((
+      MAX(m.pre_trips) - MIN(m.pre_trips)
+    ) AS DOUBLE PRECISION) / 10.0 AS pre_trips__width,
+    MIN(m.pre_minutes) AS pre_minutes__low,
+    CAST((
+      MAX(m.pre_minutes) - MIN(m.pre_minutes)
+    ) AS DOUBLE PRECISION) / 10.0 AS pre_minutes__width,
+    MIN(m.pre_fare_per_trip) AS pre_fare_per_trip__low,
+    CAST((
+      MAX(m.pre_fare_per_trip) - MIN(m.pre_fare_per_trip)
+    ) AS DOUBLE PRECISION) / 10.0 AS pre_fare_per_trip__width,
+    MIN(m.pre_active_days) AS pre_active_days__low,
+    CAST((
+      MAX(m.pre_active_days) - MIN(m.pre_active_days)
+    ) AS DOUBLE PRECISION) / 10.0 AS pre_active_days__width,
+    MIN(m.pre_days_since_last) AS pre_days_since_last__low,
+    CAST((
+      MAX(m.pre_days_since_last) - MIN(m.pre_days_since_last)
+    ) AS DOUBLE PRECISION) / 10.0 AS pre_days_since_last__width
+  FROM "sqlmatch".annual_pass_weighted_units AS m
+), cells AS (
+  SELECT
+    m.treated,
+    COALESCE(
+      LEAST(
+        CAST(FLOOR(
+          CAST((
+            m.pre_trips - r.pre_trips__low
+          ) AS DOUBLE PRECISION) / NULLIF(r.pre_trips__width, 0)
+        ) AS INT),
+        9
+      ),
+      -1
+    ) AS pre_trips__h,
+    COALESCE(
+      LEAST(
+        CAST(FLOOR(
+          CAST((
+            m.pre_minutes - r.pre_minutes__low
+          ) AS DOUBLE PRECISION) / NULLIF(r.pre_minutes__width, 0)
+        ) AS INT),
+        9
+      ),
+      -1
+    ) AS pre_minutes__h,
+    COALESCE(
+      LEAST(
+        CAST(FLOOR(
+          CAST((
+            m.pre_fare_per_trip - r.pre_fare_per_trip__low
+          ) AS DOUBLE PRECISION) / NULLIF(r.pre_fare_per_trip__width, 0)
+        ) AS INT),
+        9
+      ),
+      -1
+    ) AS pre_fare_per_trip__h,
+    COALESCE(
+      LEAST(
+        CAST(FLOOR(
+          CAST((
+            m.pre_active_days - r.pre_active_days__low
+          ) AS DOUBLE PRECISION) / NULLIF(r.pre_active_days__width, 0)
+        ) AS INT),
+        9
+      ),
+      -1
+    ) AS pre_active_days__h,
+    COALESCE(
+      LEAST(
+        CAST(FLOOR(
+          CAST((
+            m.pre_days_since_last - r.pre_days_since_last__low
+          ) AS DOUBLE PRECISION) / NULLIF(r.pre_days_since_last__width, 0)
+        ) AS INT),
+        9
+      ),
+      -1
+    ) AS pre_days_since_last__h,
+    COALESCE(m.age_band, '(missing)') AS age_band__h,
+    COALESCE(m.home_district, '(missing)') AS home_district__h,
+    CAST(COUNT(*) AS DOUBLE PRECISION) AS n,
+    SUM(COALESCE(m.match__weight, 0)) AS sum_w
+  FROM "sqlmatch".annual_pass_weighted_units AS m
+  CROSS JOIN ranges AS r
+  GROUP BY
+    m.treated,
+    pre_trips__h,
+    pre_minutes__h,
+    pre_fare_per_trip__h,
+    pre_active_days__h,
+    pre_days_since_last__h,
+    age_band__h,
+    home_district__h
+), totals AS (
+  SELECT
+    treated,
+    SUM(n) AS n,
+    SUM(sum_w) AS sum_w
+  FROM cells
+  GROUP BY
+    treated
+), shares AS (
+  SELECT
+    c.pre_trips__h,
+    c.pre_minutes__h,
+    c.pre_fare_per_trip__h,
+    c.pre_active_days__h,
+    c.pre_days_since_last__h,
+    c.age_band__h,
+    c.home_district__h,
+    SUM(
+      CASE
+        WHEN c.treated = 1
+        THEN CAST(c.n AS DOUBLE PRECISION) / NULLIF(t.n, 0)
+        ELSE 0
+      END
+    ) AS treated_before,
+    SUM(
+      CASE
+        WHEN c.treated = 0
+        THEN CAST(c.n AS DOUBLE PRECISION) / NULLIF(t.n, 0)
+        ELSE 0
+      END
+    ) AS control_before,
+    SUM(
+      CASE
+        WHEN c.treated = 1
+        THEN CAST(c.sum_w AS DOUBLE PRECISION) / NULLIF(t.sum_w, 0)
+        ELSE 0
+      END
+    ) AS treated_after,
+    SUM(
+      CASE
+        WHEN c.treated = 0
+        THEN CAST(c.sum_w AS DOUBLE PRECISION) / NULLIF(t.sum_w, 0)
+        ELSE 0
+      END
+    ) AS control_after
+  FROM cells AS c
+  INNER JOIN totals AS t
+    ON t.treated = c.treated
+  GROUP BY
+    c.pre_trips__h,
+    c.pre_minutes__h,
+    c.pre_fare_per_trip__h,
+    c.pre_active_days__h,
+    c.pre_days_since_last__h,
+    c.age_band__h,
+    c.home_district__h
+)
+SELECT
+  0.5 * SUM(ABS(treated_before - control_before)) AS l1_before,
+  0.5 * SUM(ABS(treated_after - control_after)) AS l1_after,
+  COUNT(*) AS n_cells
+FROM shares;

@@ -1,0 +1,218 @@
+-- sqlmatch study 'annual_pass', step 19: feature_histograms (postgres)
+-- Binned distribution of each numeric feature by group, before and after matching (for plots).
+-- kind: returns aggregates to sqlmatch
+-- reads: sqlmatch.annual_pass_weighted_units
+
+/* Distribution of each numeric feature, treated vs control, before and after matching: 20
+   equal-width bins over the feature's range among study units; per bin and group the unit count
+   (before) and the sum of matching weights (after). One scan finds every feature's range and one
+   more counts every bin: each unit's row is repeated once per feature and grouped by (feature,
+   bin, group). Every bin of the grid is returned, empty or not, so the number of rows is fixed by
+   the spec: features x 20 bins x 2 groups. */
+WITH grid AS (
+  SELECT
+    b.bin,
+    g.treated
+  FROM (
+    SELECT
+      0 AS bin
+    UNION ALL
+    SELECT
+      1 AS bin
+    UNION ALL
+    SELECT
+      2 AS bin
+    UNION ALL
+    SELECT
+      3 AS bin
+    UNION ALL
+    SELECT
+      4 AS bin
+    UNION ALL
+    SELECT
+      5 AS bin
+    UNION ALL
+    SELECT
+      6 AS bin
+    UNION ALL
+    SELECT
+      7 AS bin
+    UNION ALL
+    SELECT
+      8 AS bin
+    UNION ALL
+    SELECT
+      9 AS bin
+    UNION ALL
+    SELECT
+      10 AS bin
+    UNION ALL
+    SELECT
+      11 AS bin
+    UNION ALL
+    SELECT
+      12 AS bin
+    UNION ALL
+    SELECT
+      13 AS bin
+    UNION ALL
+    SELECT
+      14 AS bin
+    UNION ALL
+    SELECT
+      15 AS bin
+    UNION ALL
+    SELECT
+      16 AS bin
+    UNION ALL
+    SELECT
+      17 AS bin
+    UNION ALL
+    SELECT
+      18 AS bin
+    UNION ALL
+    SELECT
+      19 AS bin
+  ) AS b
+  CROSS JOIN (
+    SELECT
+      0 AS treated
+    UNION ALL
+    SELECT
+      1 AS treated
+  ) AS g
+), feature_list AS (
+  SELECT
+    'pre_trips' AS feature
+  UNION ALL
+  SELECT
+    'pre_minutes' AS feature
+  UNION ALL
+  SELECT
+    'pre_fare_per_trip' AS feature
+  UNION ALL
+  SELECT
+    'pre_active_days' AS feature
+  UNION ALL
+  SELECT
+    'pre_days_since_last' AS feature
+), ranges_wide AS (
+  SELECT
+    MIN(pre_trips) AS pre_trips__low,
+    CAST((
+      MAX(pre_trips) - MIN(pre_trips)
+    ) AS DOUBLE PRECISION) / 20.0 AS pre_trips__width,
+    MIN(pre_minutes) AS pre_minutes__low,
+    CAST((
+      MAX(pre_minutes) - MIN(pre_minutes)
+    ) AS DOUBLE PRECISION) / 20.0 AS pre_minutes__width,
+    MIN(pre_fare_per_trip) AS pre_fare_per_trip__low,
+    CAST((
+      MAX(pre_fare_per_trip) - MIN(pre_fare_per_trip)
+    ) AS DOUBLE PRECISION) / 20.0 AS pre_fare_per_trip__width,
+    MIN(pre_active_days) AS pre_active_days__low,
+    CAST((
+      MAX(pre_active_days) - MIN(pre_active_days)
+    ) AS DOUBLE PRECISION) / 20.0 AS pre_active_days__width,
+    MIN(pre_days_since_last) AS pre_days_since_last__low,
+    CAST((
+      MAX(pre_days_since_last) - MIN(pre_days_since_last)
+    ) AS DOUBLE PRECISION) / 20.0 AS pre_days_since_last__width
+  FROM "sqlmatch".annual_pass_weighted_units
+), ranges AS (
+  SELECT
+    fl.feature,
+    CASE fl.feature
+      WHEN 'pre_trips'
+      THEN w.pre_trips__low
+      WHEN 'pre_minutes'
+      THEN w.pre_minutes__low
+      WHEN 'pre_fare_per_trip'
+      THEN w.pre_fare_per_trip__low
+      WHEN 'pre_active_days'
+      THEN w.pre_active_days__low
+      WHEN 'pre_days_since_last'
+      THEN w.pre_days_since_last__low
+    END AS low,
+    CASE fl.feature
+      WHEN 'pre_trips'
+      THEN w.pre_trips__width
+      WHEN 'pre_minutes'
+      THEN w.pre_minutes__width
+      WHEN 'pre_fare_per_trip'
+      THEN w.pre_fare_per_trip__width
+      WHEN 'pre_active_days'
+      THEN w.pre_active_days__width
+      WHEN 'pre_days_since_last'
+      THEN w.pre_days_since_last__width
+    END AS width
+  FROM ranges_wide AS w
+  CROSS JOIN feature_list AS fl
+), unit_values AS (
+  SELECT
+    r.feature,
+    r.low,
+    r.width,
+    m.treated,
+    CASE r.feature
+      WHEN 'pre_trips'
+      THEN m.pre_trips
+      WHEN 'pre_minutes'
+      THEN m.pre_minutes
+      WHEN 'pre_fare_per_trip'
+      THEN m.pre_fare_per_trip
+      WHEN 'pre_active_days'
+      THEN m.pre_active_days
+      WHEN 'pre_days_since_last'
+      THEN m.pre_days_since_last
+    END AS value,
+    COALESCE(m.match__weight, 0) AS weight
+  FROM "sqlmatch".annual_pass_weighted_units AS m
+  CROSS JOIN ranges AS r
+), counts AS (
+  SELECT
+    feature,
+    COALESCE(
+      LEAST(
+        CAST(FLOOR(CAST((
+          value - low
+        ) AS DOUBLE PRECISION) / NULLIF(width, 0)) AS INT),
+        19
+      ),
+      0
+    ) AS bin,
+    treated,
+    COUNT(*) AS n_units,
+    SUM(weight) AS sum_w
+  FROM unit_values
+  WHERE
+    NOT value IS NULL
+  GROUP BY
+    feature,
+    COALESCE(
+      LEAST(
+        CAST(FLOOR(CAST((
+          value - low
+        ) AS DOUBLE PRECISION) / NULLIF(width, 0)) AS INT),
+        19
+      ),
+      0
+    ),
+    treated
+)
+SELECT
+  r.feature,
+  r.low,
+  r.width,
+  g.bin,
+  g.treated,
+  COALESCE(c.n_units, 0) AS n_units,
+  COALESCE(c.sum_w, 0) AS sum_w
+FROM ranges AS r
+CROSS JOIN grid AS g
+LEFT JOIN counts AS c
+  ON c.feature = r.feature AND c.bin = g.bin AND c.treated = g.treated
+ORDER BY
+  feature,
+  bin,
+  treated;

@@ -1,0 +1,131 @@
+-- sqlmatch study 'annual_pass', step 20: score_histogram (postgres)
+-- Binned propensity scores by group, before and after matching (overlap plot).
+-- kind: returns aggregates to sqlmatch
+-- reads: sqlmatch.annual_pass_scores, sqlmatch.annual_pass_weighted_units
+
+/* Overlap of the propensity score (logit scale), treated vs control, before and after matching:
+   20 equal-width bins over the range of all scores; per bin and group the unit count and the
+   sum of matching weights. Every bin is returned, empty or not: 20 x 2 rows. */
+WITH grid AS (
+  SELECT
+    b.bin,
+    g.treated
+  FROM (
+    SELECT
+      0 AS bin
+    UNION ALL
+    SELECT
+      1 AS bin
+    UNION ALL
+    SELECT
+      2 AS bin
+    UNION ALL
+    SELECT
+      3 AS bin
+    UNION ALL
+    SELECT
+      4 AS bin
+    UNION ALL
+    SELECT
+      5 AS bin
+    UNION ALL
+    SELECT
+      6 AS bin
+    UNION ALL
+    SELECT
+      7 AS bin
+    UNION ALL
+    SELECT
+      8 AS bin
+    UNION ALL
+    SELECT
+      9 AS bin
+    UNION ALL
+    SELECT
+      10 AS bin
+    UNION ALL
+    SELECT
+      11 AS bin
+    UNION ALL
+    SELECT
+      12 AS bin
+    UNION ALL
+    SELECT
+      13 AS bin
+    UNION ALL
+    SELECT
+      14 AS bin
+    UNION ALL
+    SELECT
+      15 AS bin
+    UNION ALL
+    SELECT
+      16 AS bin
+    UNION ALL
+    SELECT
+      17 AS bin
+    UNION ALL
+    SELECT
+      18 AS bin
+    UNION ALL
+    SELECT
+      19 AS bin
+  ) AS b
+  CROSS JOIN (
+    SELECT
+      0 AS treated
+    UNION ALL
+    SELECT
+      1 AS treated
+  ) AS g
+), r AS (
+  SELECT
+    MIN(score) AS low,
+    CAST((
+      MAX(score) - MIN(score)
+    ) AS DOUBLE PRECISION) / 20.0 AS width
+  FROM "sqlmatch".annual_pass_scores
+), counts AS (
+  SELECT
+    COALESCE(
+      LEAST(
+        CAST(FLOOR(CAST((
+          s.score - r.low
+        ) AS DOUBLE PRECISION) / NULLIF(r.width, 0)) AS INT),
+        19
+      ),
+      0
+    ) AS bin,
+    s.treated,
+    COUNT(*) AS n_units,
+    SUM(COALESCE(w.match__weight, 0)) AS sum_w
+  FROM "sqlmatch".annual_pass_scores AS s
+  LEFT JOIN "sqlmatch".annual_pass_weighted_units AS w
+    ON w.unit_key = s.unit_key
+  CROSS JOIN r
+  GROUP BY
+    COALESCE(
+      LEAST(
+        CAST(FLOOR(CAST((
+          s.score - r.low
+        ) AS DOUBLE PRECISION) / NULLIF(r.width, 0)) AS INT),
+        19
+      ),
+      0
+    ),
+    s.treated
+)
+SELECT
+  r.low,
+  r.width,
+  g.bin,
+  g.treated,
+  COALESCE(c.n_units, 0) AS n_units,
+  COALESCE(c.sum_w, 0) AS sum_w
+FROM grid AS g
+CROSS JOIN r
+LEFT JOIN counts AS c
+  ON c.bin = g.bin AND c.treated = g.treated
+ORDER BY
+  g.bin,
+  g.treated;

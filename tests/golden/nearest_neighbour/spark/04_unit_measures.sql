@@ -1,0 +1,157 @@
+-- sqlmatch study 'annual_pass', step 04: unit_measures (spark)
+-- Per-unit pre-window features and post-window outcomes, one pass over the events (which also counts events of unknown units).
+-- kind: writes a table
+-- reads: trips, sqlmatch.annual_pass_units, riders
+-- writes: sqlmatch.annual_pass_measures
+
+DROP TABLE IF EXISTS `sqlmatch`.annual_pass_measures__building;
+
+CREATE TABLE `sqlmatch`.annual_pass_measures__building AS
+/* Features over the pre window [2025-09-01, 2026-03-01) and outcomes
+   over the post window [2026-04-01, 2026-07-01) for every unit in the
+   study, from ONE pass over the events: read once, filtered to the span of both windows,
+   aggregated per unit with conditional aggregates. Units without events get the fill value.
+   The same pass counts the events whose unit is not in riders at all (they are
+   left out of everything): every row carries the two totals, read back by data_coverage.
+*/
+WITH known_units AS (
+  SELECT DISTINCT
+    `rider_id` AS unit_key
+  FROM `riders`
+), unit_keys AS (
+  /* every unit key in riders, flagged 1 when the unit is in the study */
+  SELECT
+    k.unit_key,
+    CASE WHEN s.unit_key IS NULL THEN 0 ELSE 1 END AS in_study
+  FROM known_units AS k
+  LEFT JOIN `sqlmatch`.annual_pass_units AS s
+    ON s.unit_key = k.unit_key
+), event_totals AS (
+  SELECT
+    e.`rider_id` AS unit_key,
+    COUNT(
+      CASE
+        WHEN e.`started_at` >= CAST('2025-09-01' AS DATE)
+        AND e.`started_at` < CAST('2026-03-01' AS DATE)
+        THEN 1
+      END
+    ) AS pre_trips,
+    SUM(
+      CASE
+        WHEN e.`started_at` >= CAST('2025-09-01' AS DATE)
+        AND e.`started_at` < CAST('2026-03-01' AS DATE)
+        THEN CAST(e.`minutes` AS DOUBLE)
+      END
+    ) AS pre_minutes,
+    AVG(
+      CASE
+        WHEN e.`started_at` >= CAST('2025-09-01' AS DATE)
+        AND e.`started_at` < CAST('2026-03-01' AS DATE)
+        THEN CAST(e.`fare` AS DOUBLE)
+      END
+    ) AS pre_fare_per_trip,
+    COUNT(
+      DISTINCT CASE
+        WHEN e.`started_at` >= CAST('2025-09-01' AS DATE)
+        AND e.`started_at` < CAST('2026-03-01' AS DATE)
+        THEN CAST(e.`started_at` AS DATE)
+      END
+    ) AS pre_active_days,
+    DATEDIFF(
+      DAY,
+      CAST(MAX(
+        CASE
+          WHEN e.`started_at` >= CAST('2025-09-01' AS DATE)
+          AND e.`started_at` < CAST('2026-03-01' AS DATE)
+          THEN e.`started_at`
+        END
+      ) AS DATE),
+      CAST('2026-03-01' AS DATE)
+    ) AS pre_days_since_last,
+    COUNT(
+      CASE
+        WHEN e.`started_at` >= CAST('2026-04-01' AS DATE)
+        AND e.`started_at` < CAST('2026-07-01' AS DATE)
+        THEN 1
+      END
+    ) AS post_trips,
+    SUM(
+      CASE
+        WHEN e.`started_at` >= CAST('2026-04-01' AS DATE)
+        AND e.`started_at` < CAST('2026-07-01' AS DATE)
+        THEN CAST(e.`minutes` AS DOUBLE)
+      END
+    ) AS post_minutes,
+    SUM(
+      CASE
+        WHEN e.`started_at` >= CAST('2026-04-01' AS DATE)
+        AND e.`started_at` < CAST('2026-07-01' AS DATE)
+        THEN CAST(e.`fare` AS DOUBLE)
+      END
+    ) AS fare_per_trip__num,
+    COUNT(
+      CASE
+        WHEN e.`started_at` >= CAST('2026-04-01' AS DATE)
+        AND e.`started_at` < CAST('2026-07-01' AS DATE)
+        THEN 1
+      END
+    ) AS fare_per_trip__den,
+    MAX(
+      CASE
+        WHEN e.`started_at` >= CAST('2026-06-01' AS DATE)
+        AND e.`started_at` < CAST('2026-07-01' AS DATE)
+        THEN 1
+        ELSE 0
+      END
+    ) AS active_last_month,
+    COUNT(*) AS n_events,
+    MAX(u.in_study) AS in_study,
+    CAST(MIN(e.`started_at`) AS DATE) AS first_event_at,
+    CAST(MAX(e.`started_at`) AS DATE) AS last_event_at
+  FROM `trips` AS e
+  LEFT JOIN unit_keys AS u
+    ON e.`rider_id` = u.unit_key
+  WHERE
+    e.`started_at` >= CAST('2025-09-01' AS DATE)
+    AND e.`started_at` < CAST('2026-07-01' AS DATE)
+    AND /* units of the study, and units unknown to riders (in_study NULL) */ (
+      u.in_study = 1 OR u.unit_key IS NULL
+    )
+  GROUP BY
+    e.`rider_id`
+), unknown_units AS (
+  SELECT
+    COUNT(*) AS n_units,
+    COALESCE(SUM(n_events), 0) AS n_events
+  FROM event_totals
+  WHERE
+    in_study IS NULL
+)
+SELECT
+  u.unit_key,
+  u.treated,
+  COALESCE(CAST(t.pre_trips AS DOUBLE), 0.0) AS pre_trips,
+  COALESCE(CAST(t.pre_minutes AS DOUBLE), 0.0) AS pre_minutes,
+  COALESCE(CAST(t.pre_fare_per_trip AS DOUBLE), 0.0) AS pre_fare_per_trip,
+  COALESCE(CAST(t.pre_active_days AS DOUBLE), 0.0) AS pre_active_days,
+  COALESCE(CAST(t.pre_days_since_last AS DOUBLE), 181.0) AS pre_days_since_last,
+  COALESCE(CAST(t.post_trips AS DOUBLE), 0.0) AS post_trips,
+  COALESCE(CAST(t.post_minutes AS DOUBLE), 0.0) AS post_minutes,
+  COALESCE(CAST(t.fare_per_trip__num AS DOUBLE), 0.0) AS fare_per_trip__num,
+  COALESCE(CAST(t.fare_per_trip__den AS DOUBLE), 0.0) AS fare_per_trip__den,
+  COALESCE(CAST(t.active_last_month AS DOUBLE), 0.0) AS active_last_month,
+  x.n_units AS unknown__units,
+  x.n_events AS unknown__events,
+  t.first_event_at,
+  t.last_event_at,
+  u.age_band,
+  u.home_district
+FROM `sqlmatch`.annual_pass_units AS u
+LEFT JOIN event_totals AS t
+  ON t.unit_key = u.unit_key
+CROSS JOIN unknown_units AS x;
+
+DROP TABLE IF EXISTS `sqlmatch`.annual_pass_measures;
+
+ALTER TABLE `sqlmatch`.annual_pass_measures__building
+RENAME TO `sqlmatch`.annual_pass_measures;

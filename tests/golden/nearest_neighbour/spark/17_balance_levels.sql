@@ -1,0 +1,32 @@
+-- sqlmatch study 'annual_pass', step 17: balance_levels (spark)
+-- Per-level counts of categorical features, before and after matching.
+-- kind: returns aggregates to sqlmatch
+-- reads: sqlmatch.annual_pass_weighted_units
+
+/* Balance of the categorical features: units per level and group, before matching (count)
+   and after matching (sum of weights). One row per feature, level and group. */
+SELECT
+  'age_band' AS feature,
+  COALESCE(m.age_band, '(missing)') AS level,
+  m.treated,
+  COUNT(*) AS n_units,
+  SUM(COALESCE(m.match__weight, 0)) AS sum_w
+FROM `sqlmatch`.annual_pass_weighted_units AS m
+GROUP BY
+  COALESCE(m.age_band, '(missing)'),
+  m.treated
+UNION ALL
+SELECT
+  'home_district' AS feature,
+  COALESCE(m.home_district, '(missing)') AS level,
+  m.treated,
+  COUNT(*) AS n_units,
+  SUM(COALESCE(m.match__weight, 0)) AS sum_w
+FROM `sqlmatch`.annual_pass_weighted_units AS m
+GROUP BY
+  COALESCE(m.home_district, '(missing)'),
+  m.treated
+ORDER BY
+  feature NULLS LAST,
+  level NULLS LAST,
+  treated NULLS LAST;

@@ -1,0 +1,185 @@
+-- sqlmatch study 'annual_pass', step 23: outcome_regression (spark)
+-- Weighted regression of each outcome on treatment and the numeric features among matched units, as sums (X'WX, X'Wy, y'Wy) for the sensitivity analysis.
+-- kind: returns aggregates to sqlmatch
+-- reads: sqlmatch.annual_pass_weighted_units
+
+/* Weighted regression of each outcome on treatment and the numeric features, among matched units
+   with the matching weights (the input of the robustness value). Returns one row of sums only:
+   X'WX (upper triangle), X'Wy and y'Wy, from which sqlmatch solves the least-squares fit.
+   Design columns: x0 = 1; x1 = treated; x2 = pre_trips; x3 = pre_minutes; x4 = pre_fare_per_trip; x5 = pre_active_days; x6 = pre_days_since_last.
+   Features and outcomes are centred at their weighted means first (this only moves the
+   intercept, and keeps the sums well conditioned); the centres are returned too. Units missing a
+   numeric feature are left out. Ratio outcomes use each unit's own ratio, weighted by matching
+   weight x denominator (units with a zero denominator weigh nothing), so the treatment
+   coefficient of the plain regression is the difference of the ratios of weighted sums.
+   Also per weight set: sum of squared weights (overall and treated), for the outcomes' SDs. */
+WITH matched AS (
+  SELECT
+    CAST(m.match__weight AS DOUBLE) AS w,
+    CAST(m.treated AS DOUBLE) AS t,
+    CAST(m.pre_trips AS DOUBLE) AS v0,
+    CAST(m.pre_minutes AS DOUBLE) AS v1,
+    CAST(m.pre_fare_per_trip AS DOUBLE) AS v2,
+    CAST(m.pre_active_days AS DOUBLE) AS v3,
+    CAST(m.pre_days_since_last AS DOUBLE) AS v4,
+    CAST(m.post_trips AS DOUBLE) AS y0,
+    CAST(m.post_minutes AS DOUBLE) AS y1,
+    CAST(m.fare_per_trip__num AS DOUBLE) AS num2,
+    CAST(m.fare_per_trip__den AS DOUBLE) AS den2,
+    CAST(m.active_last_month AS DOUBLE) AS y3
+  FROM `sqlmatch`.annual_pass_weighted_units AS m
+  WHERE
+    NOT m.match__weight IS NULL
+    AND NOT m.pre_trips IS NULL
+    AND NOT m.pre_minutes IS NULL
+    AND NOT m.pre_fare_per_trip IS NULL
+    AND NOT m.pre_active_days IS NULL
+    AND NOT m.pre_days_since_last IS NULL
+), centre AS (
+  SELECT
+    SUM(w * v0) / NULLIF(SUM(w), 0) AS cv0,
+    SUM(w * v1) / NULLIF(SUM(w), 0) AS cv1,
+    SUM(w * v2) / NULLIF(SUM(w), 0) AS cv2,
+    SUM(w * v3) / NULLIF(SUM(w), 0) AS cv3,
+    SUM(w * v4) / NULLIF(SUM(w), 0) AS cv4,
+    SUM(w * y0) / NULLIF(SUM(w), 0) AS cy0,
+    SUM(w * y1) / NULLIF(SUM(w), 0) AS cy1,
+    SUM(CASE WHEN den2 > 0 THEN w * num2 END) / NULLIF(SUM(CASE WHEN den2 > 0 THEN w * den2 END), 0) AS cy2,
+    SUM(w * y3) / NULLIF(SUM(w), 0) AS cy3
+  FROM matched
+), design AS (
+  SELECT
+    m.w,
+    CAST(1.0 AS DOUBLE) AS x0,
+    m.t AS x1,
+    m.v0 - c.cv0 AS x2,
+    c.cv0,
+    m.v1 - c.cv1 AS x3,
+    c.cv1,
+    m.v2 - c.cv2 AS x4,
+    c.cv2,
+    m.v3 - c.cv3 AS x5,
+    c.cv3,
+    m.v4 - c.cv4 AS x6,
+    c.cv4,
+    m.y0 - c.cy0 AS y0,
+    c.cy0,
+    m.y1 - c.cy1 AS y1,
+    c.cy1,
+    CASE WHEN m.den2 > 0 THEN m.w * m.den2 ELSE CAST(0.0 AS DOUBLE) END AS wr2,
+    CASE WHEN m.den2 > 0 THEN m.num2 / NULLIF(m.den2, 0) - c.cy2 END AS y2,
+    c.cy2,
+    m.y3 - c.cy3 AS y3,
+    c.cy3
+  FROM matched AS m
+  CROSS JOIN centre AS c
+)
+SELECT
+  COUNT(*) AS n_units,
+  SUM(w * w) AS sum_w2,
+  SUM(w * w * x1) AS sum_w2_t,
+  SUM(w * x0 * x0) AS xtx_0_0,
+  SUM(w * x0 * x1) AS xtx_0_1,
+  SUM(w * x0 * x2) AS xtx_0_2,
+  SUM(w * x0 * x3) AS xtx_0_3,
+  SUM(w * x0 * x4) AS xtx_0_4,
+  SUM(w * x0 * x5) AS xtx_0_5,
+  SUM(w * x0 * x6) AS xtx_0_6,
+  SUM(w * x1 * x1) AS xtx_1_1,
+  SUM(w * x1 * x2) AS xtx_1_2,
+  SUM(w * x1 * x3) AS xtx_1_3,
+  SUM(w * x1 * x4) AS xtx_1_4,
+  SUM(w * x1 * x5) AS xtx_1_5,
+  SUM(w * x1 * x6) AS xtx_1_6,
+  SUM(w * x2 * x2) AS xtx_2_2,
+  SUM(w * x2 * x3) AS xtx_2_3,
+  SUM(w * x2 * x4) AS xtx_2_4,
+  SUM(w * x2 * x5) AS xtx_2_5,
+  SUM(w * x2 * x6) AS xtx_2_6,
+  SUM(w * x3 * x3) AS xtx_3_3,
+  SUM(w * x3 * x4) AS xtx_3_4,
+  SUM(w * x3 * x5) AS xtx_3_5,
+  SUM(w * x3 * x6) AS xtx_3_6,
+  SUM(w * x4 * x4) AS xtx_4_4,
+  SUM(w * x4 * x5) AS xtx_4_5,
+  SUM(w * x4 * x6) AS xtx_4_6,
+  SUM(w * x5 * x5) AS xtx_5_5,
+  SUM(w * x5 * x6) AS xtx_5_6,
+  SUM(w * x6 * x6) AS xtx_6_6,
+  MAX(cv0) AS pre_trips__centre,
+  MAX(cv1) AS pre_minutes__centre,
+  MAX(cv2) AS pre_fare_per_trip__centre,
+  MAX(cv3) AS pre_active_days__centre,
+  MAX(cv4) AS pre_days_since_last__centre,
+  SUM(w * x0 * y0) AS post_trips__xty_0,
+  SUM(w * x1 * y0) AS post_trips__xty_1,
+  SUM(w * x2 * y0) AS post_trips__xty_2,
+  SUM(w * x3 * y0) AS post_trips__xty_3,
+  SUM(w * x4 * y0) AS post_trips__xty_4,
+  SUM(w * x5 * y0) AS post_trips__xty_5,
+  SUM(w * x6 * y0) AS post_trips__xty_6,
+  SUM(w * y0 * y0) AS post_trips__yty,
+  SUM(w * x1 * y0 * y0) AS post_trips__tyy,
+  MAX(cy0) AS post_trips__centre,
+  SUM(w * x0 * y1) AS post_minutes__xty_0,
+  SUM(w * x1 * y1) AS post_minutes__xty_1,
+  SUM(w * x2 * y1) AS post_minutes__xty_2,
+  SUM(w * x3 * y1) AS post_minutes__xty_3,
+  SUM(w * x4 * y1) AS post_minutes__xty_4,
+  SUM(w * x5 * y1) AS post_minutes__xty_5,
+  SUM(w * x6 * y1) AS post_minutes__xty_6,
+  SUM(w * y1 * y1) AS post_minutes__yty,
+  SUM(w * x1 * y1 * y1) AS post_minutes__tyy,
+  MAX(cy1) AS post_minutes__centre,
+  COUNT(y2) AS fare_per_trip__n_units,
+  SUM(wr2 * wr2) AS fare_per_trip__sum_w2,
+  SUM(wr2 * wr2 * x1) AS fare_per_trip__sum_w2_t,
+  SUM(wr2 * x0 * x0) AS fare_per_trip__xtx_0_0,
+  SUM(wr2 * x0 * x1) AS fare_per_trip__xtx_0_1,
+  SUM(wr2 * x0 * x2) AS fare_per_trip__xtx_0_2,
+  SUM(wr2 * x0 * x3) AS fare_per_trip__xtx_0_3,
+  SUM(wr2 * x0 * x4) AS fare_per_trip__xtx_0_4,
+  SUM(wr2 * x0 * x5) AS fare_per_trip__xtx_0_5,
+  SUM(wr2 * x0 * x6) AS fare_per_trip__xtx_0_6,
+  SUM(wr2 * x1 * x1) AS fare_per_trip__xtx_1_1,
+  SUM(wr2 * x1 * x2) AS fare_per_trip__xtx_1_2,
+  SUM(wr2 * x1 * x3) AS fare_per_trip__xtx_1_3,
+  SUM(wr2 * x1 * x4) AS fare_per_trip__xtx_1_4,
+  SUM(wr2 * x1 * x5) AS fare_per_trip__xtx_1_5,
+  SUM(wr2 * x1 * x6) AS fare_per_trip__xtx_1_6,
+  SUM(wr2 * x2 * x2) AS fare_per_trip__xtx_2_2,
+  SUM(wr2 * x2 * x3) AS fare_per_trip__xtx_2_3,
+  SUM(wr2 * x2 * x4) AS fare_per_trip__xtx_2_4,
+  SUM(wr2 * x2 * x5) AS fare_per_trip__xtx_2_5,
+  SUM(wr2 * x2 * x6) AS fare_per_trip__xtx_2_6,
+  SUM(wr2 * x3 * x3) AS fare_per_trip__xtx_3_3,
+  SUM(wr2 * x3 * x4) AS fare_per_trip__xtx_3_4,
+  SUM(wr2 * x3 * x5) AS fare_per_trip__xtx_3_5,
+  SUM(wr2 * x3 * x6) AS fare_per_trip__xtx_3_6,
+  SUM(wr2 * x4 * x4) AS fare_per_trip__xtx_4_4,
+  SUM(wr2 * x4 * x5) AS fare_per_trip__xtx_4_5,
+  SUM(wr2 * x4 * x6) AS fare_per_trip__xtx_4_6,
+  SUM(wr2 * x5 * x5) AS fare_per_trip__xtx_5_5,
+  SUM(wr2 * x5 * x6) AS fare_per_trip__xtx_5_6,
+  SUM(wr2 * x6 * x6) AS fare_per_trip__xtx_6_6,
+  SUM(wr2 * x0 * y2) AS fare_per_trip__xty_0,
+  SUM(wr2 * x1 * y2) AS fare_per_trip__xty_1,
+  SUM(wr2 * x2 * y2) AS fare_per_trip__xty_2,
+  SUM(wr2 * x3 * y2) AS fare_per_trip__xty_3,
+  SUM(wr2 * x4 * y2) AS fare_per_trip__xty_4,
+  SUM(wr2 * x5 * y2) AS fare_per_trip__xty_5,
+  SUM(wr2 * x6 * y2) AS fare_per_trip__xty_6,
+  SUM(wr2 * y2 * y2) AS fare_per_trip__yty,
+  SUM(wr2 * x1 * y2 * y2) AS fare_per_trip__tyy,
+  MAX(cy2) AS fare_per_trip__centre,
+  SUM(w * x0 * y3) AS active_last_month__xty_0,
+  SUM(w * x1 * y3) AS active_last_month__xty_1,
+  SUM(w * x2 * y3) AS active_last_month__xty_2,
+  SUM(w * x3 * y3) AS active_last_month__xty_3,
+  SUM(w * x4 * y3) AS active_last_month__xty_4,
+  SUM(w * x5 * y3) AS active_last_month__xty_5,
+  SUM(w * x6 * y3) AS active_last_month__xty_6,
+  SUM(w * y3 * y3) AS active_last_month__yty,
+  SUM(w * x1 * y3 * y3) AS active_last_month__tyy,
+  MAX(cy3) AS active_last_month__centre
+FROM design;

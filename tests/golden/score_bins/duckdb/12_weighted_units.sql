@@ -1,0 +1,66 @@
+-- sqlmatch study 'annual_pass', step 12: weighted_units (duckdb)
+-- Matching weights for the effect on the treated, beside every unit's features and outcomes (NULL if unmatched).
+-- kind: writes a table
+-- reads: sqlmatch.annual_pass_measures, sqlmatch.annual_pass_score_strata, sqlmatch.annual_pass_cells
+-- writes: sqlmatch.annual_pass_weighted_units
+
+DROP TABLE IF EXISTS "sqlmatch".annual_pass_weighted_units__building;
+
+CREATE TABLE "sqlmatch".annual_pass_weighted_units__building AS
+/* Propensity-score subclassification: weights for the effect on the treated, beside every study
+   unit's features and outcomes. Treated units weigh 1; a control unit in stratum s weighs
+   (n_T,s / n_C,s) * (N_C / N_T), N counting matched units, so control weights sum to the number
+   of matched controls. A unit left unmatched keeps its row with stratum and weight NULL (balance
+   before matching counts it). The balance, plot and effect steps after this one read this table
+   alone. */
+WITH coarsened AS (
+  SELECT
+    m.unit_key,
+    m.score_bin AS score_bin
+  FROM "sqlmatch".annual_pass_score_strata AS m
+), totals AS (
+  SELECT
+    SUM(n_treated) AS matched_treated,
+    SUM(n_control) AS matched_control
+  FROM "sqlmatch".annual_pass_cells
+  WHERE
+    NOT stratum IS NULL
+)
+SELECT
+  m.unit_key,
+  m.treated,
+  m.pre_trips,
+  m.pre_minutes,
+  m.pre_fare_per_trip,
+  m.pre_active_days,
+  m.pre_days_since_last,
+  m.post_trips,
+  m.post_minutes,
+  m.fare_per_trip__num,
+  m.fare_per_trip__den,
+  m.active_last_month,
+  m.age_band,
+  m.home_district,
+  s.stratum AS match__stratum,
+  CASE
+    WHEN s.stratum IS NULL
+    THEN NULL
+    WHEN m.treated = 1
+    THEN 1.0
+    ELSE (
+      CAST(s.n_treated AS DOUBLE) / NULLIF(s.n_control, 0)
+    ) * (
+      CAST(t.matched_control AS DOUBLE) / NULLIF(t.matched_treated, 0)
+    )
+  END AS match__weight
+FROM "sqlmatch".annual_pass_measures AS m
+LEFT JOIN coarsened AS c
+  ON c.unit_key = m.unit_key
+CROSS JOIN totals AS t
+LEFT JOIN "sqlmatch".annual_pass_cells AS s
+  ON s.score_bin = c.score_bin;
+
+DROP TABLE IF EXISTS "sqlmatch".annual_pass_weighted_units;
+
+ALTER TABLE "sqlmatch".annual_pass_weighted_units__building
+RENAME TO annual_pass_weighted_units;
