@@ -235,70 +235,9 @@ def measure_columns(spec: Spec) -> tuple[list[MeasureColumn], list[OutcomeColumn
     return cols, outcomes
 
 
-def newton_statement(spec: Spec, dialect: str, columns, beta) -> str:
-    """The aggregate query of one Newton step of the propensity model at coefficients `beta`."""
-    ctx = PlanContext(spec=spec, dialect=dialect)
-    return _newton_step(ctx, columns, beta).statements[0]
-
-
-def _newton_step(ctx: "PlanContext", columns, beta, name: str = "propensity_newton") -> Step:
-    from sqlmatch.propensity import ETA_CLAMP
-
-    return ctx.query_step(
-        name,
-        "propensity_newton",
-        reads=[ctx.display("score_cells")],
-        purpose="Propensity model: score vector, information matrix and log-likelihood at the coefficients shown.",
-        columns=columns,
-        beta=[float(b) for b in beta],
-        clamp=ETA_CLAMP,
-        sample_per_10000=_sample_per_10000(ctx.spec),
-        cells_table=ctx.table("score_cells"),
-    )
-
-
-def _sample_per_10000(spec: Spec) -> int:
-    return int(round(spec.propensity.sample_controls * 10000))
-
-
-def cells_step(ctx: "PlanContext") -> Step:
-    """The units grouped by their propensity features' values: every Newton step reads this."""
-    return ctx.table_step(
-        "propensity_cells",
-        "propensity_cells",
-        writes="score_cells",
-        reads=[ctx.display("measures")],
-        purpose="Units grouped by their values of the propensity features, with unit and treated counts (the data each Newton step sums over).",
-        features=list(ctx.spec.propensity.features),
-        sample_per_10000=_sample_per_10000(ctx.spec),
-        measures_table=ctx.table("measures"),
-    )
-
-
-def levels_step(ctx: "PlanContext") -> Step | None:
-    spec = ctx.spec
-    cats = [n for n in spec.propensity.features if spec.feature(n).categorical]
-    if not cats:
-        return None
-    return ctx.query_step(
-        "categorical_levels",
-        "categorical_levels",
-        reads=[ctx.display("measures")],
-        purpose="Levels of the categorical features of the propensity model.",
-        features=cats,
-        measures_table=ctx.table("measures"),
-    )
-
-
-def build_plan(spec: Spec, dialect: str = "duckdb", model=None, materialize: bool = False) -> Plan:
-    """The study's steps. For a score-based method without a fitted `model` the plan is partial:
-    it ends with the query for the categorical levels, and the runner fits the model and then
-    builds the full plan.
-
-    With `materialize`, every aggregate query instead writes a small table `<study>_agg_<step>`,
-    so a scheduler can run the whole plan and `sqlmatch report` read the results afterwards."""
-    dialect = dialects.check_dialect(dialect)
-    ctx = PlanContext(spec=spec, dialect=dialect)
+def source_steps(ctx: PlanContext, outcomes, columns) -> list[Step]:
+    """The study's units, the checks on them, and one pass over the events for every feature and outcome."""
+    spec, dialect = ctx.spec, ctx.dialect
     w = spec.windows
     control_from = w.post_end if spec.control_pool == "never_by_post_end" else w.cohort_end
     pool_text = (
@@ -306,7 +245,6 @@ def build_plan(spec: Spec, dialect: str = "duckdb", model=None, materialize: boo
         if spec.control_pool == "never_by_post_end"
         else f"never enrolled, or enrolled on or after {w.cohort_end} (not yet enrolled at the cohort month)"
     )
-    columns, outcomes = measure_columns(spec)
     units_src, events_src = spec.units.display, spec.events.display
 
     steps = [
@@ -375,24 +313,14 @@ def build_plan(spec: Spec, dialect: str = "duckdb", model=None, materialize: boo
             measures_table=ctx.table("measures"),
         )
     )
-    method = method_for(spec.matching.method)
-    if method.uses_score:
-        steps.append(cells_step(ctx))
-    if method.uses_score and model is None:
-        levels = levels_step(ctx)
-        steps += [levels] if levels else []
-        work_tables = tuple(t for s in steps for t in s.writes)
-        return Plan(study=spec.name, dialect=dialect, steps=tuple(steps), work_tables=work_tables, outcomes=tuple(outcomes), complete=False)
-    if method.uses_score:
-        steps.append(_newton_step(ctx, model.columns, model.coefficients, name="propensity_check"))
-    steps += method.steps(ctx, model)
-    numeric = [f.name for f in spec.numeric_features]
-    categorical = [f.name for f in spec.categorical_features]
-    # Stratum methods write <study>_weighted_units themselves (one row per unit); a method that lists
-    # matches (nearest neighbours: one row per treated-control pair) writes <study>_match_weights, and
-    # this step puts the per-unit sum of its weights beside each unit's measures.
-    per_match = not any(ctx.display("weighted_units") in s.writes for s in steps)
-    if per_match:
+    return steps
+
+
+def matching_steps(ctx: PlanContext, model) -> list[Step]:
+    """The method's steps; a method that lists matches (one row per match) gets the step that sums
+    them per unit into <study>_weighted_units, which every later step reads."""
+    steps = list(method_for(ctx.spec.matching.method).steps(ctx, model))
+    if not any(ctx.display("weighted_units") in s.writes for s in steps):
         steps.append(
             ctx.table_step(
                 "weighted_units",
@@ -405,6 +333,16 @@ def build_plan(spec: Spec, dialect: str = "duckdb", model=None, materialize: boo
                 columns=ctx.weighted_columns(),
             )
         )
+    return steps
+
+
+def balance_steps(ctx: PlanContext) -> list[Step]:
+    """Balance before and after matching, the L1 imbalance and the binned distributions for plots."""
+    spec = ctx.spec
+    method = method_for(spec.matching.method)
+    steps: list[Step] = []
+    numeric = [f.name for f in spec.numeric_features]
+    categorical = [f.name for f in spec.categorical_features]
     weighted = [ctx.display("weighted_units")]
     steps.append(
         ctx.query_step(
@@ -465,6 +403,15 @@ def build_plan(spec: Spec, dialect: str = "duckdb", model=None, materialize: boo
                 weighted_table=ctx.table("weighted_units"),
             )
         )
+    return steps
+
+
+def outcome_steps(ctx: PlanContext, outcomes, per_match: bool) -> list[Step]:
+    """Outcome sums per stratum and group (matched and naive) and the regression cross-products."""
+    spec = ctx.spec
+    weighted = [ctx.display("weighted_units")]
+    numeric = [f.name for f in spec.numeric_features]
+    steps: list[Step] = []
     for matched in (True, False):
         steps.append(
             ctx.query_step(
@@ -495,6 +442,33 @@ def build_plan(spec: Spec, dialect: str = "duckdb", model=None, materialize: boo
             weighted_table=ctx.table("weighted_units"),
         )
     )
+    return steps
+
+
+def build_plan(spec: Spec, dialect: str = "duckdb", model=None, materialize: bool = False) -> Plan:
+    """The study's steps, stage by stage: sources, propensity model (score-based methods),
+    matching, balance, outcomes. For a score-based method without a fitted `model` the plan is
+    partial: it ends with the propensity model's data, and the runner fits the model and then
+    builds the full plan.
+
+    With `materialize`, every aggregate query instead writes a small table `<study>_agg_<step>`,
+    so a scheduler can run the whole plan and `sqlmatch report` read the results afterwards."""
+    from sqlmatch import propensity
+
+    dialect = dialects.check_dialect(dialect)
+    ctx = PlanContext(spec=spec, dialect=dialect)
+    columns, outcomes = measure_columns(spec)
+    method = method_for(spec.matching.method)
+    steps = source_steps(ctx, outcomes, columns)
+    if method.uses_score:
+        steps += propensity.plan_steps(ctx, model)
+        if model is None:
+            work_tables = tuple(t for s in steps for t in s.writes)
+            return Plan(study=spec.name, dialect=dialect, steps=tuple(steps), work_tables=work_tables, outcomes=tuple(outcomes), complete=False)
+    matched = matching_steps(ctx, model)
+    # per-match methods are read from <study>_match_weights by the per-stratum outcome query
+    per_match = any(s.name == "weighted_units" and ctx.display("match_weights") in s.reads for s in matched)
+    steps += matched + balance_steps(ctx) + outcome_steps(ctx, outcomes, per_match)
     if materialize:
         steps = [ctx.materialized(s) if s.kind == "query" else s for s in steps]
     work_tables = tuple(t for s in steps for t in s.writes)

@@ -293,3 +293,72 @@ def _collinear(h: np.ndarray, columns: list[DesignColumn]) -> str:
 
 def logit(p: float) -> float:
     return math.log(p / (1 - p))
+
+
+# ---------------------------------------------------------------- plan steps
+
+
+def newton_statement(spec, dialect: str, columns, beta) -> str:
+    """The aggregate query of one Newton step of the propensity model at coefficients `beta`."""
+    from sqlmatch.plan import PlanContext
+
+    ctx = PlanContext(spec=spec, dialect=dialect)
+    return newton_step(ctx, columns, beta).statements[0]
+
+
+def newton_step(ctx, columns, beta, name: str = "propensity_newton"):
+    return ctx.query_step(
+        name,
+        "propensity_newton",
+        reads=[ctx.display("score_cells")],
+        purpose="Propensity model: score vector, information matrix and log-likelihood at the coefficients shown.",
+        columns=columns,
+        beta=[float(b) for b in beta],
+        clamp=ETA_CLAMP,
+        sample_per_10000=_sample_per_10000(ctx.spec),
+        cells_table=ctx.table("score_cells"),
+    )
+
+
+def _sample_per_10000(spec) -> int:
+    return int(round(spec.propensity.sample_controls * 10000))
+
+
+def cells_step(ctx):
+    """The units grouped by their propensity features' values: every Newton step reads this."""
+    return ctx.table_step(
+        "propensity_cells",
+        "propensity_cells",
+        writes="score_cells",
+        reads=[ctx.display("measures")],
+        purpose="Units grouped by their values of the propensity features, with unit and treated counts (the data each Newton step sums over).",
+        features=list(ctx.spec.propensity.features),
+        sample_per_10000=_sample_per_10000(ctx.spec),
+        measures_table=ctx.table("measures"),
+    )
+
+
+def levels_step(ctx):
+    spec = ctx.spec
+    cats = [n for n in spec.propensity.features if spec.feature(n).categorical]
+    if not cats:
+        return None
+    return ctx.query_step(
+        "categorical_levels",
+        "categorical_levels",
+        reads=[ctx.display("measures")],
+        purpose="Levels of the categorical features of the propensity model.",
+        features=cats,
+        measures_table=ctx.table("measures"),
+    )
+
+
+def plan_steps(ctx, model) -> list:
+    """The propensity model's steps in a plan: the units grouped by feature values (what every
+    Newton step sums over), then, without a fitted model, the categorical levels the runner needs
+    to fit one; with one, the Newton-step aggregates at its coefficients (the stored-model check)."""
+    steps = [cells_step(ctx)]
+    if model is None:
+        levels = levels_step(ctx)
+        return steps + ([levels] if levels else [])
+    return steps + [newton_step(ctx, model.columns, model.coefficients, name="propensity_check")]

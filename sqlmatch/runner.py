@@ -260,7 +260,7 @@ def _run_steps(plan: Plan, spec: Spec, engine: Engine, out: RunOutput, progress:
 def fit_propensity(spec: Spec, engine: Engine, out: RunOutput, progress: Progress):
     """Newton-Raphson in the warehouse: one aggregate query per step (see propensity.py)."""
     from sqlmatch import propensity
-    from sqlmatch.plan import newton_statement
+    from sqlmatch.propensity import newton_statement
 
     levels: dict[str, list[str]] = {}
     if "categorical_levels" in out.results:
