@@ -81,10 +81,10 @@ def run(replicates: int, riders: int, first_seed: int, methods: list[str], work:
             for e in results.effects:
                 t = truth[e.outcome]
                 records.append(dict(seed=seed, method=method, row=e.outcome, kind=e.kind, truth=t, estimate=e.estimate, se=e.std_error, lo=e.ci_low, hi=e.ci_high))
-                records.append(dict(seed=seed, method=method, row=f"{e.outcome} (unmatched)", kind=e.kind, truth=t, estimate=e.naive_estimate, se=e.naive_std_error, lo=e.naive_ci_low, hi=e.naive_ci_high))
-                if e.did_estimate is not None:
+                records.append(dict(seed=seed, method=method, row=f"{e.outcome} (unmatched)", kind=e.kind, truth=t, estimate=e.naive.estimate, se=e.naive.std_error, lo=e.naive.ci_low, hi=e.naive.ci_high))
+                if e.did is not None:
                     records.append(
-                        dict(seed=seed, method=method, row=f"{e.outcome} − {e.did_twin} (DiD)", kind=e.kind, truth=t, estimate=e.did_estimate, se=e.did_std_error, lo=e.did_ci_low, hi=e.did_ci_high)
+                        dict(seed=seed, method=method, row=f"{e.outcome} − {e.did_twin} (DiD)", kind=e.kind, truth=t, estimate=e.did.estimate, se=e.did.std_error, lo=e.did.ci_low, hi=e.did.ci_high)
                     )
         shutil.rmtree(folder, ignore_errors=True)
         print(f"calibration: seed {seed} done ({k + 1}/{replicates})", file=log, flush=True)

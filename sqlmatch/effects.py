@@ -15,7 +15,7 @@ from sqlmatch.estimators.binary import risk_ratio
 from sqlmatch.estimators.ratio import ratio_effect
 from sqlmatch.estimators.regression import wls_from_moments
 from sqlmatch.plan import L1_BINS, Plan
-from sqlmatch.results import Effect, MatchingSummary, StudyResults
+from sqlmatch.results import Effect, Interval, MatchingSummary, StudyResults
 from sqlmatch.runner import RunOutput
 from sqlmatch.sensitivity import e_value, e_value_continuous, plain_words, robustness_value, rosenbaum_from_signed_rank
 from sqlmatch.spec import Spec
@@ -97,7 +97,7 @@ def outcome_effect(outcome, matched, unmatched, regression=None, features=(), me
             mean_control=m.control.estimate,
         )
         # Lift R_1 / R_0 - 1, interval on the log scale (estimators/ratio.py).
-        extra.update(lift=m.lift, lift_std_error=m.lift_std_error, lift_ci_low=m.lift_ci_low, lift_ci_high=m.lift_ci_high)
+        extra.update(lift=_interval(m.lift, m.lift_std_error, m.lift_ci_low, m.lift_ci_high))
     else:
         t_mom, c_mom = aggregates.outcome_moments(matched, outcome.name)
         m = stratified_att(t_mom, c_mom)
@@ -132,34 +132,30 @@ def outcome_effect(outcome, matched, unmatched, regression=None, features=(), me
             keep = (t_mom.n > 0) & (c_mom.n > 0)
             rr = risk_ratio(t_mom.total[keep], t_mom.n[keep], c_mom.total[keep], c_mom.n[keep])
             extra.update(
-                risk_ratio=rr.estimate,
-                risk_ratio_ci_low=rr.ci_low,
-                risk_ratio_ci_high=rr.ci_high,
-                lift=rr.lift,
-                lift_std_error=rr.std_error,
-                lift_ci_low=rr.lift_ci_low,
-                lift_ci_high=rr.lift_ci_high,
+                risk_ratio=_interval(rr.estimate, rr.std_error, rr.ci_low, rr.ci_high),
+                lift=_interval(rr.lift, rr.std_error, rr.lift_ci_low, rr.lift_ci_high),
             )
         else:
             lift = relative_lift(m.mean_treated, m.var_mean_treated, m.mean_control, m.var_mean_control)
-            extra.update(lift=lift.estimate, lift_std_error=lift.std_error, lift_ci_low=lift.ci_low, lift_ci_high=lift.ci_high)
+            extra.update(lift=_interval(lift.estimate, lift.std_error, lift.ci_low, lift.ci_high))
         if getattr(outcome, "twin", None):
             # Difference-in-differences on the matched sample: the same stratified estimator
             # applied to (outcome - twin), per-stratum sums from the outcome_strata query.
             did = stratified_att(*aggregates.outcome_moments(matched, outcome.name, "did"))
-            extra.update(did_twin=outcome.twin, did_estimate=did.estimate, did_std_error=did.std_error, did_ci_low=did.ci_low, did_ci_high=did.ci_high)
+            extra.update(did_twin=outcome.twin, did=_interval(did.estimate, did.std_error, did.ci_low, did.ci_high))
     sensitivity = outcome_sensitivity(outcome, fields, rr, regression, list(features), method, pair_ranks, treatment_words)
     return Effect(
         outcome=outcome.name,
         kind=outcome.kind,
         **fields,
-        naive_estimate=n.estimate,
-        naive_std_error=n.std_error,
-        naive_ci_low=n.ci_low,
-        naive_ci_high=n.ci_high,
-        **{k: _finite(v) for k, v in extra.items()},
+        naive=_interval(n.estimate, n.std_error, n.ci_low, n.ci_high),
+        **extra,
         sensitivity=sensitivity,
     )
+
+
+def _interval(estimate, std_error, ci_low, ci_high) -> Interval:
+    return Interval(*(_finite(x) for x in (estimate, std_error, ci_low, ci_high)))
 
 
 def _finite(x):

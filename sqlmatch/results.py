@@ -35,6 +35,16 @@ def _num(x):
 
 
 @dataclass(frozen=True)
+class Interval:
+    """A point estimate with its standard error and 95% interval (None where undefined)."""
+
+    estimate: float | None
+    std_error: float | None = None
+    ci_low: float | None = None
+    ci_high: float | None = None
+
+
+@dataclass(frozen=True)
 class Effect:
     outcome: str
     kind: str  # continuous | binary | ratio
@@ -47,25 +57,15 @@ class Effect:
     n_control: int
     mean_treated: float | None
     mean_control: float | None
-    naive_estimate: float | None
-    naive_std_error: float | None
-    naive_ci_low: float | None
-    naive_ci_high: float | None
+    # the same comparison before matching
+    naive: Interval = Interval(None)
     # relative lift: effect / comparison mean (= mean_treated / mean_control - 1); binary: RR - 1
-    lift: float | None = None
-    lift_std_error: float | None = None
-    lift_ci_low: float | None = None
-    lift_ci_high: float | None = None
+    lift: Interval = Interval(None)
     # binary outcomes: risk ratio p_1 / p_0 (the risk difference is `estimate`)
-    risk_ratio: float | None = None
-    risk_ratio_ci_low: float | None = None
-    risk_ratio_ci_high: float | None = None
+    risk_ratio: Interval | None = None
     # difference-in-differences: effect on (outcome - did_twin), the twin a pre-window feature
     did_twin: str | None = None
-    did_estimate: float | None = None
-    did_std_error: float | None = None
-    did_ci_low: float | None = None
-    did_ci_high: float | None = None
+    did: Interval | None = None
     # e_value, e_value_ci, robustness_value, robustness_value_alpha, partial_r2, t_statistic, df,
     # rosenbaum (+ rosenbaum_reason when null), sentence, and what they were computed from
     sensitivity: dict = field(default_factory=dict)

@@ -77,5 +77,5 @@ def test_nsw_coarsened_exact_matching(tmp_path):
     effect = results.effect("earnings_after")
     low, high = EXPERIMENTAL_INTERVAL
     assert low <= effect.estimate <= high
-    assert not low <= effect.naive_estimate <= high
+    assert not low <= effect.naive.estimate <= high
     assert results.imbalance["l1_after"] < results.imbalance["l1_before"]

@@ -61,8 +61,8 @@ def test_naive_difference_misses_the_truth(demo_run):
     _, results = demo_run
     truth = results["demo_truth"]["post_trips"]
     effect = next(e for e in results["effects"] if e["outcome"] == "post_trips")
-    assert not effect["naive_ci_low"] <= truth <= effect["naive_ci_high"]
-    assert effect["naive_estimate"] > truth
+    assert not effect["naive"]["ci_low"] <= truth <= effect["naive"]["ci_high"]
+    assert effect["naive"]["estimate"] > truth
 
 
 def test_matching_balances_the_features(demo_run):

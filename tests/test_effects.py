@@ -94,13 +94,13 @@ def test_continuous_lift_equals_the_rows(study, outcome):
     m1 = t[outcome].mean()
     m0 = np.average(c[outcome], weights=c.weight)  # weighted control mean (matching weights)
     e = results.effect(outcome)
-    assert e.lift == pytest.approx(m1 / m0 - 1, rel=1e-9)
-    assert e.lift == pytest.approx(e.estimate / e.mean_control, rel=1e-9)
+    assert e.lift.estimate == pytest.approx(m1 / m0 - 1, rel=1e-9)
+    assert e.lift.estimate == pytest.approx(e.estimate / e.mean_control, rel=1e-9)
     v1, v0 = _stratified_mean_variances(matched, outcome)
     log_se = math.sqrt(v1 / m1**2 + v0 / m0**2)
-    assert e.lift_ci_low == pytest.approx(math.exp(math.log(m1 / m0) - Z95 * log_se) - 1, rel=1e-9)
-    assert e.lift_ci_high == pytest.approx(math.exp(math.log(m1 / m0) + Z95 * log_se) - 1, rel=1e-9)
-    assert e.lift_ci_low < e.lift < e.lift_ci_high
+    assert e.lift.ci_low == pytest.approx(math.exp(math.log(m1 / m0) - Z95 * log_se) - 1, rel=1e-9)
+    assert e.lift.ci_high == pytest.approx(math.exp(math.log(m1 / m0) + Z95 * log_se) - 1, rel=1e-9)
+    assert e.lift.ci_low < e.lift.estimate < e.lift.ci_high
 
 
 def test_lift_standard_error_is_the_delta_method_by_numerical_gradient():
@@ -137,11 +137,11 @@ def test_binary_risk_ratio_equals_the_rows(study):
     var0 = float((w**2 * p0s * (1 - p0s) / n0).sum())
     log_se = math.sqrt(var1 / p1**2 + var0 / p0**2)
     e = results.effect("active_last_month")
-    assert e.risk_ratio == pytest.approx(p1 / p0, rel=1e-9)
-    assert e.risk_ratio_ci_low == pytest.approx(math.exp(math.log(p1 / p0) - Z95 * log_se), rel=1e-9)
-    assert e.risk_ratio_ci_high == pytest.approx(math.exp(math.log(p1 / p0) + Z95 * log_se), rel=1e-9)
-    assert e.lift == pytest.approx(p1 / p0 - 1, rel=1e-9)
-    assert e.lift_ci_low == pytest.approx(e.risk_ratio_ci_low - 1, rel=1e-9)
+    assert e.risk_ratio.estimate == pytest.approx(p1 / p0, rel=1e-9)
+    assert e.risk_ratio.ci_low == pytest.approx(math.exp(math.log(p1 / p0) - Z95 * log_se), rel=1e-9)
+    assert e.risk_ratio.ci_high == pytest.approx(math.exp(math.log(p1 / p0) + Z95 * log_se), rel=1e-9)
+    assert e.lift.estimate == pytest.approx(p1 / p0 - 1, rel=1e-9)
+    assert e.lift.ci_low == pytest.approx(e.risk_ratio.ci_low - 1, rel=1e-9)
     assert e.estimate == pytest.approx(p1 - p0, rel=1e-9)  # the risk difference stays the effect
 
 
@@ -153,9 +153,9 @@ def test_ratio_lift_equals_weighted_sums(study):
         g = matched[matched.treated == t]
         r[t] = (g.weight * g.fare_per_trip__num).sum() / (g.weight * g.fare_per_trip__den).sum()
     e = results.effect("fare_per_trip")
-    assert e.lift == pytest.approx(r[1] / r[0] - 1, rel=1e-9)
-    assert e.lift_ci_low < e.lift < e.lift_ci_high
-    assert e.risk_ratio is None and e.did_estimate is None
+    assert e.lift.estimate == pytest.approx(r[1] / r[0] - 1, rel=1e-9)
+    assert e.lift.ci_low < e.lift.estimate < e.lift.ci_high
+    assert e.risk_ratio is None and e.did is None
 
 
 # ---------------------------------------------------------------------------------------------
@@ -269,11 +269,11 @@ def test_e_value_of_a_difference_uses_the_pooled_sd(study, outcome, kind):
 def test_e_value_of_a_binary_outcome_uses_the_risk_ratio(study):
     _, _, results, _ = study
     e = results.effect("active_last_month")
-    ref = e_value(e.risk_ratio, e.risk_ratio_ci_low, e.risk_ratio_ci_high)
+    ref = e_value(e.risk_ratio.estimate, e.risk_ratio.ci_low, e.risk_ratio.ci_high)
     assert e.sensitivity["e_value"] == pytest.approx(ref.point, rel=1e-12)
     assert e.sensitivity["e_value_ci"] == pytest.approx(ref.ci, rel=1e-12)
     # VanderWeele & Ding (2017): E = RR + sqrt(RR (RR - 1)) for RR > 1
-    rr = e.risk_ratio
+    rr = e.risk_ratio.estimate
     assert e.sensitivity["e_value"] == pytest.approx(rr + math.sqrt(rr * (rr - 1)), rel=1e-12)
 
 
@@ -296,7 +296,7 @@ def test_robustness_value_and_sentence_are_wired(study, outcome, kind):
 
 def _rr_limits(e, kind):
     if kind == "binary":
-        return e.risk_ratio_ci_low, e.risk_ratio_ci_high
+        return e.risk_ratio.ci_low, e.risk_ratio.ci_high
     ev = e_value_continuous(e.estimate, e.std_error, e.sensitivity["e_value_sd"])
     return ev.rr_ci_low, ev.rr_ci_high
 
@@ -309,7 +309,7 @@ def test_rosenbaum_is_null_with_a_reason_without_pairs(study):
         assert s["rosenbaum"] is None
         assert "1:1 matched pairs" in s["rosenbaum_reason"] and "coarsened_exact" in s["rosenbaum_reason"]
         assert {"e_value", "e_value_ci", "robustness_value", "robustness_value_alpha", "partial_r2", "t_statistic", "df", "sentence"} <= set(s)
-        assert {"lift", "lift_ci_low", "lift_ci_high", "risk_ratio", "did_estimate"} <= set(effect)
+        assert {"lift", "risk_ratio", "did"} <= set(effect) and {"estimate", "ci_low", "ci_high"} <= set(effect["lift"])
 
 
 @pytest.mark.parametrize("seed, shift", [(1, 0.4), (2, -0.3)])
@@ -346,19 +346,19 @@ def test_did_equals_pandas(study):
     did = float((w * (g[1] - g[0])).sum())
     e = results.effect("post_trips")
     assert e.did_twin == "pre_trips"
-    assert e.did_estimate == pytest.approx(did, rel=1e-9)
+    assert e.did.estimate == pytest.approx(did, rel=1e-9)
     fit = sm.WLS(matched["diff"], sm.add_constant(matched.treated.astype(float)), weights=matched.weight).fit()
-    assert e.did_estimate == pytest.approx(fit.params["treated"], rel=1e-9)
+    assert e.did.estimate == pytest.approx(fit.params["treated"], rel=1e-9)
     v1, v0 = _stratified_mean_variances(matched, "diff")
-    assert e.did_std_error == pytest.approx(math.sqrt(v1 + v0), rel=1e-9)
-    assert e.did_ci_low == pytest.approx(did - Z95 * e.did_std_error, rel=1e-9)
+    assert e.did.std_error == pytest.approx(math.sqrt(v1 + v0), rel=1e-9)
+    assert e.did.ci_low == pytest.approx(did - Z95 * e.did.std_error, rel=1e-9)
 
 
 def test_report_shows_lift_sensitivity_and_assumptions(study):
     _, _, results, _ = study
     text = render_markdown(results)
     e = results.effect("post_trips")
-    assert f"{100 * e.lift:+.1f}%" in text
+    assert f"{100 * e.lift.estimate:+.1f}%" in text
     assert "## Sensitivity to unmeasured confounding" in text and "## Assumptions and cautions" in text
     assert e.sensitivity["sentence"] in text
     assert "adjusting for the numeric features" in text

@@ -406,8 +406,8 @@ def test_nsw_att_inside_the_experimental_interval(nsw_db, replacement):
     effect = results.effect("earnings_after")
     low, high = EXPERIMENTAL_INTERVAL
     assert low <= effect.estimate <= high, (effect.estimate, DW_MATCHING)
-    assert effect.naive_estimate == pytest.approx(-8498, abs=1)
-    assert not low <= effect.naive_estimate <= high
+    assert effect.naive.estimate == pytest.approx(-8498, abs=1)
+    assert not low <= effect.naive.estimate <= high
     table = "nearest_neighbour_matches" if replacement else "pairs"
     with duckdb.connect(nsw_db, read_only=True) as con:
         m = con.execute(f"SELECT treated_key, control_key FROM sqlmatch.nsw_{table}").df()

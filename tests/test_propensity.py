@@ -207,8 +207,8 @@ def test_nsw_att_inside_the_experimental_interval(nsw_db, bins):
     low, high = EXPERIMENTAL_INTERVAL
     assert low <= effect.estimate <= high, (effect.estimate, DW_STRATIFICATION)
     assert effect.ci_low < high and effect.ci_high > low  # the intervals overlap
-    assert not low <= effect.naive_estimate <= high
-    assert effect.naive_estimate == pytest.approx(-8498, abs=1)
+    assert not low <= effect.naive.estimate <= high
+    assert effect.naive.estimate == pytest.approx(-8498, abs=1)
 
 
 def test_method_override_on_the_command_line(demo_dir, tmp_path, capsys):

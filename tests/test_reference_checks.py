@@ -125,7 +125,7 @@ def test_ratio_outcome_equals_weighted_sums(study):
 def test_naive_difference_equals_pandas(study):
     _, results, rows = study
     means = rows.groupby("treated").post_trips.mean()
-    assert results.effect("post_trips").naive_estimate == pytest.approx(means[1] - means[0], rel=1e-9)
+    assert results.effect("post_trips").naive.estimate == pytest.approx(means[1] - means[0], rel=1e-9)
 
 
 def test_matching_counts_equal_the_rows(study):

@@ -83,8 +83,8 @@ def effects_plot(r: StudyResults) -> str:
         if e.ci_low is not None:
             ax.plot([e.ci_low, e.ci_high], [0, 0], color="black", lw=2)
         ax.scatter([e.estimate], [0], color="black", zorder=3, label="matched estimate, 95% interval")
-        if e.naive_estimate is not None:
-            ax.scatter([e.naive_estimate], [0], facecolors="none", edgecolors=GREY, zorder=3, label="unmatched difference")
+        if e.naive.estimate is not None:
+            ax.scatter([e.naive.estimate], [0], facecolors="none", edgecolors=GREY, zorder=3, label="unmatched difference")
         truth = (r.demo_truth or {}).get(e.outcome)
         if truth is not None:
             ax.scatter([truth], [0], marker="x", color=TREATED, zorder=4, label="simulated truth (demo)")
@@ -185,7 +185,7 @@ def render_html(r: StudyResults) -> str:
     for e in r.effects:
         parts.append(
             f"<tr><td>{_e(e.outcome)} <span class='note'>({_e(e.kind)})</span></td><td>{_fmt(e.estimate)}</td>"
-            f"<td>[{_fmt(e.ci_low)}, {_fmt(e.ci_high)}]</td><td>{_fmt(e.mean_treated)}</td><td>{_fmt(e.mean_control)}</td><td>{_fmt(e.naive_estimate)}</td></tr>"
+            f"<td>[{_fmt(e.ci_low)}, {_fmt(e.ci_high)}]</td><td>{_fmt(e.mean_treated)}</td><td>{_fmt(e.mean_control)}</td><td>{_fmt(e.naive.estimate)}</td></tr>"
         )
     parts.append("</table>")
     sentences = [getattr(e, "sensitivity", None) for e in r.effects]

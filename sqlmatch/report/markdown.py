@@ -47,15 +47,15 @@ def _effect_notes(r: StudyResults) -> list[str]:
         if e.kind == "binary" and e.risk_ratio is not None:
             lines.append(
                 f"- **{e.outcome}** (binary): the effect above is the risk difference; the risk ratio is "
-                f"{_x(e.risk_ratio, 2)} {_interval(e.risk_ratio_ci_low, e.risk_ratio_ci_high, 2)}, i.e. the enrolled were "
-                f"{_x(e.risk_ratio, 2)} times as likely to have the outcome as comparable non-enrolled units."
+                f"{_x(e.risk_ratio.estimate, 2)} {_interval(e.risk_ratio.ci_low, e.risk_ratio.ci_high, 2)}, i.e. the enrolled were "
+                f"{_x(e.risk_ratio.estimate, 2)} times as likely to have the outcome as comparable non-enrolled units."
             )
     w = r.windows
     for e in r.effects:
         if e.did_twin:
             lines.append(
                 f"- **{e.outcome} − {e.did_twin}** (difference-in-differences on the matched sample): "
-                f"{_x(e.did_estimate)} {_interval(e.did_ci_low, e.did_ci_high)}. The two measures are compared as they "
+                f"{_x(e.did.estimate)} {_interval(e.did.ci_low, e.did.ci_high)}. The two measures are compared as they "
                 f"are: {e.did_twin} covers the pre window ({_length(w['pre'], w['unit'])}), {e.outcome} the post window "
                 f"({_length(w['post'], w['unit'])}); no rescaling to a common length."
             )
@@ -140,8 +140,8 @@ def render_markdown(r: StudyResults, balance_image: str | None = None) -> str:
     ]
     for e in r.effects:
         lines.append(
-            f"| {e.outcome} | {e.kind} | {_x(e.estimate)} | {_interval(e.ci_low, e.ci_high)} | {_pct(e.lift)} | "
-            f"{_pct_interval(e.lift_ci_low, e.lift_ci_high)} | {_x(e.mean_treated)} | {_x(e.mean_control)} | {_x(e.naive_estimate)} |"
+            f"| {e.outcome} | {e.kind} | {_x(e.estimate)} | {_interval(e.ci_low, e.ci_high)} | {_pct(e.lift.estimate)} | "
+            f"{_pct_interval(e.lift.ci_low, e.lift.ci_high)} | {_x(e.mean_treated)} | {_x(e.mean_control)} | {_x(e.naive.estimate)} |"
         )
     lines += [
         "",
