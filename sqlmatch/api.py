@@ -131,7 +131,9 @@ def run(
 
 
 def cleanup(spec: Spec, engine: Engine | None = None, database: str | None = None, engine_url: str | None = None) -> list[str]:
-    """Drop every table this study writes (and half-built leftovers); returns their names."""
+    """Drop every table this study's plan can write (and half-built leftovers of them), nothing
+    else; returns the distinct names dropped."""
+    from sqlmatch.plan import writable_tables
     from sqlmatch.runner import drop_stray_tables, drop_work_tables
 
     own = engine is None
@@ -139,26 +141,12 @@ def cleanup(spec: Spec, engine: Engine | None = None, database: str | None = Non
     try:
         # Under the study's lock: cleanup must not drop the tables of a run still going.
         with engine.study_lock(spec.work_schema, spec.name):
-            present = set(engine.table_names(spec.work_schema))
-            plan = build_plan(spec, engine.dialect, model=_stand_in_model(spec))
-            dropped = [t for t in plan.work_tables if t.split(".", 1)[1] in present]
-            dropped += [f"{spec.work_schema}.{n}" for n in drop_stray_tables(spec, engine)]
-            drop_work_tables(plan, engine)
+            dropped = [f"{spec.work_schema}.{n}" for n in drop_stray_tables(spec, engine)]
+            dropped += drop_work_tables(writable_tables(spec, engine.dialect), engine)
     finally:
         if own:
             engine.close()
-    return dropped
-
-
-def _stand_in_model(spec: Spec):
-    """Table names do not depend on coefficients: a placeholder model lets a score-based plan
-    list every table it writes."""
-    from sqlmatch.matching import method_for
-    from sqlmatch.propensity import DesignColumn, FittedModel
-
-    if not method_for(spec.matching.method).uses_score:
-        return None
-    return FittedModel([DesignColumn("intercept", "intercept")], [0.0], 0, 0.0, 0, "-", {})
+    return sorted(set(dropped))
 
 
 def write_results(results: StudyResults, out_dir: str | Path) -> list[Path]:

@@ -464,6 +464,7 @@ def build_plan(spec: Spec, dialect: str = "duckdb", model=None, materialize: boo
         steps += propensity.plan_steps(ctx, model)
         if model is None:
             work_tables = tuple(t for s in steps for t in s.writes)
+            check_work_tables(spec, work_tables)
             return Plan(study=spec.name, dialect=dialect, steps=tuple(steps), work_tables=work_tables, outcomes=tuple(outcomes), complete=False)
     matched = matching_steps(ctx, model)
     # per-match methods are read from <study>_match_weights by the per-stratum outcome query
@@ -472,4 +473,48 @@ def build_plan(spec: Spec, dialect: str = "duckdb", model=None, materialize: boo
     if materialize:
         steps = [ctx.materialized(s) if s.kind == "query" else s for s in steps]
     work_tables = tuple(t for s in steps for t in s.writes)
+    check_work_tables(spec, work_tables)
     return Plan(study=spec.name, dialect=dialect, steps=tuple(steps), work_tables=work_tables, outcomes=tuple(outcomes))
+
+
+def check_work_tables(spec: Spec, work_tables) -> None:
+    """Refuse a study whose work tables would overwrite a table sqlmatch does not own: a source
+    table, or the results history. Names are compared without regard to case (DuckDB and unquoted
+    names elsewhere fold case), and a source named without a schema is assumed to be anywhere."""
+    from sqlmatch.errors import SpecError
+
+    if "." in spec.work_schema:
+        raise SpecError("study.work_schema", f"{spec.work_schema!r} names more than one level (a dot).", "name one schema, e.g. work_schema = \"sqlmatch\".")
+    mine = {}
+    for table in work_tables:
+        schema, name = table.split(".", 1)
+        for n in (name, name + dialects.BUILDING_SUFFIX):
+            mine[(schema.lower(), n.lower())] = f"{schema}.{n}"
+    sources = [("units.table", spec.units), ("events.table", spec.events)]
+    for key, ref in sources:
+        hits = [t for (schema, n), t in mine.items() if n == ref.name.lower() and (ref.schema is None or ref.schema.lower() == schema)]
+        if hits:
+            raise SpecError(
+                key,
+                f"{ref.display!r} has the name of a table this study writes ({hits[0]}): the run would overwrite it.",
+                "rename the study (study.name) or use another study.work_schema, so sqlmatch's tables cannot meet yours.",
+            )
+    if spec.results_table and (spec.work_schema.lower(), spec.results_table.lower()) in mine:
+        raise SpecError(
+            "study.results_table",
+            f"{spec.results_table!r} is the name of a table this study rewrites on every run, so the history would be lost.",
+            f"name the results table differently, e.g. results_table = \"{spec.name}_history\".",
+        )
+
+
+def writable_tables(spec: Spec, dialect: str = "duckdb") -> tuple[str, ...]:
+    """Every work table this study's plan can write, run directly or by a scheduler: what
+    cleanup may drop. Table names do not depend on the propensity coefficients, so a score-based
+    plan is listed with placeholder ones."""
+    from sqlmatch.propensity import DesignColumn, FittedModel
+
+    model = None
+    if method_for(spec.matching.method).uses_score:
+        model = FittedModel([DesignColumn("intercept", "intercept")], [0.0], 0, 0.0, 0, "-", {})
+    names = [t for materialize in (False, True) for t in build_plan(spec, dialect, model=model, materialize=materialize).work_tables]
+    return tuple(dict.fromkeys(names))

@@ -108,24 +108,30 @@ def _drop(engine: Engine, schema: str, name: str) -> None:
 
 
 def drop_stray_tables(spec: Spec, engine: Engine) -> list[str]:
-    """Tables a killed run left half-built (`<study>_*__building`); dropped before a new run."""
-    stray = [
-        name
-        for name in engine.table_names(spec.work_schema)
-        if name.startswith(f"{spec.name}_") and name.endswith(BUILDING_SUFFIX)
-    ]
+    """Tables a killed run left half-built (`<table>__building` of a table this study's plan can
+    write, never any other name); dropped before a new run."""
+    from sqlmatch.plan import writable_tables
+
+    present = set(engine.table_names(spec.work_schema))
+    ours = {t.split(".", 1)[1] + BUILDING_SUFFIX for t in writable_tables(spec, engine.dialect)}
+    stray = sorted(present & ours)
     for name in stray:
         _drop(engine, spec.work_schema, name)
     return stray
 
 
-def drop_work_tables(plan: Plan, engine: Engine) -> None:
-    """Drop every table the plan writes (and any half-built one), last written first."""
-    for table in reversed(plan.work_tables):
+def drop_work_tables(plan_or_tables, engine: Engine) -> list[str]:
+    """Drop every table the plan writes (and any half-built one), last written first; returns the
+    names dropped, each once."""
+    tables = plan_or_tables.work_tables if isinstance(plan_or_tables, Plan) else tuple(plan_or_tables)
+    dropped: list[str] = []
+    for table in reversed(tuple(dict.fromkeys(tables))):
         schema, name = table.split(".", 1)
         for candidate in (name + BUILDING_SUFFIX, name):
             if engine.columns(schema, candidate) is not None:
                 _drop(engine, schema, candidate)
+                dropped.append(f"{schema}.{candidate}")
+    return dropped
 
 
 def _check_groups(spec: Spec, result: QueryResult) -> None:

@@ -51,7 +51,7 @@ class StratumMoments:
 
 
 @dataclass(frozen=True)
-class Estimate:
+class StratifiedEstimate:
     estimate: float
     std_error: float | None
     ci_low: float | None
@@ -65,7 +65,7 @@ class Estimate:
     var_mean_control: float = math.nan  # sum_s w_s^2 s2_0s / n_0s
 
 
-def stratified_att(treated: StratumMoments, control: StratumMoments, level: float = 0.95) -> Estimate:
+def stratified_att(treated: StratumMoments, control: StratumMoments, level: float = 0.95) -> StratifiedEstimate:
     """Subclassification ATT (Imbens & Rubin 2015, ch. 17) from aligned per-stratum moments."""
     if treated.n.shape != control.n.shape:
         raise ValueError("treated and control moments must cover the same strata")
@@ -80,7 +80,7 @@ def stratified_att(treated: StratumMoments, control: StratumMoments, level: floa
     var = var1 + var0
     se = math.sqrt(var) if math.isfinite(var) else None
     lo, hi = normal_interval(tau, se, level)
-    return Estimate(
+    return StratifiedEstimate(
         estimate=tau,
         std_error=se,
         ci_low=lo,
