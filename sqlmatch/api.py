@@ -149,26 +149,50 @@ def cleanup(spec: Spec, engine: Engine | None = None, database: str | None = Non
     return sorted(set(dropped))
 
 
+def check_output_folder(out_dir: str | Path) -> Path:
+    """The folder results go to: refused before any work when the path is an existing file."""
+    out = Path(out_dir)
+    if out.exists() and not out.is_dir():
+        raise SqlmatchError(f"--out: {str(out)!r} is a file, not a folder. Fix: pass a folder (it is created if missing).")
+    return out
+
+
+def _write_all(out_dir: str | Path, files: dict[str, str]) -> list[Path]:
+    """Write every file of one result set, each to a temporary name first and then renamed into
+    place, only after all of them rendered: a failed rerun leaves the previous set whole, never
+    one run's results.json beside another's report."""
+    import os
+
+    out = check_output_folder(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    temporary = []
+    try:
+        for name, text in files.items():
+            tmp = out / f".{name}.partial"
+            tmp.write_text(text, encoding="utf-8")
+            temporary.append((tmp, out / name))
+        for tmp, final in temporary:
+            os.replace(tmp, final)
+    finally:
+        for tmp, _ in temporary:
+            tmp.unlink(missing_ok=True)
+    return [final for _, final in temporary]
+
+
 def write_results(results: StudyResults, out_dir: str | Path) -> list[Path]:
-    """results.json and report.md in out_dir."""
+    """results.json, report.md, report.html (and balance.svg) in out_dir, all rendered before any is written."""
+    from sqlmatch.report.html import balance_plot, render_html
     from sqlmatch.report.markdown import render_markdown
 
-    out = Path(out_dir)
-    out.mkdir(parents=True, exist_ok=True)
-    json_path = out / "results.json"
-    json_path.write_text(results.to_json(), encoding="utf-8")
-    from sqlmatch.report.html import balance_plot, render_html
-
     svg = balance_plot(results)
-    image = out / "balance.svg"
+    files = {
+        "results.json": results.to_json(),
+        "report.md": render_markdown(results, balance_image="balance.svg" if svg else None),
+        "report.html": render_html(results),
+    }
     if svg:
-        image.write_text(svg, encoding="utf-8")
-    md_path = out / "report.md"
-    md_path.write_text(render_markdown(results, balance_image=image.name if svg else None), encoding="utf-8")
-
-    html_path = out / "report.html"
-    html_path.write_text(render_html(results), encoding="utf-8")
-    return [json_path, md_path, html_path] + ([image] if svg else [])
+        files["balance.svg"] = svg
+    return _write_all(out_dir, files)
 
 
 def run_cohorts(spec: Spec, months: str, **run_options):
@@ -186,21 +210,11 @@ def run_cohorts(spec: Spec, months: str, **run_options):
 
 def write_cohort_results(combined, out_dir: str | Path) -> list[Path]:
     from sqlmatch.report.cohorts import render_cohorts_markdown
-
-    out = Path(out_dir)
-    out.mkdir(parents=True, exist_ok=True)
-    json_path = out / "results.json"
-    json_path.write_text(combined.to_json(), encoding="utf-8")
-    md_path = out / "report.md"
-    md_path.write_text(render_cohorts_markdown(combined), encoding="utf-8")
     from sqlmatch.report.html import render_html
 
-    pages = []
-    for r in combined.cohorts:
-        page = out / f"report-{r.cohort}.html"
-        page.write_text(render_html(r), encoding="utf-8")
-        pages.append(page)
-    return [json_path, md_path] + pages
+    files = {"results.json": combined.to_json(), "report.md": render_cohorts_markdown(combined)}
+    files.update({f"report-{r.cohort}.html": render_html(r) for r in combined.cohorts})
+    return _write_all(out_dir, files)
 
 
 def compile_for_scheduler(spec: Spec, dialect: str = "duckdb") -> Plan:

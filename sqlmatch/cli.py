@@ -117,6 +117,7 @@ def _dispatch(args) -> int:
             )
         return 0
     if args.command == "run":
+        api.check_output_folder(args.out)
         spec = api.load(args.spec)
         if args.cohort or args.method:
             spec = spec.with_overrides(cohort=args.cohort, method=args.method)

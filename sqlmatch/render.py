@@ -13,7 +13,6 @@ from importlib import resources
 from pathlib import Path
 
 import jinja2
-import sqlglot
 from sqlglot import exp
 from sqlglot.dialects import Dialect
 from sqlglot.tokens import Tokenizer

@@ -6,7 +6,7 @@ import json
 import math
 from dataclasses import asdict, dataclass, field
 
-from sqlmatch.privacy import suppress_counts as _suppress_counts, suppress_histograms
+from sqlmatch.privacy import sample_flow, suppress_counts as _suppress_counts, suppress_histograms, suppress_levels
 
 ASSUMPTIONS = (
     "No unmeasured confounding: after matching on the listed features, enrolment is as good as random. "
@@ -126,8 +126,8 @@ class StudyResults:
             "cohort": self.cohort,
             "dialect": self.dialect,
             "windows": self.windows,
-            "matching": _suppress_counts(asdict(self.matching), self.min_cell_size),
-            "balance": [{k: _num(v) for k, v in asdict(b).items()} for b in self.balance],
+            "matching": self._matching_dict(),
+            "balance": [{k: _num(v) for k, v in asdict(b).items()} for b in suppress_levels(self.balance, self.matching, self.min_cell_size)],
             "imbalance": self.imbalance,
             "histograms": suppress_histograms(self.histograms, self.min_cell_size),
             "effects": [_suppress_counts({k: _num(v) for k, v in asdict(e).items()}, self.min_cell_size) for e in self.effects],
@@ -138,6 +138,18 @@ class StudyResults:
         }
         if self.demo_truth is not None:
             out["demo_truth"] = self.demo_truth
+        return out
+
+    def _matching_dict(self) -> dict:
+        """The matching summary with every small count, and any count that would reveal one by
+        subtraction, withheld (privacy.sample_flow)."""
+        out = _suppress_counts(asdict(self.matching), self.min_cell_size)
+        flow = sample_flow(self.matching, self.min_cell_size)
+        for group, rows in flow.items():
+            out[f"n_{group}"] = rows["in_study"]
+            out[f"n_{group}_matched"] = rows["matched"]
+            out[f"n_{group}_outside_support"] = rows["outside_support"]
+            out[f"n_{group}_no_comparable"] = rows["no_comparable"]
         return out
 
     def to_json(self) -> str:

@@ -609,8 +609,9 @@ def _matching(value: Any, features: tuple[Feature, ...]) -> Matching:
     if not isinstance(value, dict):
         raise SpecError("matching", "must be a table.", "write it as [matching].")
     _check_keys(value, "matching", {"method", "on", "cut_points", "coarsen", "coarsen_bins", "bins", "exact", "common_support", "distance", "caliper", "ratio", "replacement", "max_candidate_pairs", "min_treated"})
-    if value.get("method") in RENAMED_METHODS:
-        raise SpecError("matching.method", f"{value['method']!r} is now called {RENAMED_METHODS[value['method']]!r}.", f"write method = \"{RENAMED_METHODS[value['method']]}\".")
+    old = value.get("method")
+    if isinstance(old, str) and old in RENAMED_METHODS:
+        raise SpecError("matching.method", f"{old!r} is now called {RENAMED_METHODS[old]!r}.", f"write method = \"{RENAMED_METHODS[old]}\".")
     method = _choice(value, "matching", "method", METHODS, default="coarsened_exact")
     names = [f.name for f in features]
     on = value.get("on", names)

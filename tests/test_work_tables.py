@@ -99,3 +99,11 @@ def test_user_tables_beside_the_work_tables_survive_run_and_cleanup(db):
     assert dropped == sorted(existed)  # each name once, only tables that were there
     left = {n for s, n in all_tables(db) if s == "sqlmatch"}
     assert left == {"annual_pass_backup__building", "annual_pass_notes"}
+
+
+def test_the_old_method_name_is_refused_with_the_new_one():
+    raw = tomllib.loads(DEMO_SPEC.read_text())
+    raw["matching"] = {"method": "nearest"}
+    with pytest.raises(SpecError) as err:
+        parse_spec(raw)
+    assert err.value.key == "matching.method" and "nearest_neighbour" in str(err.value)

@@ -11,7 +11,7 @@ import html
 import io
 import math
 
-from sqlmatch.privacy import count_text, suppress_histograms
+from sqlmatch.privacy import flow_texts, sample_flow, suppress_histograms, suppress_levels
 from sqlmatch.results import StudyResults
 
 TREATED = "#D55E00"
@@ -46,16 +46,12 @@ def _fmt(v, digits=3) -> str:
     return "–" if v is None or (isinstance(v, float) and not math.isfinite(v)) else f"{v:,.{digits}f}"
 
 
-def _count(v, min_cell) -> str:
-    return _e(count_text(v, min_cell))
-
-
 # -------------------------------------------------------------------------------------------- plots
 
 
 def balance_plot(r: StudyResults) -> str:
     plt = _pyplot()
-    rows = [b for b in r.balance if b.smd_before is not None]
+    rows = [b for b in suppress_levels(r.balance, r.matching, r.min_cell_size) if b.smd_before is not None]
     if not rows:
         return ""
     rows.sort(key=lambda b: abs(b.smd_before))
@@ -138,13 +134,16 @@ def distribution_plots(histograms: dict) -> str:
 def flow_plot(r: StudyResults) -> str:
     plt = _pyplot()
     m = r.matching
+    flow = sample_flow(m, r.min_cell_size)
     fig, ax = plt.subplots(figsize=(6.2, 1.5))
-    groups = [("enrolled", m.n_treated, m.n_treated_matched, m.n_treated_outside_support), ("not enrolled", m.n_control, m.n_control_matched, m.n_control_outside_support)]
-    for i, (label, total, matched, outside) in enumerate(groups):
-        no_match = total - matched - outside
+    groups = [("enrolled", "treated", m.n_treated), ("not enrolled", "control", m.n_control)]
+    for i, (label, group, total) in enumerate(groups):
+        rows = flow[group]
+        # withheld counts (small, or revealing a small one) are drawn as one segment of their sum
+        withheld = total - sum(v for k, v in rows.items() if k != "in_study" and v is not None)
         left = 0
-        for value, colour, text in ((matched, "#009E73", "matched"), (no_match, "#E69F00", "no comparable unit"), (outside, "#999999", "outside common support")):
-            share = value / total if total else 0
+        for value, colour, text in ((rows["matched"], "#009E73", "matched"), (rows["no_comparable"], "#E69F00", "no comparable unit"), (rows["outside_support"], "#999999", "outside common support"), (withheld if rows["in_study"] is not None else 0, "#DDDDDD", "not shown (small counts)")):
+            share = (value or 0) / total if total else 0
             ax.barh(i, share, left=left, color=colour, label=text if i == 0 else None)
             left += share
     ax.set_yticks([0, 1], [g[0] for g in groups])
@@ -168,6 +167,7 @@ svg { max-width: 100%; height: auto; }
 def render_html(r: StudyResults) -> str:
     mc = r.min_cell_size
     m = r.matching
+    flow = flow_texts(m, mc)
     w = r.windows
     parts = [
         "<!DOCTYPE html>",
@@ -198,11 +198,12 @@ def render_html(r: StudyResults) -> str:
         "<h2>Who was compared</h2>",
         flow_plot(r),
         "<table><tr><th></th><th>enrolled</th><th>not enrolled</th></tr>",
-        f"<tr><td>in the study</td><td>{_count(m.n_treated, mc)}</td><td>{_count(m.n_control, mc)}</td></tr>",
-        f"<tr><td>matched</td><td>{_count(m.n_treated_matched, mc)}</td><td>{_count(m.n_control_matched, mc)}</td></tr>",
-        f"<tr><td>dropped: outside the common support</td><td>{_count(m.n_treated_outside_support, mc)}</td><td>{_count(m.n_control_outside_support, mc)}</td></tr>",
-        f"<tr><td>dropped: no comparable unit</td><td>{_count(m.n_treated - m.n_treated_matched - m.n_treated_outside_support, mc)}</td>"
-        f"<td>{_count(m.n_control - m.n_control_matched - m.n_control_outside_support, mc)}</td></tr></table>",
+        *[
+            f"<tr><td>{label}</td><td>{_e(flow['treated'][row])}</td><td>{_e(flow['control'][row])}</td></tr>"
+            for row, label in (("in_study", "in the study"), ("matched", "matched"), ("outside_support", "dropped: outside the common support"), ("no_comparable", "dropped: no comparable unit"))
+        ],
+        "</table>",
+        *([f"<p class='note'>Counts under {mc} are not shown, nor (–) a second count from which one could be worked out.</p>"] if any(v == "–" for g in flow.values() for v in g.values()) else []),
         "<h2>Balance</h2>",
         "<p class='note'>A standardized mean difference below 0.1 is usually read as balanced (common practice).</p>",
         balance_plot(r),

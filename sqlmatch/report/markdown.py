@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import datetime as dt
 
-from sqlmatch.privacy import count_text
+from sqlmatch.privacy import count_text, flow_texts, suppress_levels
 from sqlmatch.results import StudyResults
 
 SMD_REFERENCE = 0.1  # |SMD| below 0.1 read as balanced: common practice (Austin 2009)
@@ -12,6 +12,10 @@ SMD_REFERENCE = 0.1  # |SMD| below 0.1 read as balanced: common practice (Austin
 
 def _n(value: int | None, min_cell: int) -> str:
     return count_text(value, min_cell)
+
+
+def _withheld(flow: dict) -> bool:
+    return any(v == "–" for rows in flow.values() for v in rows.values())
 
 
 def _x(value: float | None, digits: int = 3) -> str:
@@ -111,6 +115,7 @@ def render_markdown(r: StudyResults, balance_image: str | None = None) -> str:
     beside the report, if any."""
     mc = r.min_cell_size
     m = r.matching
+    flow = flow_texts(m, mc)
     w = r.windows
     lines = [
         f"# sqlmatch study `{r.study}`: cohort {r.cohort}",
@@ -125,11 +130,11 @@ def render_markdown(r: StudyResults, balance_image: str | None = None) -> str:
         "",
         "| | enrolled (treated) | not enrolled (control) |",
         "|---|---:|---:|",
-        f"| in the study | {_n(m.n_treated, mc)} | {_n(m.n_control, mc)} |",
-        f"| matched | {_n(m.n_treated_matched, mc)} | {_n(m.n_control_matched, mc)} |",
-        f"| dropped: outside the common support | {_n(m.n_treated_outside_support, mc)} | {_n(m.n_control_outside_support, mc)} |",
-        f"| dropped: no comparable unit in the stratum | {_n(m.n_treated - m.n_treated_matched - m.n_treated_outside_support, mc)} | "
-        f"{_n(m.n_control - m.n_control_matched - m.n_control_outside_support, mc)} |",
+        f"| in the study | {flow['treated']['in_study']} | {flow['control']['in_study']} |",
+        f"| matched | {flow['treated']['matched']} | {flow['control']['matched']} |",
+        f"| dropped: outside the common support | {flow['treated']['outside_support']} | {flow['control']['outside_support']} |",
+        f"| dropped: no comparable unit in the stratum | {flow['treated']['no_comparable']} | {flow['control']['no_comparable']} |",
+        *(["", f"Counts under {mc} are not shown, nor (–) a second count from which one could be worked out."] if _withheld(flow) else []),
         "",
         f"Strata used: {m.strata:,}; cells dropped for lacking an enrolled or a non-enrolled unit: {m.strata_dropped:,}.",
         "",
@@ -162,7 +167,7 @@ def render_markdown(r: StudyResults, balance_image: str | None = None) -> str:
         "| feature | SMD before | SMD after | variance ratio before | variance ratio after |",
         "|---|---:|---:|---:|---:|",
     ]
-    for b in r.balance:
+    for b in suppress_levels(r.balance, m, mc):
         flag = " ⚠" if b.smd_after is not None and abs(b.smd_after) >= SMD_REFERENCE else ""
         lines.append(
             f"| {b.covariate} | {_x(b.smd_before)} | {_x(b.smd_after)}{flag} | {_x(b.variance_ratio_before, 2)} | {_x(b.variance_ratio_after, 2)} |"
