@@ -217,22 +217,28 @@ def write_cohort_results(combined, out_dir: str | Path) -> list[Path]:
     return _write_all(out_dir, files)
 
 
+def plan_model(spec: Spec):
+    """The fitted propensity model a score-based method's full plan needs (None for the others);
+    refused when it is missing."""
+    from sqlmatch.matching import method_for
+    from sqlmatch.propensity import load_model
+
+    if not method_for(spec.matching.method).uses_score:
+        return None
+    model = load_model(spec)
+    if model is None:
+        raise SqlmatchError(
+            "matching.method: a scheduled plan needs the fitted propensity model beside the spec. "
+            "Fix: run `sqlmatch run` once (it writes <spec>.model.json), then compile again."
+        )
+    return model
+
+
 def compile_for_scheduler(spec: Spec, dialect: str = "duckdb") -> Plan:
     """The plan with every aggregate written to a table (`<study>_agg_<step>`), for orchestrators
     that run the SQL themselves; `report_from_tables` then builds the results. A score-based
     method needs its fitted model beside the spec."""
-    from sqlmatch.matching import method_for
-    from sqlmatch.propensity import load_model
-
-    model = None
-    if method_for(spec.matching.method).uses_score:
-        model = load_model(spec)
-        if model is None:
-            raise SqlmatchError(
-                "matching.method: a scheduled plan needs the fitted propensity model beside the spec. "
-                "Fix: run `sqlmatch run` once (it writes <spec>.model.json), then compile again."
-            )
-    return build_plan(spec, dialect, model=model, materialize=True)
+    return build_plan(spec, dialect, model=plan_model(spec), materialize=True)
 
 
 def report_from_tables(spec: Spec, engine: Engine | None = None, database: str | None = None, engine_url: str | None = None) -> StudyResults:
@@ -240,14 +246,18 @@ def report_from_tables(spec: Spec, engine: Engine | None = None, database: str |
     reads only those small tables, never the source tables."""
     from sqlglot import exp
 
+    from sqlmatch.engines.base import QueryResult
+    from sqlmatch.plan import FINGERPRINT_COLUMN, changed_sections, spec_fingerprint
     from sqlmatch.runner import RunOutput
 
     own = engine is None
     engine = engine or open_engine(spec, database, engine_url)
     try:
         plan = compile_for_scheduler(spec, engine.dialect)
+        expected = spec_fingerprint(spec)  # what each aggregate table must carry
         output = RunOutput(plan=plan)
         start = engine.rows_fetched
+        stale = []
         for step in plan.steps:
             if not step.writes or not step.writes[0].split(".", 1)[1].startswith(f"{spec.name}_agg_"):
                 continue
@@ -258,11 +268,25 @@ def report_from_tables(spec: Spec, engine: Engine | None = None, database: str |
                     "Fix: run every step of the compiled plan in order, then `sqlmatch report` again."
                 )
             query = exp.select("*").from_(exp.table_(name, db=schema, quoted=True))
-            output.results[step.name] = engine.fetch(query.sql(engine.dialect))
+            result = engine.fetch(query.sql(engine.dialect))
+            stored = {r[result.columns.index(FINGERPRINT_COLUMN)] for r in result.rows} if FINGERPRINT_COLUMN in result.columns else {None}
+            if stored - {expected}:
+                stale.append((step.name, changed_sections(next(iter(stored - {expected})), expected)))
+                continue
+            keep = [i for i, c in enumerate(result.columns) if c != FINGERPRINT_COLUMN]
+            output.results[step.name] = QueryResult(tuple(result.columns[i] for i in keep), tuple(tuple(r[i] for i in keep) for r in result.rows))
         output.rows_fetched = engine.rows_fetched - start
     finally:
         if own:
             engine.close()
+    if stale:
+        sections = sorted({c for _, changed in stale for c in changed})
+        raise SqlmatchError(
+            f"the aggregate tables of step(s) {', '.join(n for n, _ in stale)} were written by SQL compiled from another "
+            f"version of the spec (changed since: {', '.join(sections) or 'unknown, the tables carry no fingerprint'}): "
+            "reporting them would mix two studies. Fix: compile the spec again (`sqlmatch compile --for-scheduler`), "
+            "let the scheduler run the new files, then `sqlmatch report`."
+        )
     # The same refusals as a direct run, in plan order: the scheduler ran the SQL without them.
     from sqlmatch.runner import check_step
 

@@ -21,7 +21,36 @@ from sqlmatch.spec import MISSING_INDICATOR, Spec, last_period_start
 MANIFEST_VERSION = 1
 HISTOGRAM_BINS = 20  # bins of the report's distribution plots
 L1_BINS = 10  # equal-width bins per numeric feature in the fixed histogram of the L1 imbalance
+FINGERPRINT_COLUMN = "plan__fingerprint"  # on every row of a scheduled aggregate table
 _KIND_TEXT = {"setup": "prepares the work schema", "table": "writes a table", "query": "returns aggregates to sqlmatch"}
+
+
+def spec_fingerprint(spec: Spec) -> str:
+    """A short hash per section of the spec (and one of sqlmatch's version), "section:hash,...":
+    stored on every row of a scheduled aggregate table, so `sqlmatch report` can refuse tables an
+    earlier spec wrote and name the sections that changed. The database path and the [report]
+    section do not change what the SQL computes and are left out; the propensity model file is
+    not part of it (report checks the coefficients that ran separately)."""
+    import hashlib
+
+    from sqlmatch import __version__
+
+    raw = {k: v for k, v in spec._raw.items() if k != "report"}
+    if isinstance(raw.get("study"), dict):
+        raw["study"] = {k: v for k, v in raw["study"].items() if k != "database"}
+    if spec.cohort != (raw.get("treatment") or {}).get("cohort"):
+        raw["treatment"] = {**(raw.get("treatment") or {}), "cohort": spec.cohort}
+    parts = {"sqlmatch": __version__} | {k: json.dumps(v, sort_keys=True, default=str) for k, v in sorted(raw.items())}
+    return ",".join(f"{k}:{hashlib.sha256(v.encode('utf-8')).hexdigest()[:8]}" for k, v in parts.items())
+
+
+def changed_sections(stored: str, current: str) -> list[str]:
+    """The spec sections (or "sqlmatch") whose hash differs between two fingerprints."""
+    def split(text):
+        return dict(item.split(":", 1) for item in text.split(",") if ":" in item)
+
+    a, b = split(stored or ""), split(current)
+    return [k for k in sorted(set(a) | set(b)) if a.get(k) != b.get(k)]
 
 
 @dataclass(frozen=True)
@@ -117,9 +146,13 @@ class PlanContext:
         )
 
     def materialized(self, step: Step) -> Step:
-        """An aggregate query turned into a table step writing <study>_agg_<step name>."""
+        """An aggregate query turned into a table step writing <study>_agg_<step name>. Every row
+        carries the spec's fingerprint, so `sqlmatch report` can refuse tables a different spec
+        (or sqlmatch version) compiled."""
         (sql,) = step.statements
         (query,) = dialects.parse(sql, self.dialect)
+        mark = exp.alias_(exp.Literal.string(spec_fingerprint(self.spec)), FINGERPRINT_COLUMN)
+        query = query.select(mark) if isinstance(query, exp.Select) else exp.select("*", mark).from_(query.subquery("q"))
         logical = f"agg_{step.name}"
         statements = dialects.create_table_as(self.table_node(logical), query, self.dialect)
         return Step(

@@ -25,12 +25,16 @@ def study(demo_dir, tmp_path):
 def test_out_that_is_a_file_exits_2_before_any_work(study, capsys):
     target = study.parent / "results.txt"
     target.write_text("keep me")
+    before = tables(study.parent / "bikeshare.duckdb")
     assert main(["run", str(study), "--out", str(target)]) == 2
     assert "--out" in capsys.readouterr().err
     assert target.read_text() == "keep me"
-    with duckdb.connect(str(study.parent / "bikeshare.duckdb"), read_only=True) as con:
-        schemas = {r[0] for r in con.execute("SELECT schema_name FROM information_schema.schemata").fetchall()}
-    assert "sqlmatch" not in schemas  # nothing ran: not even the work schema was created
+    assert tables(study.parent / "bikeshare.duckdb") == before  # nothing ran: no table written or dropped
+
+
+def tables(database) -> list[tuple[str, str]]:
+    with duckdb.connect(str(database), read_only=True) as con:
+        return sorted(con.execute("SELECT table_schema, table_name FROM information_schema.tables").fetchall())
 
 
 def test_a_failed_rewrite_leaves_the_previous_result_set_whole(study, tmp_path, monkeypatch):

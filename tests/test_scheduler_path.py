@@ -123,3 +123,21 @@ rewritten after compiling, it says the SQL ran other coefficients. After a fifth
     (warning,) = [w for w in changed["warnings"] if "propensity model" in w]
     assert "annual_pass.model.json" in warning and "refit" in warning
     assert "propensity model" in (tmp_path / "changed" / "report.md").read_text()
+
+
+def test_report_refuses_tables_of_an_earlier_spec(demo_dir, tmp_path, capsys):
+    """After the scheduler ran the files, the spec is edited (an outcome renamed): the aggregate
+    tables are those of the old spec, so `report` refuses, naming the steps, instead of showing
+    effects from them."""
+    shutil.copyfile(demo_dir / "bikeshare.duckdb", tmp_path / "bikeshare.duckdb")
+    spec = tmp_path / "annual_pass.toml"
+    shutil.copyfile(DEMO_SPEC, spec)
+    sql = tmp_path / "sql"
+    assert main(["compile", str(spec), "--out", str(sql), "--for-scheduler"]) == 0
+    _run_files(sql, tmp_path / "bikeshare.duckdb")
+    assert main(["report", str(spec), "--out", str(tmp_path / "before")]) == 0  # same spec: accepted
+    spec.write_text(spec.read_text().replace('name = "post_trips"', 'name = "trips_after"'))
+    code = main(["report", str(spec), "--out", str(tmp_path / "after")])
+    err = capsys.readouterr().err
+    assert code == 2 and "outcome_strata" in err and "outcomes" in err and "compile the spec again" in err
+    assert not (tmp_path / "after" / "results.json").exists()
