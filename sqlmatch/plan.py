@@ -207,6 +207,8 @@ class Plan:
             ]
             if step.writes:
                 header.append(f"-- writes: {', '.join(step.writes)}")
+            # names come from the spec: a line break in one would end the comment line
+            header = [render.comment_text(line) for line in header]
             body = "\n\n".join(s + ";" for s in step.statements)
             out[self.file_name(i)] = "\n".join(header) + "\n\n" + body + "\n"
         out["manifest.json"] = json.dumps(self.manifest(), indent=2, sort_keys=False) + "\n"
@@ -313,7 +315,7 @@ def source_steps(ctx: PlanContext, outcomes, columns) -> list[Step]:
             reads=[ctx.display("units")],
             purpose="Rows and distinct keys among the study's units (refuse duplicate keys).",
             key=spec.unit_key,
-            units_display=units_src,
+            units_source=spec.units,
             units_table=ctx.table("units"),
         ),
         ctx.table_step(

@@ -64,6 +64,20 @@ def work_table_sql(schema: str, name: str) -> str:
     return table.sql(SOURCE_DIALECT)
 
 
+def comment_text(text: str) -> str:
+    """Text safe inside a SQL comment: no comment markers (a `*/` would end a block comment, a `/*`
+    opens a nested one on DuckDB and PostgreSQL) and no line breaks or other control characters
+    (which would end a `--` line). Specs refuse control characters; this is the second line."""
+    text = text.replace("*/", "* /").replace("/*", "/ *")
+    return "".join(ch if ch.isprintable() or ch == " " else f"\\u{ord(ch):04x}" for ch in text)
+
+
+def comment_name(value) -> str:
+    """A user's name (column str or TableRef) inside a comment: the quoted identifier, made comment-safe."""
+    sql = table_sql(value) if isinstance(value, TableRef) else quote_source(value)
+    return comment_text(sql)
+
+
 def literal(value) -> str:
     if value is None:
         return "NULL"
@@ -105,6 +119,7 @@ def environment(root: str | None = None) -> jinja2.Environment:
         table=table_sql,
         lit=literal,
         date=date_literal,
+        note=comment_name,
     )
     return env
 

@@ -9,7 +9,9 @@ checked later against the engine's catalog (preflight).
 from __future__ import annotations
 
 import datetime as dt
+import math
 import re
+import unicodedata
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -38,23 +40,31 @@ METHODS = tuple(_matching_methods.METHODS)
 # Names of earlier versions, refused with the name to use now.
 RENAMED_METHODS = {"nearest": "nearest_neighbour"}
 
-# Statement-level nodes that must never appear inside a filter expression.
-_FORBIDDEN_IN_FILTER = (
-    exp.Query,
-    exp.Insert,
-    exp.Update,
-    exp.Delete,
-    exp.Merge,
-    exp.Create,
-    exp.Drop,
-    exp.Alter,
-    exp.Command,
-    exp.Use,
-    exp.Set,
-    exp.Transaction,
-    exp.Commit,
-    exp.Rollback,
+# Columns the templates write into unit-level tables (study units, measures, weighted, scores,
+# weights): a feature or outcome of the same name would shadow or collide with them.
+RESERVED_COLUMNS = (
+    "unit_key", "treated", "in_study", "first_event_at", "last_event_at", "n_events", "n_units",
+    "unknown__units", "unknown__events", "match__stratum", "match__weight", "score", "score_bin",
+    "stratum", "weight", "n_matches", "unit_seq", "matched_treated", "matched_control", "n_treated", "n_control",
 )
+
+# Filters are an allowlist: these node types, plus the pure scalar functions below. Anything else
+# (subqueries, aggregates, windows, parameters, unknown or side-effecting functions) is refused.
+_FILTER_NODES = (
+    exp.Column, exp.Identifier, exp.Literal, exp.Boolean, exp.Null, exp.Paren, exp.Tuple,
+    exp.And, exp.Or, exp.Not, exp.Neg, exp.Is, exp.In, exp.Between, exp.Like, exp.ILike,
+    exp.EQ, exp.NEQ, exp.GT, exp.GTE, exp.LT, exp.LTE, exp.NullSafeEQ, exp.NullSafeNEQ,
+    exp.Add, exp.Sub, exp.Mul, exp.Div, exp.Mod, exp.IntDiv,
+    exp.Case, exp.If, exp.Cast, exp.TryCast, exp.DataType, exp.DataTypeParam, exp.Interval, exp.Var,
+)
+_FILTER_FUNCTIONS = {
+    exp.Extract: "extract", exp.Year: "year", exp.Month: "month", exp.Day: "day", exp.Lower: "lower",
+    exp.Upper: "upper", exp.Trim: "trim", exp.Length: "length", exp.Coalesce: "coalesce", exp.Nullif: "nullif",
+    exp.Abs: "abs", exp.Round: "round", exp.Floor: "floor", exp.Ceil: "ceil", exp.Least: "least",
+    exp.Greatest: "greatest", exp.Substring: "substr/substring", exp.Concat: "concat",
+}
+FILTER_FUNCTIONS_TEXT = ", ".join(sorted(_FILTER_FUNCTIONS.values()))
+_FILTER_MAX_DEPTH = 64  # nesting of parentheses; deeper is refused before parsing
 
 
 @dataclass(frozen=True)
@@ -220,6 +230,42 @@ class Spec:
 # reading helpers: each takes the dotted key so errors can name it
 
 
+def _unsafe_char(text: str, allow_whitespace: bool = False) -> str | None:
+    """The first control/format character (newline, tab, NUL, bidi marks, ...) in text, if any."""
+    for ch in text:
+        if allow_whitespace and ch in "\n\r\t":
+            continue
+        if unicodedata.category(ch) in ("Cc", "Cf", "Cs", "Zl", "Zp"):
+            return ch
+    return None
+
+
+def _check_values(value: Any, key: str) -> None:
+    """Every string in the spec is free of control characters (a name can then never end a SQL
+    comment line) and every number is finite; the error names the key."""
+    if isinstance(value, dict):
+        for k, v in value.items():
+            sub = f"{key}.{k}" if key else str(k)
+            bad = _unsafe_char(str(k))
+            if bad is not None:
+                raise SpecError(sub, f"the key contains the control character U+{ord(bad):04X}.", "remove it.")
+            _check_values(v, sub)
+    elif isinstance(value, list):
+        for i, v in enumerate(value):
+            _check_values(v, f"{key}[{i}]")
+    elif isinstance(value, str):
+        # a filter is re-printed by sqlglot, so line breaks between its tokens are harmless
+        bad = _unsafe_char(value, allow_whitespace=key.startswith("eligibility.filters"))
+        if bad is not None:
+            raise SpecError(
+                key,
+                f"contains the control character U+{ord(bad):04X} ({unicodedata.name(bad, 'unnamed')}).",
+                "names and values may not hold line breaks, tabs or other control characters; remove it.",
+            )
+    elif isinstance(value, float) and not math.isfinite(value):
+        raise SpecError(key, f"must be a finite number, got {value!r}.", "write an ordinary number.")
+
+
 def _table(raw: dict, key: str) -> dict:
     value = raw.get(key.split(".")[-1])
     if value is None:
@@ -302,14 +348,21 @@ def _windows(cohort: str, unit: str, pre: int, post: int) -> Windows:
     m = _COHORT_RE.match(cohort)
     if not m or not 1 <= int(m.group(2)) <= 12:
         raise SpecError("treatment.cohort", f"{cohort!r} is not a month.", "write the enrolment month as \"YYYY-MM\".")
-    cohort_start = dt.date(int(m.group(1)), int(m.group(2)), 1)
-    cohort_end = add_months(cohort_start, 1)
-    if unit == "month":
-        pre_start = add_months(cohort_start, -pre)
-        post_end = add_months(cohort_end, post)
-    else:
-        pre_start = cohort_start - dt.timedelta(days=pre)
-        post_end = cohort_end + dt.timedelta(days=post)
+    try:
+        cohort_start = dt.date(int(m.group(1)), int(m.group(2)), 1)
+        cohort_end = add_months(cohort_start, 1)
+        if unit == "month":
+            pre_start = add_months(cohort_start, -pre)
+            post_end = add_months(cohort_end, post)
+        else:
+            pre_start = cohort_start - dt.timedelta(days=pre)
+            post_end = cohort_end + dt.timedelta(days=post)
+    except (ValueError, OverflowError):
+        raise SpecError(
+            "treatment.cohort",
+            f"{cohort!r} with windows.pre = {pre} and windows.post = {post} {unit}(s) reaches outside the dates 0001-01-01 to 9999-12-31.",
+            "choose a later or earlier cohort, or shorter windows.",
+        ) from None
     return Windows(
         unit=unit,
         pre=pre,
@@ -338,17 +391,27 @@ def last_period_start(windows: Windows, last: int) -> dt.date:
 def parse_filter(text: Any, key: str) -> exp.Expression:
     """Parse one boolean SQL expression over unit columns; refuse anything else.
 
-    The filter is parsed with sqlglot as exactly one expression. Statements, several
-    statements, subqueries and DDL/DML are refused; comments are dropped so nothing can
-    hide inside them in the compiled SQL.
+    The filter is parsed with sqlglot as exactly one expression, then every node is checked
+    against an allowlist (_FILTER_NODES, _FILTER_FUNCTIONS): comparisons, AND/OR/NOT, arithmetic,
+    CASE, IN over literals, BETWEEN, IS NULL, LIKE, CAST, literals, unit columns and a few pure
+    scalar functions. Comments are dropped so nothing can hide inside them in the compiled SQL.
     """
     if not isinstance(text, str) or not text.strip():
         raise SpecError(key, f"must be a SQL boolean expression as a string, got {text!r}.")
+    depth = deepest = 0
+    for ch in text:  # sqlglot recurses per nesting level: refuse deep nesting before it overflows
+        depth += ch == "("
+        depth -= ch == ")"
+        deepest = max(deepest, depth)
+    if deepest > _FILTER_MAX_DEPTH:
+        raise SpecError(key, f"nests parentheses {deepest} deep (at most {_FILTER_MAX_DEPTH}).", "write a flatter expression.")
     try:
         statements = sqlglot.parse(text, read="duckdb")
     except sqlglot.errors.SqlglotError as err:
         first = str(err).splitlines()[0]
         raise SpecError(key, f"could not be parsed as SQL: {first}", "write one boolean expression over unit columns.") from None
+    except RecursionError:
+        raise SpecError(key, "is nested too deeply to parse.", "write a flatter expression.") from None
     statements = [s for s in statements if s is not None]
     if len(statements) != 1:
         raise SpecError(
@@ -357,13 +420,20 @@ def parse_filter(text: Any, key: str) -> exp.Expression:
             "write exactly one boolean expression, with no semicolon, e.g. signup_date < DATE '2025-09-01'.",
         )
     tree = statements[0]
+    allowed_fix = f"filters may use unit columns, literals, comparisons, AND/OR/NOT, arithmetic, CASE, IN (...), BETWEEN, IS NULL, LIKE, CAST and the functions {FILTER_FUNCTIONS_TEXT}."
     for node in tree.walk():
-        if isinstance(node, _FORBIDDEN_IN_FILTER):
-            raise SpecError(
-                key,
-                f"contains {type(node).__name__.upper()}; only a boolean expression over unit columns is allowed.",
-                "remove the statement or subquery; filters may use unit columns, literals, operators and functions.",
-            )
+        if isinstance(node, tuple(_FILTER_FUNCTIONS)) or isinstance(node, _FILTER_NODES):
+            if isinstance(node, exp.In) and (node.args.get("query") or node.args.get("field") or node.args.get("unnest")):
+                raise SpecError(key, "uses IN with something other than a list of values.", allowed_fix)
+            if isinstance(node, exp.Column) and not isinstance(node.this, exp.Identifier):
+                raise SpecError(key, f"refers to {node.sql()!r}, which is not a column name.", allowed_fix)
+            continue
+        if isinstance(node, exp.Func):
+            fname = node.sql_name() if not isinstance(node, exp.Anonymous) else node.name
+            what = f"function {fname.lower()}"
+        else:
+            what = f"{type(node).__name__.upper()} ({node.sql(dialect='duckdb')[:40]!r})"
+        raise SpecError(key, f"{what} is not allowed in a filter; only a boolean expression over unit columns is.", allowed_fix)
     if not isinstance(tree, (exp.Predicate, exp.Connector, exp.Not, exp.Paren, exp.Boolean, exp.Is, exp.In, exp.Between)):
         raise SpecError(
             key,
@@ -391,6 +461,14 @@ def load_spec(path: str | Path) -> Spec:
         text = path.read_text(encoding="utf-8")
     except FileNotFoundError:
         raise SpecError("(file)", f"{path} does not exist.", "pass the path of a study spec (.toml).") from None
+    except IsADirectoryError:
+        raise SpecError("(file)", f"{path} is a folder, not a spec file.", "pass the path of a study spec (.toml).") from None
+    except PermissionError:
+        raise SpecError("(file)", f"{path} cannot be read (permission denied).", "check the file's permissions.") from None
+    except UnicodeDecodeError as err:
+        raise SpecError("(file)", f"{path} is not UTF-8 text (byte {err.start}).", "save the spec as UTF-8.") from None
+    except OSError as err:
+        raise SpecError("(file)", f"{path} cannot be read: {err.strerror}.", "pass the path of a study spec (.toml).") from None
     try:
         raw = tomllib.loads(text)
     except tomllib.TOMLDecodeError as err:
@@ -399,6 +477,7 @@ def load_spec(path: str | Path) -> Spec:
 
 
 def parse_spec(raw: dict, source_path: Path | None = None) -> Spec:
+    _check_values(raw, "")
     _check_keys(raw, "", {"study", "units", "events", "treatment", "windows", "eligibility", "features", "outcomes", "matching", "propensity", "report"})
 
     study = _table(raw, "study")
@@ -456,6 +535,16 @@ def parse_spec(raw: dict, source_path: Path | None = None) -> Spec:
     features = tuple(_features(raw.get("features"), windows))
     outcomes = tuple(_outcomes(raw.get("outcomes"), windows, features))
     names = [f.name for f in features] + [o.name for o in outcomes]
+    reserved = {r.lower() for r in RESERVED_COLUMNS}
+    for i, item in enumerate([("features", f) for f in features] + [("outcomes", o) for o in outcomes]):
+        kind, obj = item
+        if obj.name.lower() in reserved:
+            where = obj.key if kind == "features" and obj.key else f"{kind} ({obj.name})"
+            raise SpecError(
+                where,
+                f"the name {obj.name!r} is a column sqlmatch writes into its unit tables.",
+                f"rename it; reserved names: {', '.join(RESERVED_COLUMNS)}.",
+            )
     for n in names:
         if names.count(n) > 1:
             raise SpecError("features/outcomes", f"the name {n!r} is used twice.", "give every feature and outcome its own name.")

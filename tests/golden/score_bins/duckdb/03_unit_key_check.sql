@@ -3,7 +3,7 @@
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_units
 
-/* Is rider_id a key of riders? Rows and distinct keys among the units in the study;
+/* Is "rider_id" a key of "riders"? Rows and distinct keys among the units in the study;
    they must be equal, or units would be counted twice. One row. */
 SELECT
   COUNT(*) AS n_rows,

@@ -11,7 +11,7 @@ CREATE TABLE "sqlmatch".annual_pass_measures__building AS
    over the post window [2026-04-01, 2026-07-01) for every unit in the
    study, from ONE pass over the events: read once, filtered to the span of both windows,
    aggregated per unit with conditional aggregates. Units without events get the fill value.
-   The same pass counts the events whose unit is not in riders at all (they are
+   The same pass counts the events whose unit is not in "riders" at all (they are
    left out of everything): every row carries the two totals, read back by data_coverage.
 */
 WITH known_units AS (
@@ -19,7 +19,7 @@ WITH known_units AS (
     "rider_id" AS unit_key
   FROM "riders"
 ), unit_keys AS (
-  /* every unit key in riders, flagged 1 when the unit is in the study */
+  /* every unit key in "riders", flagged 1 when the unit is in the study */
   SELECT
     k.unit_key,
     CASE WHEN s.unit_key IS NULL THEN 0 ELSE 1 END AS in_study
@@ -51,7 +51,7 @@ WITH known_units AS (
       END
     ) AS pre_fare_per_trip,
     (
-      BIT_COUNT(
+      CAST(BIT_COUNT(
         BIT_OR(
           CASE
             WHEN e."started_at" >= CAST('2025-09-01' AS DATE)
@@ -64,7 +64,7 @@ WITH known_units AS (
             ELSE CAST(0 AS BIGINT)
           END
         )
-      ) + BIT_COUNT(
+      ) AS BIGINT) + CAST(BIT_COUNT(
         BIT_OR(
           CASE
             WHEN e."started_at" >= CAST('2025-09-01' AS DATE)
@@ -77,7 +77,7 @@ WITH known_units AS (
             ELSE CAST(0 AS BIGINT)
           END
         )
-      ) + BIT_COUNT(
+      ) AS BIGINT) + CAST(BIT_COUNT(
         BIT_OR(
           CASE
             WHEN e."started_at" >= CAST('2025-09-01' AS DATE)
@@ -90,7 +90,7 @@ WITH known_units AS (
             ELSE CAST(0 AS BIGINT)
           END
         )
-      )
+      ) AS BIGINT)
     ) AS pre_active_days,
     DATE_DIFF(
       'DAY',
@@ -149,7 +149,7 @@ WITH known_units AS (
   WHERE
     e."started_at" >= CAST('2025-09-01' AS DATE)
     AND e."started_at" < CAST('2026-07-01' AS DATE)
-    AND /* units of the study, and units unknown to riders (in_study NULL) */ (
+    AND /* units of the study, and units unknown to "riders" (in_study NULL) */ (
       u.in_study = 1 OR u.unit_key IS NULL
     )
   GROUP BY
