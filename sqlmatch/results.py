@@ -2,11 +2,12 @@
 
 from __future__ import annotations
 
+import html
 import json
 import math
 from dataclasses import asdict, dataclass, field
 
-from sqlmatch.privacy import suppress_counts as _suppress_counts, suppress_histograms
+from sqlmatch.privacy import count_text, suppress_counts as _suppress_counts, suppress_histograms
 
 ASSUMPTIONS = (
     "No unmeasured confounding: after matching on the listed features, enrolment is as good as random. "
@@ -32,6 +33,13 @@ def _num(x):
     if isinstance(x, float) and not math.isfinite(x):
         return None
     return x
+
+
+def _short(x: float | None) -> str:
+    """A number for a one-line summary: 4 significant digits; "–" when missing or not finite."""
+    if x is None or (isinstance(x, float) and not math.isfinite(x)):
+        return "–"
+    return f"{x:.4g}"
 
 
 @dataclass(frozen=True)
@@ -118,7 +126,67 @@ class StudyResults:
     timings: dict[str, float] = field(default_factory=dict)
 
     def effect(self, outcome: str) -> Effect:
-        return next(e for e in self.effects if e.outcome == outcome)
+        for e in self.effects:
+            if e.outcome == outcome:
+                return e
+        raise KeyError(f"no outcome {outcome!r}; the outcomes are: {', '.join(e.outcome for e in self.effects) or '(none)'}")
+
+    def effects_frame(self):
+        """One row per outcome (the Effect fields but sensitivity), as in results.json: counts
+        below min_cell_size are missing."""
+        import pandas as pd
+
+        rows = [{k: v for k, v in self._effect_record(e).items() if k != "sensitivity"} for e in self.effects]
+        columns = [f for f in Effect.__dataclass_fields__ if f != "sensitivity"]
+        return pd.DataFrame(rows, columns=columns)
+
+    def balance_frame(self):
+        """One row per covariate (or level), the BalanceRow fields, as in results.json."""
+        import pandas as pd
+
+        rows = [_suppress_counts({k: _num(v) for k, v in asdict(b).items()}, self.min_cell_size) for b in self.balance]
+        return pd.DataFrame(rows, columns=list(BalanceRow.__dataclass_fields__))
+
+    def _effect_record(self, e: Effect) -> dict:
+        return _suppress_counts({k: _num(v) for k, v in asdict(e).items()}, self.min_cell_size)
+
+    def __repr__(self) -> str:
+        m = self.matching
+        lines = [
+            f"StudyResults: study {self.study!r}, cohort {self.cohort}, method {m.method}",
+            f"  matched: {count_text(m.n_treated_matched, self.min_cell_size)} of {count_text(m.n_treated, self.min_cell_size)} enrolled, "
+            f"{count_text(m.n_control_matched, self.min_cell_size)} of {count_text(m.n_control, self.min_cell_size)} comparison units",
+        ]
+        for e in self.effects:
+            lines.append(f"  {e.outcome}: {_short(e.estimate)} (95% interval {_short(e.ci_low)} to {_short(e.ci_high)})")
+        if self.warnings:
+            lines.append(f"  {len(self.warnings)} warning(s): see .warnings")
+        return "\n".join(lines)
+
+    def _repr_html_(self) -> str:
+        m, esc, cell = self.matching, html.escape, self.min_cell_size
+        head = (
+            f"<p><b>{esc(self.study)}</b>, cohort {esc(self.cohort)}, method {esc(m.method)}: "
+            f"{esc(count_text(m.n_treated_matched, cell))} of {esc(count_text(m.n_treated, cell))} enrolled matched</p>"
+        )
+        header = "".join(f"<th>{esc(h)}</th>" for h in ("outcome", "kind", "effect", "95% interval", "enrolled", "comparison"))
+        body = "".join(
+            "<tr>"
+            + "".join(
+                f"<td>{esc(v)}</td>"
+                for v in (
+                    e.outcome,
+                    e.kind,
+                    _short(e.estimate),
+                    f"{_short(e.ci_low)} to {_short(e.ci_high)}",
+                    count_text(e.n_treated, cell),
+                    count_text(e.n_control, cell),
+                )
+            )
+            + "</tr>"
+            for e in self.effects
+        )
+        return f"<div>{head}<table><thead><tr>{header}</tr></thead><tbody>{body}</tbody></table></div>"
 
     def to_dict(self) -> dict:
         out = {
@@ -130,7 +198,7 @@ class StudyResults:
             "balance": [{k: _num(v) for k, v in asdict(b).items()} for b in self.balance],
             "imbalance": self.imbalance,
             "histograms": suppress_histograms(self.histograms, self.min_cell_size),
-            "effects": [_suppress_counts({k: _num(v) for k, v in asdict(e).items()}, self.min_cell_size) for e in self.effects],
+            "effects": [self._effect_record(e) for e in self.effects],
             "warnings": list(self.warnings),
             "rows_fetched": self.rows_fetched,
             "min_cell_size": self.min_cell_size,
