@@ -64,6 +64,31 @@ def check_plan(plan: Plan, folder: str | Path) -> str:
     return "".join(chunks)
 
 
+def compiled_mode(folder: str | Path) -> dict | None:
+    """How the plan in `folder` was compiled, from its manifest.json: {"mode": "scheduler" or
+    "direct", "dialect": ...}; None without a readable manifest. A scheduler plan is the one whose
+    steps write the <study>_agg_ tables (the manifest has no explicit mode field)."""
+    import json
+
+    path = Path(folder) / "manifest.json"
+    try:
+        manifest = json.loads(path.read_text(encoding="utf-8"))
+        study, steps, dialect = manifest["study"], manifest["steps"], manifest["dialect"]
+    except (OSError, ValueError, KeyError, TypeError):
+        return None
+    marker = f".{study}_agg_"
+    scheduled = any(marker in table for s in steps for table in s.get("writes", ()))
+    return {"mode": manifest.get("mode") or ("scheduler" if scheduled else "direct"), "dialect": dialect}
+
+
+def model_file_text(spec: Spec) -> str:
+    """The model file's path for messages ("<spec>.model.json" when the spec has no file)."""
+    from sqlmatch.propensity import model_path
+
+    path = model_path(spec)
+    return str(path) if path is not None else "<spec>.model.json"
+
+
 def open_engine(spec: Spec, database: str | None = None, engine_url: str | None = None) -> Engine:
     """The engine for a run: the one `engine_url` names (see sqlmatch.engines.open_engine_url; it
     wins over `database`), else DuckDB on the file given on the command line or in the spec."""
@@ -97,6 +122,18 @@ def open_url_or_database(engine_url: str | None, database: str | None) -> Engine
     if database is None or not Path(database).exists():
         raise SqlmatchError(f"--database: DuckDB file {database!r} does not exist. Fix: pass --database FILE or --engine URL.")
     return DuckDBEngine(database)
+
+
+def path_from_spec_folder(path: str | Path, spec_path: str | Path) -> str:
+    """`path` as a spec at `spec_path` should name it: relative to the spec's folder (how
+    open_engine reads [study] database), absolute when no relative path exists."""
+    import os
+
+    target = Path(path).resolve()
+    try:
+        return Path(os.path.relpath(target, Path(spec_path).resolve().parent)).as_posix()
+    except ValueError:  # another drive on Windows
+        return str(target)
 
 
 def run(

@@ -21,10 +21,10 @@ def _parser() -> argparse.ArgumentParser:
 
     c = sub.add_parser("compile", help="write the study's SQL plan as numbered .sql files and a manifest")
     c.add_argument("spec", help="study spec (.toml)")
-    c.add_argument("--dialect", default="duckdb", help=f"target SQL dialect: {', '.join(DIALECTS)} (default duckdb)")
+    c.add_argument("--dialect", help=f"target SQL dialect: {', '.join(DIALECTS)} (default duckdb; with --check, the folder's)")
     target = c.add_mutually_exclusive_group(required=True)
     target.add_argument("--out", help="folder for the .sql files and manifest.json")
-    target.add_argument("--check", metavar="DIR", help="compare with the SQL committed in DIR; print a unified diff and exit 1 if they differ")
+    target.add_argument("--check", metavar="DIR", help="compare with the SQL committed in DIR (in the mode and dialect its manifest.json records); print a unified diff and exit 1 if they differ")
     c.add_argument("--for-scheduler", action="store_true", help="write every aggregate to a table so a scheduler can run the plan; then `sqlmatch report`")
 
     r = sub.add_parser("run", help="run the study in the warehouse and write results.json and report.md")
@@ -69,7 +69,7 @@ def _parser() -> argparse.ArgumentParser:
     i.add_argument("--database", help="DuckDB file holding the tables")
     i.add_argument("--engine", help="engine URL (overrides --database)")
     i.add_argument("--name", default="my_study", help="study name (prefix of the tables sqlmatch writes)")
-    i.add_argument("--cohort", default="2026-01", help="enrolment month to study, YYYY-MM")
+    i.add_argument("--cohort", help="enrolment month to study, YYYY-MM (without it the spec holds a placeholder marked GUESS)")
     i.add_argument("--out", required=True, help="path of the spec to write (refuses to overwrite)")
 
     sub.add_parser("methods", help="list the matching methods")
@@ -96,25 +96,46 @@ def _dispatch(args) -> int:
             print(f"{name:<18} {text}")
         return 0
     if args.command == "compile":
-        dialect = check_dialect(args.dialect)
         spec = api.load(args.spec)
-        plan = api.compile_for_scheduler(spec, dialect) if args.for_scheduler else api.compile_plan(spec, dialect)
+        for_scheduler, dialect = args.for_scheduler, args.dialect
+        if args.check:
+            compiled = api.compiled_mode(args.check)
+            if compiled is not None:
+                if for_scheduler and compiled["mode"] != "scheduler":
+                    raise SqlmatchError(
+                        f"--for-scheduler: {args.check} holds a {compiled['mode']} plan (manifest.json), not a scheduler one. "
+                        f"Fix: drop --for-scheduler to check it as it was compiled."
+                    )
+                for_scheduler = compiled["mode"] == "scheduler"
+                if dialect is not None and dialect != compiled["dialect"]:
+                    raise SqlmatchError(
+                        f"--dialect: {args.check} was compiled for {compiled['dialect']} (manifest.json), not {dialect}. "
+                        f"Fix: pass --dialect {compiled['dialect']} or leave it out."
+                    )
+                dialect = dialect or compiled["dialect"]
+        dialect = check_dialect(dialect or "duckdb")
+        plan = api.compile_for_scheduler(spec, dialect) if for_scheduler else api.compile_plan(spec, dialect)
+        if not plan.complete:
+            # A partial plan would stop before matching: nothing to review or schedule.
+            raise SqlmatchError(
+                f"matching.method: {spec.matching.method} needs the fitted propensity model {api.model_file_text(spec)}, which does not exist. "
+                "Fix: run `sqlmatch run` once (it fits the model and writes that file), then compile again."
+            )
+        mode_flag = " --for-scheduler" if for_scheduler else ""
         if args.check:
             diff = api.check_plan(plan, args.check)
             if diff:
                 sys.stdout.write(diff)
-                print(f"sqlmatch: the SQL in {args.check} differs from what {args.spec} compiles to; run `sqlmatch compile {args.spec} --dialect {dialect} --out {args.check}` and review the diff.", file=sys.stderr)
+                print(
+                    f"sqlmatch: the SQL in {args.check} differs from what {args.spec} compiles to ({'scheduler' if for_scheduler else 'direct'} plan); "
+                    f"run `sqlmatch compile {args.spec} --dialect {dialect}{mode_flag} --out {args.check}` and review the diff.",
+                    file=sys.stderr,
+                )
                 return 1
             print(f"sqlmatch: {args.check} matches {args.spec}")
             return 0
         written = api.write_plan(plan, args.out)
         print(f"sqlmatch: wrote {len(written)} files to {args.out}")
-        if not plan.complete:
-            print(
-                "sqlmatch: the plan stops before the propensity model: run `sqlmatch run` once to fit it "
-                "(it writes the coefficients beside the spec), then compile again for the remaining steps.",
-                file=sys.stderr,
-            )
         return 0
     if args.command == "run":
         api.check_output_folder(args.out)
@@ -141,12 +162,21 @@ def _dispatch(args) -> int:
         if out.exists():
             raise SqlmatchError(f"--out: {out} exists; sqlmatch init does not overwrite. Fix: choose another path or remove it.")
         engine = api.open_url_or_database(args.engine, args.database)
+        # With --engine the URL is not written: it may hold a password; runs pass --engine again.
+        database = None if args.engine is not None else api.path_from_spec_folder(args.database, out)
         try:
-            text = starter_spec(engine, args.units, args.events, study=args.name, cohort=args.cohort)
+            text = starter_spec(engine, args.units, args.events, study=args.name, cohort=args.cohort, database=database)
         finally:
             engine.close()
         out.write_text(text, encoding="utf-8")
         print(f"sqlmatch: wrote {out}; review the lines marked GUESS, then `sqlmatch compile {out} --out sql/`")
+        if args.cohort is None:
+            from sqlmatch.init_spec import PLACEHOLDER_COHORT
+
+            print(
+                f"sqlmatch: treatment.cohort is a placeholder ({PLACEHOLDER_COHORT}), not read from the data: "
+                f"set it to the enrolment month to study, or pass --cohort YYYY-MM to `sqlmatch run`."
+            )
         return 0
     if args.command == "report":
         results = api.report_from_tables(api.load(args.spec), database=args.database, engine_url=args.engine)

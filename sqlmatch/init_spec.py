@@ -43,7 +43,15 @@ def _table(ref: str) -> TableRef:
     return TableRef(name=parts[-1], schema=parts[0] if len(parts) == 2 else None)
 
 
-def starter_spec(engine: Engine, units: str, events: str, study: str = "my_study", cohort: str = "2026-01") -> str:
+# Used when --cohort is not given: init reads no rows, so it cannot pick a month from the data.
+PLACEHOLDER_COHORT = "2026-01"
+
+
+def starter_spec(
+    engine: Engine, units: str, events: str, study: str = "my_study", cohort: str | None = None, database: str | None = None
+) -> str:
+    """The spec's text. `database` is written as [study] database (a path relative to the spec's
+    folder, as spec.py reads it); `cohort` None writes PLACEHOLDER_COHORT marked as a guess."""
     u_ref, e_ref = _table(units), _table(events)
     u_cols = engine.columns(u_ref.schema, u_ref.name)
     if u_cols is None:
@@ -66,6 +74,7 @@ def starter_spec(engine: Engine, units: str, events: str, study: str = "my_study
         "",
         "[study]",
         f"name = {_q(study)}",
+        *([f"database = {_q(database)}   # DuckDB file, relative to this spec's folder"] if database is not None else []),
         'work_schema = "sqlmatch"   # sqlmatch creates and writes tables only here',
         "",
         "[units]",
@@ -79,7 +88,12 @@ def starter_spec(engine: Engine, units: str, events: str, study: str = "my_study
         f"time = {_q(when)}   # GUESS",
         "",
         "[treatment]",
-        f"cohort = {_q(cohort)}   # the enrolment month to study",
+        (
+            f"cohort = {_q(cohort)}   # the enrolment month to study (from --cohort)"
+            if cohort is not None
+            else f"cohort = {_q(PLACEHOLDER_COHORT)}   # GUESS: a placeholder, not read from the data (init reads no rows); "
+            f"set the enrolment month to study, YYYY-MM"
+        ),
         'control_pool = "never_by_post_end"',
         "",
         "[windows]",

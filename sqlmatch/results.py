@@ -2,11 +2,12 @@
 
 from __future__ import annotations
 
+import html
 import json
 import math
 from dataclasses import asdict, dataclass, field
 
-from sqlmatch.privacy import sample_flow, suppress_counts as _suppress_counts, suppress_histograms, suppress_levels
+from sqlmatch.privacy import count_text, flow_texts, sample_flow, suppress_counts as _suppress_counts, suppress_histograms, suppress_levels
 
 ASSUMPTIONS = (
     "No unmeasured confounding: after matching on the listed features, enrolment is as good as random. "
@@ -32,6 +33,13 @@ def _num(x):
     if isinstance(x, float) and not math.isfinite(x):
         return None
     return x
+
+
+def _short(x: float | None) -> str:
+    """A number for a one-line summary: 4 significant digits; "–" when missing or not finite."""
+    if x is None or (isinstance(x, float) and not math.isfinite(x)):
+        return "–"
+    return f"{x:.4g}"
 
 
 @dataclass(frozen=True)
@@ -118,7 +126,86 @@ class StudyResults:
     timings: dict[str, float] = field(default_factory=dict)
 
     def effect(self, outcome: str) -> Effect:
-        return next(e for e in self.effects if e.outcome == outcome)
+        for e in self.effects:
+            if e.outcome == outcome:
+                return e
+        raise KeyError(f"no outcome {outcome!r}; the outcomes are: {', '.join(e.outcome for e in self.effects) or '(none)'}")
+
+    def effects_frame(self):
+        """One row per outcome (the Effect fields but sensitivity; nested figures as columns such
+        as `lift.ci_low`), as in results.json: counts below min_cell_size are missing."""
+        import pandas as pd
+
+        interval_fields = list(Interval.__dataclass_fields__)
+        columns = []
+        for f in Effect.__dataclass_fields__:
+            if f in ("naive", "lift", "risk_ratio", "did"):
+                columns += [f"{f}.{g}" for g in interval_fields]
+            elif f != "sensitivity":
+                columns.append(f)
+        rows = []
+        for e in self.effects:
+            record = self._effect_record(e)
+            flat = {}
+            for k, v in record.items():
+                if k in ("naive", "lift", "risk_ratio", "did"):
+                    flat.update({f"{k}.{g}": (v or {}).get(g) for g in interval_fields})
+                elif k != "sensitivity":
+                    flat[k] = v
+            rows.append(flat)
+        return pd.DataFrame(rows, columns=columns)
+
+    def balance_frame(self):
+        """One row per covariate (or level), the BalanceRow fields, as in results.json."""
+        import pandas as pd
+
+        rows = [{k: _num(v) for k, v in asdict(b).items()} for b in suppress_levels(self.balance, self.matching, self.min_cell_size)]
+        return pd.DataFrame(rows, columns=list(BalanceRow.__dataclass_fields__))
+
+    def _effect_record(self, e: Effect) -> dict:
+        return _suppress_counts({k: _num(v) for k, v in asdict(e).items()}, self.min_cell_size)
+
+    def _flow_text(self, group: str, row: str) -> str:
+        """A count of the matching summary as the reports show it (small or revealing ones withheld)."""
+        return flow_texts(self.matching, self.min_cell_size)[group][row]
+
+    def __repr__(self) -> str:
+        m, f = self.matching, self._flow_text
+        lines = [
+            f"StudyResults: study {self.study!r}, cohort {self.cohort}, method {m.method}",
+            f"  matched: {f('treated', 'matched')} of {f('treated', 'in_study')} enrolled, "
+            f"{f('control', 'matched')} of {f('control', 'in_study')} comparison units",
+        ]
+        for e in self.effects:
+            lines.append(f"  {e.outcome}: {_short(e.estimate)} (95% interval {_short(e.ci_low)} to {_short(e.ci_high)})")
+        if self.warnings:
+            lines.append(f"  {len(self.warnings)} warning(s): see .warnings")
+        return "\n".join(lines)
+
+    def _repr_html_(self) -> str:
+        m, esc, cell = self.matching, html.escape, self.min_cell_size
+        head = (
+            f"<p><b>{esc(self.study)}</b>, cohort {esc(self.cohort)}, method {esc(m.method)}: "
+            f"{esc(self._flow_text('treated', 'matched'))} of {esc(self._flow_text('treated', 'in_study'))} enrolled matched</p>"
+        )
+        header = "".join(f"<th>{esc(h)}</th>" for h in ("outcome", "kind", "effect", "95% interval", "enrolled", "comparison"))
+        body = "".join(
+            "<tr>"
+            + "".join(
+                f"<td>{esc(v)}</td>"
+                for v in (
+                    e.outcome,
+                    e.kind,
+                    _short(e.estimate),
+                    f"{_short(e.ci_low)} to {_short(e.ci_high)}",
+                    count_text(e.n_treated, cell),
+                    count_text(e.n_control, cell),
+                )
+            )
+            + "</tr>"
+            for e in self.effects
+        )
+        return f"<div>{head}<table><thead><tr>{header}</tr></thead><tbody>{body}</tbody></table></div>"
 
     def to_dict(self) -> dict:
         out = {
@@ -130,7 +217,7 @@ class StudyResults:
             "balance": [{k: _num(v) for k, v in asdict(b).items()} for b in suppress_levels(self.balance, self.matching, self.min_cell_size)],
             "imbalance": self.imbalance,
             "histograms": suppress_histograms(self.histograms, self.min_cell_size),
-            "effects": [_suppress_counts({k: _num(v) for k, v in asdict(e).items()}, self.min_cell_size) for e in self.effects],
+            "effects": [self._effect_record(e) for e in self.effects],
             "warnings": list(self.warnings),
             "rows_fetched": self.rows_fetched,
             "min_cell_size": self.min_cell_size,
