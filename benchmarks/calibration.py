@@ -116,18 +116,26 @@ def replicate(task) -> tuple[list[dict], list[dict]]:
     return records, failures
 
 
-def run(replicates: int, sizes: dict, first_seed: int, methods: list[str], processes: list[str], workers: int, work: Path, log=sys.stderr):
+def run(replicates: int, sizes: dict, first_seed: int, methods: list[str], processes: list[str], workers: int, work: Path, log=sys.stderr, checkpoint: Path | None = None):
+    """Every (process, seed) in `workers` processes; each finished replicate is appended to
+    `checkpoint` (JSON lines) so an interrupted run can still be summarised (--from-checkpoint)."""
     tasks = [(p, first_seed + k, sizes[p], methods, str(work)) for k in range(replicates) for p in processes]
     records: list[dict] = []
     failures: list[dict] = []
+    sink = checkpoint.open("w", encoding="utf-8") if checkpoint else None
     with multiprocessing.get_context("fork").Pool(workers) as pool:
         for i, (recs, fails) in enumerate(pool.imap_unordered(replicate, tasks), 1):
             records += recs
             failures += fails
+            if sink:
+                sink.write(json.dumps(dict(records=recs, failures=fails)) + "\n")
+                sink.flush()
             for f in fails:
                 print(f"calibration: {f['method']} failed on {f['process']} seed {f['seed']}: {f['error']}", file=log, flush=True)
             if i % 10 == 0 or i == len(tasks):
                 print(f"calibration: {i}/{len(tasks)} replicates done", file=log, flush=True)
+    if sink:
+        sink.close()
     return records, failures
 
 
@@ -195,7 +203,8 @@ def render(summary, failures, args, seconds: float, command: str) -> str:
         f"- Machine: {_machine()}; {args.workers} worker processes, DuckDB on 1 thread each",
         f"- Command: `{command}`",
         f"- Replicates: {args.replicates} seeds per process ({args.first_seed} to {args.first_seed + args.replicates - 1}); "
-        f"demo {args.riders:,} riders, commuter {args.units:,} riders; wall time {seconds / 60:.1f} min",
+        f"demo {args.riders:,} riders, commuter {args.units:,} riders; wall time {seconds / 60:.1f} min"
+        + (" (summarised from the checkpoint of an interrupted run: see the `ok` column for the replicates per cell)" if args.from_checkpoint else ""),
         "- Methods at their default settings (spec.py): coarsened_exact with each spec's cut points; score_bins with 5 "
         "subclasses at treated-score quantiles, common support, propensity on `matching.on`; nearest 1:1 with replacement, "
         "logit distance, caliper 0.2 SD.",
@@ -253,13 +262,23 @@ def main(argv=None) -> int:
     parser.add_argument("--workers", type=int, default=2, help="worker processes (default 2; the machine is shared)")
     parser.add_argument("--out", type=Path, default=REPO / "benchmarks" / "RESULTS_calibration.md")
     parser.add_argument("--raw", type=Path, default=REPO / "benchmarks" / "calibration_raw.json")
+    parser.add_argument("--checkpoint", type=Path, default=Path(tempfile.gettempdir()) / "sqlmatch_calibration.jsonl", help="JSON lines, one per finished replicate")
+    parser.add_argument("--from-checkpoint", action="store_true", help="summarise the checkpoint of an interrupted run instead of running (--replicates: the count it was started with)")
     args = parser.parse_args(argv)
     methods = args.methods or list(METHODS)
     command = "python3 benchmarks/calibration.py " + " ".join(argv if argv is not None else sys.argv[1:])
     t0 = time.perf_counter()
-    with tempfile.TemporaryDirectory(prefix="sqlmatch_calibration_") as work:
-        records, failures = run(args.replicates, {"demo": args.riders, "commuter": args.units}, args.first_seed, methods, args.processes, args.workers, Path(work))
-    seconds = time.perf_counter() - t0
+    if args.from_checkpoint:
+        records, failures = [], []
+        for line in args.checkpoint.read_text(encoding="utf-8").splitlines():
+            part = json.loads(line)
+            records += part["records"]
+            failures += part["failures"]
+        seconds = math.nan
+    else:
+        with tempfile.TemporaryDirectory(prefix="sqlmatch_calibration_") as work:
+            records, failures = run(args.replicates, {"demo": args.riders, "commuter": args.units}, args.first_seed, methods, args.processes, args.workers, Path(work), checkpoint=args.checkpoint)
+        seconds = time.perf_counter() - t0
     summary = summarise(records, failures)
     text = render(summary, failures, args, seconds, command.strip())
     args.out.write_text(text, encoding="utf-8")
