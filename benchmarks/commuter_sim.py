@@ -23,10 +23,14 @@ Truth, per outcome (post_trips, post_fare, fare_per_trip, active_last_month):
                   `true_att` convention; what the stratified variance targets);
   sample_att      the realised mean of Y(pass) - Y(no pass) over the cohort, from both simulated
                   potential outcomes (fare_per_trip: difference of the two cohort ratios);
+  matched treated (calibration.py): expected_att over only the treated units a run matched,
+                  from the per-unit expectations in `commuter_unit_truth` (a method that drops
+                  treated units estimates the effect on those it kept, and the effect varies);
   population_att  the same expectation over the treated of a 1,000,000-rider population drawn
                   once with a fixed seed (weights: each rider's take-up probability).
 
-numpy draws the rows, DuckDB stores them (tables `riders`, `trips`, `commuter_truth`). A benchmark
+numpy draws the rows, DuckDB stores them (tables `riders`, `trips`, `commuter_truth`,
+`commuter_unit_truth`). A benchmark
 generator: row-level data in Python is fine here, never in sqlmatch.
 """
 
@@ -179,6 +183,8 @@ def simulate(units: int, seed: int):
         "active_last_month": float(np.mean(act1[c].astype(float) - act0[c])),
     }
     expected = _att(_expected(rate[c], fare_median[c], tau[c]), np.ones(len(c)))
+    ex = _expected(rate[c], fare_median[c], tau[c])
+    unit_truth = pd.DataFrame({"rider_id": rider_id[c], **{k: v for k, v in ex.items()}})
     population = population_att()
     truth = {o: dict(expected_att=expected[o], sample_att=sample[o], population_att=population[o]) for o in OUTCOMES}
 
@@ -192,7 +198,7 @@ def simulate(units: int, seed: int):
             "pass_bought_on": bought,
         }
     )
-    return riders, trips, truth
+    return riders, trips, truth, unit_truth
 
 
 def build_commuter(out: Path, units: int, seed: int, threads: int | None = None) -> tuple[Path, dict]:
@@ -200,13 +206,14 @@ def build_commuter(out: Path, units: int, seed: int, threads: int | None = None)
     out.mkdir(parents=True, exist_ok=True)
     database = out / DATABASE
     database.unlink(missing_ok=True)
-    riders, trips, truth = simulate(units, seed)
+    riders, trips, truth, unit_truth = simulate(units, seed)
     truth_df = pd.DataFrame([dict(outcome=o, **t) for o, t in truth.items()])
     con = duckdb.connect(str(database), config={"threads": threads} if threads else {})
     try:
         con.execute("CREATE TABLE riders AS SELECT rider_id, home_district, commute_km, CAST(signup_date AS DATE) AS signup_date, CAST(pass_bought_on AS DATE) AS pass_bought_on FROM riders")
         con.execute("CREATE TABLE trips AS SELECT trip_id, rider_id, CAST(started_at AS TIMESTAMP) AS started_at, fare FROM trips")
         con.execute("CREATE TABLE commuter_truth AS SELECT * FROM truth_df")
+        con.execute("CREATE TABLE commuter_unit_truth AS SELECT * FROM unit_truth")
     finally:
         con.close()
     spec_path = out / SPEC.name
