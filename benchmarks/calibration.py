@@ -175,6 +175,9 @@ def summarise(records: list[dict], failures: list[dict]) -> list[dict]:
         estimates = [r["estimate"] for r in rs]
         mean_est = sum(estimates) / n
         sd = math.sqrt(sum((x - mean_est) ** 2 for x in estimates) / (n - 1)) if n > 1 else math.nan
+        # the truth moves with each replicate's cohort: an honest SE matches the spread of the errors
+        err_mean = sum(errors) / n
+        sd_err = math.sqrt(sum((x - err_mean) ** 2 for x in errors) / (n - 1)) if n > 1 else math.nan
         ses = [r["se"] for r in rs if r["se"] is not None]
         mean_se = sum(ses) / len(ses) if ses else math.nan
         cov, mc = _cover(rs, "expected_att")
@@ -190,7 +193,7 @@ def summarise(records: list[dict], failures: list[dict]) -> list[dict]:
                 bias=bias, bias_se=sd / math.sqrt(n) if n > 1 else math.nan,
                 bias_over_se=bias / mean_se if mean_se else math.nan,
                 mean_truth=sum(r["expected_att"] for r in rs) / n, sd=sd, mean_se=mean_se,
-                se_over_sd=mean_se / sd if sd else math.nan,
+                sd_error=sd_err, se_over_sd=mean_se / sd_err if sd_err else math.nan,
                 seconds=sum(r["seconds"] for r in rs) / n,
             )
         )
@@ -232,11 +235,12 @@ def render(summary, failures, args, seconds: float, command: str) -> str:
         "",
         "Coverage: share of the 95% intervals that contain the truth (target 0.93–0.97; Monte Carlo SE in brackets). "
         "Bias: mean of estimate − expected truth (± its Monte Carlo SE); bias/SE divides it by the mean SE. "
-        "SE/SD: mean SE over the SD of the estimates across replicates (1 = honest). "
+        "SD of errors: SD of estimate − expected truth across replicates (the truth moves with each cohort); SE/SD: mean SE "
+        "over the SD of errors (1 = honest). "
         "Failed: replicates where the method raised (no estimate).",
         "",
-        "| process | method | estimate | kind | ok | failed | coverage (expected) | coverage (sample) | coverage (population) | coverage (matched treated) | bias | bias vs matched | bias/SE | mean truth | SD of estimates | mean SE | SE/SD |",
-        "|---|---|---|---|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|",
+        "| process | method | estimate | kind | ok | failed | coverage (expected) | coverage (sample) | coverage (population) | coverage (matched treated) | bias | bias vs matched | bias/SE | mean truth | SD of estimates | SD of errors | mean SE | SE/SD |",
+        "|---|---|---|---|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|",
     ]
     flagged = []
     for s in summary:
@@ -245,7 +249,7 @@ def render(summary, failures, args, seconds: float, command: str) -> str:
         lines.append(
             f"| {s['process']} | {s['method']} | {s['row']} | {s['kind']} | {s['n']} | {s['failed']} | {_f(s['coverage'], '.3f')} ({_f(s['mc_se'], '.3f')}) | "
             f"{_f(s['coverage_sample'], '.3f')} | {_f(s['coverage_population'], '.3f')} | {_f(s['coverage_matched'], '.3f')} | {s['bias']:+.4f} (± {_f(s['bias_se'], '.4f')}) | {_f(s['bias_matched'], '+.4f')} | {_f(s['bias_over_se'], '+.2f')} | "
-            f"{s['mean_truth']:.4f} | {_f(s['sd'], '.4f')} | {_f(s['mean_se'], '.4f')} | {_f(s['se_over_sd'], '.2f')} |"
+            f"{s['mean_truth']:.4f} | {_f(s['sd'], '.4f')} | {_f(s['sd_error'], '.4f')} | {_f(s['mean_se'], '.4f')} | {_f(s['se_over_sd'], '.2f')} |"
         )
         if not 0.93 <= s["coverage"] <= 0.97:
             flagged.append(s)
