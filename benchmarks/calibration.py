@@ -1,22 +1,29 @@
-"""Calibration of sqlmatch's intervals on the simulated bike-share (a script, not a test).
+"""Calibration of sqlmatch's intervals on two simulated bike-shares (a script, not a test).
 
-For each of N seeds the demo warehouse is generated afresh (sqlmatch.demo_run.build_demo) and the
-demo study is run with every matching method of sqlmatch.matching.METHODS. Each 95% interval is
-checked against the simulation's expected effect on the cohort (`demo_truth.true_att`), and the
-estimates' bias is averaged. A method that fails on the demo spec is listed with its error and
-left out. Also shown: the difference-in-differences of post_trips (twin pre_trips) against the
-same truth, and the unmatched (naive) comparison for reference.
+Processes: `demo` (the demo warehouse, sqlmatch.demo_run.build_demo, and its study) and `commuter`
+(benchmarks/commuter_sim.py and benchmarks/commuter_pass.toml: continuous and categorical
+confounders, an effect that grows with pre-period trips, lognormal fares). For each of R seeds
+each process is generated afresh and its study run with every matching method of
+sqlmatch.matching.METHODS at the method's default settings (the spec's `on` and cut points, the
+method replaced). Each 95% interval is checked against the simulation's expected effect on the
+cohort given its units (`expected`, the demo's `true_att`), the realised sample ATT (`sample`) and,
+for the commuter process, the population ATT. A replicate where a method raises counts as failed
+for that method (its first message is kept). Replicates run in `--workers` processes, each DuckDB
+connection on one thread.
 
-    python3 benchmarks/calibration.py --replicates 200 --riders 12000
+    python3 benchmarks/calibration.py --replicates 200 --workers 2
 
-writes benchmarks/RESULTS_calibration.md (use --out to write elsewhere). Coverage carries Monte
-Carlo error: with N intervals at true coverage 0.95 its SD is sqrt(0.95 * 0.05 / N) (0.034 at
-N = 40, 0.015 at N = 200).
+writes benchmarks/RESULTS_calibration.md and benchmarks/calibration_raw.json (--out, --raw).
+Coverage carries Monte Carlo error: with N intervals at true coverage 0.95 its SD is
+sqrt(0.95 * 0.05 / N) (0.034 at N = 40, 0.015 at N = 200).
 """
 
 from __future__ import annotations
 
 import argparse
+import json
+import multiprocessing
+import subprocess
 import datetime as dt
 import math
 import os
@@ -30,12 +37,16 @@ from pathlib import Path
 
 REPO = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(REPO))
+sys.path.insert(0, str(REPO / "benchmarks"))
 
 from sqlmatch import api  # noqa: E402
-from sqlmatch.demo_run import build_demo, read_truth  # noqa: E402
+from sqlmatch.demo_run import build_demo  # noqa: E402
 from sqlmatch.engines.duckdb import DuckDBEngine  # noqa: E402
 from sqlmatch.matching import METHODS  # noqa: E402
 from sqlmatch.spec import load_spec  # noqa: E402
+
+import duckdb  # noqa: E402
+from commuter_sim import build_commuter  # noqa: E402
 
 Z95 = 1.959963984540054
 
@@ -57,136 +68,242 @@ def _machine() -> str:
     )
 
 
-def run(replicates: int, riders: int, first_seed: int, methods: list[str], work: Path, log=sys.stderr):
-    """Returns (records, failures): one record per (seed, method, row) with the estimate, interval
-    and truth; failures maps a method to its first error message."""
-    records: list[dict] = []
-    failures: dict[str, str] = {}
-    for k in range(replicates):
-        seed = first_seed + k
-        folder = work / f"seed_{seed}"
-        spec_path = build_demo(folder, riders=riders, seed=seed)
-        with DuckDBEngine(str(folder / "bikeshare.duckdb")) as engine:
-            truth = read_truth(engine)
+PROCESSES = ("demo", "commuter")
+
+
+def _demo_truth(path: Path) -> dict[str, dict]:
+    con = duckdb.connect(str(path), read_only=True)
+    try:
+        rows = con.execute("SELECT outcome, true_att, sample_att FROM demo_truth").fetchall()
+    finally:
+        con.close()
+    return {o: dict(expected_att=float(e), sample_att=float(s), population_att=None) for o, e, s in rows}
+
+
+def _matched_truth(con, spec) -> dict[str, float]:
+    """The commuter truth over the treated units this run matched (benchmark only: it reads the
+    run's kept <study>_weighted_units rows, which sqlmatch itself never pulls)."""
+    row = con.execute(
+        f'SELECT AVG(u.trips1 - u.trips0), AVG(u.fare1 - u.fare0), SUM(u.fare1) / SUM(u.trips1) - SUM(u.fare0) / SUM(u.trips0), '
+        f'AVG(u.active1 - u.active0) FROM commuter_unit_truth AS u JOIN "{spec.work_schema}"."{spec.name}_weighted_units" AS w '
+        f"ON w.unit_key = u.rider_id WHERE w.treated = 1 AND w.match__weight IS NOT NULL"
+    ).fetchone()
+    return dict(zip(("post_trips", "post_fare", "fare_per_trip", "active_last_month"), map(float, row)))
+
+
+def replicate(task) -> tuple[list[dict], list[dict]]:
+    """One process at one seed, every method: (records, failures)."""
+    process, seed, size, methods, work = task
+    folder = Path(work) / f"{process}_{seed}"
+    if process == "demo":
+        spec_path = build_demo(folder, riders=size, seed=seed)
+        database = folder / "bikeshare.duckdb"
+        truth = _demo_truth(database)
+    else:
+        spec_path, truth = build_commuter(folder, units=size, seed=seed, threads=1)
+        database = folder / "commuter.duckdb"
+    records, failures = [], []
+    con = duckdb.connect(str(database), config={"threads": 1})  # two workers on a shared 2-core machine
+    try:
         for method in methods:
-            if method in failures:
-                continue
+            t0 = time.perf_counter()
             try:
                 spec = load_spec(spec_path).with_overrides(method=method)
-                results = api.run(spec)
-            except Exception as err:  # a method that does not run on the demo is reported, not fatal
-                failures[method] = f"{type(err).__name__}: {str(err).splitlines()[0] if str(err) else ''}"
-                print(f"calibration: {method} failed on seed {seed}: {failures[method]}", file=log, flush=True)
+                results = api.run(spec, engine=DuckDBEngine(str(database), connection=con))
+            except Exception as err:  # a failing method is counted, not fatal
+                failures.append(dict(process=process, seed=seed, method=method, error=f"{type(err).__name__}: {str(err).splitlines()[0] if str(err) else ''}"))
                 continue
+            seconds = time.perf_counter() - t0
+            matched = _matched_truth(con, spec) if process == "commuter" else {}
             for e in results.effects:
-                t = truth[e.outcome]
-                records.append(dict(seed=seed, method=method, row=e.outcome, kind=e.kind, truth=t, estimate=e.estimate, se=e.std_error, lo=e.ci_low, hi=e.ci_high))
-                records.append(dict(seed=seed, method=method, row=f"{e.outcome} (unmatched)", kind=e.kind, truth=t, estimate=e.naive.estimate, se=e.naive.std_error, lo=e.naive.ci_low, hi=e.naive.ci_high))
+                t = dict(truth[e.outcome], matched_att=matched.get(e.outcome))
+                base = dict(process=process, seed=seed, method=method, kind=e.kind, seconds=seconds, n_treated=e.n_treated, n_control=e.n_control, **t)
+                records.append(dict(base, row=e.outcome, estimate=e.estimate, se=e.std_error, lo=e.ci_low, hi=e.ci_high))
+                records.append(dict(base, row=f"{e.outcome} (unmatched)", estimate=e.naive.estimate, se=e.naive.std_error, lo=e.naive.ci_low, hi=e.naive.ci_high))
                 if e.did is not None:
-                    records.append(
-                        dict(seed=seed, method=method, row=f"{e.outcome} − {e.did_twin} (DiD)", kind=e.kind, truth=t, estimate=e.did.estimate, se=e.did.std_error, lo=e.did.ci_low, hi=e.did.ci_high)
-                    )
+                    records.append(dict(base, row=f"{e.outcome} − {e.did_twin} (DiD)", estimate=e.did.estimate, se=e.did.std_error, lo=e.did.ci_low, hi=e.did.ci_high))
+    finally:
+        con.close()
         shutil.rmtree(folder, ignore_errors=True)
-        print(f"calibration: seed {seed} done ({k + 1}/{replicates})", file=log, flush=True)
     return records, failures
 
 
-def summarise(records: list[dict]) -> list[dict]:
-    groups: dict[tuple[str, str], list[dict]] = defaultdict(list)
-    order: list[tuple[str, str]] = []
+def run(replicates: int, sizes: dict, first_seed: int, methods: list[str], processes: list[str], workers: int, work: Path, log=sys.stderr, checkpoint: Path | None = None):
+    """Every (process, seed) in `workers` processes; each finished replicate is appended to
+    `checkpoint` (JSON lines) so an interrupted run can still be summarised (--from-checkpoint)."""
+    tasks = [(p, first_seed + k, sizes[p], methods, str(work)) for k in range(replicates) for p in processes]
+    records: list[dict] = []
+    failures: list[dict] = []
+    sink = checkpoint.open("w", encoding="utf-8") if checkpoint else None
+    with multiprocessing.get_context("fork").Pool(workers) as pool:
+        for i, (recs, fails) in enumerate(pool.imap_unordered(replicate, tasks), 1):
+            records += recs
+            failures += fails
+            if sink:
+                sink.write(json.dumps(dict(records=recs, failures=fails)) + "\n")
+                sink.flush()
+            for f in fails:
+                print(f"calibration: {f['method']} failed on {f['process']} seed {f['seed']}: {f['error']}", file=log, flush=True)
+            if i % 10 == 0 or i == len(tasks):
+                print(f"calibration: {i}/{len(tasks)} replicates done", file=log, flush=True)
+    if sink:
+        sink.close()
+    return records, failures
+
+
+def _cover(rs, key):
+    ok = [r for r in rs if r["lo"] is not None and r["hi"] is not None and r.get(key) is not None]
+    if not ok:
+        return math.nan, math.nan
+    c = sum(r["lo"] <= r[key] <= r["hi"] for r in ok) / len(ok)
+    return c, math.sqrt(c * (1 - c) / len(ok))
+
+
+def summarise(records: list[dict], failures: list[dict]) -> list[dict]:
+    groups: dict[tuple, list[dict]] = defaultdict(list)
     for r in records:
-        key = (r["method"], r["row"])
-        if key not in groups:
-            order.append(key)
-        groups[key].append(r)
+        groups[(r["process"], r["method"], r["row"])].append(r)
+    failed = defaultdict(int)
+    for f in failures:
+        failed[(f["process"], f["method"])] += 1
     out = []
-    for key in order:
-        rs = groups[key]
+    for key in sorted(groups, key=lambda k: (PROCESSES.index(k[0]), k[1], k[2])):
+        rs = sorted(groups[key], key=lambda r: r["seed"])
         n = len(rs)
-        ok = [r for r in rs if r["lo"] is not None and r["hi"] is not None]
-        cover = sum(r["lo"] <= r["truth"] <= r["hi"] for r in ok) / len(ok) if ok else math.nan
-        errors = [r["estimate"] - r["truth"] for r in rs]
+        errors = [r["estimate"] - r["expected_att"] for r in rs]
         bias = sum(errors) / n
         estimates = [r["estimate"] for r in rs]
         mean_est = sum(estimates) / n
         sd = math.sqrt(sum((x - mean_est) ** 2 for x in estimates) / (n - 1)) if n > 1 else math.nan
+        # the truth moves with each replicate's cohort: an honest SE matches the spread of the errors
+        err_mean = sum(errors) / n
+        sd_err = math.sqrt(sum((x - err_mean) ** 2 for x in errors) / (n - 1)) if n > 1 else math.nan
         ses = [r["se"] for r in rs if r["se"] is not None]
         mean_se = sum(ses) / len(ses) if ses else math.nan
-        mean_truth = sum(r["truth"] for r in rs) / n
+        cov, mc = _cover(rs, "expected_att")
+        cov_s, _ = _cover(rs, "sample_att")
+        cov_p, _ = _cover(rs, "population_att")
+        cov_m, _ = _cover(rs, "matched_att")
+        with_m = [r for r in rs if r.get("matched_att") is not None]
+        bias_m = sum(r["estimate"] - r["matched_att"] for r in with_m) / len(with_m) if with_m else math.nan
         out.append(
             dict(
-                method=key[0],
-                row=key[1],
-                kind=rs[0]["kind"],
-                n=n,
-                coverage=cover,
-                mc_se=math.sqrt(cover * (1 - cover) / len(ok)) if ok else math.nan,
-                bias=bias,
-                bias_se=sd / math.sqrt(n) if n > 1 else math.nan,
-                mean_truth=mean_truth,
-                sd=sd,
-                mean_se=mean_se,
+                process=key[0], method=key[1], row=key[2], kind=rs[0]["kind"], n=n, failed=failed[(key[0], key[1])],
+                coverage=cov, mc_se=mc, coverage_sample=cov_s, coverage_population=cov_p, coverage_matched=cov_m, bias_matched=bias_m,
+                bias=bias, bias_se=sd / math.sqrt(n) if n > 1 else math.nan,
+                bias_over_se=bias / mean_se if mean_se else math.nan,
+                mean_truth=sum(r["expected_att"] for r in rs) / n, sd=sd, mean_se=mean_se,
+                sd_error=sd_err, se_over_sd=mean_se / sd_err if sd_err else math.nan,
+                seconds=sum(r["seconds"] for r in rs) / n,
             )
         )
     return out
 
 
+def _f(x, fmt):
+    return "n/a" if x is None or (isinstance(x, float) and math.isnan(x)) else format(x, fmt)
+
+
+def _commit() -> str:
+    try:
+        sha = subprocess.run(["git", "-C", str(REPO), "rev-parse", "--short", "HEAD"], capture_output=True, text=True, check=True).stdout.strip()
+        dirty = subprocess.run(["git", "-C", str(REPO), "status", "--porcelain", "--untracked-files=no"], capture_output=True, text=True).stdout.strip()
+        return sha + (" (with uncommitted changes)" if dirty else "")
+    except (OSError, subprocess.CalledProcessError):
+        return "unknown"
+
+
 def render(summary, failures, args, seconds: float, command: str) -> str:
     lines = [
-        "# Calibration of the 95% intervals on the simulated bike-share",
+        "# Calibration of the 95% intervals on two simulated bike-shares",
         "",
-        f"- Date: {dt.date.today().isoformat()}",
-        f"- Machine: {_machine()}",
+        f"- Date: {dt.date.today().isoformat()}; commit {_commit()}",
+        f"- Machine: {_machine()}; {args.workers} worker processes, DuckDB on 1 thread each",
         f"- Command: `{command}`",
-        f"- Replicates: {args.replicates} seeds ({args.first_seed} to {args.first_seed + args.replicates - 1}), "
-        f"{args.riders:,} riders each; wall time {seconds / 60:.1f} min",
-        "- Truth: `demo_truth.true_att`, the effect the simulation builds in, averaged over its trip-level randomness "
-        "given the cohort's riders (post_trips: exactly 4.5 extra trips).",
+        f"- Replicates: {args.replicates} seeds per process ({args.first_seed} to {args.first_seed + args.replicates - 1}); "
+        f"demo {args.riders:,} riders, commuter {args.units:,} riders; wall time {seconds / 60:.1f} min"
+        + (" (summarised from the checkpoint of an interrupted run: see the `ok` column for the replicates per cell)" if args.from_checkpoint else ""),
+        "- Methods at their default settings (spec.py): coarsened_exact with each spec's cut points; score_bins with 5 "
+        "subclasses at treated-score quantiles, common support, propensity on `matching.on`; nearest 1:1 with replacement, "
+        "logit distance, caliper 0.2 SD.",
+        "- Truths. `expected`: the effect on the cohort given its units' latent values, averaged over the post-window "
+        "randomness (the demo's `true_att`; what the per-stratum variance formula targets). `sample`: the realised mean of "
+        "Y(1) − Y(0) over the cohort from both simulated potential outcomes. `population`: the ATT over a 1,000,000-rider "
+        "population (commuter only; the demo records none). `matched treated`: the expected effect over only the treated "
+        "units the run kept (commuter only): with a heterogeneous effect a method that drops treated units estimates "
+        "the effect on the ones it kept, as the report says.",
         "",
-        "Coverage: share of the 95% intervals that contain the truth (nominal 0.95; Monte Carlo SE in brackets). "
-        "Bias: mean of estimate − truth (± its Monte Carlo SE). SD of estimates vs mean SE: an honest standard error "
-        "matches the spread of the estimates over replicates.",
+        "Coverage: share of the 95% intervals that contain the truth (target 0.93–0.97; Monte Carlo SE in brackets). "
+        "Bias: mean of estimate − expected truth (± its Monte Carlo SE); bias/SE divides it by the mean SE. "
+        "SD of errors: SD of estimate − expected truth across replicates (the truth moves with each cohort); SE/SD: mean SE "
+        "over the SD of errors (1 = honest). "
+        "Failed: replicates where the method raised (no estimate).",
         "",
-        "| method | estimate | kind | replicates | coverage | bias | mean truth | SD of estimates | mean SE |",
-        "|---|---|---|---:|---:|---:|---:|---:|---:|",
+        "| process | method | estimate | kind | ok | failed | coverage (expected) | coverage (sample) | coverage (population) | coverage (matched treated) | bias | bias vs matched | bias/SE | mean truth | SD of estimates | SD of errors | mean SE | SE/SD |",
+        "|---|---|---|---|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|",
     ]
+    flagged = []
     for s in summary:
+        if "(unmatched)" in s["row"]:
+            continue
         lines.append(
-            f"| {s['method']} | {s['row']} | {s['kind']} | {s['n']} | {s['coverage']:.3f} ({s['mc_se']:.3f}) | "
-            f"{s['bias']:+.4f} (± {s['bias_se']:.4f}) | {s['mean_truth']:.4f} | {s['sd']:.4f} | {s['mean_se']:.4f} |"
+            f"| {s['process']} | {s['method']} | {s['row']} | {s['kind']} | {s['n']} | {s['failed']} | {_f(s['coverage'], '.3f')} ({_f(s['mc_se'], '.3f')}) | "
+            f"{_f(s['coverage_sample'], '.3f')} | {_f(s['coverage_population'], '.3f')} | {_f(s['coverage_matched'], '.3f')} | {s['bias']:+.4f} (± {_f(s['bias_se'], '.4f')}) | {_f(s['bias_matched'], '+.4f')} | {_f(s['bias_over_se'], '+.2f')} | "
+            f"{s['mean_truth']:.4f} | {_f(s['sd'], '.4f')} | {_f(s['sd_error'], '.4f')} | {_f(s['mean_se'], '.4f')} | {_f(s['se_over_sd'], '.2f')} |"
         )
-    if failures:
-        lines += ["", "Methods left out because they failed on the demo spec:", ""]
-        lines += [f"- `{m}`: {msg}" for m, msg in sorted(failures.items())]
-    lines += [
-        "",
-        "Notes:",
-        "",
-        "- The unmatched rows compare all enrolled with all non-enrolled riders; the simulation makes heavier riders "
-        "buy the pass, so they are biased upwards by design and shown only for reference.",
-        "- The difference-in-differences row estimates the effect on post_trips − pre_trips against the same truth: "
-        "pre_trips counts 6 months and post_trips 3, and the differences are taken as they are.",
-        "",
-    ]
+        if not 0.93 <= s["coverage"] <= 0.97:
+            flagged.append(s)
+    failed_cells = sorted({(f["process"], f["method"]) for f in failures})
+    if failed_cells:
+        lines += ["", "Failures (first message per cell):", ""]
+        for cell in failed_cells:
+            fs = [f for f in failures if (f["process"], f["method"]) == cell]
+            lines.append(f"- {cell[0]} / `{cell[1]}`: {len(fs)} of {args.replicates} replicates; {fs[0]['error']}")
+    lines += ["", "Cells outside 0.93–0.97 (coverage of the expected truth):", ""]
+    lines += [f"- {s['process']} / {s['method']} / {s['row']}: {s['coverage']:.3f}" for s in flagged] or ["- none"]
+    lines += ["", "Unmatched (naive) comparisons, for reference (biased by design):", "",
+              "| process | estimate | coverage (expected) | bias |", "|---|---|---:|---:|"]
+    seen = set()
+    for s in summary:
+        if "(unmatched)" in s["row"] and (s["process"], s["row"]) not in seen:
+            seen.add((s["process"], s["row"]))
+            lines.append(f"| {s['process']} | {s['row']} | {_f(s['coverage'], '.3f')} | {s['bias']:+.4f} |")
+    lines += [""]
     return "\n".join(lines)
 
 
 def main(argv=None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--replicates", type=int, default=200, help="number of seeds (default 200)")
-    parser.add_argument("--riders", type=int, default=12_000, help="riders per simulated warehouse (default 12,000)")
+    parser.add_argument("--replicates", type=int, default=200, help="seeds per process (default 200)")
+    parser.add_argument("--riders", type=int, default=12_000, help="riders per demo warehouse (default 12,000)")
+    parser.add_argument("--units", type=int, default=10_000, help="riders per commuter warehouse (default 10,000)")
     parser.add_argument("--first-seed", type=int, default=1, help="first seed (default 1)")
     parser.add_argument("--methods", nargs="*", default=None, help="methods to run (default: every method in sqlmatch.matching.METHODS)")
+    parser.add_argument("--processes", nargs="*", default=list(PROCESSES), choices=PROCESSES)
+    parser.add_argument("--workers", type=int, default=2, help="worker processes (default 2; the machine is shared)")
     parser.add_argument("--out", type=Path, default=REPO / "benchmarks" / "RESULTS_calibration.md")
+    parser.add_argument("--raw", type=Path, default=REPO / "benchmarks" / "calibration_raw.json")
+    parser.add_argument("--checkpoint", type=Path, default=Path(tempfile.gettempdir()) / "sqlmatch_calibration.jsonl", help="JSON lines, one per finished replicate")
+    parser.add_argument("--from-checkpoint", action="store_true", help="summarise the checkpoint of an interrupted run instead of running (--replicates: the count it was started with)")
     args = parser.parse_args(argv)
     methods = args.methods or list(METHODS)
     command = "python3 benchmarks/calibration.py " + " ".join(argv if argv is not None else sys.argv[1:])
     t0 = time.perf_counter()
-    with tempfile.TemporaryDirectory(prefix="sqlmatch_calibration_") as work:
-        records, failures = run(args.replicates, args.riders, args.first_seed, methods, Path(work))
-    seconds = time.perf_counter() - t0
-    text = render(summarise(records), failures, args, seconds, command.strip())
+    if args.from_checkpoint:
+        records, failures = [], []
+        for line in args.checkpoint.read_text(encoding="utf-8").splitlines():
+            part = json.loads(line)
+            records += part["records"]
+            failures += part["failures"]
+        seconds = math.nan
+    else:
+        with tempfile.TemporaryDirectory(prefix="sqlmatch_calibration_") as work:
+            records, failures = run(args.replicates, {"demo": args.riders, "commuter": args.units}, args.first_seed, methods, args.processes, args.workers, Path(work), checkpoint=args.checkpoint)
+        seconds = time.perf_counter() - t0
+    summary = summarise(records, failures)
+    text = render(summary, failures, args, seconds, command.strip())
     args.out.write_text(text, encoding="utf-8")
+    args.raw.write_text(json.dumps(dict(command=command.strip(), commit=_commit(), machine=_machine(), seconds=seconds, summary=summary, failures=failures, records=records), separators=(",", ":"), default=str), encoding="utf-8")
     print(text)
     return 0
 
