@@ -424,7 +424,7 @@ def parse_filter(text: Any, key: str) -> exp.Expression:
     for node in tree.walk():
         if isinstance(node, tuple(_FILTER_FUNCTIONS)) or isinstance(node, _FILTER_NODES):
             if isinstance(node, exp.In) and (node.args.get("query") or node.args.get("field") or node.args.get("unnest")):
-                raise SpecError(key, "uses IN with something other than a list of values.", allowed_fix)
+                raise SpecError(key, "uses IN with something other than a list of values.", "remove the statement or subquery; " + allowed_fix)
             if isinstance(node, exp.Column) and not isinstance(node.this, exp.Identifier):
                 raise SpecError(key, f"refers to {node.sql()!r}, which is not a column name.", allowed_fix)
             continue
@@ -433,7 +433,9 @@ def parse_filter(text: Any, key: str) -> exp.Expression:
             what = f"function {fname.lower()}"
         else:
             what = f"{type(node).__name__.upper()} ({node.sql(dialect='duckdb')[:40]!r})"
-        raise SpecError(key, f"{what} is not allowed in a filter; only a boolean expression over unit columns is.", allowed_fix)
+        statement = isinstance(node, (exp.Query, exp.Subquery, exp.DML, exp.DDL, exp.Command))
+        fix = ("remove the statement or subquery; " if statement else "") + allowed_fix
+        raise SpecError(key, f"{what} is not allowed in a filter; only a boolean expression over unit columns is.", fix)
     if not isinstance(tree, (exp.Predicate, exp.Connector, exp.Not, exp.Paren, exp.Boolean, exp.Is, exp.In, exp.Between)):
         raise SpecError(
             key,
