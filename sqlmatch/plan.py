@@ -158,7 +158,7 @@ class PlanContext:
         return Step(
             name=step.name,
             kind="table",
-            purpose=step.purpose + " Written to a table for `sqlmatch report`.",
+            purpose=step.purpose + " Written to a table for `sqlmatch report`; plan__fingerprint (a hash per spec section) lets report refuse tables an earlier spec wrote.",
             reads=step.reads,
             writes=(self.display(logical),),
             statements=tuple(dialects.generate(s, self.dialect) for s in statements),
