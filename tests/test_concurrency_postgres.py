@@ -175,7 +175,7 @@ def test_the_same_study_twice_at_once_the_second_run_is_refused(pg, tmp_path):
         else:
             pytest.fail(f"the first run ended (exit {first.wait()}) without pausing")
         before = tables_in(watch, work)
-        assert "pass_same_weighted__building" in before and "pass_same_weighted_units" not in before
+        assert "pass_same_weighted_units__building" in before and "pass_same_weighted_units" not in before
 
         # the second run: one line naming the study, exit 2, and the first run's tables untouched
         code, err = finish(sqlmatch_cli("run", str(spec), "--engine", url, "--out", str(tmp_path / "second"), "--quiet"))
