@@ -79,6 +79,12 @@ class Engine(ABC):
         database file for writing); the PostgreSQL adapter takes an advisory lock."""
         return nullcontext()
 
+    def schema_exists(self, schema: str) -> bool:
+        """Whether the schema exists; the runner then skips CREATE SCHEMA IF NOT EXISTS, which
+        PostgreSQL refuses to a user without CREATE on the database even when the schema is there.
+        Default False: the statement runs (it is harmless where creating is allowed)."""
+        return False
+
     def close(self) -> None:  # pragma: no cover - adapters override when they hold resources
         pass
 
