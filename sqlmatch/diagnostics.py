@@ -88,11 +88,38 @@ def data_warnings(spec: Spec, r, balance) -> list[str]:
                 "they are left out of every feature and outcome. If that is more than a few, check that events.unit_key "
                 "and units.key name the same thing, and that the units table is complete."
             )
+    out += _unplaced_event_warnings(spec, r)
     for b in balance:
         if b.kind != "level" and b.mean_treated_before is None and b.mean_control_before is None:
             out.append(f"Feature {b.covariate!r} is NULL for every unit: it carries no information. Fix its definition or drop it.")
         elif b.kind != "level" and b.smd_before == 0.0 and b.variance_ratio_before is None:
             out.append(f"Feature {b.covariate!r} has the same value for every unit: it carries no information and can be dropped.")
+    return out
+
+
+def _unplaced_event_warnings(spec: Spec, r) -> list[str]:
+    """Events the pass over the events could not place: a NULL time fits no window, a NULL unit
+    key no unit. Both are left out of every measure; a share that differs between the groups
+    moves the effect, so they are counted (per group for the times) and said."""
+    if "data_coverage" not in r or "n_events_without_key" not in r["data_coverage"].columns:
+        return []
+    c = r["data_coverage"].one()
+    treated, control = int(c["n_events_without_time_treated"] or 0), int(c["n_events_without_time_control"] or 0)
+    keyless = int(c["n_events_without_key"] or 0)
+    out = []
+    if treated + control:
+        out.append(
+            f"{treated + control:,} events of the study's units have no time ({treated:,} of treated units, {control:,} of control units): "
+            f"events.time ({spec.event_time!r} of {spec.events.display!r}) is NULL on them, so no window holds them and they are left out "
+            "of every feature and outcome. Unless that is a few, fill in the times (or leave those rows out in a view on purpose): "
+            "if one group lost more of its events, the effect is biased."
+        )
+    if keyless:
+        out.append(
+            f"{keyless:,} events have no unit key: events.unit_key ({spec.event_unit_key!r} of {spec.events.display!r}) is NULL on them "
+            "(counted within the windows, and without a time), so they belong to no unit and are left out. Unless that is a few, "
+            "fix the key in the events table."
+        )
     return out
 
 

@@ -13,6 +13,8 @@ CREATE TABLE "sqlmatch".annual_pass_measures__building AS
    aggregated per unit with conditional aggregates. Units without events get the fill value.
    The same pass counts the events whose unit is not in "riders" at all (they are
    left out of everything): every row carries the two totals, read back by data_coverage.
+   Events with a NULL time (no window can hold them) or a NULL unit key (no unit) are read by the
+   same pass, left out of every measure and counted: every row carries those totals too.
 */
 WITH known_units AS (
   SELECT DISTINCT
@@ -22,7 +24,8 @@ WITH known_units AS (
   /* every unit key in "riders", flagged 1 when the unit is in the study */
   SELECT
     k.unit_key,
-    CASE WHEN s.unit_key IS NULL THEN 0 ELSE 1 END AS in_study
+    CASE WHEN s.unit_key IS NULL THEN 0 ELSE 1 END AS in_study,
+    s.treated
   FROM known_units AS k
   LEFT JOIN "sqlmatch".annual_pass_units AS s
     ON s.unit_key = k.unit_key
@@ -102,7 +105,9 @@ WITH known_units AS (
         ELSE 0
       END
     ) AS active_last_month,
-    COUNT(*) AS n_events,
+    COUNT(e."started_at") AS n_events,
+    COUNT(*) AS n_rows,
+    MAX(u.treated) AS treated,
     MAX(u.in_study) AS in_study,
     CAST(MIN(e."started_at") AS DATE) AS first_event_at,
     CAST(MAX(e."started_at") AS DATE) AS last_event_at
@@ -110,9 +115,15 @@ WITH known_units AS (
   LEFT JOIN unit_keys AS u
     ON e."rider_id" = u.unit_key
   WHERE
-    e."started_at" >= CAST('2025-09-01' AS DATE)
-    AND e."started_at" < CAST('2026-07-01' AS DATE)
-    AND /* units of the study, and units unknown to "riders" (in_study NULL) */ (
+    (
+      (
+        e."started_at" >= CAST('2025-09-01' AS DATE)
+        AND e."started_at" < CAST('2026-07-01' AS DATE)
+      )
+      OR e."started_at" IS NULL
+    )
+    AND /* units of the study, and units unknown to "riders" (in_study NULL) or
+       without a key (counted, never measured) */ (
       u.in_study = 1 OR u.unit_key IS NULL
     )
   GROUP BY
@@ -123,7 +134,20 @@ WITH known_units AS (
     COALESCE(SUM(n_events), 0) AS n_events
   FROM event_totals
   WHERE
-    in_study IS NULL
+    in_study IS NULL AND NOT unit_key IS NULL AND n_events > 0
+), unplaced_events AS (
+  /* events no unit or no window can hold: without a unit key, or of a study unit without a time */
+  SELECT
+    COALESCE(SUM(CASE WHEN unit_key IS NULL THEN n_rows ELSE 0 END), 0) AS keyless,
+    COALESCE(
+      SUM(CASE WHEN NOT unit_key IS NULL AND treated = 1 THEN n_rows - n_events ELSE 0 END),
+      0
+    ) AS untimed_treated,
+    COALESCE(
+      SUM(CASE WHEN NOT unit_key IS NULL AND treated = 0 THEN n_rows - n_events ELSE 0 END),
+      0
+    ) AS untimed_control
+  FROM event_totals
 )
 SELECT
   u.unit_key,
@@ -140,6 +164,9 @@ SELECT
   COALESCE(CAST(t.active_last_month AS DOUBLE PRECISION), 0.0) AS active_last_month,
   x.n_units AS unknown__units,
   x.n_events AS unknown__events,
+  p.keyless AS missing__key_events,
+  p.untimed_treated AS missing__time_treated,
+  p.untimed_control AS missing__time_control,
   t.first_event_at,
   t.last_event_at,
   u.age_band,
@@ -147,7 +174,8 @@ SELECT
 FROM "sqlmatch".annual_pass_units AS u
 LEFT JOIN event_totals AS t
   ON t.unit_key = u.unit_key
-CROSS JOIN unknown_units AS x;
+CROSS JOIN unknown_units AS x
+CROSS JOIN unplaced_events AS p;
 
 DROP TABLE IF EXISTS "sqlmatch".annual_pass_measures;
 
