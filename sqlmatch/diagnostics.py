@@ -89,11 +89,46 @@ def data_warnings(spec: Spec, r, balance) -> list[str]:
                 "and units.key name the same thing, and that the units table is complete."
             )
     out += _unplaced_event_warnings(spec, r)
+    out += _pooled_level_warnings(spec, r)
     for b in balance:
         if b.kind != "level" and b.mean_treated_before is None and b.mean_control_before is None:
             out.append(f"Feature {b.covariate!r} is NULL for every unit: it carries no information. Fix its definition or drop it.")
         elif b.kind != "level" and b.smd_before == 0.0 and b.variance_ratio_before is None:
             out.append(f"Feature {b.covariate!r} has the same value for every unit: it carries no information and can be dropped.")
+    return out
+
+
+def _pooled_level_warnings(spec: Spec, r) -> list[str]:
+    """Say which categorical features had levels pooled into '(other)' (unit_measures) and how
+    many units that holds. Exact matching on such a feature matches within the pooled level
+    rather than being refused: grouping rare categories is a coarsening like any other in
+    coarsened exact matching, refusing would stop any study with one rare level, and keeping the
+    rare levels apart would make strata of fewer than min_cell_size units whose sums leave the
+    warehouse, and rows fetched that grow with the data."""
+    from sqlmatch.plan import POOLED_LEVEL
+
+    if "balance_levels" not in r:
+        return []
+    pooled: dict[str, int] = {}
+    for row in r["balance_levels"].records():
+        if row["level"] == POOLED_LEVEL:
+            pooled[row["feature"]] = pooled.get(row["feature"], 0) + int(row["n_units"] or 0)
+    out = []
+    matched_on = set(spec.matching.on) | set(spec.matching.exact)
+    for f in spec.categorical_features:
+        if f.name not in pooled:
+            continue
+        text = (
+            f"Levels of {f.name!r} held by fewer than {spec.min_cell_size} units of the study are pooled into one level, "
+            f"'{POOLED_LEVEL}' ({count_text(pooled[f.name], spec.min_cell_size, words=True)} units), so that no small level is named "
+            "or measured on its own (report.min_cell_size)."
+        )
+        if f.name in matched_on:
+            text += (
+                f" Matching on it treats them as one level: units of different rare levels can share a stratum. To keep them apart, "
+                f"group the levels yourself (e.g. in a view on {spec.units.display!r}) into groups of at least {spec.min_cell_size} units."
+            )
+        out.append(text)
     return out
 
 

@@ -21,21 +21,26 @@ from sqlmatch.spec import MISSING_INDICATOR, Spec, last_period_start
 MANIFEST_VERSION = 1
 HISTOGRAM_BINS = 20  # bins of the report's distribution plots
 L1_BINS = 10  # equal-width bins per numeric feature in the fixed histogram of the L1 imbalance
-FINGERPRINT_COLUMN = "plan__fingerprint"  # on every row of a scheduled aggregate table
+FINGERPRINT_COLUMN = "plan__fingerprint"
+# The level that categorical levels held by fewer than report.min_cell_size units of the study are
+# pooled into, in unit_measures: every later step (balance, propensity levels, exact matching,
+# L1 cells) sees it, so the rows fetched stay fixed by the spec and no small level is named.
+POOLED_LEVEL = "(other)"  # on every row of a scheduled aggregate table
 _KIND_TEXT = {"setup": "prepares the work schema", "table": "writes a table", "query": "returns aggregates to sqlmatch"}
 
 
 def spec_fingerprint(spec: Spec) -> str:
     """A short hash per section of the spec (and one of sqlmatch's version), "section:hash,...":
     stored on every row of a scheduled aggregate table, so `sqlmatch report` can refuse tables an
-    earlier spec wrote and name the sections that changed. The database path and the [report]
-    section do not change what the SQL computes and are left out; the propensity model file is
-    not part of it (report checks the coefficients that ran separately)."""
+    earlier spec wrote and name the sections that changed. The database path does not change what
+    the SQL computes and is left out ([report] does: min_cell_size pools small categorical levels
+    in SQL); the propensity model file is not part of it (report checks the coefficients that ran
+    separately)."""
     import hashlib
 
     from sqlmatch import __version__
 
-    raw = {k: v for k, v in spec._raw.items() if k != "report"}
+    raw = dict(spec._raw)
     if isinstance(raw.get("study"), dict):
         raw["study"] = {k: v for k, v in raw["study"].items() if k != "database"}
     if spec.cohort != (raw.get("treatment") or {}).get("cohort"):
@@ -335,6 +340,8 @@ def source_steps(ctx: PlanContext, outcomes, columns) -> list[Step]:
             check_unknown=spec.check_unknown_units,
             units_source=spec.units,
             units_key=spec.unit_key,
+            min_cell=spec.min_cell_size,
+            pooled_level=POOLED_LEVEL,
         ),
     ]
     steps.append(

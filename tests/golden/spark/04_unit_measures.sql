@@ -171,8 +171,22 @@ SELECT
   p.untimed_control AS missing__time_control,
   t.first_event_at,
   t.last_event_at,
-  u.age_band,
-  u.home_district
+  CASE
+    WHEN u.age_band IS NULL
+    THEN NULL
+    WHEN COUNT(*) OVER (PARTITION BY u.age_band) >= 10
+    THEN u.age_band
+    ELSE '(other)'
+  END AS age_band, /* features[5] (age_band): a level held by fewer than 10 units of the study is pooled into
+     "(other)", here, before any level leaves the warehouse */
+  CASE
+    WHEN u.home_district IS NULL
+    THEN NULL
+    WHEN COUNT(*) OVER (PARTITION BY u.home_district) >= 10
+    THEN u.home_district
+    ELSE '(other)'
+  END AS home_district /* features[6] (home_district): a level held by fewer than 10 units of the study is pooled into
+     "(other)", here, before any level leaves the warehouse */
 FROM `sqlmatch`.annual_pass_units AS u
 LEFT JOIN event_totals AS t
   ON t.unit_key = u.unit_key
