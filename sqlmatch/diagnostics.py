@@ -90,6 +90,7 @@ def data_warnings(spec: Spec, r, balance) -> list[str]:
             )
     out += _unplaced_event_warnings(spec, r)
     out += _pooled_level_warnings(spec, r)
+    out += _incomplete_ratio_warnings(spec, r)
     for b in balance:
         if b.kind != "level" and b.mean_treated_before is None and b.mean_control_before is None:
             out.append(f"Feature {b.covariate!r} is NULL for every unit: it carries no information. Fix its definition or drop it.")
@@ -129,6 +130,25 @@ def _pooled_level_warnings(spec: Spec, r) -> list[str]:
                 f"group the levels yourself (e.g. in a view on {spec.units.display!r}) into groups of at least {spec.min_cell_size} units."
             )
         out.append(text)
+    return out
+
+
+def _incomplete_ratio_warnings(spec: Spec, r) -> list[str]:
+    """A ratio outcome counts an event in both parts or in neither; say how many events of the
+    post window it left out for lacking a value."""
+    if "data_coverage" not in r:
+        return []
+    c = r["data_coverage"].one()
+    out = []
+    for o in spec.outcomes:
+        n = int(c.get(f"{o.name}__incomplete__total") or 0) if o.aggregate == "ratio" else 0
+        if n:
+            parts = " or ".join(repr(x) for x in (o.numerator, o.denominator) if x)
+            out.append(
+                f"{o.key}: {n:,} events of the study's units in the post window have no value in {parts}: the ratio "
+                "uses only the events with a value in both parts (they count in neither). If those events should count, "
+                "fill the values in the events table."
+            )
     return out
 
 

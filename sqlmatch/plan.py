@@ -78,6 +78,10 @@ class MeasureColumn:
     end: dt.date
     fill: float
     measure: str | None = None
+    # events columns that must hold a value for an event to count (a ratio's two parts); agg
+    # "count_missing" counts the events in the window lacking one of them instead
+    require: tuple[str, ...] = ()
+    carried: bool = True  # into <study>_weighted_units (False: a diagnostic count only)
 
 
 @dataclass(frozen=True)
@@ -113,7 +117,7 @@ class PlanContext:
         """The measures carried into <study>_weighted_units: every feature and outcome column."""
         columns, _ = measure_columns(self.spec)
         attributes = [f.name for f in self.spec.features if f.aggregate in ("attribute", MISSING_INDICATOR)]
-        return [c.name for c in columns] + attributes
+        return [c.name for c in columns if c.carried] + attributes
 
     def table_node(self, logical: str) -> exp.Table:
         return exp.to_table(self.table(logical), dialect=render.SOURCE_DIALECT)
@@ -261,9 +265,13 @@ def measure_columns(spec: Spec) -> tuple[list[MeasureColumn], list[OutcomeColumn
     for o in spec.outcomes:
         if o.aggregate == "ratio":
             num, den = f"{o.name}__num", f"{o.name}__den"
-            cols.append(MeasureColumn(name=num, agg="sum", start=w.post_start, end=w.post_end, fill=0.0, measure=o.numerator))
+            # An event counts in both parts or in neither: a trip without a fare must not lower
+            # the fare per trip. The events left out are counted for the run's warnings.
+            both = tuple(c for c in (o.numerator, o.denominator) if c)
+            cols.append(MeasureColumn(name=num, agg="sum", start=w.post_start, end=w.post_end, fill=0.0, measure=o.numerator, require=both))
             den_agg = "sum" if o.denominator else "count"
-            cols.append(MeasureColumn(name=den, agg=den_agg, start=w.post_start, end=w.post_end, fill=0.0, measure=o.denominator))
+            cols.append(MeasureColumn(name=den, agg=den_agg, start=w.post_start, end=w.post_end, fill=0.0, measure=o.denominator, require=both))
+            cols.append(MeasureColumn(name=f"{o.name}__incomplete", agg="count_missing", start=w.post_start, end=w.post_end, fill=0.0, require=both, carried=False))
             outcomes.append(OutcomeColumns(name=o.name, kind="ratio", num=num, den=den))
         elif o.aggregate == "active_at_end":
             start = last_period_start(w, o.last)
@@ -349,8 +357,10 @@ def source_steps(ctx: PlanContext, outcomes, columns) -> list[Step]:
             "data_coverage",
             "data_coverage",
             reads=[ctx.display("measures")],
-            purpose="First and last event within the windows, units without events (warn on gaps), events of unknown units.",
+            purpose="First and last event within the windows, units without events (warn on gaps), events of unknown units, sums of the measures (refuse NaN).",
             windows=w,
+            totals=[c.name for c in columns if c.agg in ("sum", "mean", "count_missing")]
+            + [f.name for f in spec.attribute_features if not f.categorical],
             check_unknown=spec.check_unknown_units,
             measures_table=ctx.table("measures"),
         )

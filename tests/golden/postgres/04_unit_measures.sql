@@ -87,6 +87,7 @@ WITH known_units AS (
       CASE
         WHEN e."started_at" >= CAST('2026-04-01' AS DATE)
         AND e."started_at" < CAST('2026-07-01' AS DATE)
+        AND NOT e."fare" IS NULL
         THEN CAST(e."fare" AS DOUBLE PRECISION)
       END
     ) AS fare_per_trip__num,
@@ -94,9 +95,20 @@ WITH known_units AS (
       CASE
         WHEN e."started_at" >= CAST('2026-04-01' AS DATE)
         AND e."started_at" < CAST('2026-07-01' AS DATE)
+        AND NOT e."fare" IS NULL
         THEN 1
       END
     ) AS fare_per_trip__den,
+    COUNT(
+      CASE
+        WHEN e."started_at" >= CAST('2026-04-01' AS DATE)
+        AND e."started_at" < CAST('2026-07-01' AS DATE)
+        AND (
+          e."fare" IS NULL
+        )
+        THEN 1
+      END
+    ) AS fare_per_trip__incomplete,
     MAX(
       CASE
         WHEN e."started_at" >= CAST('2026-06-01' AS DATE)
@@ -161,6 +173,7 @@ SELECT
   COALESCE(CAST(t.post_minutes AS DOUBLE PRECISION), 0.0) AS post_minutes,
   COALESCE(CAST(t.fare_per_trip__num AS DOUBLE PRECISION), 0.0) AS fare_per_trip__num,
   COALESCE(CAST(t.fare_per_trip__den AS DOUBLE PRECISION), 0.0) AS fare_per_trip__den,
+  COALESCE(CAST(t.fare_per_trip__incomplete AS DOUBLE PRECISION), 0.0) AS fare_per_trip__incomplete,
   COALESCE(CAST(t.active_last_month AS DOUBLE PRECISION), 0.0) AS active_last_month,
   x.n_units AS unknown__units,
   x.n_events AS unknown__events,

@@ -89,6 +89,7 @@ WITH known_units AS (
       CASE
         WHEN e.`started_at` >= CAST('2026-04-01' AS DATE)
         AND e.`started_at` < CAST('2026-07-01' AS DATE)
+        AND NOT e.`fare` IS NULL
         THEN CAST(e.`fare` AS DOUBLE)
       END
     ) AS fare_per_trip__num,
@@ -96,9 +97,20 @@ WITH known_units AS (
       CASE
         WHEN e.`started_at` >= CAST('2026-04-01' AS DATE)
         AND e.`started_at` < CAST('2026-07-01' AS DATE)
+        AND NOT e.`fare` IS NULL
         THEN 1
       END
     ) AS fare_per_trip__den,
+    COUNT(
+      CASE
+        WHEN e.`started_at` >= CAST('2026-04-01' AS DATE)
+        AND e.`started_at` < CAST('2026-07-01' AS DATE)
+        AND (
+          e.`fare` IS NULL
+        )
+        THEN 1
+      END
+    ) AS fare_per_trip__incomplete,
     MAX(
       CASE
         WHEN e.`started_at` >= CAST('2026-06-01' AS DATE)
@@ -163,6 +175,7 @@ SELECT
   COALESCE(CAST(t.post_minutes AS DOUBLE), 0.0) AS post_minutes,
   COALESCE(CAST(t.fare_per_trip__num AS DOUBLE), 0.0) AS fare_per_trip__num,
   COALESCE(CAST(t.fare_per_trip__den AS DOUBLE), 0.0) AS fare_per_trip__den,
+  COALESCE(CAST(t.fare_per_trip__incomplete AS DOUBLE), 0.0) AS fare_per_trip__incomplete,
   COALESCE(CAST(t.active_last_month AS DOUBLE), 0.0) AS active_last_month,
   x.n_units AS unknown__units,
   x.n_events AS unknown__events,
