@@ -22,6 +22,12 @@ MANIFEST_VERSION = 1
 HISTOGRAM_BINS = 20  # bins of the report's distribution plots
 L1_BINS = 10  # equal-width bins per numeric feature in the fixed histogram of the L1 imbalance
 FINGERPRINT_COLUMN = "plan__fingerprint"
+# Days are cut in UTC: the runner sets the session's time zone to it for a run (engines'
+# session_time_zone), so a TIMESTAMPTZ event or enrolment time falls on its UTC day on every
+# engine, whatever the machine's or the session's own zone. Compiled files say so in the steps
+# that read times; a scheduler runs them in a session set to it.
+TIME_ZONE = "UTC"
+_UTC_NOTE = f"Days are cut in {TIME_ZONE}: run it in a session whose time zone is {TIME_ZONE}, or times with a time zone fall on the session's days."
 # The level that categorical levels held by fewer than report.min_cell_size units of the study are
 # pooled into, in unit_measures: every later step (balance, propensity levels, exact matching,
 # L1 cells) sees it, so the rows fetched stay fixed by the spec and no small level is named.
@@ -302,7 +308,7 @@ def source_steps(ctx: PlanContext, outcomes, columns) -> list[Step]:
             "study_units",
             writes="units",
             reads=[units_src],
-            purpose=f"Treated cohort ({spec.cohort}) and control pool, after eligibility filters.",
+            purpose=f"Treated cohort ({spec.cohort}) and control pool, after eligibility filters. {_UTC_NOTE}",
             units=spec.units,
             key=spec.unit_key,
             enrolled=spec.enrolled_on,
@@ -336,7 +342,7 @@ def source_steps(ctx: PlanContext, outcomes, columns) -> list[Step]:
             "unit_measures",
             writes="measures",
             reads=[events_src, ctx.display("units")] + ([units_src] if spec.check_unknown_units else []),
-            purpose="Per-unit pre-window features and post-window outcomes, one pass over the events (which also counts events of unknown units).",
+            purpose=f"Per-unit pre-window features and post-window outcomes, one pass over the events (which also counts events of unknown units). {_UTC_NOTE}",
             events=spec.events,
             event_key=spec.event_unit_key,
             event_time=spec.event_time,

@@ -20,7 +20,7 @@ from sqlmatch.dialects import BUILDING_SUFFIX
 from sqlmatch.engines.base import Engine, QueryResult
 from sqlmatch.errors import DataError, SpecError
 from sqlmatch.matching import method_for
-from sqlmatch.plan import Plan
+from sqlmatch.plan import TIME_ZONE, Plan
 from sqlmatch.spec import Spec, filter_columns
 
 NUMERIC_TYPE_WORDS = ("INT", "DOUBLE", "FLOAT", "DECIMAL", "NUMERIC", "REAL", "HUGEINT", "BIGINT", "SMALLINT", "TINYINT", "UBIGINT", "UINTEGER")
@@ -390,7 +390,7 @@ def run_plan(plan: Plan, spec: Spec, engine: Engine, progress: Progress | None =
     # the same study on the same database (where the engine can tell) is refused here, before it
     # could drop this run's half-built tables or swap its own in under them. A refused run drops
     # nothing, since every table it would drop belongs to the run holding the lock.
-    with engine.study_lock(spec.work_schema, spec.name):
+    with engine.study_lock(spec.work_schema, spec.name), engine.session_time_zone(TIME_ZONE):
         drop_stray_tables(spec, engine)
         out = RunOutput(plan=plan)
         start_rows = engine.rows_fetched

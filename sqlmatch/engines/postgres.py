@@ -170,6 +170,18 @@ class PostgresEngine(Engine):
         doing = f", {state} since {str(since)[:19]}" if state and since else ""
         return int(pid), f" (PostgreSQL backend pid {pid}{doing})"
 
+    @contextmanager
+    def session_time_zone(self, zone: str) -> Iterator[None]:
+        (before,) = self._query("SELECT current_setting('TimeZone')").rows[0]
+        self._query("SELECT set_config('TimeZone', %s, false)", (zone,))
+        try:
+            yield
+        finally:
+            try:
+                self._query("SELECT set_config('TimeZone', %s, false)", (before,))
+            except EngineError:
+                pass  # the session is gone, and its setting with it
+
     def schema_exists(self, schema: str) -> bool:
         return bool(self._query("SELECT 1 FROM pg_catalog.pg_namespace WHERE nspname = %s", (schema,)).rows)
 

@@ -1,5 +1,5 @@
 -- sqlmatch study 'annual_pass', step 04: unit_measures (spark)
--- Per-unit pre-window features and post-window outcomes, one pass over the events (which also counts events of unknown units).
+-- Per-unit pre-window features and post-window outcomes, one pass over the events (which also counts events of unknown units). Days are cut in UTC: run it in a session whose time zone is UTC, or times with a time zone fall on the session's days.
 -- kind: writes a table
 -- reads: trips, sqlmatch.annual_pass_units, riders
 -- writes: sqlmatch.annual_pass_measures
