@@ -134,7 +134,7 @@ class PostgresEngine(Engine):
                 fix = (
                     f"Fix: if no sqlmatch run of this study is still going, the holder is an earlier run that was killed while its "
                     f"statement still runs on the server: end that session with SELECT pg_terminate_backend({pid}); "
-                    f"(a user allowed to signal it), then run again. Otherwise wait until that run ends, or give this run its "
+                    f"(as a superuser or the user that session runs as), then run again. Otherwise wait until that run ends, or give this run its "
                     "own [study] name or work_schema."
                 )
             raise EngineError(
