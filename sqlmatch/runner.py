@@ -172,7 +172,7 @@ def _check_missing(spec: Spec, result: QueryResult) -> None:
             raise DataError(
                 key,
                 f"every {what} unit has a NULL in {', '.join(dropped)} (missing = \"drop\"), so none is left in the study.",
-                f'fill those values instead (missing = "fill" with fill = <number>), or fix the source column.',
+                'fill those values instead (missing = "fill" with fill = <number>), or fix the source column.',
             )
 
 
