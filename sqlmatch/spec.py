@@ -24,7 +24,7 @@ from sqlmatch import matching as _matching_methods
 from sqlmatch.errors import SpecError
 from sqlmatch.matching.base import OptionInput
 from sqlmatch.spec_values import check_keys as _check_keys
-from sqlmatch.spec_values import read_bool
+from sqlmatch.spec_values import feature_list, read_bool
 from sqlmatch.spec_values import read_choice as _choice
 from sqlmatch.spec_values import read_int as _int
 from sqlmatch.spec_values import read_str as _str
@@ -733,11 +733,7 @@ def _propensity(value: Any, features: tuple[Feature, ...], matching: Matching) -
     names = [f.name for f in features]
     chosen = value.get("features", [n for n in matching.on if n not in matching.exact])
     for key, items in (("propensity.features", chosen), ("propensity.log1p", value.get("log1p", []))):
-        if not isinstance(items, list) or not all(isinstance(x, str) for x in items):
-            raise SpecError(key, "must be a list of feature names.")
-        for n in items:
-            if n not in names:
-                raise SpecError(key, f"{n!r} is not a feature.", f"use names from [[features]]: {', '.join(names)}.")
+        feature_list(items, key, names)
     if not chosen:
         raise SpecError("propensity.features", "is empty.", "list the features the propensity model uses.")
     chosen = _with_indicators(chosen, features)
