@@ -63,6 +63,10 @@ class Step:
     statements: tuple[str, ...]
 
 
+BITMASK_LANE_DAYS = 63  # days per BIGINT lane: the sign bit is never set
+BITMASK_MAX_LANES = 8  # windows up to 504 days; longer ones count distinct days
+
+
 @dataclass(frozen=True)
 class MeasureColumn:
     """One per-unit aggregate of events in a window (rendered by _macros.event_aggregate)."""
@@ -73,6 +77,20 @@ class MeasureColumn:
     end: dt.date
     fill: float
     measure: str | None = None
+
+    @property
+    def days(self) -> int:
+        return (self.end - self.start).days
+
+    @property
+    def day_lanes(self) -> tuple[tuple[int, int], ...]:
+        """[low, high) day offsets of the 63-day BIGINT lanes the DuckDB active-days bitmask ORs
+        into (sql_templates/duckdb/_active_days.sql.j2); none for a window longer than
+        BITMASK_MAX_LANES lanes, which is counted with COUNT(DISTINCT day) instead."""
+        lanes = (self.days + BITMASK_LANE_DAYS - 1) // BITMASK_LANE_DAYS
+        if lanes > BITMASK_MAX_LANES:
+            return ()
+        return tuple((BITMASK_LANE_DAYS * k, BITMASK_LANE_DAYS * (k + 1)) for k in range(lanes))
 
 
 @dataclass(frozen=True)
@@ -331,7 +349,6 @@ def source_steps(ctx: PlanContext, outcomes, columns) -> list[Step]:
             columns=columns,
             attributes=spec.attribute_features,
             units_table=ctx.table("units"),
-            target=dialect,
             check_unknown=spec.check_unknown_units,
             units_source=spec.units,
             units_key=spec.unit_key,
