@@ -15,6 +15,7 @@ from dataclasses import dataclass, field
 from sqlglot import exp
 
 from sqlmatch import dialects, render
+from sqlmatch.columns import regression_design, upper_pairs
 from sqlmatch.matching import method_for
 from sqlmatch.spec import MISSING_INDICATOR, Spec, last_period_start
 
@@ -290,7 +291,7 @@ def measure_columns(spec: Spec) -> tuple[list[MeasureColumn], list[OutcomeColumn
 
 def source_steps(ctx: PlanContext, outcomes, columns) -> list[Step]:
     """The study's units, the checks on them, and one pass over the events for every feature and outcome."""
-    spec, dialect = ctx.spec, ctx.dialect
+    spec = ctx.spec
     w = spec.windows
     control_from = w.post_end if spec.control_pool == "never_by_post_end" else w.cohort_end
     pool_text = (
@@ -483,6 +484,7 @@ def outcome_steps(ctx: PlanContext, outcomes, per_match: bool) -> list[Step]:
                 weighted_table=ctx.table("weighted_units"),
             )
         )
+    design = regression_design(numeric)
     steps.append(
         ctx.query_step(
             "outcome_regression",
@@ -490,6 +492,8 @@ def outcome_steps(ctx: PlanContext, outcomes, per_match: bool) -> list[Step]:
             reads=weighted,
             purpose="Weighted regression of each outcome on treatment and the numeric features among matched units, as sums (X'WX, X'Wy, y'Wy) for the sensitivity analysis.",
             features=numeric,
+            design=design,
+            design_pairs=upper_pairs(len(design)),
             outcomes=outcomes,
             weighted_table=ctx.table("weighted_units"),
         )

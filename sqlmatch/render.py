@@ -17,6 +17,7 @@ from sqlglot import exp
 from sqlglot.dialects import Dialect
 from sqlglot.tokens import Tokenizer
 
+from sqlmatch import columns
 from sqlmatch.spec import TableRef
 
 SOURCE_DIALECT = "duckdb"
@@ -125,6 +126,7 @@ def environment(root: str | None = None, dialect: str | None = None) -> jinja2.E
         date=date_literal,
         note=comment_name,
     )
+    env.globals["col"] = columns  # aggregate column names (columns.py)
     return env
 
 
