@@ -358,6 +358,8 @@ def plan_steps(ctx, model) -> list:
     Newton step sums over), then, without a fitted model, the categorical levels the runner needs
     to fit one; with one, the Newton-step aggregates at its coefficients (the stored-model check)."""
     steps = [cells_step(ctx)]
+    if ctx.names_only:  # the steps' names and tables only (plan.writable_tables)
+        return steps + [newton_step(ctx, (), (), name="propensity_check")]
     if model is None:
         levels = levels_step(ctx)
         return steps + ([levels] if levels else [])
