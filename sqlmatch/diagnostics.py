@@ -70,13 +70,21 @@ def data_warnings(spec: Spec, r, balance) -> list[str]:
                 f"The events end on {_as_date(last)}, more than a week before the post window ends ({w.post_end}): "
                 "if the data is still arriving, the outcomes are cut short for everyone. Wait for the data or use a shorter post window."
             )
-        if first is not None and _as_date(first) > w.pre_start + dt.timedelta(days=7):
+        # a study whose features are all unit attributes reads no pre-window events
+        reads_pre = any(f.aggregate != "attribute" and not f.is_missing_indicator for f in spec.features)
+        if reads_pre and first is not None and _as_date(first) > w.pre_start + dt.timedelta(days=7):
             out.append(
                 f"The events start on {_as_date(first)}, more than a week after the pre window starts ({w.pre_start}): "
                 "pre-window features may be incomplete."
             )
         if c["n_units"] and c["n_units_without_events"] / c["n_units"] > 0.5:
             out.append(f"{c['n_units_without_events'] / c['n_units']:.0%} of the units have no event in either window.")
+    if w.post_starts == "cohort":
+        out.append(
+            f"The post window starts with the cohort month ({w.post_start}; windows.post_starts = \"cohort\"), so the "
+            "outcomes include the days of that month before each unit enrolled, when it could not yet benefit. The effect "
+            "is diluted toward zero by about that share of the window; post_starts = \"after_cohort\" avoids it."
+        )
     out += method_for(spec.matching.method).warnings(spec, r)
     out += _missing_warnings(spec, r)
     if "data_coverage" in r and "n_events_unknown" in r["data_coverage"].columns:
