@@ -259,7 +259,7 @@ def _check_coverage(spec: Spec, result: QueryResult) -> None:
             raise DataError(
                 key,
                 f"column {source!r} of {table!r} holds NaN or infinite values (the total of {column!r} over the study's units is {float(total)}).",
-                f"clean the column, or leave those rows out in a view (e.g. WHERE NOT isnan({source})), and name the view in the spec.",
+                "clean the column, or name a view in the spec that keeps only the rows whose value is a finite number (or NULL).",
             )
 
 

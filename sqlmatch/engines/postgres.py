@@ -155,7 +155,7 @@ class PostgresEngine(Engine):
         unsigned = key & 0xFFFFFFFFFFFFFFFF
         try:
             rows = self._query(
-                "SELECT l.pid, a.state, a.application_name, CAST(a.xact_start AS VARCHAR), CAST(a.state_change AS VARCHAR) "
+                "SELECT l.pid, a.state, CAST(a.state_change AS VARCHAR) "
                 "FROM pg_catalog.pg_locks AS l LEFT JOIN pg_catalog.pg_stat_activity AS a ON a.pid = l.pid "
                 "WHERE l.locktype = 'advisory' AND l.granted AND l.objsubid = 1 "
                 "AND l.database = (SELECT oid FROM pg_catalog.pg_database WHERE datname = current_database()) "
@@ -166,7 +166,7 @@ class PostgresEngine(Engine):
             return None, ""
         if not rows:
             return None, ""
-        pid, state, _app, _xact, since = rows[0]
+        pid, state, since = rows[0]
         doing = f", {state} since {str(since)[:19]}" if state and since else ""
         return int(pid), f" (PostgreSQL backend pid {pid}{doing})"
 
