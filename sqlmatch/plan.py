@@ -382,6 +382,7 @@ def source_steps(ctx: PlanContext, outcomes, columns) -> list[Step]:
             units_key=spec.unit_key,
             min_cell=spec.min_cell_size,
             pooled_level=POOLED_LEVEL,
+            categorical_index={f.name: i for i, f in enumerate(f for f in spec.attribute_features if f.categorical)},
         ),
     ]
     steps.append(

@@ -96,6 +96,14 @@ WITH known_units AS (
       0
     ) AS untimed_control
   FROM event_totals
+), levels_0 AS (
+  /* units of the study per level of age_band, for pooling the small ones below */
+  SELECT
+    u.age_band AS level,
+    COUNT(*) AS n_units
+  FROM `sqlmatch`.annual_pass_units AS u
+  GROUP BY
+    u.age_band
 )
 SELECT
   u.unit_key,
@@ -113,7 +121,7 @@ SELECT
   CASE
     WHEN u.age_band IS NULL
     THEN NULL
-    WHEN COUNT(*) OVER (PARTITION BY u.age_band) >= 10
+    WHEN l0.n_units >= 10
     THEN u.age_band
     ELSE '(other)'
   END AS age_band /* features[2] (age_band): a level held by fewer than 10 units of the study is pooled into
@@ -122,7 +130,9 @@ FROM `sqlmatch`.annual_pass_units AS u
 LEFT JOIN event_totals AS t
   ON t.unit_key = u.unit_key
 CROSS JOIN unknown_units AS x
-CROSS JOIN unplaced_events AS p;
+CROSS JOIN unplaced_events AS p
+LEFT JOIN levels_0 AS l0
+  ON l0.level = u.age_band;
 
 DROP TABLE IF EXISTS `sqlmatch`.annual_pass_measures;
 
