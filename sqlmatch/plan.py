@@ -301,11 +301,13 @@ def source_steps(ctx: PlanContext, outcomes, columns) -> list[Step]:
     """The study's units, the checks on them, and one pass over the events for every feature and outcome."""
     spec = ctx.spec
     w = spec.windows
-    control_from = w.post_end if spec.control_pool == "never_by_post_end" else w.cohort_end
+    # who is treated and who is a control: the real study's windows, also in a placebo study
+    e = spec.enrolment_windows
+    control_from = e.post_end if spec.control_pool == "never_by_post_end" else e.cohort_end
     pool_text = (
-        f"never enrolled, or enrolled on or after {w.post_end} (after the post window)"
+        f"never enrolled, or enrolled on or after {e.post_end} (after the post window)"
         if spec.control_pool == "never_by_post_end"
-        else f"never enrolled, or enrolled on or after {w.cohort_end} (not yet enrolled at the cohort month)"
+        else f"never enrolled, or enrolled on or after {e.cohort_end} (not yet enrolled at the cohort month)"
     )
     units_src, events_src = spec.units.display, spec.events.display
 
@@ -320,7 +322,7 @@ def source_steps(ctx: PlanContext, outcomes, columns) -> list[Step]:
             units=spec.units,
             key=spec.unit_key,
             enrolled=spec.enrolled_on,
-            windows=w,
+            enrolment=e,
             cohort=spec.cohort,
             control_from=control_from,
             pool_text=pool_text,

@@ -116,6 +116,42 @@ class MatchingSummary:
     n_control_outside_support: int = 0
 
 
+@dataclass(frozen=True)
+class PlaceboCheck:
+    """The same design placed `months_before` earlier ([placebo]): the cohort is still the treated
+    group, but every window it reads ends before anyone in it enrolled, so each true effect is zero."""
+
+    months_before: int
+    results: "StudyResults"  # the placebo study's own results (its tables are <study>_placebo_*)
+
+    def readings(self) -> list[str]:
+        out = []
+        for e in self.results.effects:
+            if e.ci_low is None or e.ci_high is None:
+                out.append(f"{e.outcome}: {e.estimate:.3g}, no interval.")
+            elif e.ci_low <= 0.0 <= e.ci_high:
+                out.append(f"{e.outcome}: {e.estimate:.3g} [{e.ci_low:.3g}, {e.ci_high:.3g}]: no effect where there can be none, as it should be.")
+            else:
+                out.append(
+                    f"{e.outcome}: {e.estimate:.3g} [{e.ci_low:.3g}, {e.ci_high:.3g}]: an effect where there can be none. Before "
+                    "enrolling, the enrolled units already differed from their matched comparison units in a way the features do "
+                    "not capture; the same difference may be in the main estimate. (With several outcomes, one interval in "
+                    "twenty misses zero by chance.)"
+                )
+        return out
+
+    def to_dict(self) -> dict:
+        r = self.results
+        return {
+            "months_before": self.months_before,
+            "windows": r.windows,
+            "effects": [{k: r._effect_record(e)[k] for k in ("outcome", "estimate", "std_error", "ci_low", "ci_high")} for e in r.effects],
+            "matching": r._matching_dict(),
+            "warnings": list(r.warnings),
+            "readings": self.readings(),
+        }
+
+
 @dataclass
 class StudyResults:
     study: str
@@ -134,6 +170,7 @@ class StudyResults:
     run_id: str | None = None  # set when the run was recorded in the results history table
     warnings: list[str] = field(default_factory=list)  # data problems worth a reader's attention
     timings: dict[str, float] = field(default_factory=dict)
+    placebo: PlaceboCheck | None = None  # [placebo]: the same design before anyone enrolled
 
     def effect(self, outcome: str) -> Effect:
         for e in self.effects:
@@ -235,6 +272,8 @@ class StudyResults:
         }
         if self.demo_truth is not None:
             out["demo_truth"] = self.demo_truth
+        if self.placebo is not None:
+            out["placebo"] = self.placebo.to_dict()
         return out
 
     def _matching_dict(self) -> dict:

@@ -8,6 +8,7 @@ checked later against the engine's catalog (preflight).
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as dt
 import math
 import re
@@ -249,6 +250,26 @@ class Spec:
 
     _raw: dict = field(default_factory=dict, repr=False, compare=False)
 
+    # [placebo] months_before: the placebo study runs the same design this many months earlier
+    placebo_months: int | None = None
+    # in a placebo study: the real study's windows, which still say who enrolled (treated) and
+    # who is a control; `windows` then holds the shifted feature and outcome windows
+    enrolment_windows_of: Windows | None = None
+
+    @property
+    def enrolment_windows(self) -> Windows:
+        """The windows that define who is treated and who is a control."""
+        return self.enrolment_windows_of or self.windows
+
+    def placebo_spec(self) -> "Spec":
+        """The same design placed `placebo_months` earlier: the real cohort stays the treated group,
+        features and outcomes are measured in windows that end before anyone in it enrolled, so the
+        true effect is zero by construction. Its tables and model file are its own."""
+        windows = _placebo_windows(self.windows, self.placebo_months)
+        return dataclasses.replace(
+            self, name=f"{self.name}_placebo", windows=windows, enrolment_windows_of=self.windows, placebo_months=None, results_table=None
+        )
+
 
 # --------------------------------------------------------------------------------------------
 # reading helpers: each takes the dotted key so errors can name it
@@ -363,6 +384,32 @@ def _windows(cohort: str, unit: str, pre: int, post: int, post_starts: str = "af
     )
 
 
+def _placebo_windows(windows: Windows, months: int) -> Windows:
+    """The same windows around the cohort month `months` earlier."""
+    shifted = add_months(windows.cohort_start, -months)
+    return _windows(f"{shifted.year:04d}-{shifted.month:02d}", windows.unit, windows.pre, windows.post, windows.post_starts)
+
+
+def _placebo(value: Any, windows: Windows) -> int | None:
+    """[placebo] months_before: far enough back that the placebo's post window ends before the
+    cohort month begins (nobody in the cohort has enrolled during any window it reads)."""
+    if value is None:
+        return None
+    if not isinstance(value, dict):
+        raise SpecError("placebo", "must be a table.", "write it as [placebo] with months_before = <whole number>.")
+    _check_keys(value, "placebo", {"months_before"})
+    months = _int(value, "placebo", "months_before", low=1, high=120)
+    placebo = _placebo_windows(windows, months)
+    if placebo.post_end > windows.cohort_start:
+        need = next(k for k in range(months + 1, months + 200) if _placebo_windows(windows, k).post_end <= windows.cohort_start)
+        raise SpecError(
+            "placebo.months_before",
+            f"{months} months back, the placebo's post window ends on {placebo.post_end}, after the cohort month begins ({windows.cohort_start}).",
+            f"use months_before = {need} or more, so every window the placebo reads ends before anyone in the cohort enrolled.",
+        )
+    return months
+
+
 def add_months(day: dt.date, months: int) -> dt.date:
     """First-of-month arithmetic (windows always start on the first of a month)."""
     index = day.year * 12 + (day.month - 1) + months
@@ -468,7 +515,7 @@ def load_spec(path: str | Path) -> Spec:
 
 def parse_spec(raw: dict, source_path: Path | None = None) -> Spec:
     _check_values(raw, "")
-    _check_keys(raw, "", {"study", "units", "events", "treatment", "windows", "eligibility", "features", "outcomes", "matching", "propensity", "effect", "report"})
+    _check_keys(raw, "", {"study", "units", "events", "treatment", "windows", "eligibility", "features", "outcomes", "matching", "propensity", "effect", "placebo", "report"})
 
     study = _table(raw, "study")
     _check_keys(study, "study", {"name", "work_schema", "database", "results_table"})
@@ -554,6 +601,7 @@ def parse_spec(raw: dict, source_path: Path | None = None) -> Spec:
         raise SpecError("effect", "must be a table.", "write it as [effect] with regression_adjustment = true or false.")
     _check_keys(effect, "effect", {"regression_adjustment"})
     regression_adjustment = read_bool(effect, "effect", "regression_adjustment", default=False)
+    placebo_months = _placebo(raw.get("placebo"), windows)
 
     spec = Spec(
         name=name,
@@ -570,6 +618,7 @@ def parse_spec(raw: dict, source_path: Path | None = None) -> Spec:
         control_pool=control_pool,
         treatment_words=described_as,
         regression_adjustment=regression_adjustment,
+        placebo_months=placebo_months,
         windows=windows,
         filters=filters,
         filter_texts=tuple(filter_texts),
