@@ -17,7 +17,7 @@ from sqlglot import exp
 from sqlmatch import dialects, render
 from sqlmatch.columns import regression_design, upper_pairs
 from sqlmatch.matching import method_for
-from sqlmatch.spec import MISSING_INDICATOR, Spec, last_period_start
+from sqlmatch.spec import MISSING_INDICATOR, Spec, is_boolean, last_period_start
 
 MANIFEST_VERSION = 1
 HISTOGRAM_BINS = 20  # bins of the report's distribution plots
@@ -297,6 +297,25 @@ def measure_columns(spec: Spec) -> tuple[list[MeasureColumn], list[OutcomeColumn
     return cols, outcomes
 
 
+@dataclass(frozen=True)
+class AttributeColumn:
+    """An attribute feature as study_units selects it: `value` is SQL built by sqlglot, the quoted
+    column or the feature's expression (a condition made 1 / 0, NULL staying NULL)."""
+
+    name: str
+    categorical: bool
+    value: str
+
+
+def attribute_column(f) -> AttributeColumn:
+    if f.expression is None:
+        return AttributeColumn(f.name, f.categorical, exp.column(exp.to_identifier(f.attribute, quoted=True), table=exp.to_identifier("u")).sql(render.SOURCE_DIALECT))
+    value = render.expression_sql(f.expression, alias="u")
+    if is_boolean(f.expression):
+        value = f"CASE WHEN {value} THEN 1 WHEN NOT ({value}) THEN 0 END"
+    return AttributeColumn(f.name, f.categorical, value)
+
+
 def source_steps(ctx: PlanContext, outcomes, columns) -> list[Step]:
     """The study's units, the checks on them, and one pass over the events for every feature and outcome."""
     spec = ctx.spec
@@ -326,7 +345,7 @@ def source_steps(ctx: PlanContext, outcomes, columns) -> list[Step]:
             cohort=spec.cohort,
             control_from=control_from,
             pool_text=pool_text,
-            attributes=spec.attribute_features,
+            attributes=[attribute_column(f) for f in spec.attribute_features],
             filters=[render.expression_sql(f, alias="u") for f in spec.filters],
         ),
         ctx.query_step(

@@ -119,6 +119,10 @@ class Feature:
     # the study, "level" (categorical) makes it a level of its own. Event features are never NULL.
     missing: str | None = None
     key: str = field(default="", compare=False)  # the spec key naming this feature, for messages
+    # attribute features: a SQL expression over unit columns instead of one column (parsed and
+    # allowlisted as filters are; a condition counts as 1 when true, 0 when false)
+    expression: exp.Expression | None = field(default=None, compare=False)
+    expression_text: str | None = None
 
     @property
     def indicator(self) -> str | None:
@@ -431,8 +435,31 @@ def parse_filter(text: Any, key: str) -> exp.Expression:
     CASE, IN over literals, BETWEEN, IS NULL, LIKE, CAST, literals, unit columns and a few pure
     scalar functions. Comments are dropped so nothing can hide inside them in the compiled SQL.
     """
+    tree = _parse_unit_expression(text, key, "filter", "a SQL boolean expression")
+    if not is_boolean(tree):
+        raise SpecError(
+            key,
+            f"{text!r} is not a boolean expression.",
+            "write a condition such as signup_date < DATE '2025-09-01'.",
+        )
+    return tree
+
+
+def parse_attribute_expression(text: Any, key: str) -> exp.Expression:
+    """One SQL expression over unit columns that gives a feature's value (e.g. re74 * re74, or a
+    condition such as re74 = 0, which counts as 1 / 0): the same parse and allowlist as filters."""
+    return _parse_unit_expression(text, key, "feature expression", "a SQL expression")
+
+
+def is_boolean(tree: exp.Expression) -> bool:
+    return isinstance(tree, (exp.Predicate, exp.Connector, exp.Not, exp.Boolean, exp.Is, exp.In, exp.Between)) or (
+        isinstance(tree, exp.Paren) and is_boolean(tree.this)
+    )
+
+
+def _parse_unit_expression(text: Any, key: str, what_kind: str, wanted: str) -> exp.Expression:
     if not isinstance(text, str) or not text.strip():
-        raise SpecError(key, f"must be a SQL boolean expression as a string, got {text!r}.")
+        raise SpecError(key, f"must be {wanted} as a string, got {text!r}.")
     depth = deepest = 0
     for ch in text:  # sqlglot recurses per nesting level: refuse deep nesting before it overflows
         depth += ch == "("
@@ -444,7 +471,7 @@ def parse_filter(text: Any, key: str) -> exp.Expression:
         statements = sqlglot.parse(text, read="duckdb")
     except sqlglot.errors.SqlglotError as err:
         first = str(err).splitlines()[0]
-        raise SpecError(key, f"could not be parsed as SQL: {first}", "write one boolean expression over unit columns.") from None
+        raise SpecError(key, f"could not be parsed as SQL: {first}", f"write one {wanted[2:]} over unit columns.") from None
     except RecursionError:
         raise SpecError(key, "is nested too deeply to parse.", "write a flatter expression.") from None
     statements = [s for s in statements if s is not None]
@@ -452,10 +479,10 @@ def parse_filter(text: Any, key: str) -> exp.Expression:
         raise SpecError(
             key,
             f"holds {len(statements)} statements.",
-            "write exactly one boolean expression, with no semicolon, e.g. signup_date < DATE '2025-09-01'.",
+            f"write exactly one {wanted[2:]}, with no semicolon, e.g. signup_date < DATE '2025-09-01'.",
         )
     tree = statements[0]
-    allowed_fix = f"filters may use unit columns, literals, comparisons, AND/OR/NOT, arithmetic, CASE, IN (...), BETWEEN, IS NULL, LIKE, CAST and the functions {FILTER_FUNCTIONS_TEXT}."
+    allowed_fix = f"{what_kind}s may use unit columns, literals, comparisons, AND/OR/NOT, arithmetic, CASE, IN (...), BETWEEN, IS NULL, LIKE, CAST and the functions {FILTER_FUNCTIONS_TEXT}."
     for node in tree.walk():
         if isinstance(node, tuple(_FILTER_FUNCTIONS)) or isinstance(node, _FILTER_NODES):
             if isinstance(node, exp.In) and (node.args.get("query") or node.args.get("field") or node.args.get("unnest")):
@@ -470,13 +497,7 @@ def parse_filter(text: Any, key: str) -> exp.Expression:
             what = f"{type(node).__name__.upper()} ({node.sql(dialect='duckdb')[:40]!r})"
         statement = isinstance(node, (exp.Query, exp.Subquery, exp.DML, exp.DDL, exp.Command))
         fix = ("remove the statement or subquery; " if statement else "") + allowed_fix
-        raise SpecError(key, f"{what} is not allowed in a filter; only a boolean expression over unit columns is.", fix)
-    if not isinstance(tree, (exp.Predicate, exp.Connector, exp.Not, exp.Paren, exp.Boolean, exp.Is, exp.In, exp.Between)):
-        raise SpecError(
-            key,
-            f"{text!r} is not a boolean expression.",
-            "write a condition such as signup_date < DATE '2025-09-01'.",
-        )
+        raise SpecError(key, f"{what} is not allowed in a {what_kind}; only {wanted} over unit columns is.", fix)
     for node in tree.walk():
         node.comments = None
         if isinstance(node, exp.Column) and node.table:
@@ -650,14 +671,20 @@ def _features(value: Any, windows: Windows) -> list[Feature]:
     out = []
     for i, item in enumerate(_list_of_tables(value, "features")):
         key = f"features[{i}]"
-        _check_keys(item, key, {"name", "aggregate", "measure", "attribute", "type", "fill", "missing"})
+        _check_keys(item, key, {"name", "aggregate", "measure", "attribute", "expression", "type", "fill", "missing"})
         name = _name(_str(item, key, "name"), f"{key}.name")
         key = f"features[{i}] ({name})"
         agg = _choice(item, key, "aggregate", FEATURE_AGGREGATES)
         measure = _str(item, key, "measure", required=agg in ("sum", "mean"))
         if measure and agg not in ("sum", "mean"):
             raise SpecError(f"{key}.measure", f"is only used with aggregate sum or mean, not {agg}.", "remove it.")
-        attribute = _str(item, key, "attribute", required=agg == "attribute")
+        expression_text = item.get("expression")
+        if expression_text is not None and agg != "attribute":
+            raise SpecError(f"{key}.expression", "is only used with aggregate = \"attribute\" (an expression over unit columns).", "remove it, or make the feature an attribute.")
+        if expression_text is not None and "attribute" in item:
+            raise SpecError(f"{key}.expression", "is given with attribute: a feature is one column or one expression.", "remove one of them.")
+        expression = parse_attribute_expression(expression_text, f"{key}.expression") if expression_text is not None else None
+        attribute = _str(item, key, "attribute", required=agg == "attribute" and expression is None)
         if attribute and agg != "attribute":
             raise SpecError(f"{key}.attribute", "is only used with aggregate = \"attribute\".", "remove it.")
         kind = _choice(item, key, "type", ("numeric", "categorical"), default="numeric")
@@ -680,10 +707,15 @@ def _features(value: Any, windows: Windows) -> list[Feature]:
                 "only applies to attribute features: a feature built from events is never NULL (a unit without events in the window gets `fill`).",
                 "remove it, or set fill = <number> for units without events.",
             )
-        feature = Feature(name=name, aggregate=agg, measure=measure, attribute=attribute, categorical=kind == "categorical", fill=fill, missing=missing, key=key)
+        feature = Feature(
+            name=name, aggregate=agg, measure=measure, attribute=attribute, categorical=kind == "categorical", fill=fill, missing=missing, key=key,
+            expression=expression, expression_text=expression_text,
+        )
         out.append(feature)
         if feature.indicator:
-            out.append(Feature(name=feature.indicator, aggregate=MISSING_INDICATOR, attribute=attribute, key=f"{key}.missing"))
+            out.append(Feature(
+                name=feature.indicator, aggregate=MISSING_INDICATOR, attribute=attribute, key=f"{key}.missing", expression=expression, expression_text=expression_text
+            ))
     names = [f.name for f in out]
     for f in out:
         if f.aggregate == MISSING_INDICATOR and names.count(f.name) > 1:
