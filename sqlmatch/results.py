@@ -18,6 +18,10 @@ ASSUMPTIONS = (
     "No interference: one unit's enrolment does not change another unit's outcome.",
     "The windows are fixed in advance: features come strictly before the enrolment month and outcomes strictly after it; "
     "other window choices can give other answers.",
+    "What the intervals are for: the average effect on the enrolled units this study kept, given their features "
+    "(how enrolment changes their expected outcomes). The realised difference in this cohort's outcomes also varies "
+    "by chance around that average, and other enrolees have other features: as an interval for either, it can be "
+    "too narrow, most of all for a 0/1 outcome close to 0 or 1 or an effect that differs much between units.",
     "These figures inform, and do not replace, judgement about the programme.",
 )
 
