@@ -87,7 +87,7 @@ def test_a_small_level_and_one_more_are_withheld(db):
     with duckdb.connect(str(db)) as con:
         cohort = "pass_bought_on >= DATE '2026-03-01' AND pass_bought_on < DATE '2026-04-01'"
         ids = [r for (r,) in con.execute(f"SELECT rider_id FROM riders WHERE {cohort} ORDER BY rider_id LIMIT 3").fetchall()]
-        ids += [r for (r,) in con.execute(f"SELECT rider_id FROM riders WHERE pass_bought_on IS NULL ORDER BY rider_id LIMIT 300").fetchall()]
+        ids += [r for (r,) in con.execute("SELECT rider_id FROM riders WHERE pass_bought_on IS NULL ORDER BY rider_id LIMIT 300").fetchall()]
         con.execute(f"UPDATE riders SET home_district = 'Tiny Quay' WHERE rider_id IN ({', '.join(map(str, ids))})")
     raw = raw_spec(db, [{"feature": "home_district"}])
     raw["report"] = {"min_cell_size": 5}
