@@ -6,7 +6,6 @@ from __future__ import annotations
 
 import json
 import math
-import shutil
 import tomllib
 
 import duckdb
@@ -22,10 +21,8 @@ from conftest import DEMO_SPEC
 
 
 @pytest.fixture
-def db(demo_dir, tmp_path):
-    path = tmp_path / "bikeshare.duckdb"
-    shutil.copyfile(demo_dir / "bikeshare.duckdb", path)
-    return path
+def db(demo_db):
+    return demo_db
 
 
 def raw_spec(db, subgroups) -> dict:
