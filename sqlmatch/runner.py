@@ -223,7 +223,9 @@ def _measure_sources(spec: Spec) -> dict[str, tuple[str, str, str]]:
         if f.measure:
             out[f.name] = (f"{f.key}.measure", f.measure, spec.events.display)
     for f in spec.attribute_features:
-        if not f.categorical:
+        if not f.categorical and f.expression_text is not None:
+            out[f.name] = (f"{f.key}.expression", f.expression_text, spec.units.display)
+        elif not f.categorical:
             out[f.name] = (f"{f.key}.attribute", f.attribute, spec.units.display)
     for o in spec.outcomes:
         if o.aggregate == "sum":
@@ -261,7 +263,8 @@ def _check_coverage(spec: Spec, result: QueryResult) -> None:
         if total is not None and not math.isfinite(float(total)):
             raise DataError(
                 key,
-                f"column {source!r} of {table!r} holds NaN or infinite values (the total of {column!r} over the study's units is {float(total)}).",
+                f"{'column' if not key.endswith('.expression') else 'the expression'} {source!r} of {table!r} holds NaN or infinite "
+                f"values (the total of {column!r} over the study's units is {float(total)}).",
                 "clean the column, or name a view in the spec that keeps only the rows whose value is a finite number (or NULL).",
             )
 

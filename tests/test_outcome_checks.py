@@ -108,3 +108,21 @@ def test_nan_in_a_measure_is_refused_naming_the_feature_or_outcome(db, where, ke
     text = str(info.value)
     assert key in text and "'minutes'" in text and "NaN" in text and "Fix:" in text
     assert work_tables(db) == []
+
+
+def test_nan_from_a_feature_expression_names_the_expression(db):
+    """An expression over unit columns can make NaN or infinity from finite values (here a
+    division by a column that is 0 for some riders: DuckDB gives infinity, Spark NULL, PostgreSQL
+    an error; DuckDB's case is the one that must not pass silently)."""
+    with duckdb.connect(str(db)) as con:
+        con.execute("ALTER TABLE riders ADD COLUMN zero_or_one DOUBLE")
+        con.execute("UPDATE riders SET zero_or_one = CASE WHEN rider_id % 7 = 0 THEN 0 ELSE 1 END")
+
+    def edit(raw):
+        raw["features"].append({"name": "inverse", "aggregate": "attribute", "expression": "1.0 / zero_or_one"})
+
+    with pytest.raises(DataError) as info:
+        api.run(spec_for(db, edit), keep_tables=True)
+    text = str(info.value)
+    assert "features[7] (inverse).expression" in text and "'1.0 / zero_or_one'" in text and "Fix:" in text
+    assert work_tables(db) == []
