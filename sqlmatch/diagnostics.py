@@ -151,7 +151,7 @@ def _incomplete_ratio_warnings(spec: Spec, r) -> list[str]:
     c = r["data_coverage"].one()
     out = []
     for o in spec.outcomes:
-        n = int(c.get(f"{o.name}__incomplete__total") or 0) if o.aggregate == "ratio" else 0
+        n = int(c.get(stat(stat(o.name, "incomplete"), "total")) or 0) if o.aggregate == "ratio" else 0
         if n:
             parts = " or ".join(repr(x) for x in (o.numerator, o.denominator) if x)
             out.append(

@@ -15,7 +15,7 @@ from dataclasses import dataclass, field
 from sqlglot import exp
 
 from sqlmatch import dialects, render
-from sqlmatch.columns import regression_design, upper_pairs
+from sqlmatch.columns import regression_design, stat, upper_pairs
 from sqlmatch.matching import method_for
 from sqlmatch.spec import MISSING_INDICATOR, Spec, is_boolean, last_period_start
 
@@ -304,7 +304,7 @@ def measure_columns(spec: Spec) -> tuple[list[MeasureColumn], list[OutcomeColumn
             cols.append(MeasureColumn(name=num, agg="sum", start=w.post_start, end=w.post_end, fill=0.0, measure=o.numerator, require=both))
             den_agg = "sum" if o.denominator else "count"
             cols.append(MeasureColumn(name=den, agg=den_agg, start=w.post_start, end=w.post_end, fill=0.0, measure=o.denominator, require=both))
-            cols.append(MeasureColumn(name=f"{o.name}__incomplete", agg="count_missing", start=w.post_start, end=w.post_end, fill=0.0, require=both, carried=False))
+            cols.append(MeasureColumn(name=stat(o.name, "incomplete"), agg="count_missing", start=w.post_start, end=w.post_end, fill=0.0, require=both, carried=False))
             outcomes.append(OutcomeColumns(name=o.name, kind="ratio", num=num, den=den))
         elif o.aggregate == "active_at_end":
             start = last_period_start(w, o.last)

@@ -17,6 +17,7 @@ from dataclasses import dataclass, field
 from sqlglot import exp
 
 from sqlmatch.columns import stat
+from sqlmatch.columns import stat
 from sqlmatch.dialects import BUILDING_SUFFIX
 from sqlmatch.engines.base import Engine, QueryResult
 from sqlmatch.errors import DataError, SpecError
@@ -231,7 +232,7 @@ def _measure_sources(spec: Spec) -> dict[str, tuple[str, str, str]]:
         if o.aggregate == "sum":
             out[o.name] = (f"{o.key}.measure", o.measure, spec.events.display)
         elif o.aggregate == "ratio":
-            out[f"{o.name}__num"] = (f"{o.key}.numerator", o.numerator, spec.events.display)
+            out[o.name + "__num"] = (f"{o.key}.numerator", o.numerator, spec.events.display)
             if o.denominator:
                 out[f"{o.name}__den"] = (f"{o.key}.denominator", o.denominator, spec.events.display)
     return out
@@ -259,7 +260,7 @@ def _check_coverage(spec: Spec, result: QueryResult) -> None:
             "pick an earlier treatment.cohort (the post window follows it), or wait until the post window's events have arrived.",
         )
     for column, (key, source, table) in _measure_sources(spec).items():
-        total = row.get(f"{column}__total")
+        total = row.get(stat(column, "total"))
         if total is not None and not math.isfinite(float(total)):
             raise DataError(
                 key,
@@ -278,7 +279,7 @@ def _check_ratio_denominators(spec: Spec, name: str, result: QueryResult) -> Non
             continue
         totals = {0: 0.0, 1: 0.0}
         for r in result.records():
-            totals[int(r["treated"])] += float(r.get(f"{o.name}__sum_x") or 0.0)
+            totals[int(r["treated"])] += float(r.get(stat(o.name, "sum_x")) or 0.0)
         for group, word in ((1, "treated"), (0, "control")):
             if totals[group] > 0:
                 continue
