@@ -13,7 +13,8 @@ from dataclasses import dataclass
 # The statistics in use (the part after `__`): balance_numeric n, sum, sumsq, min, max and, after
 # matching, w (sum of weights), w2 (of squared weights), wsum, wsumsq; outcome_strata sum, sumsq,
 # did_sum, did_sumsq and for ratios sum_y, sum_x, sumsq_y, sumsq_x, sum_xy; group_sizes null;
-# outcome_regression centre, yty, tyy; pair_signed_rank sum_d, sum_d2, t_plus, n_nonzero, tie_term.
+# outcome_regression centre, yty, tyy; pair_signed_rank sum_d, sum_d2, t_plus, n_nonzero, tie_term;
+# data_coverage total (of a measure column); the measures' <ratio outcome>__incomplete (events left out).
 
 
 def stat(name: str, what: str) -> str:

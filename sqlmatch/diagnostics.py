@@ -97,12 +97,94 @@ def data_warnings(spec: Spec, r, balance) -> list[str]:
                 "they are left out of every feature and outcome. If that is more than a few, check that events.unit_key "
                 "and units.key name the same thing, and that the units table is complete."
             )
+    out += _unplaced_event_warnings(spec, r)
+    out += _pooled_level_warnings(spec, r)
+    out += _incomplete_ratio_warnings(spec, r)
     out += _kept_warning(spec, r, balance)
     for b in balance:
         if b.kind != "level" and b.mean_treated_before is None and b.mean_control_before is None:
             out.append(f"Feature {b.covariate!r} is NULL for every unit: it carries no information. Fix its definition or drop it.")
         elif b.kind != "level" and b.smd_before == 0.0 and b.variance_ratio_before is None:
             out.append(f"Feature {b.covariate!r} has the same value for every unit: it carries no information and can be dropped.")
+    return out
+
+
+def _pooled_level_warnings(spec: Spec, r) -> list[str]:
+    """Say which categorical features had levels pooled into '(other)' (unit_measures) and how
+    many units that holds. Exact matching on such a feature matches within the pooled level
+    rather than being refused: grouping rare categories is a coarsening like any other in
+    coarsened exact matching, refusing would stop any study with one rare level, and keeping the
+    rare levels apart would make strata of fewer than min_cell_size units whose sums leave the
+    warehouse, and rows fetched that grow with the data."""
+    from sqlmatch.plan import POOLED_LEVEL
+
+    if "balance_levels" not in r:
+        return []
+    pooled: dict[str, int] = {}
+    for row in r["balance_levels"].records():
+        if row["level"] == POOLED_LEVEL:
+            pooled[row["feature"]] = pooled.get(row["feature"], 0) + int(row["n_units"] or 0)
+    out = []
+    matched_on = set(spec.matching.on) | set(spec.matching.exact)
+    for f in spec.categorical_features:
+        if f.name not in pooled:
+            continue
+        text = (
+            f"Levels of {f.name!r} held by fewer than {spec.min_cell_size} units of the study are pooled into one level, "
+            f"'{POOLED_LEVEL}' ({count_text(pooled[f.name], spec.min_cell_size, words=True)} units), so that no small level is named "
+            "or measured on its own (report.min_cell_size)."
+        )
+        if f.name in matched_on:
+            text += (
+                f" Matching on it treats them as one level: units of different rare levels can share a stratum. To keep them apart, "
+                f"group the levels yourself (e.g. in a view on {spec.units.display!r}) into groups of at least {spec.min_cell_size} units."
+            )
+        out.append(text)
+    return out
+
+
+def _incomplete_ratio_warnings(spec: Spec, r) -> list[str]:
+    """A ratio outcome counts an event in both parts or in neither; say how many events of the
+    post window it left out for lacking a value."""
+    if "data_coverage" not in r:
+        return []
+    c = r["data_coverage"].one()
+    out = []
+    for o in spec.outcomes:
+        n = int(c.get(stat(stat(o.name, "incomplete"), "total")) or 0) if o.aggregate == "ratio" else 0
+        if n:
+            parts = " or ".join(repr(x) for x in (o.numerator, o.denominator) if x)
+            out.append(
+                f"{o.key}: {n:,} events of the study's units in the post window have no value in {parts}: the ratio "
+                "uses only the events with a value in both parts (they count in neither). If those events should count, "
+                "fill the values in the events table."
+            )
+    return out
+
+
+def _unplaced_event_warnings(spec: Spec, r) -> list[str]:
+    """Events the pass over the events could not place: a NULL time fits no window, a NULL unit
+    key no unit. Both are left out of every measure; a share that differs between the groups
+    moves the effect, so they are counted (per group for the times) and said."""
+    if "data_coverage" not in r or "n_events_without_key" not in r["data_coverage"].columns:
+        return []
+    c = r["data_coverage"].one()
+    treated, control = int(c["n_events_without_time_treated"] or 0), int(c["n_events_without_time_control"] or 0)
+    keyless = int(c["n_events_without_key"] or 0)
+    out = []
+    if treated + control:
+        out.append(
+            f"{treated + control:,} events of the study's units have no time ({treated:,} of treated units, {control:,} of control units): "
+            f"events.time ({spec.event_time!r} of {spec.events.display!r}) is NULL on them, so no window holds them and they are left out "
+            "of every feature and outcome. Unless that is a few, fill in the times (or leave those rows out in a view on purpose): "
+            "if one group lost more of its events, the effect is biased."
+        )
+    if keyless:
+        out.append(
+            f"{keyless:,} events have no unit key: events.unit_key ({spec.event_unit_key!r} of {spec.events.display!r}) is NULL on them "
+            "(counted within the windows, and without a time), so they belong to no unit and are left out. Unless that is a few, "
+            "fix the key in the events table."
+        )
     return out
 
 

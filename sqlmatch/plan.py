@@ -15,7 +15,7 @@ from dataclasses import dataclass, field
 from sqlglot import exp
 
 from sqlmatch import dialects, render
-from sqlmatch.columns import regression_design, upper_pairs
+from sqlmatch.columns import regression_design, stat, upper_pairs
 from sqlmatch.matching import method_for
 from sqlmatch.spec import MISSING_INDICATOR, Spec, is_boolean, last_period_start
 
@@ -23,20 +23,31 @@ MANIFEST_VERSION = 1
 HISTOGRAM_BINS = 20  # bins of the report's distribution plots
 L1_BINS = 10  # equal-width bins per numeric feature in the fixed histogram of the L1 imbalance
 FINGERPRINT_COLUMN = "plan__fingerprint"  # on every row of a scheduled aggregate table
+# Days are cut in UTC: the runner sets the session's time zone to it for a run (engines'
+# session_time_zone), so a TIMESTAMPTZ event or enrolment time falls on its UTC day on every
+# engine, whatever the machine's or the session's own zone. Compiled files say so in the steps
+# that read times; a scheduler runs them in a session set to it.
+TIME_ZONE = "UTC"
+_UTC_NOTE = f"Days are cut in {TIME_ZONE}: run it in a session whose time zone is {TIME_ZONE}, or times with a time zone fall on the session's days."
+# The level that categorical levels held by fewer than report.min_cell_size units of the study are
+# pooled into, in unit_measures: every later step (balance, propensity levels, exact matching,
+# L1 cells) sees it, so the rows fetched stay fixed by the spec and no small level is named.
+POOLED_LEVEL = "(other)"
 _KIND_TEXT = {"setup": "prepares the work schema", "table": "writes a table", "query": "returns aggregates to sqlmatch"}
 
 
 def spec_fingerprint(spec: Spec) -> str:
     """A short hash per section of the spec (and one of sqlmatch's version), "section:hash,...":
     stored on every row of a scheduled aggregate table, so `sqlmatch report` can refuse tables an
-    earlier spec wrote and name the sections that changed. The database path and the [report]
-    section do not change what the SQL computes and are left out; the propensity model file is
-    not part of it (report checks the coefficients that ran separately)."""
+    earlier spec wrote and name the sections that changed. The database path does not change what
+    the SQL computes and is left out ([report] does: min_cell_size pools small categorical levels
+    in SQL); the propensity model file is not part of it (report checks the coefficients that ran
+    separately)."""
     import hashlib
 
     from sqlmatch import __version__
 
-    raw = {k: v for k, v in spec._raw.items() if k != "report"}
+    raw = dict(spec._raw)
     if isinstance(raw.get("study"), dict):
         raw["study"] = {k: v for k, v in raw["study"].items() if k != "database"}
     if spec.cohort != (raw.get("treatment") or {}).get("cohort"):
@@ -78,6 +89,10 @@ class MeasureColumn:
     end: dt.date
     fill: float
     measure: str | None = None
+    # events columns that must hold a value for an event to count (a ratio's two parts); agg
+    # "count_missing" counts the events in the window lacking one of them instead
+    require: tuple[str, ...] = ()
+    carried: bool = True  # into <study>_weighted_units (False: a diagnostic count only)
 
     @property
     def days(self) -> int:
@@ -130,7 +145,7 @@ class PlanContext:
         """The measures carried into <study>_weighted_units: every feature and outcome column."""
         columns, _ = measure_columns(self.spec)
         attributes = [f.name for f in self.spec.features if f.aggregate in ("attribute", MISSING_INDICATOR)]
-        return [c.name for c in columns] + attributes
+        return [c.name for c in columns if c.carried] + attributes
 
     def table_node(self, logical: str) -> exp.Table:
         return exp.to_table(self.table(logical), dialect=render.SOURCE_DIALECT)
@@ -283,9 +298,13 @@ def measure_columns(spec: Spec) -> tuple[list[MeasureColumn], list[OutcomeColumn
     for o in spec.outcomes:
         if o.aggregate == "ratio":
             num, den = f"{o.name}__num", f"{o.name}__den"
-            cols.append(MeasureColumn(name=num, agg="sum", start=w.post_start, end=w.post_end, fill=0.0, measure=o.numerator))
+            # An event counts in both parts or in neither: a trip without a fare must not lower
+            # the fare per trip. The events left out are counted for the run's warnings.
+            both = tuple(c for c in (o.numerator, o.denominator) if c)
+            cols.append(MeasureColumn(name=num, agg="sum", start=w.post_start, end=w.post_end, fill=0.0, measure=o.numerator, require=both))
             den_agg = "sum" if o.denominator else "count"
-            cols.append(MeasureColumn(name=den, agg=den_agg, start=w.post_start, end=w.post_end, fill=0.0, measure=o.denominator))
+            cols.append(MeasureColumn(name=den, agg=den_agg, start=w.post_start, end=w.post_end, fill=0.0, measure=o.denominator, require=both))
+            cols.append(MeasureColumn(name=stat(o.name, "incomplete"), agg="count_missing", start=w.post_start, end=w.post_end, fill=0.0, require=both, carried=False))
             outcomes.append(OutcomeColumns(name=o.name, kind="ratio", num=num, den=den))
         elif o.aggregate == "active_at_end":
             start = last_period_start(w, o.last)
@@ -337,7 +356,7 @@ def source_steps(ctx: PlanContext, outcomes, columns) -> list[Step]:
             "study_units",
             writes="units",
             reads=[units_src],
-            purpose=f"Treated cohort ({spec.cohort}) and control pool, after eligibility filters.",
+            purpose=f"Treated cohort ({spec.cohort}) and control pool, after eligibility filters. {_UTC_NOTE}",
             units=spec.units,
             key=spec.unit_key,
             enrolled=spec.enrolled_on,
@@ -371,7 +390,7 @@ def source_steps(ctx: PlanContext, outcomes, columns) -> list[Step]:
             "unit_measures",
             writes="measures",
             reads=[events_src, ctx.display("units")] + ([units_src] if spec.check_unknown_units else []),
-            purpose="Per-unit pre-window features and post-window outcomes, one pass over the events (which also counts events of unknown units).",
+            purpose=f"Per-unit pre-window features and post-window outcomes, one pass over the events (which also counts events of unknown units). {_UTC_NOTE}",
             events=spec.events,
             event_key=spec.event_unit_key,
             event_time=spec.event_time,
@@ -382,6 +401,9 @@ def source_steps(ctx: PlanContext, outcomes, columns) -> list[Step]:
             check_unknown=spec.check_unknown_units,
             units_source=spec.units,
             units_key=spec.unit_key,
+            min_cell=spec.min_cell_size,
+            pooled_level=POOLED_LEVEL,
+            categorical_index={f.name: i for i, f in enumerate(f for f in spec.attribute_features if f.categorical)},
         ),
     ]
     steps.append(
@@ -389,8 +411,10 @@ def source_steps(ctx: PlanContext, outcomes, columns) -> list[Step]:
             "data_coverage",
             "data_coverage",
             reads=[ctx.display("measures")],
-            purpose="First and last event within the windows, units without events (warn on gaps), events of unknown units.",
+            purpose="First and last event within the windows, units without events (warn on gaps), events of unknown units, sums of the measures (refuse NaN).",
             windows=w,
+            totals=[c.name for c in columns if c.agg in ("sum", "mean", "count_missing")]
+            + [f.name for f in spec.attribute_features if not f.categorical],
             check_unknown=spec.check_unknown_units,
             measures_table=ctx.table("measures"),
         )

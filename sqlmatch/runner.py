@@ -7,6 +7,7 @@ leaves nothing half-written behind.
 
 from __future__ import annotations
 
+import datetime as dt
 import math
 import os
 import sys
@@ -16,11 +17,12 @@ from dataclasses import dataclass, field
 from sqlglot import exp
 
 from sqlmatch.columns import stat
+from sqlmatch.columns import stat
 from sqlmatch.dialects import BUILDING_SUFFIX
 from sqlmatch.engines.base import Engine, QueryResult
 from sqlmatch.errors import DataError, SpecError
 from sqlmatch.matching import method_for
-from sqlmatch.plan import Plan
+from sqlmatch.plan import TIME_ZONE, Plan
 from sqlmatch.spec import Spec, filter_columns
 
 NUMERIC_TYPE_WORDS = ("INT", "DOUBLE", "FLOAT", "DECIMAL", "NUMERIC", "REAL", "HUGEINT", "BIGINT", "SMALLINT", "TINYINT", "UBIGINT", "UINTEGER")
@@ -214,6 +216,86 @@ def _check_matched(spec: Spec, result: QueryResult, group_sizes: QueryResult | N
         )
 
 
+def _measure_sources(spec: Spec) -> dict[str, tuple[str, str, str]]:
+    """Measure column -> (spec key, source column, source table) for the measures built from
+    numbers, whose totals data_coverage returns."""
+    out = {}
+    for f in spec.event_features:
+        if f.measure:
+            out[f.name] = (f"{f.key}.measure", f.measure, spec.events.display)
+    for f in spec.attribute_features:
+        if not f.categorical and f.expression_text is not None:
+            out[f.name] = (f"{f.key}.expression", f.expression_text, spec.units.display)
+        elif not f.categorical:
+            out[f.name] = (f"{f.key}.attribute", f.attribute, spec.units.display)
+    for o in spec.outcomes:
+        if o.aggregate == "sum":
+            out[o.name] = (f"{o.key}.measure", o.measure, spec.events.display)
+        elif o.aggregate == "ratio":
+            out[o.name + "__num"] = (f"{o.key}.numerator", o.numerator, spec.events.display)
+            if o.denominator:
+                out[f"{o.name}__den"] = (f"{o.key}.denominator", o.denominator, spec.events.display)
+    return out
+
+
+def _check_coverage(spec: Spec, result: QueryResult) -> None:
+    """Refuse a post window the events do not reach (every outcome would be 0, an effect of
+    nothing) and a measure whose total is NaN or infinite (a NaN or infinity in its column: it
+    would spread into every mean, bin and estimate)."""
+    row = result.one()
+    w = spec.windows
+    last = row.get("last_event_at")
+    if last is None:
+        raise DataError(
+            "windows",
+            f"no unit of the study has an event between {w.pre_start} and {w.post_end} (the pre and post windows) in {spec.events.display!r}.",
+            "check events.table, events.unit_key and events.time, or pick a treatment.cohort whose windows the events cover.",
+        )
+    last = last if isinstance(last, dt.date) and not isinstance(last, dt.datetime) else dt.date.fromisoformat(str(last)[:10])
+    if last < w.post_start:
+        raise DataError(
+            "windows.post",
+            f"the post window [{w.post_start}, {w.post_end}) holds no event of the study's units: the last event is on {last}, "
+            "so every outcome would be 0.",
+            "pick an earlier treatment.cohort (the post window follows it), or wait until the post window's events have arrived.",
+        )
+    for column, (key, source, table) in _measure_sources(spec).items():
+        total = row.get(stat(column, "total"))
+        if total is not None and not math.isfinite(float(total)):
+            raise DataError(
+                key,
+                f"{'column' if not key.endswith('.expression') else 'the expression'} {source!r} of {table!r} holds NaN or infinite "
+                f"values (the total of {column!r} over the study's units is {float(total)}).",
+                "clean the column, or name a view in the spec that keeps only the rows whose value is a finite number (or NULL).",
+            )
+
+
+def _check_ratio_denominators(spec: Spec, name: str, result: QueryResult) -> None:
+    """Refuse a ratio outcome whose denominator sums to 0 over a group: the ratio is undefined."""
+    where = "matched" if name == "outcome_strata" else "study's"
+    w = spec.windows
+    for o in spec.outcomes:
+        if o.aggregate != "ratio":
+            continue
+        totals = {0: 0.0, 1: 0.0}
+        for r in result.records():
+            totals[int(r["treated"])] += float(r.get(stat(o.name, "sum_x")) or 0.0)
+        for group, word in ((1, "treated"), (0, "control")):
+            if totals[group] > 0:
+                continue
+            if o.denominator:
+                key, what = f"{o.key}.denominator", f"the denominator, column {o.denominator!r} of {spec.events.display!r},"
+                fix = f"a ratio needs a denominator with a positive total: check {o.denominator!r}, or remove the outcome."
+            else:
+                key, what = o.key, f"the denominator, the number of events with a value for {o.numerator!r},"
+                fix = f"check {o.numerator!r} in the post window, or remove the outcome."
+            raise DataError(
+                key,
+                f"{what} sums to {totals[group]:g} over the {where} {word} units in the post window [{w.post_start}, {w.post_end}), so the ratio is undefined.",
+                fix,
+            )
+
+
 def check_step(spec: Spec, name: str, results: dict[str, QueryResult]) -> None:
     """The refusals that follow one aggregate step's result (empty groups, NULLs without a policy,
     duplicate keys, too few matched, an oversized candidate join). The runner calls it as each
@@ -224,6 +306,10 @@ def check_step(spec: Spec, name: str, results: dict[str, QueryResult]) -> None:
         _check_missing(spec, result)
     elif name == "unit_key_check":
         _check_keys_unique(spec, result)
+    elif name == "data_coverage":
+        _check_coverage(spec, result)
+    elif name in ("outcome_strata", "outcome_unmatched"):
+        _check_ratio_denominators(spec, name, result)
     elif name == "matching_summary":
         _check_matched(spec, result, results.get("group_sizes"))
     check = method_for(spec.matching.method).checks.get(name)
@@ -250,6 +336,9 @@ def _run_steps(plan: Plan, spec: Spec, engine: Engine, out: RunOutput, progress:
         t0 = time.perf_counter()
         written = None
         if step.kind == "setup":
+            if step.name == "work_schema" and engine.schema_exists(spec.work_schema):
+                out.timings[step.name] = time.perf_counter() - t0
+                continue  # exists: creating it needs a privilege its user may not have
             for statement in step.statements:
                 engine.execute(statement)
         elif step.kind == "table":
@@ -309,7 +398,7 @@ def run_plan(plan: Plan, spec: Spec, engine: Engine, progress: Progress | None =
     # the same study on the same database (where the engine can tell) is refused here, before it
     # could drop this run's half-built tables or swap its own in under them. A refused run drops
     # nothing, since every table it would drop belongs to the run holding the lock.
-    with engine.study_lock(spec.work_schema, spec.name):
+    with engine.study_lock(spec.work_schema, spec.name), engine.session_time_zone(TIME_ZONE):
         drop_stray_tables(spec, engine)
         out = RunOutput(plan=plan)
         start_rows = engine.rows_fetched

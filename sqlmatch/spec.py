@@ -144,6 +144,7 @@ class Outcome:
     denominator: str | None = None  # ratio: events column summed below; None = count of events
     last: int = 1  # active_at_end: how many window units at the end of the post window
     twin: str | None = None  # pre-window feature measuring the same thing (difference-in-differences)
+    key: str = field(default="", compare=False)  # the spec key naming this outcome, for messages
 
     @property
     def kind(self) -> str:
@@ -818,7 +819,7 @@ def _outcomes(value: Any, windows: Windows, features: tuple[Feature, ...] = ()) 
                     f"{twin!r} {what}.",
                     f"name a pre-window feature built from events that measures the same thing: {', '.join(event_numeric) or '(none)'}.",
                 )
-        out.append(Outcome(name=name, aggregate=agg, measure=measure, numerator=numerator, denominator=denominator, last=last, twin=twin))
+        out.append(Outcome(name=name, aggregate=agg, measure=measure, numerator=numerator, denominator=denominator, last=last, twin=twin, key=key))
     return out
 
 

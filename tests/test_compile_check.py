@@ -20,8 +20,8 @@ def test_check_passes_when_in_step_and_shows_a_diff_when_not(tmp_path, capsys):
     spec.write_text(spec.read_text().replace("pre = 6", "pre = 5"))
     assert main(["compile", str(spec), "--dialect", "postgres", "--check", str(sql)]) == 1
     captured = capsys.readouterr()
-    assert "-    e.\"started_at\" >= CAST('2025-09-01' AS DATE)" in captured.out
-    assert "+    e.\"started_at\" >= CAST('2025-10-01' AS DATE)" in captured.out
+    assert "-        e.\"started_at\" >= CAST('2025-09-01' AS DATE)" in captured.out
+    assert "+        e.\"started_at\" >= CAST('2025-10-01' AS DATE)" in captured.out
     assert "differs from what" in captured.err
 
     (sql / "99_extra.sql").write_text("SELECT 1;\n")

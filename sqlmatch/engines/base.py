@@ -79,6 +79,20 @@ class Engine(ABC):
         database file for writing); the PostgreSQL adapter takes an advisory lock."""
         return nullcontext()
 
+    def session_time_zone(self, zone: str) -> AbstractContextManager:
+        """A context manager that runs the statements inside it in a session whose time zone is
+        `zone`, and gives the session its own setting back afterwards. The runner holds it for a
+        whole run with zone "UTC": comparing a TIMESTAMPTZ with a window's first day, or casting
+        it to a date, then means the same day on every engine and machine (DEVELOPERS.md).
+        Default: nothing is set (an engine with no session time zone)."""
+        return nullcontext()
+
+    def schema_exists(self, schema: str) -> bool:
+        """Whether the schema exists; the runner then skips CREATE SCHEMA IF NOT EXISTS, which
+        PostgreSQL refuses to a user without CREATE on the database even when the schema is there.
+        Default False: the statement runs (it is harmless where creating is allowed)."""
+        return False
+
     def close(self) -> None:  # pragma: no cover - adapters override when they hold resources
         pass
 

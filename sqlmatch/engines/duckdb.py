@@ -2,6 +2,9 @@
 
 from __future__ import annotations
 
+from collections.abc import Iterator
+from contextlib import contextmanager
+
 import duckdb
 
 from sqlmatch.engines.base import Engine, QueryResult
@@ -67,6 +70,22 @@ class DuckDBEngine(Engine):
         )
         return [r[0] for r in result.rows]
 
+    @contextmanager
+    def session_time_zone(self, zone: str) -> Iterator[None]:
+        (before,) = self.con.execute("SELECT current_setting('TimeZone')").fetchone()
+        self.con.execute(f"SET TimeZone = '{_zone(zone)}'")
+        try:
+            yield
+        finally:
+            self.con.execute(f"SET TimeZone = '{_zone(before)}'")
+
     def close(self) -> None:
         if self._owns:
             self.con.close()
+
+
+def _zone(name: str) -> str:
+    """A time zone name for a SET statement (SET takes no parameters): IANA names only."""
+    if not name or any(not (ch.isalnum() or ch in "/_+-:") for ch in name):
+        raise EngineError(f"unexpected time zone name {name!r}")
+    return name

@@ -125,10 +125,21 @@ class PostgresEngine(Engine):
     def study_lock(self, work_schema: str, study: str) -> Iterator[None]:
         key = study_lock_key(work_schema, study)
         if not self._query("SELECT pg_try_advisory_lock(%s)", (key,)).rows[0][0]:
+            pid, what = self._lock_holder(key)
+            if pid is None:
+                fix = "Fix: wait until that run ends and run again, or give this run its own [study] name or work_schema."
+            else:
+                # A killed run's backend keeps running its last statement, and holds the lock, until
+                # the statement ends; only the server can tell whether a client is still behind it.
+                fix = (
+                    f"Fix: if no sqlmatch run of this study is still going, the holder is an earlier run that was killed while its "
+                    f"statement still runs on the server: end that session with SELECT pg_terminate_backend({pid}); "
+                    f"(as a superuser or the user that session runs as), then run again. Otherwise wait until that run ends, or give this run its "
+                    "own [study] name or work_schema."
+                )
             raise EngineError(
                 f"study {study!r} (work schema {work_schema!r}) is already being run on this database by another "
-                f"sqlmatch run{self._lock_holder(key)}; two runs of one study would drop and replace each other's tables. "
-                "Fix: wait until that run ends and run again, or give this run its own [study] name or work_schema."
+                f"session{what}; two runs of one study would drop and replace each other's tables. " + fix
             )
         try:
             yield
@@ -138,19 +149,41 @@ class PostgresEngine(Engine):
             except EngineError:
                 pass  # the session is gone (and the server released its locks with it)
 
-    def _lock_holder(self, key: int) -> str:
-        """' (PostgreSQL backend pid N)' for the session holding the lock, when the catalog shows it."""
+    def _lock_holder(self, key: int) -> tuple[int | None, str]:
+        """The pid of the session holding the lock and ' (PostgreSQL backend pid N, ...)' saying
+        what it is doing, when the catalog shows it; (None, "") otherwise."""
         unsigned = key & 0xFFFFFFFFFFFFFFFF
         try:
             rows = self._query(
-                "SELECT pid FROM pg_catalog.pg_locks WHERE locktype = 'advisory' AND granted AND objsubid = 1 "
-                "AND database = (SELECT oid FROM pg_catalog.pg_database WHERE datname = current_database()) "
-                "AND classid::bigint = %s AND objid::bigint = %s",
+                "SELECT l.pid, a.state, CAST(a.state_change AS VARCHAR) "
+                "FROM pg_catalog.pg_locks AS l LEFT JOIN pg_catalog.pg_stat_activity AS a ON a.pid = l.pid "
+                "WHERE l.locktype = 'advisory' AND l.granted AND l.objsubid = 1 "
+                "AND l.database = (SELECT oid FROM pg_catalog.pg_database WHERE datname = current_database()) "
+                "AND l.classid::bigint = %s AND l.objid::bigint = %s",
                 (unsigned >> 32, unsigned & 0xFFFFFFFF),
             ).rows
         except EngineError:
-            return ""
-        return f" (PostgreSQL backend pid {rows[0][0]})" if rows else ""
+            return None, ""
+        if not rows:
+            return None, ""
+        pid, state, since = rows[0]
+        doing = f", {state} since {str(since)[:19]}" if state and since else ""
+        return int(pid), f" (PostgreSQL backend pid {pid}{doing})"
+
+    @contextmanager
+    def session_time_zone(self, zone: str) -> Iterator[None]:
+        (before,) = self._query("SELECT current_setting('TimeZone')").rows[0]
+        self._query("SELECT set_config('TimeZone', %s, false)", (zone,))
+        try:
+            yield
+        finally:
+            try:
+                self._query("SELECT set_config('TimeZone', %s, false)", (before,))
+            except EngineError:
+                pass  # the session is gone, and its setting with it
+
+    def schema_exists(self, schema: str) -> bool:
+        return bool(self._query("SELECT 1 FROM pg_catalog.pg_namespace WHERE nspname = %s", (schema,)).rows)
 
     def close(self) -> None:
         if self._owns and not self.con.closed:

@@ -12,6 +12,8 @@ from __future__ import annotations
 import shutil
 import socket
 import tempfile
+from collections.abc import Iterator
+from contextlib import contextmanager
 from pathlib import Path
 
 from sqlmatch.engines import first_line, plain, redact
@@ -170,6 +172,16 @@ class SparkEngine(Engine):
         if self._tmp is not None:
             shutil.rmtree(self._tmp, ignore_errors=True)
             self._tmp = None
+
+    @contextmanager
+    def session_time_zone(self, zone: str) -> Iterator[None]:
+        key = "spark.sql.session.timeZone"
+        before = self.spark.conf.get(key)
+        self.spark.conf.set(key, zone)
+        try:
+            yield
+        finally:
+            self.spark.conf.set(key, before)
 
     def close(self) -> None:
         if self._owns:

@@ -1,5 +1,5 @@
 -- sqlmatch study 'annual_pass', step 01: study_units (postgres)
--- Treated cohort (2026-03) and control pool, after eligibility filters.
+-- Treated cohort (2026-03) and control pool, after eligibility filters. Days are cut in UTC: run it in a session whose time zone is UTC, or times with a time zone fall on the session's days.
 -- kind: writes a table
 -- reads: bike "share".riders; DROP TABLE riders
 -- writes: sqlmatch.annual_pass_units
