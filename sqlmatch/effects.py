@@ -12,6 +12,9 @@ from sqlmatch import aggregates
 from sqlmatch.diagnostics import run_warnings
 from sqlmatch.estimators.att import relative_lift, stratified_att
 from sqlmatch.estimators.binary import risk_ratio
+from sqlmatch.estimators.intervals import normal_interval
+from sqlmatch.estimators.matching_variance import matching_variance
+from sqlmatch.matching.nn_variance import STEP as MATCHING_VARIANCE
 from sqlmatch.estimators.ratio import ratio_effect
 from sqlmatch.estimators.regression import wls_from_moments
 from sqlmatch.plan import L1_BINS, Plan
@@ -44,7 +47,10 @@ def study_results(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
         balance += aggregates.level_balance(r["balance_levels"])
     numeric = [f.name for f in spec.numeric_features]
     effects = [
-        outcome_effect(o, r["outcome_strata"], r["outcome_unmatched"], r.get("outcome_regression"), numeric, spec.matching.method, r.get("pair_signed_rank"), spec.treatment_words)
+        outcome_effect(
+            o, r["outcome_strata"], r["outcome_unmatched"], r.get("outcome_regression"), numeric, spec.matching.method,
+            r.get("pair_signed_rank"), spec.treatment_words, r.get(MATCHING_VARIANCE),
+        )
         for o in plan.outcomes
     ]
     l1 = r["imbalance_l1"].one()
@@ -76,9 +82,22 @@ def study_results(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
     )
 
 
-def outcome_effect(outcome, matched, unmatched, regression=None, features=(), method: str = "", pair_ranks=None, treatment_words: str = "enrolment") -> Effect:
+AI_TEXT = ", Abadie-Imbens variance (counts control reuse)"
+
+
+def _with_matching_variance(fields: dict, mv) -> None:
+    """Replace the two-sample standard error and interval by the matching-aware ones."""
+    se = mv.std_error
+    se = se if math.isfinite(se) else None
+    lo, hi = normal_interval(fields["estimate"], se)
+    fields.update(std_error=se, ci_low=lo, ci_high=hi)
+
+
+def outcome_effect(outcome, matched, unmatched, regression=None, features=(), method: str = "", pair_ranks=None, treatment_words: str = "enrolment", matching_var=None) -> Effect:
     """One outcome's effect, relative lift, risk ratio (binary), difference-in-differences (an
-    outcome with a pre-window twin) and sensitivity figures, all from aggregates."""
+    outcome with a pre-window twin) and sensitivity figures, all from aggregates. With
+    `matching_var` (nearest neighbours with replacement) the effect's variance is the
+    Abadie-Imbens one (estimators/matching_variance.py) instead of the two-sample one."""
     rr = None
     extra: dict = {}
     if outcome.kind == "ratio":
@@ -98,6 +117,15 @@ def outcome_effect(outcome, matched, unmatched, regression=None, features=(), me
         )
         # Lift R_1 / R_0 - 1, interval on the log scale (estimators/ratio.py).
         extra.update(lift=_interval(m.lift, m.lift_std_error, m.lift_ci_low, m.lift_ci_high))
+        if matching_var is not None:
+            keep = (t_sums.n > 0) & (c_sums.n > 0)
+            w = t_sums.n[keep] / t_sums.n[keep].sum()
+            xbars = (float(np.sum(w * t_sums.sum_x[keep] / t_sums.n[keep])), float(np.sum(w * c_sums.sum_x[keep] / c_sums.n[keep])))
+            mv = matching_variance(matching_var, outcome.name, (m.treated.estimate, m.control.estimate), xbars)
+            _with_matching_variance(fields, mv)
+            fields["estimator"] += AI_TEXT
+            lift = relative_lift(m.treated.estimate, mv.var_treated, m.control.estimate, mv.var_control)
+            extra.update(lift=_interval(lift.estimate, lift.std_error, lift.ci_low, lift.ci_high))
     else:
         t_mom, c_mom = aggregates.outcome_moments(matched, outcome.name)
         m = stratified_att(t_mom, c_mom)
@@ -126,6 +154,10 @@ def outcome_effect(outcome, matched, unmatched, regression=None, features=(), me
                 ci_low=pd_.ci_low,
                 ci_high=pd_.ci_high,
             )
+        mv = matching_variance(matching_var, outcome.name) if matching_var is not None else None
+        if mv is not None:
+            _with_matching_variance(fields, mv)
+            fields["estimator"] += AI_TEXT
         if outcome.kind == "binary":
             # Events per stratum and group are the sums of the 0/1 outcome; ATT stratum weights
             # n_1s / n_1 over the strata holding both groups (estimators/binary.py).
@@ -136,13 +168,19 @@ def outcome_effect(outcome, matched, unmatched, regression=None, features=(), me
                 lift=_interval(rr.lift, rr.std_error, rr.lift_ci_low, rr.lift_ci_high),
             )
         else:
-            lift = relative_lift(m.mean_treated, m.var_mean_treated, m.mean_control, m.var_mean_control)
+            v1, v0 = (mv.var_treated, mv.var_control) if mv is not None else (m.var_mean_treated, m.var_mean_control)
+            lift = relative_lift(m.mean_treated, v1, m.mean_control, v0)
             extra.update(lift=_interval(lift.estimate, lift.std_error, lift.ci_low, lift.ci_high))
         if getattr(outcome, "twin", None):
             # Difference-in-differences on the matched sample: the same stratified estimator
             # applied to (outcome - twin), per-stratum sums from the outcome_strata query.
             did = stratified_att(*aggregates.outcome_moments(matched, outcome.name, "did"))
-            extra.update(did_twin=outcome.twin, did=_interval(did.estimate, did.std_error, did.ci_low, did.ci_high))
+            did_se, did_lo, did_hi = did.std_error, did.ci_low, did.ci_high
+            if matching_var is not None:
+                did_se = matching_variance(matching_var, f"{outcome.name}__did").std_error
+                did_se = did_se if math.isfinite(did_se) else None
+                did_lo, did_hi = normal_interval(did.estimate, did_se)
+            extra.update(did_twin=outcome.twin, did=_interval(did.estimate, did_se, did_lo, did_hi))
     sensitivity = outcome_sensitivity(outcome, fields, rr, regression, list(features), method, pair_ranks, treatment_words)
     return Effect(
         outcome=outcome.name,

@@ -182,6 +182,17 @@ def test_postgres_runs_the_demo_study_with_duckdbs_numbers(postgres, duckdb_resu
     assert set(engine.table_names(f"{tag}_work")) >= {"annual_pass_units", "annual_pass_measures", "annual_pass_weighted_units"}
 
 
+def test_postgres_runs_nearest_neighbour_with_duckdbs_numbers(postgres, demo_db):
+    """Nearest neighbours with replacement, Abadie-Imbens variance included (its window functions
+    over the score order): the same numbers on PostgreSQL as on DuckDB."""
+    engine, tag = postgres
+    with DuckDBEngine(demo_db) as duck:
+        want = _comparable(api.run(demo_spec("main", "sqlmatch_duckdb_nn").with_overrides(method="nearest_neighbour"), engine=duck))
+    assert "Abadie-Imbens" in want["effects"][0]["estimator"]
+    got = api.run(demo_spec(tag, f"{tag}_work").with_overrides(method="nearest_neighbour"), engine=engine, keep_tables=False)
+    assert_same_numbers(_comparable(got), want)
+
+
 def test_postgres_failed_run_drops_its_tables_and_the_connection_stays_usable(postgres):
     """A statement the engine refuses mid-run: the error is one line, the work tables are dropped
     (the connection must not be left in an aborted transaction for that) and the engine still works."""

@@ -28,3 +28,5 @@ class MatchingMethod:
     warnings: Callable = _no_warnings
     # the words reports use for what the method builds ("strata" or "matched sets")
     groups_word: str = "strata"
+    # extra aggregate steps after <study>_weighted_units exists: outcome_steps(ctx, outcomes) -> [Step]
+    outcome_steps: Callable | None = None

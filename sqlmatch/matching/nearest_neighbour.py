@@ -56,6 +56,7 @@ from __future__ import annotations
 import math
 
 from sqlmatch.errors import DataError, SpecError
+from sqlmatch.matching import nn_variance
 from sqlmatch.matching.base import MatchingMethod
 
 DESCRIPTION = (
@@ -304,15 +305,14 @@ def check_candidates(spec, result) -> None:
 
 
 def warnings(spec, results) -> list[str]:
-    """With replacement, say how often controls were reused: the variance treats each use as a new control."""
+    """With replacement, say how often controls were reused and that the variance counts it."""
     if not spec.matching.replacement or "matching_summary" not in results:
         return []
     m = results["matching_summary"].one()
     return [
         f"Nearest-neighbour matching with replacement used {int(m['n_control_matched'] or 0):,} distinct controls for "
-        f"{int(m['n_treated_matched'] or 0):,} matched enrolled units. The standard errors treat a reused control as if it "
-        "were a new one, so they are too small when controls are reused often (Abadie & Imbens 2006 give a variance "
-        "that accounts for reuse); read the intervals as too narrow, or match without replacement."
+        f"{int(m['n_treated_matched'] or 0):,} matched enrolled units. The standard errors are Abadie & Imbens's (2006), "
+        "which weight each control by how often it is used; the fewer distinct controls, the wider the intervals."
     ]
 
 
@@ -325,4 +325,5 @@ METHOD = MatchingMethod(
     checks={"candidate_pairs": check_candidates},
     warnings=warnings,
     groups_word="matched sets",
+    outcome_steps=nn_variance.steps,
 )
