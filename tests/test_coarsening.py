@@ -32,13 +32,15 @@ def run_demo_with(demo_dir, folder, matching):
 
 
 def test_quantile_bins_follow_numpy_order_statistics(demo_dir, tmp_path):
-    """Cut k = the order statistic at position floor((n-1) k / K) (numpy.sort); bin = number of cuts <= x."""
+    """Cut k = the order statistic at position floor((n-1) k / K) (numpy.sort); bin = number of cuts <= x
+    (both at 10 decimal places)."""
     K = 6
     results, rows = run_demo_with(demo_dir, tmp_path, {"on": ["pre_minutes", "age_band"], "coarsen": "quantiles", "coarsen_bins": K})
     values = np.sort(rows.pre_minutes.to_numpy())
     n = len(values)
     cuts = [values[int(math.floor((n - 1) * k / K))] for k in range(1, K)]
-    expected = np.searchsorted(np.array(cuts), rows.pre_minutes.to_numpy(), side="right")
+    # compared at 10 decimal places, as the SQL does (a value equal to a cut in its first 10 decimals is at the cut)
+    expected = np.searchsorted(np.round(np.array(cuts), 10), np.round(rows.pre_minutes.to_numpy(), 10), side="right")
     np.testing.assert_array_equal(rows.bin.to_numpy(), expected)
     assert results.matching.n_treated_matched > 0
 
@@ -79,3 +81,31 @@ def test_nsw_coarsened_exact_matching(tmp_path):
     assert low <= effect.estimate <= high
     assert not low <= effect.naive.estimate <= high
     assert results.imbalance["l1_after"] < results.imbalance["l1_before"]
+
+
+def test_a_value_at_a_cut_point_by_its_decimal_value(demo_dir, tmp_path):
+    """Cut points compare values at 10 decimal places: a spend of 600.00 held as the floating-point
+    sum 599.9999999999999 falls on the 600 side of a cut at 600, as its decimal value does, while
+    599.99 stays below. (Plain arithmetic: 599.9999999999999 < 600 in IEEE doubles.)"""
+    shutil.copyfile(demo_dir / "bikeshare.duckdb", tmp_path / "bikeshare.duckdb")
+    with duckdb.connect(str(tmp_path / "bikeshare.duckdb")) as con:
+        con.execute("ALTER TABLE riders ADD COLUMN spend DOUBLE")
+        # every third rider at each of the three values, so every cell holds both groups
+        con.execute("UPDATE riders SET spend = CASE rider_id % 3 WHEN 0 THEN 599.9999999999999 WHEN 1 THEN 600.0 ELSE 599.99 END")
+    assert 599.9999999999999 < 600.0
+    raw = tomllib.loads(DEMO_SPEC.read_text())
+    raw["study"]["database"] = str(tmp_path / "bikeshare.duckdb")
+    raw["features"].append({"name": "spend", "aggregate": "attribute", "attribute": "spend"})
+    raw["matching"] = {"method": "coarsened_exact", "on": ["spend"], "cut_points": {"spend": [600]}}
+    api.run(parse_spec(raw))
+    with duckdb.connect(str(tmp_path / "bikeshare.duckdb"), read_only=True) as con:
+        strata = dict(con.execute("SELECT unit_key % 3, COUNT(DISTINCT match__stratum) FROM sqlmatch.annual_pass_weighted_units GROUP BY 1").fetchall())
+        same = con.execute(
+            "SELECT COUNT(DISTINCT match__stratum) FROM sqlmatch.annual_pass_weighted_units WHERE unit_key % 3 IN (0, 1)"
+        ).fetchone()[0]
+        apart = con.execute(
+            "SELECT COUNT(DISTINCT match__stratum) FROM sqlmatch.annual_pass_weighted_units WHERE unit_key % 3 IN (1, 2)"
+        ).fetchone()[0]
+    assert strata == {0: 1, 1: 1, 2: 1}
+    assert same == 1  # 599.9999999999999 with 600.0
+    assert apart == 2  # 599.99 in the stratum below
