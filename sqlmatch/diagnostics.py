@@ -88,12 +88,42 @@ def data_warnings(spec: Spec, r, balance) -> list[str]:
                 "they are left out of every feature and outcome. If that is more than a few, check that events.unit_key "
                 "and units.key name the same thing, and that the units table is complete."
             )
+    out += imbalance_warnings(spec, balance)
     for b in balance:
         if b.kind != "level" and b.mean_treated_before is None and b.mean_control_before is None:
             out.append(f"Feature {b.covariate!r} is NULL for every unit: it carries no information. Fix its definition or drop it.")
         elif b.kind != "level" and b.smd_before == 0.0 and b.variance_ratio_before is None:
             out.append(f"Feature {b.covariate!r} has the same value for every unit: it carries no information and can be dropped.")
     return out
+
+
+SMD_WARNING = 0.1  # |SMD| after matching above which a matched feature is called imbalanced: common practice (Austin 2009)
+_FINER = {
+    "coarsened_exact": "give it finer cut points (matching.cut_points)",
+    "score_bins": "add it, or a transform of it, to propensity.features",
+    "nearest_neighbour": "add it, or a transform of it, to propensity.features, or match on it exactly or with a Mahalanobis distance",
+}
+
+
+def imbalance_warnings(spec: Spec, balance) -> list[str]:
+    """A feature the method matched on (matching.on; for score methods the propensity model's
+    features and matching.exact) still differing after matching: the effect may carry its bias."""
+    method = method_for(spec.matching.method)
+    matched = set(spec.propensity.features) | set(spec.matching.exact) if method.uses_score else set(spec.matching.on)
+    left = []
+    for b in balance:
+        name = b.covariate.split("=", 1)[0] if b.kind == "level" else b.covariate
+        if name in matched and b.smd_after is not None and abs(b.smd_after) > SMD_WARNING:
+            left.append(f"{b.covariate} ({b.smd_after:+.2f})")
+    if not left:
+        return []
+    hint = _FINER.get(spec.matching.method, "match on it more finely")
+    return [
+        f"After matching, {'a matched feature' if len(left) == 1 else 'matched features'} still "
+        f"differ{'s' if len(left) == 1 else ''} between the groups by more than {SMD_WARNING} SD (SMD after matching, "
+        f"over the pooled SD before; |SMD| > {SMD_WARNING} is common practice's limit): {', '.join(left)}. "
+        f"The effect may carry bias from {'it' if len(left) == 1 else 'them'}; {hint}."
+    ]
 
 
 def _missing_warnings(spec: Spec, r) -> list[str]:
