@@ -132,3 +132,23 @@ def test_a_matched_feature_left_imbalanced_is_a_warning(demo_dir, tmp_path):
     on = tomllib.loads(DEMO_SPEC.read_text())["matching"]["on"]
     assert all(abs(b.smd_after) <= 0.1 for b in fine.balance if b.covariate.split("=")[0] in on)
     assert not [w for w in fine.warnings if "still differ" in w]
+
+
+def test_automatic_coarsening_matches_0_1_features_exactly(tmp_path):
+    """NSW (Dehejia & Wahba 1999 data): under equal-count (quartile) cuts a rare 0/1 attribute's
+    cuts all fall at 0, which would put its 1s in the 0s' bin; a feature with no more distinct
+    values than bins is matched exactly instead, so after matching every 0/1 attribute has the
+    same share in both groups (SMD 0 up to rounding), checked on the rows."""
+    db = tmp_path / "nsw.duckdb"
+    load_nsw(str(db))
+    on = ["age", "educ", "black", "hisp", "marr", "nodegree", "re74", "re75"]
+    results = api.run(parse_spec(nsw_spec(str(db), "coarsened_exact", on=on, coarsen="quantiles", coarsen_bins=4)))
+    smd = {b.covariate: b.smd_after for b in results.balance}
+    for f in ("black", "hisp", "marr", "nodegree"):
+        assert abs(smd[f]) < 1e-9, (f, smd[f])
+    with duckdb.connect(str(db), read_only=True) as con:
+        mixed = con.execute(
+            "SELECT COUNT(*) FROM (SELECT match__stratum FROM sqlmatch.nsw_weighted_units WHERE match__stratum IS NOT NULL "
+            "GROUP BY match__stratum HAVING COUNT(DISTINCT black) > 1 OR COUNT(DISTINCT hisp) > 1) AS s"
+        ).fetchone()[0]
+    assert mixed == 0
