@@ -5,6 +5,7 @@ figures, assembled into StudyResults. Pure: no database; the estimators live in 
 from __future__ import annotations
 
 import math
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -14,6 +15,8 @@ from sqlmatch.estimators.att import relative_lift, stratified_att
 from sqlmatch.estimators.binary import risk_ratio
 from sqlmatch.estimators.intervals import normal_interval
 from sqlmatch.estimators.matching_variance import matching_variance
+from sqlmatch.estimators.matching_variance import control_mean_shift
+from sqlmatch.matching.nn_variance import BIAS_STEP, bias_features, variable_numbers
 from sqlmatch.matching.nn_variance import STEP as MATCHING_VARIANCE
 from sqlmatch.estimators.ratio import ratio_effect
 from sqlmatch.estimators.regression import wls_from_moments
@@ -46,10 +49,13 @@ def study_results(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
     if "balance_levels" in r:
         balance += aggregates.level_balance(r["balance_levels"])
     numeric = [f.name for f in spec.numeric_features]
+    bias = None
+    if BIAS_STEP in r:
+        bias = BiasSums(r[BIAS_STEP], variable_numbers(plan.outcomes), len(bias_features(spec)))
     effects = [
         outcome_effect(
             o, r["outcome_strata"], r["outcome_unmatched"], r.get("outcome_regression"), numeric, spec.matching.method,
-            r.get("pair_signed_rank"), spec.treatment_words, r.get(MATCHING_VARIANCE),
+            r.get("pair_signed_rank"), spec.treatment_words, r.get(MATCHING_VARIANCE), bias,
         )
         for o in plan.outcomes
     ]
@@ -83,6 +89,20 @@ def study_results(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
 
 
 AI_TEXT = ", Abadie-Imbens variance (counts control reuse)"
+BIAS_TEXT = ", bias-corrected by the controls' regression on the features (Abadie-Imbens 2011)"
+
+
+@dataclass(frozen=True)
+class BiasSums:
+    """The bias_sums step's result, the number of each outcome quantity in it, and the number of features."""
+
+    result: object
+    numbers: dict
+    n_features: int
+
+    def shift(self, key: str) -> float:
+        """What the bias correction adds to the matched controls' mean of `key` (NaN: no correction)."""
+        return control_mean_shift(self.result, self.numbers[key], self.n_features) if key in self.numbers else math.nan
 
 
 def _with_matching_variance(fields: dict, mv) -> None:
@@ -93,7 +113,7 @@ def _with_matching_variance(fields: dict, mv) -> None:
     fields.update(std_error=se, ci_low=lo, ci_high=hi)
 
 
-def outcome_effect(outcome, matched, unmatched, regression=None, features=(), method: str = "", pair_ranks=None, treatment_words: str = "enrolment", matching_var=None) -> Effect:
+def outcome_effect(outcome, matched, unmatched, regression=None, features=(), method: str = "", pair_ranks=None, treatment_words: str = "enrolment", matching_var=None, bias: BiasSums | None = None) -> Effect:
     """One outcome's effect, relative lift, risk ratio (binary), difference-in-differences (an
     outcome with a pre-window twin) and sensitivity figures, all from aggregates. With
     `matching_var` (nearest neighbours with replacement) the effect's variance is the
@@ -120,11 +140,21 @@ def outcome_effect(outcome, matched, unmatched, regression=None, features=(), me
         if matching_var is not None:
             keep = (t_sums.n > 0) & (c_sums.n > 0)
             w = t_sums.n[keep] / t_sums.n[keep].sum()
+            ybar0 = float(np.sum(w * c_sums.sum_y[keep] / c_sums.n[keep]))
             xbars = (float(np.sum(w * t_sums.sum_x[keep] / t_sums.n[keep])), float(np.sum(w * c_sums.sum_x[keep] / c_sums.n[keep])))
+            r0 = m.control.estimate
+            if bias is not None:
+                dy, dx = bias.shift(f"{outcome.name}__num"), bias.shift(f"{outcome.name}__den")
+                if math.isfinite(dy) and math.isfinite(dx) and xbars[1] + dx > 0:
+                    # the controls' mean numerator and denominator, each corrected, then their ratio
+                    r0 = (ybar0 + dy) / (xbars[1] + dx)
+                    fields.update(estimate=m.treated.estimate - r0, mean_control=r0)
+                    fields["estimator"] += BIAS_TEXT
+            # the variance linearises the uncorrected ratios (the correction is of smaller order)
             mv = matching_variance(matching_var, outcome.name, (m.treated.estimate, m.control.estimate), xbars)
             _with_matching_variance(fields, mv)
             fields["estimator"] += AI_TEXT
-            lift = relative_lift(m.treated.estimate, mv.var_treated, m.control.estimate, mv.var_control)
+            lift = relative_lift(m.treated.estimate, mv.var_treated, r0, mv.var_control)
             extra.update(lift=_interval(lift.estimate, lift.std_error, lift.ci_low, lift.ci_high))
     else:
         t_mom, c_mom = aggregates.outcome_moments(matched, outcome.name)
@@ -155,6 +185,13 @@ def outcome_effect(outcome, matched, unmatched, regression=None, features=(), me
                 ci_high=pd_.ci_high,
             )
         mv = matching_variance(matching_var, outcome.name) if matching_var is not None else None
+        mean_control = m.mean_control
+        if bias is not None:
+            shift = bias.shift(outcome.name)
+            if math.isfinite(shift):
+                mean_control = m.mean_control + shift
+                fields.update(estimate=m.estimate - shift, mean_control=mean_control)
+                fields["estimator"] += BIAS_TEXT
         if mv is not None:
             _with_matching_variance(fields, mv)
             fields["estimator"] += AI_TEXT
@@ -169,18 +206,20 @@ def outcome_effect(outcome, matched, unmatched, regression=None, features=(), me
             )
         else:
             v1, v0 = (mv.var_treated, mv.var_control) if mv is not None else (m.var_mean_treated, m.var_mean_control)
-            lift = relative_lift(m.mean_treated, v1, m.mean_control, v0)
+            lift = relative_lift(m.mean_treated, v1, mean_control, v0)
             extra.update(lift=_interval(lift.estimate, lift.std_error, lift.ci_low, lift.ci_high))
         if getattr(outcome, "twin", None):
             # Difference-in-differences on the matched sample: the same stratified estimator
             # applied to (outcome - twin), per-stratum sums from the outcome_strata query.
             did = stratified_att(*aggregates.outcome_moments(matched, outcome.name, "did"))
-            did_se, did_lo, did_hi = did.std_error, did.ci_low, did.ci_high
+            did_est, did_se, did_lo, did_hi = did.estimate, did.std_error, did.ci_low, did.ci_high
+            if bias is not None and math.isfinite(bias.shift(f"{outcome.name}__did")):
+                did_est = did.estimate - bias.shift(f"{outcome.name}__did")
             if matching_var is not None:
                 did_se = matching_variance(matching_var, f"{outcome.name}__did").std_error
                 did_se = did_se if math.isfinite(did_se) else None
-                did_lo, did_hi = normal_interval(did.estimate, did_se)
-            extra.update(did_twin=outcome.twin, did=_interval(did.estimate, did_se, did_lo, did_hi))
+                did_lo, did_hi = normal_interval(did_est, did_se)
+            extra.update(did_twin=outcome.twin, did=_interval(did_est, did_se, did_lo, did_hi))
     sensitivity = outcome_sensitivity(outcome, fields, rr, regression, list(features), method, pair_ranks, treatment_words)
     return Effect(
         outcome=outcome.name,

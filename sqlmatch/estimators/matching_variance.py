@@ -73,3 +73,36 @@ def matching_variance(result: QueryResult, key: str, ratios: tuple[float, float]
         s1, s0 = _ratio_sum(t, key, ratios[0], xbars[0]), _ratio_sum(c, key, ratios[1], xbars[1])
     alone = int(_f(t["n_units"]) - _f(t["n_with_neighbour"]) + _f(c["n_units"]) - _f(c["n_with_neighbour"]))
     return MatchingVariance(s1 / (n1 * n1), s0 / (n1 * n1), n1, alone)
+
+
+def control_mean_shift(result: QueryResult, number: int, n_features: int) -> float:
+    """The Abadie & Imbens (2011, Journal of Business & Economic Statistics 29(1):1-11, recalled)
+    bias correction of the matched controls' mean of quantity `number` (1-based, as in
+    nn_variance.variables): beta' (xbar_T - xbar_C), beta the slopes of the controls' regression
+    of the quantity on the features, weighted by the matching weights (K_M / M), from the sums
+    of the `bias_sums` step. Adding it to the control mean turns the matching estimator into
+    (1 / N_1) sum_i [(Y_i - Yhat_i(0)) - (mu0(X_i) - mean of mu0 over i's matches)] with a linear mu0.
+    NaN when the regression cannot be fitted."""
+    import numpy as np
+
+    rows = {int(r["treated"]): r for r in result.records()}
+    t, c = rows.get(1), rows.get(0)
+    if t is None or c is None or not _f(c["sum_w"]) > 0 or not _f(t["sum_w"]) > 0:
+        return math.nan
+    p = n_features
+    sw = _f(c["sum_w"])
+    sx = np.array([_f(c[f"x{j}"]) for j in range(1, p + 1)])
+    sxx = np.empty((p, p))
+    for j in range(1, p + 1):
+        for k in range(j, p + 1):
+            sxx[j - 1, k - 1] = sxx[k - 1, j - 1] = _f(c[f"x{j}_x{k}"])
+    sv = _f(c[f"v{number}"])
+    sxv = np.array([_f(c[f"x{j}_v{number}"]) for j in range(1, p + 1)])
+    xbar_c = sx / sw
+    cxx = sxx - sw * np.outer(xbar_c, xbar_c)  # centred cross-products
+    cxv = sxv - sw * xbar_c * (sv / sw)
+    if not (np.all(np.isfinite(cxx)) and np.all(np.isfinite(cxv))):
+        return math.nan
+    beta, *_ = np.linalg.lstsq(cxx, cxv, rcond=None)
+    xbar_t = np.array([_f(t[f"x{j}"]) for j in range(1, p + 1)]) / _f(t["sum_w"])
+    return float(beta @ (xbar_t - xbar_c))

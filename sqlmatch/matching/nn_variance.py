@@ -9,6 +9,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 STEP = "matching_variance"
+BIAS_STEP = "bias_sums"
 
 
 @dataclass(frozen=True)
@@ -26,6 +27,18 @@ class Product:
     key: str
     a: int
     b: int
+
+
+def variable_numbers(outcomes) -> dict[str, int]:
+    """The 1-based number of each quantity in variables(): `<outcome>` (continuous, binary),
+    `<outcome>__did`, `<outcome>__num` and `<outcome>__den` (ratio)."""
+    out, k = {}, 0
+    for o in outcomes:
+        keys = [f"{o.name}__num", f"{o.name}__den"] if o.kind == "ratio" else [o.name] + ([f"{o.name}__did"] if o.twin else [])
+        for key in keys:
+            k += 1
+            out[key] = k
+    return out
 
 
 def variables(outcomes) -> tuple[list[Variable], list[Product]]:
@@ -52,6 +65,11 @@ def variables(outcomes) -> tuple[list[Variable], list[Product]]:
     return vs, ps
 
 
+def bias_features(spec) -> list[str]:
+    """The covariates of the bias correction's regression: the numeric features of the propensity model."""
+    return [n for n in spec.propensity.features if not spec.feature(n).categorical]
+
+
 def steps(ctx, outcomes) -> list:
     """The variance step, with replacement only: without replacement the 1:1 pairs get the paired
     interval (every control is used at most once)."""
@@ -59,7 +77,21 @@ def steps(ctx, outcomes) -> list:
     if not m.replacement:
         return []
     vs, ps = variables(outcomes)
-    return [
+    out = []
+    features = bias_features(ctx.spec)
+    if getattr(m, "bias_correction", True) and features:
+        out.append(
+            ctx.query_step(
+                BIAS_STEP,
+                "nearest_neighbour_bias_sums",
+                reads=[ctx.display("weighted_units")],
+                purpose="Abadie-Imbens bias correction: weighted sums and cross-products of the features and outcomes per group among matched units.",
+                features=features,
+                variables=vs,
+                weighted_table=ctx.table("weighted_units"),
+            )
+        )
+    return out + [
         ctx.query_step(
             STEP,
             "nearest_neighbour_variance",

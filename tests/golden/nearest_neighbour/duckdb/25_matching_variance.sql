@@ -1,4 +1,4 @@
--- sqlmatch study 'annual_pass', step 24: matching_variance (duckdb)
+-- sqlmatch study 'annual_pass', step 25: matching_variance (duckdb)
 -- Abadie-Imbens variance sums: squared matching weights (times each control is used) times conditional variances estimated by matching each unit to its nearest unit of the same group.
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_scores, sqlmatch.annual_pass_weighted_units
