@@ -14,8 +14,7 @@ from sqlmatch.diagnostics import run_warnings
 from sqlmatch.estimators.att import relative_lift, stratified_att
 from sqlmatch.estimators.binary import risk_ratio
 from sqlmatch.estimators.intervals import normal_interval
-from sqlmatch.estimators.matching_variance import matching_variance
-from sqlmatch.estimators.matching_variance import control_mean_shift
+from sqlmatch.estimators.matching_variance import MatchingInference
 from sqlmatch.matching.nn_variance import BIAS_STEP, bias_features, variable_numbers
 from sqlmatch.matching.nn_variance import STEP as MATCHING_VARIANCE
 from sqlmatch.estimators.ratio import ratio_effect
@@ -49,13 +48,14 @@ def study_results(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
     if "balance_levels" in r:
         balance += aggregates.level_balance(r["balance_levels"])
     numeric = [f.name for f in spec.numeric_features]
-    bias = None
-    if BIAS_STEP in r:
-        bias = BiasSums(r[BIAS_STEP], variable_numbers(plan.outcomes), len(bias_features(spec)))
+    nn = None
+    if MATCHING_VARIANCE in r:
+        with_bias = BIAS_STEP in r
+        nn = MatchingInference(r[MATCHING_VARIANCE], r[BIAS_STEP] if with_bias else None, variable_numbers(plan.outcomes), len(bias_features(spec)) if with_bias else 0)
     effects = [
         outcome_effect(
             o, r["outcome_strata"], r["outcome_unmatched"], r.get("outcome_regression"), numeric, spec.matching.method,
-            r.get("pair_signed_rank"), spec.treatment_words, r.get(MATCHING_VARIANCE), bias,
+            r.get("pair_signed_rank"), spec.treatment_words, nn,
         )
         for o in plan.outcomes
     ]
@@ -92,19 +92,6 @@ AI_TEXT = ", Abadie-Imbens variance (counts control reuse)"
 BIAS_TEXT = ", bias-corrected by the controls' regression on the features (Abadie-Imbens 2011)"
 
 
-@dataclass(frozen=True)
-class BiasSums:
-    """The bias_sums step's result, the number of each outcome quantity in it, and the number of features."""
-
-    result: object
-    numbers: dict
-    n_features: int
-
-    def shift(self, key: str) -> float:
-        """What the bias correction adds to the matched controls' mean of `key` (NaN: no correction)."""
-        return control_mean_shift(self.result, self.numbers[key], self.n_features) if key in self.numbers else math.nan
-
-
 def _with_matching_variance(fields: dict, mv) -> None:
     """Replace the two-sample standard error and interval by the matching-aware ones."""
     se = mv.std_error
@@ -113,11 +100,12 @@ def _with_matching_variance(fields: dict, mv) -> None:
     fields.update(std_error=se, ci_low=lo, ci_high=hi)
 
 
-def outcome_effect(outcome, matched, unmatched, regression=None, features=(), method: str = "", pair_ranks=None, treatment_words: str = "enrolment", matching_var=None, bias: BiasSums | None = None) -> Effect:
+def outcome_effect(outcome, matched, unmatched, regression=None, features=(), method: str = "", pair_ranks=None, treatment_words: str = "enrolment", nn: MatchingInference | None = None) -> Effect:
     """One outcome's effect, relative lift, risk ratio (binary), difference-in-differences (an
     outcome with a pre-window twin) and sensitivity figures, all from aggregates. With
-    `matching_var` (nearest neighbours with replacement) the effect's variance is the
-    Abadie-Imbens one (estimators/matching_variance.py) instead of the two-sample one."""
+    `nn` (nearest neighbours with replacement) the effect's variance is the Abadie-Imbens one
+    (estimators/matching_variance.py) instead of the two-sample one, and the effect bias-corrected
+    when the run has the correction's sums."""
     rr = None
     extra: dict = {}
     if outcome.kind == "ratio":
@@ -137,24 +125,25 @@ def outcome_effect(outcome, matched, unmatched, regression=None, features=(), me
         )
         # Lift R_1 / R_0 - 1, interval on the log scale (estimators/ratio.py).
         extra.update(lift=_interval(m.lift, m.lift_std_error, m.lift_ci_low, m.lift_ci_high))
-        if matching_var is not None:
+        if nn is not None:
             keep = (t_sums.n > 0) & (c_sums.n > 0)
             w = t_sums.n[keep] / t_sums.n[keep].sum()
             ybar0 = float(np.sum(w * c_sums.sum_y[keep] / c_sums.n[keep]))
             xbars = (float(np.sum(w * t_sums.sum_x[keep] / t_sums.n[keep])), float(np.sum(w * c_sums.sum_x[keep] / c_sums.n[keep])))
-            r0 = m.control.estimate
-            if bias is not None:
-                dy, dx = bias.shift(f"{outcome.name}__num"), bias.shift(f"{outcome.name}__den")
-                if math.isfinite(dy) and math.isfinite(dx) and xbars[1] + dx > 0:
-                    # the controls' mean numerator and denominator, each corrected, then their ratio
-                    r0 = (ybar0 + dy) / (xbars[1] + dx)
-                    fields.update(estimate=m.treated.estimate - r0, mean_control=r0)
-                    fields["estimator"] += BIAS_TEXT
-            # the variance linearises the uncorrected ratios (the correction is of smaller order)
-            mv = matching_variance(matching_var, outcome.name, (m.treated.estimate, m.control.estimate), xbars)
+            r1, r0 = m.treated.estimate, m.control.estimate
+            dy, dx = nn.shift(f"{outcome.name}__num"), nn.shift(f"{outcome.name}__den")
+            r0_bc = r0
+            if math.isfinite(dy) and math.isfinite(dx) and xbars[1] + dx > 0:
+                # the controls' mean numerator and denominator, each corrected, then their ratio
+                r0_bc = (ybar0 + dy) / (xbars[1] + dx)
+                fields.update(estimate=r1 - r0_bc, mean_control=r0_bc)
+                fields["estimator"] += BIAS_TEXT
+            # linearised ratios u = (y - R x) / xbar per group (the uncorrected R: the correction is of smaller order)
+            num, den = f"{outcome.name}__num", f"{outcome.name}__den"
+            mv = nn.variance({1: {num: 1.0 / xbars[0], den: -r1 / xbars[0]}, 0: {num: 1.0 / xbars[1], den: -r0 / xbars[1]}})
             _with_matching_variance(fields, mv)
             fields["estimator"] += AI_TEXT
-            lift = relative_lift(m.treated.estimate, mv.var_treated, r0, mv.var_control)
+            lift = relative_lift(r1, mv.var_treated, r0_bc, mv.var_control)
             extra.update(lift=_interval(lift.estimate, lift.std_error, lift.ci_low, lift.ci_high))
     else:
         t_mom, c_mom = aggregates.outcome_moments(matched, outcome.name)
@@ -184,10 +173,10 @@ def outcome_effect(outcome, matched, unmatched, regression=None, features=(), me
                 ci_low=pd_.ci_low,
                 ci_high=pd_.ci_high,
             )
-        mv = matching_variance(matching_var, outcome.name) if matching_var is not None else None
+        mv = nn.variance({1: {outcome.name: 1.0}, 0: {outcome.name: 1.0}}) if nn is not None else None
         mean_control = m.mean_control
-        if bias is not None:
-            shift = bias.shift(outcome.name)
+        if nn is not None:
+            shift = nn.shift(outcome.name)
             if math.isfinite(shift):
                 mean_control = m.mean_control + shift
                 fields.update(estimate=m.estimate - shift, mean_control=mean_control)
@@ -213,10 +202,11 @@ def outcome_effect(outcome, matched, unmatched, regression=None, features=(), me
             # applied to (outcome - twin), per-stratum sums from the outcome_strata query.
             did = stratified_att(*aggregates.outcome_moments(matched, outcome.name, "did"))
             did_est, did_se, did_lo, did_hi = did.estimate, did.std_error, did.ci_low, did.ci_high
-            if bias is not None and math.isfinite(bias.shift(f"{outcome.name}__did")):
-                did_est = did.estimate - bias.shift(f"{outcome.name}__did")
-            if matching_var is not None:
-                did_se = matching_variance(matching_var, f"{outcome.name}__did").std_error
+            if nn is not None and math.isfinite(nn.shift(f"{outcome.name}__did")):
+                did_est = did.estimate - nn.shift(f"{outcome.name}__did")
+            if nn is not None:
+                key = f"{outcome.name}__did"
+                did_se = nn.variance({1: {key: 1.0}, 0: {key: 1.0}}).std_error
                 did_se = did_se if math.isfinite(did_se) else None
                 did_lo, did_hi = normal_interval(did_est, did_se)
             extra.update(did_twin=outcome.twin, did=_interval(did_est, did_se, did_lo, did_hi))

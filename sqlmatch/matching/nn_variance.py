@@ -22,16 +22,23 @@ class Variable:
 
 @dataclass(frozen=True)
 class Product:
-    """Sums of d_a d_b / 2 over units, named <key>__w2_dd and <key>__dd (a, b: 1-based variable numbers)."""
+    """Sums of d_a d_b / 2 over units, named p<a>_<b>__w2_dd and p<a>_<b>__dd (a <= b: 1-based variable numbers)."""
 
-    key: str
     a: int
     b: int
 
+    @property
+    def key(self) -> str:
+        return product_key(self.a, self.b)
+
+
+def product_key(a: int, b: int) -> str:
+    return f"p{min(a, b)}_{max(a, b)}"
+
 
 def variable_numbers(outcomes) -> dict[str, int]:
-    """The 1-based number of each quantity in variables(): `<outcome>` (continuous, binary),
-    `<outcome>__did`, `<outcome>__num` and `<outcome>__den` (ratio)."""
+    """The 1-based number of each outcome quantity in variables(): `<outcome>` (continuous,
+    binary), `<outcome>__did`, `<outcome>__num` and `<outcome>__den` (ratio)."""
     out, k = {}, 0
     for o in outcomes:
         keys = [f"{o.name}__num", f"{o.name}__den"] if o.kind == "ratio" else [o.name] + ([f"{o.name}__did"] if o.twin else [])
@@ -41,33 +48,37 @@ def variable_numbers(outcomes) -> dict[str, int]:
     return out
 
 
-def variables(outcomes) -> tuple[list[Variable], list[Product]]:
-    """Per outcome: its column (continuous, binary), outcome - twin for the difference-in-differences,
-    and for a ratio outcome its numerator and denominator with their three cross-products (the
-    ratio's linearised variance combines them with the ratio, estimators/matching_variance.py)."""
+def variables(outcomes, features=()) -> tuple[list[Variable], list[Product]]:
+    """The outcome quantities (variable_numbers' order: an outcome's column, outcome - twin for the
+    difference-in-differences, a ratio's numerator and denominator), then the features; and the
+    products whose neighbour-difference sums the variance needs: each outcome quantity with itself,
+    a ratio's numerator with its denominator and, with features (the bias correction's), each
+    quantity with each feature and the features with each other, so the variance can be taken of
+    the regression residual (estimators/matching_variance.py)."""
     vs: list[Variable] = []
     ps: list[Product] = []
-
-    def add(v: Variable) -> int:
-        vs.append(v)
-        return len(vs)
-
     for o in outcomes:
         if o.kind == "ratio":
-            a, b = add(Variable(o.num)), add(Variable(o.den))
-            ps += [Product(f"{o.name}__yy", a, a), Product(f"{o.name}__xy", a, b), Product(f"{o.name}__xx", b, b)]
+            vs += [Variable(o.num), Variable(o.den)]
+            a = len(vs) - 1
+            ps += [Product(a, a), Product(a, a + 1), Product(a + 1, a + 1)]
         else:
-            a = add(Variable(o.name))
-            ps.append(Product(o.name, a, a))
+            vs.append(Variable(o.name))
+            ps.append(Product(len(vs), len(vs)))
             if o.twin:
-                b = add(Variable(o.name, o.twin))
-                ps.append(Product(f"{o.name}__did", b, b))
+                vs.append(Variable(o.name, o.twin))
+                ps.append(Product(len(vs), len(vs)))
+    n_out = len(vs)
+    vs += [Variable(f) for f in features]
+    xs = range(n_out + 1, len(vs) + 1)
+    ps += [Product(a, j) for a in range(1, n_out + 1) for j in xs] + [Product(j, k) for j in xs for k in xs if j <= k]
     return vs, ps
 
 
 def bias_features(spec) -> list[str]:
-    """The covariates of the bias correction's regression: the numeric features of the propensity model."""
-    return [n for n in spec.propensity.features if not spec.feature(n).categorical]
+    """The covariates of the bias correction's regression: every numeric feature of the study (as
+    in the outcome regression), so features left out of the score still adjust the effect."""
+    return [f.name for f in spec.numeric_features]
 
 
 def steps(ctx, outcomes) -> list:
@@ -76,10 +87,10 @@ def steps(ctx, outcomes) -> list:
     m = ctx.spec.matching
     if not m.replacement:
         return []
-    vs, ps = variables(outcomes)
+    features = bias_features(ctx.spec) if getattr(m, "bias_correction", True) else []
+    vs, ps = variables(outcomes, features)
     out = []
-    features = bias_features(ctx.spec)
-    if getattr(m, "bias_correction", True) and features:
+    if features:
         out.append(
             ctx.query_step(
                 BIAS_STEP,
@@ -87,7 +98,7 @@ def steps(ctx, outcomes) -> list:
                 reads=[ctx.display("weighted_units")],
                 purpose="Abadie-Imbens bias correction: weighted sums and cross-products of the features and outcomes per group among matched units.",
                 features=features,
-                variables=vs,
+                variables=vs[: len(vs) - len(features)],
                 weighted_table=ctx.table("weighted_units"),
             )
         )

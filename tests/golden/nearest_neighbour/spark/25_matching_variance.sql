@@ -28,6 +28,11 @@ WITH units AS (
     CAST(w.fare_per_trip__num AS DOUBLE) AS v4,
     CAST(w.fare_per_trip__den AS DOUBLE) AS v5,
     CAST(w.active_last_month AS DOUBLE) AS v6,
+    CAST(w.pre_trips AS DOUBLE) AS v7,
+    CAST(w.pre_minutes AS DOUBLE) AS v8,
+    CAST(w.pre_fare_per_trip AS DOUBLE) AS v9,
+    CAST(w.pre_active_days AS DOUBLE) AS v10,
+    CAST(w.pre_days_since_last AS DOUBLE) AS v11,
     w.match__weight AS weight
   FROM `sqlmatch`.annual_pass_scores AS s
   INNER JOIN `sqlmatch`.annual_pass_weighted_units AS w
@@ -93,7 +98,47 @@ WITH units AS (
     u.v6 - LEAD(u.v6) OVER (
       PARTITION BY u.treated, u.age_band
       ORDER BY u.score NULLS LAST, u.unit_key NULLS LAST
-    ) AS after6
+    ) AS after6,
+    u.v7 - LAG(u.v7) OVER (
+      PARTITION BY u.treated, u.age_band
+      ORDER BY u.score NULLS LAST, u.unit_key NULLS LAST
+    ) AS before7,
+    u.v7 - LEAD(u.v7) OVER (
+      PARTITION BY u.treated, u.age_band
+      ORDER BY u.score NULLS LAST, u.unit_key NULLS LAST
+    ) AS after7,
+    u.v8 - LAG(u.v8) OVER (
+      PARTITION BY u.treated, u.age_band
+      ORDER BY u.score NULLS LAST, u.unit_key NULLS LAST
+    ) AS before8,
+    u.v8 - LEAD(u.v8) OVER (
+      PARTITION BY u.treated, u.age_band
+      ORDER BY u.score NULLS LAST, u.unit_key NULLS LAST
+    ) AS after8,
+    u.v9 - LAG(u.v9) OVER (
+      PARTITION BY u.treated, u.age_band
+      ORDER BY u.score NULLS LAST, u.unit_key NULLS LAST
+    ) AS before9,
+    u.v9 - LEAD(u.v9) OVER (
+      PARTITION BY u.treated, u.age_band
+      ORDER BY u.score NULLS LAST, u.unit_key NULLS LAST
+    ) AS after9,
+    u.v10 - LAG(u.v10) OVER (
+      PARTITION BY u.treated, u.age_band
+      ORDER BY u.score NULLS LAST, u.unit_key NULLS LAST
+    ) AS before10,
+    u.v10 - LEAD(u.v10) OVER (
+      PARTITION BY u.treated, u.age_band
+      ORDER BY u.score NULLS LAST, u.unit_key NULLS LAST
+    ) AS after10,
+    u.v11 - LAG(u.v11) OVER (
+      PARTITION BY u.treated, u.age_band
+      ORDER BY u.score NULLS LAST, u.unit_key NULLS LAST
+    ) AS before11,
+    u.v11 - LEAD(u.v11) OVER (
+      PARTITION BY u.treated, u.age_band
+      ORDER BY u.score NULLS LAST, u.unit_key NULLS LAST
+    ) AS after11
   FROM units AS u
 ), differences AS (
   SELECT
@@ -147,7 +192,47 @@ WITH units AS (
       )
       THEN o.before6
       ELSE o.after6
-    END AS d6
+    END AS d6,
+    CASE
+      WHEN o.gap_after IS NULL
+      OR (
+        NOT o.gap_before IS NULL AND o.gap_before <= o.gap_after
+      )
+      THEN o.before7
+      ELSE o.after7
+    END AS d7,
+    CASE
+      WHEN o.gap_after IS NULL
+      OR (
+        NOT o.gap_before IS NULL AND o.gap_before <= o.gap_after
+      )
+      THEN o.before8
+      ELSE o.after8
+    END AS d8,
+    CASE
+      WHEN o.gap_after IS NULL
+      OR (
+        NOT o.gap_before IS NULL AND o.gap_before <= o.gap_after
+      )
+      THEN o.before9
+      ELSE o.after9
+    END AS d9,
+    CASE
+      WHEN o.gap_after IS NULL
+      OR (
+        NOT o.gap_before IS NULL AND o.gap_before <= o.gap_after
+      )
+      THEN o.before10
+      ELSE o.after10
+    END AS d10,
+    CASE
+      WHEN o.gap_after IS NULL
+      OR (
+        NOT o.gap_before IS NULL AND o.gap_before <= o.gap_after
+      )
+      THEN o.before11
+      ELSE o.after11
+    END AS d11
   FROM ordered AS o
   WHERE
     NOT o.weight IS NULL
@@ -159,20 +244,110 @@ SELECT
   SUM(d.weight) AS sum_w,
   SUM(d.weight * d.weight) AS sum_w2,
   SUM(CASE WHEN d.has_neighbour = 1 THEN d.weight * d.weight ELSE 0 END) AS sum_w2_with_neighbour,
-  SUM(d.weight * d.weight * d.d1 * d.d1) / 2.0 AS post_trips__w2_dd,
-  SUM(d.d1 * d.d1) / 2.0 AS post_trips__dd,
-  SUM(d.weight * d.weight * d.d2 * d.d2) / 2.0 AS post_trips__did__w2_dd,
-  SUM(d.d2 * d.d2) / 2.0 AS post_trips__did__dd,
-  SUM(d.weight * d.weight * d.d3 * d.d3) / 2.0 AS post_minutes__w2_dd,
-  SUM(d.d3 * d.d3) / 2.0 AS post_minutes__dd,
-  SUM(d.weight * d.weight * d.d4 * d.d4) / 2.0 AS fare_per_trip__yy__w2_dd,
-  SUM(d.d4 * d.d4) / 2.0 AS fare_per_trip__yy__dd,
-  SUM(d.weight * d.weight * d.d4 * d.d5) / 2.0 AS fare_per_trip__xy__w2_dd,
-  SUM(d.d4 * d.d5) / 2.0 AS fare_per_trip__xy__dd,
-  SUM(d.weight * d.weight * d.d5 * d.d5) / 2.0 AS fare_per_trip__xx__w2_dd,
-  SUM(d.d5 * d.d5) / 2.0 AS fare_per_trip__xx__dd,
-  SUM(d.weight * d.weight * d.d6 * d.d6) / 2.0 AS active_last_month__w2_dd,
-  SUM(d.d6 * d.d6) / 2.0 AS active_last_month__dd
+  SUM(d.weight * d.weight * d.d1 * d.d1) / 2.0 AS p1_1__w2_dd,
+  SUM(d.d1 * d.d1) / 2.0 AS p1_1__dd,
+  SUM(d.weight * d.weight * d.d2 * d.d2) / 2.0 AS p2_2__w2_dd,
+  SUM(d.d2 * d.d2) / 2.0 AS p2_2__dd,
+  SUM(d.weight * d.weight * d.d3 * d.d3) / 2.0 AS p3_3__w2_dd,
+  SUM(d.d3 * d.d3) / 2.0 AS p3_3__dd,
+  SUM(d.weight * d.weight * d.d4 * d.d4) / 2.0 AS p4_4__w2_dd,
+  SUM(d.d4 * d.d4) / 2.0 AS p4_4__dd,
+  SUM(d.weight * d.weight * d.d4 * d.d5) / 2.0 AS p4_5__w2_dd,
+  SUM(d.d4 * d.d5) / 2.0 AS p4_5__dd,
+  SUM(d.weight * d.weight * d.d5 * d.d5) / 2.0 AS p5_5__w2_dd,
+  SUM(d.d5 * d.d5) / 2.0 AS p5_5__dd,
+  SUM(d.weight * d.weight * d.d6 * d.d6) / 2.0 AS p6_6__w2_dd,
+  SUM(d.d6 * d.d6) / 2.0 AS p6_6__dd,
+  SUM(d.weight * d.weight * d.d1 * d.d7) / 2.0 AS p1_7__w2_dd,
+  SUM(d.d1 * d.d7) / 2.0 AS p1_7__dd,
+  SUM(d.weight * d.weight * d.d1 * d.d8) / 2.0 AS p1_8__w2_dd,
+  SUM(d.d1 * d.d8) / 2.0 AS p1_8__dd,
+  SUM(d.weight * d.weight * d.d1 * d.d9) / 2.0 AS p1_9__w2_dd,
+  SUM(d.d1 * d.d9) / 2.0 AS p1_9__dd,
+  SUM(d.weight * d.weight * d.d1 * d.d10) / 2.0 AS p1_10__w2_dd,
+  SUM(d.d1 * d.d10) / 2.0 AS p1_10__dd,
+  SUM(d.weight * d.weight * d.d1 * d.d11) / 2.0 AS p1_11__w2_dd,
+  SUM(d.d1 * d.d11) / 2.0 AS p1_11__dd,
+  SUM(d.weight * d.weight * d.d2 * d.d7) / 2.0 AS p2_7__w2_dd,
+  SUM(d.d2 * d.d7) / 2.0 AS p2_7__dd,
+  SUM(d.weight * d.weight * d.d2 * d.d8) / 2.0 AS p2_8__w2_dd,
+  SUM(d.d2 * d.d8) / 2.0 AS p2_8__dd,
+  SUM(d.weight * d.weight * d.d2 * d.d9) / 2.0 AS p2_9__w2_dd,
+  SUM(d.d2 * d.d9) / 2.0 AS p2_9__dd,
+  SUM(d.weight * d.weight * d.d2 * d.d10) / 2.0 AS p2_10__w2_dd,
+  SUM(d.d2 * d.d10) / 2.0 AS p2_10__dd,
+  SUM(d.weight * d.weight * d.d2 * d.d11) / 2.0 AS p2_11__w2_dd,
+  SUM(d.d2 * d.d11) / 2.0 AS p2_11__dd,
+  SUM(d.weight * d.weight * d.d3 * d.d7) / 2.0 AS p3_7__w2_dd,
+  SUM(d.d3 * d.d7) / 2.0 AS p3_7__dd,
+  SUM(d.weight * d.weight * d.d3 * d.d8) / 2.0 AS p3_8__w2_dd,
+  SUM(d.d3 * d.d8) / 2.0 AS p3_8__dd,
+  SUM(d.weight * d.weight * d.d3 * d.d9) / 2.0 AS p3_9__w2_dd,
+  SUM(d.d3 * d.d9) / 2.0 AS p3_9__dd,
+  SUM(d.weight * d.weight * d.d3 * d.d10) / 2.0 AS p3_10__w2_dd,
+  SUM(d.d3 * d.d10) / 2.0 AS p3_10__dd,
+  SUM(d.weight * d.weight * d.d3 * d.d11) / 2.0 AS p3_11__w2_dd,
+  SUM(d.d3 * d.d11) / 2.0 AS p3_11__dd,
+  SUM(d.weight * d.weight * d.d4 * d.d7) / 2.0 AS p4_7__w2_dd,
+  SUM(d.d4 * d.d7) / 2.0 AS p4_7__dd,
+  SUM(d.weight * d.weight * d.d4 * d.d8) / 2.0 AS p4_8__w2_dd,
+  SUM(d.d4 * d.d8) / 2.0 AS p4_8__dd,
+  SUM(d.weight * d.weight * d.d4 * d.d9) / 2.0 AS p4_9__w2_dd,
+  SUM(d.d4 * d.d9) / 2.0 AS p4_9__dd,
+  SUM(d.weight * d.weight * d.d4 * d.d10) / 2.0 AS p4_10__w2_dd,
+  SUM(d.d4 * d.d10) / 2.0 AS p4_10__dd,
+  SUM(d.weight * d.weight * d.d4 * d.d11) / 2.0 AS p4_11__w2_dd,
+  SUM(d.d4 * d.d11) / 2.0 AS p4_11__dd,
+  SUM(d.weight * d.weight * d.d5 * d.d7) / 2.0 AS p5_7__w2_dd,
+  SUM(d.d5 * d.d7) / 2.0 AS p5_7__dd,
+  SUM(d.weight * d.weight * d.d5 * d.d8) / 2.0 AS p5_8__w2_dd,
+  SUM(d.d5 * d.d8) / 2.0 AS p5_8__dd,
+  SUM(d.weight * d.weight * d.d5 * d.d9) / 2.0 AS p5_9__w2_dd,
+  SUM(d.d5 * d.d9) / 2.0 AS p5_9__dd,
+  SUM(d.weight * d.weight * d.d5 * d.d10) / 2.0 AS p5_10__w2_dd,
+  SUM(d.d5 * d.d10) / 2.0 AS p5_10__dd,
+  SUM(d.weight * d.weight * d.d5 * d.d11) / 2.0 AS p5_11__w2_dd,
+  SUM(d.d5 * d.d11) / 2.0 AS p5_11__dd,
+  SUM(d.weight * d.weight * d.d6 * d.d7) / 2.0 AS p6_7__w2_dd,
+  SUM(d.d6 * d.d7) / 2.0 AS p6_7__dd,
+  SUM(d.weight * d.weight * d.d6 * d.d8) / 2.0 AS p6_8__w2_dd,
+  SUM(d.d6 * d.d8) / 2.0 AS p6_8__dd,
+  SUM(d.weight * d.weight * d.d6 * d.d9) / 2.0 AS p6_9__w2_dd,
+  SUM(d.d6 * d.d9) / 2.0 AS p6_9__dd,
+  SUM(d.weight * d.weight * d.d6 * d.d10) / 2.0 AS p6_10__w2_dd,
+  SUM(d.d6 * d.d10) / 2.0 AS p6_10__dd,
+  SUM(d.weight * d.weight * d.d6 * d.d11) / 2.0 AS p6_11__w2_dd,
+  SUM(d.d6 * d.d11) / 2.0 AS p6_11__dd,
+  SUM(d.weight * d.weight * d.d7 * d.d7) / 2.0 AS p7_7__w2_dd,
+  SUM(d.d7 * d.d7) / 2.0 AS p7_7__dd,
+  SUM(d.weight * d.weight * d.d7 * d.d8) / 2.0 AS p7_8__w2_dd,
+  SUM(d.d7 * d.d8) / 2.0 AS p7_8__dd,
+  SUM(d.weight * d.weight * d.d7 * d.d9) / 2.0 AS p7_9__w2_dd,
+  SUM(d.d7 * d.d9) / 2.0 AS p7_9__dd,
+  SUM(d.weight * d.weight * d.d7 * d.d10) / 2.0 AS p7_10__w2_dd,
+  SUM(d.d7 * d.d10) / 2.0 AS p7_10__dd,
+  SUM(d.weight * d.weight * d.d7 * d.d11) / 2.0 AS p7_11__w2_dd,
+  SUM(d.d7 * d.d11) / 2.0 AS p7_11__dd,
+  SUM(d.weight * d.weight * d.d8 * d.d8) / 2.0 AS p8_8__w2_dd,
+  SUM(d.d8 * d.d8) / 2.0 AS p8_8__dd,
+  SUM(d.weight * d.weight * d.d8 * d.d9) / 2.0 AS p8_9__w2_dd,
+  SUM(d.d8 * d.d9) / 2.0 AS p8_9__dd,
+  SUM(d.weight * d.weight * d.d8 * d.d10) / 2.0 AS p8_10__w2_dd,
+  SUM(d.d8 * d.d10) / 2.0 AS p8_10__dd,
+  SUM(d.weight * d.weight * d.d8 * d.d11) / 2.0 AS p8_11__w2_dd,
+  SUM(d.d8 * d.d11) / 2.0 AS p8_11__dd,
+  SUM(d.weight * d.weight * d.d9 * d.d9) / 2.0 AS p9_9__w2_dd,
+  SUM(d.d9 * d.d9) / 2.0 AS p9_9__dd,
+  SUM(d.weight * d.weight * d.d9 * d.d10) / 2.0 AS p9_10__w2_dd,
+  SUM(d.d9 * d.d10) / 2.0 AS p9_10__dd,
+  SUM(d.weight * d.weight * d.d9 * d.d11) / 2.0 AS p9_11__w2_dd,
+  SUM(d.d9 * d.d11) / 2.0 AS p9_11__dd,
+  SUM(d.weight * d.weight * d.d10 * d.d10) / 2.0 AS p10_10__w2_dd,
+  SUM(d.d10 * d.d10) / 2.0 AS p10_10__dd,
+  SUM(d.weight * d.weight * d.d10 * d.d11) / 2.0 AS p10_11__w2_dd,
+  SUM(d.d10 * d.d11) / 2.0 AS p10_11__dd,
+  SUM(d.weight * d.weight * d.d11 * d.d11) / 2.0 AS p11_11__w2_dd,
+  SUM(d.d11 * d.d11) / 2.0 AS p11_11__dd
 FROM differences AS d
 GROUP BY
   d.treated
