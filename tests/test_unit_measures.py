@@ -2,11 +2,12 @@
 in pandas from the raw events (the reference here is pandas' own groupby / nunique).
 
 On DuckDB active days are counted with a per-day bitmask instead of COUNT(DISTINCT day) (see
-_macros.active_days_bitmask); these checks put events on the days where the 63-day lanes meet
+sql_templates/duckdb/_active_days.sql.j2); these checks put events on the days where the 63-day lanes meet
 and on the window's edges, where an off-by-one would show."""
 
 from __future__ import annotations
 
+import datetime as dt
 import shutil
 import tomllib
 
@@ -15,7 +16,9 @@ import pandas as pd
 import pytest
 
 from sqlmatch import api
-from sqlmatch.plan import build_plan
+from sqlmatch import render
+from sqlmatch.plan import MeasureColumn, build_plan
+from sqlmatch.errors import SpecError
 from sqlmatch.spec import parse_spec
 
 from conftest import DEMO_SPEC
@@ -79,3 +82,54 @@ def test_other_dialects_keep_the_portable_distinct_count(db):
     for dialect in ("postgres", "spark"):
         sql = " ".join(build_plan(spec, dialect).step("unit_measures").statements[-3].replace("(", "( ").split())
         assert "COUNT( DISTINCT" in sql and "BIT_OR" not in sql.upper(), dialect
+
+
+@pytest.mark.parametrize("days, lanes", [(63, 1), (64, 2), (504, 8), (505, 0)])
+def test_duckdb_bitmask_only_for_windows_it_can_hold(days, lanes):
+    # 8 BIGINT lanes of 63 days hold 504 days; a longer window is counted with COUNT(DISTINCT day)
+    start = dt.date(2025, 1, 1)
+    col = MeasureColumn(name="x", agg="active_days", start=start, end=start + dt.timedelta(days=days), fill=0.0)
+    assert len(col.day_lanes) == lanes
+    sql = {d: render.environment(dialect=d).get_template("_macros.sql.j2").module.event_aggregate(col, "ts") for d in ("duckdb", "postgres")}
+    assert sql["duckdb"].count("BIT_COUNT") == lanes
+    assert ("COUNT(DISTINCT" in sql["duckdb"]) is (lanes == 0)
+    assert "BIT_COUNT" not in sql["postgres"] and "COUNT(DISTINCT" in sql["postgres"]
+
+
+def test_a_post_window_that_starts_with_the_cohort_month(db):
+    """windows.post_starts = "cohort": outcomes over [cohort start, + post months), counted like
+    pandas' own count of the same trips; the run says what that window includes."""
+    raw = tomllib.loads(DEMO_SPEC.read_text())
+    raw["study"]["database"] = str(db)
+    raw["windows"]["post_starts"] = "cohort"
+    spec = parse_spec(raw)
+    w = spec.windows
+    assert (w.post_start, w.post_end) == (dt.date(2026, 3, 1), dt.date(2026, 6, 1))
+    results = api.run(spec, keep_tables=True)
+    assert any("post window starts with the cohort month" in x for x in results.warnings)
+    with duckdb.connect(str(db), read_only=True) as con:
+        got = con.execute("SELECT unit_key, post_trips FROM sqlmatch.annual_pass_measures").df().set_index("unit_key")
+        trips = con.execute("SELECT rider_id, started_at FROM trips").df()
+    post = trips[(trips.started_at >= pd.Timestamp("2026-03-01")) & (trips.started_at < pd.Timestamp("2026-06-01"))]
+    want = post.groupby("rider_id").size().reindex(got.index).fillna(0)
+    assert (got.post_trips.to_numpy() == want.to_numpy()).all()
+    raw["windows"]["post_starts"] = "enrolment"
+    with pytest.raises(SpecError) as err:
+        parse_spec(raw)
+    assert err.value.key == "windows.post_starts"
+
+
+@pytest.mark.parametrize("attributes_only", [False, True])
+def test_late_events_warn_only_when_features_read_them(db, attributes_only):
+    # events from 2025-10-15 on: the pre window (from 2025-09-01) is not covered; that matters
+    # only to features built from events, not to a study matching on unit attributes alone
+    with duckdb.connect(str(db)) as con:
+        con.execute("DELETE FROM trips WHERE started_at < TIMESTAMP '2025-10-15 00:00:00'")
+    raw = tomllib.loads(DEMO_SPEC.read_text())
+    raw["study"]["database"] = str(db)
+    if attributes_only:
+        raw["features"] = [f for f in raw["features"] if f["aggregate"] == "attribute"]
+        raw["outcomes"] = [o for o in raw["outcomes"] if "twin" not in o]
+        raw["matching"] = {"method": "coarsened_exact"}
+    results = api.run(parse_spec(raw))
+    assert any("pre-window features may be incomplete" in x for x in results.warnings) is not attributes_only
