@@ -33,7 +33,7 @@ from sqlmatch.spec import parse_spec
 
 from test_neighbours import demo_raw
 
-CONFIGS = {"k1": {}, "k2_blocks": {"ratio": 2, "exact": ["age_band"]}}
+CONFIGS = {"k1": {}, "k2_blocks": {"ratio": 2, "exact": ["age_band"]}, "k1_uncorrected": {"bias_correction": False}}
 
 
 @pytest.fixture(scope="module")
@@ -91,7 +91,7 @@ def numpy_variance(spec, tables, value) -> float:
     # units (weights w, statsmodels WLS), as sqlmatch does when the bias correction is on
     features = [f.name for f in spec.numeric_features]
     X = sm.add_constant(units[features].to_numpy(float), has_constant="add")
-    for g in (0, 1):
+    for g in (0, 1) if spec.matching.bias_correction else ():
         fit_on = matched & (units.treated.to_numpy() == g)
         beta = sm.WLS(y[fit_on], X[fit_on], weights=weight[fit_on]).fit().params
         rows = units.treated.to_numpy() == g
@@ -144,7 +144,17 @@ def test_a_unit_without_a_neighbour_borrows_its_groups_mean_sigma2():
     assert mv.std_error == pytest.approx(np.sqrt(6.75 / 9.0))
 
 
-@pytest.mark.parametrize("name", list(CONFIGS))
+def test_without_the_correction_the_estimate_is_the_matching_estimator(runs):
+    spec, results, tables = runs["k1_uncorrected"]
+    x = tables["measures"].set_index("unit_key").post_trips
+    m = tables["nearest_neighbour_matches"]
+    per = m.assign(yc=x.loc[m.control_key].to_numpy(float)).groupby("treated_key").yc.mean()
+    effect = results.effect("post_trips")
+    assert effect.estimate == pytest.approx(float(np.mean(x.loc[per.index].to_numpy(float) - per.to_numpy())), rel=1e-9)
+    assert "bias-corrected" not in effect.estimator and "Abadie-Imbens" in effect.estimator
+
+
+@pytest.mark.parametrize("name", ["k1", "k2_blocks"])
 @pytest.mark.parametrize("outcome", ["post_trips", "active_last_month"])
 def test_bias_corrected_estimate_equals_the_per_unit_form(runs, name, outcome):
     """(1 / N_1) sum_i [(Y_i - mean Y of i's matches) - (mu0(X_i) - mean mu0 of i's matches)], mu0 the

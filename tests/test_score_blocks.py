@@ -9,7 +9,6 @@ Row-level reads of the work tables happen here, in the test, only to check the S
 
 from __future__ import annotations
 
-import dataclasses
 import shutil
 
 import duckdb
@@ -24,15 +23,12 @@ from sqlmatch.spec import parse_spec
 from test_propensity import demo_score_spec
 
 
-def auto(spec):
-    return dataclasses.replace(spec, matching=dataclasses.replace(spec.matching, bins=None))
-
-
 @pytest.fixture(scope="module")
 def blocked(demo_dir, tmp_path_factory):
     folder = tmp_path_factory.mktemp("score_blocks")
     shutil.copyfile(demo_dir / "bikeshare.duckdb", folder / "bikeshare.duckdb")
-    spec = auto(parse_spec(demo_score_spec(folder), source_path=folder / "study.toml"))
+    spec = parse_spec(demo_score_spec(folder), source_path=folder / "study.toml")
+    assert spec.matching.bins is None  # the default: chosen from the data
     results = api.run(spec)
     with duckdb.connect(str(folder / "bikeshare.duckdb"), read_only=True) as con:
         strata = con.execute("SELECT * FROM sqlmatch.annual_pass_score_strata").df()

@@ -321,7 +321,7 @@ DISTANCES = ("logit", "mahalanobis", "robust_mahalanobis")
 
 
 def read_options(table: dict, given: OptionInput) -> dict:
-    """matching.distance / caliper / ratio / replacement / max_candidate_pairs."""
+    """matching.distance / caliper / ratio / replacement / max_candidate_pairs / bias_correction."""
     distance = read_choice(table, "matching", "distance", DISTANCES, default="logit")
     caliper = table.get("caliper", 0.2)
     if isinstance(caliper, bool) or not isinstance(caliper, (int, float)) or not 0.0001 <= caliper <= 10:
@@ -335,7 +335,11 @@ def read_options(table: dict, given: OptionInput) -> dict:
     if not replacement and ratio != 1:
         raise SpecError("matching.ratio", f"must be 1 when matching.replacement = false, got {ratio}.", "set ratio = 1, or replacement = true for k:1 matching.")
     max_pairs = read_int(table, "matching", "max_candidate_pairs", default=50_000_000, low=1, high=10**12)
-    return {"distance": distance, "caliper": float(caliper), "ratio": ratio, "replacement": replacement, "max_candidate_pairs": max_pairs}
+    bias_correction = read_bool(table, "matching", "bias_correction", default=True)
+    return {
+        "distance": distance, "caliper": float(caliper), "ratio": ratio, "replacement": replacement, "max_candidate_pairs": max_pairs,
+        "bias_correction": bias_correction,
+    }
 
 
 METHOD = MatchingMethod(
@@ -344,7 +348,7 @@ METHOD = MatchingMethod(
     steps=steps,
     uses_score=True,
     loosen="a wider matching.caliper or fewer exact features (matching.exact)",
-    option_keys=("distance", "caliper", "ratio", "replacement", "max_candidate_pairs"),
+    option_keys=("distance", "caliper", "ratio", "replacement", "max_candidate_pairs", "bias_correction"),
     read_options=read_options,
     checks={"candidate_pairs": check_candidates},
     warnings=warnings,

@@ -87,7 +87,7 @@ def steps(ctx, outcomes) -> list:
     m = ctx.spec.matching
     if not m.replacement:
         return []
-    features = bias_features(ctx.spec) if getattr(m, "bias_correction", True) else []
+    features = bias_features(ctx.spec) if m.bias_correction else []
     vs, ps = variables(outcomes, features)
     out = []
     if features:
