@@ -12,6 +12,7 @@ import numpy as np
 from sqlmatch.columns import stat
 from sqlmatch import aggregates
 from sqlmatch.diagnostics import run_warnings
+from sqlmatch.estimators.adjusted import adjusted_att
 from sqlmatch.estimators.att import relative_lift, stratified_att
 from sqlmatch.estimators.binary import risk_ratio
 from sqlmatch.estimators.intervals import normal_interval
@@ -56,7 +57,7 @@ def study_results(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
     effects = [
         outcome_effect(
             o, r["outcome_strata"], r["outcome_unmatched"], r.get("outcome_regression"), numeric, spec.matching.method,
-            r.get("pair_signed_rank"), spec.treatment_words, nn,
+            r.get("pair_signed_rank"), spec.treatment_words, adjust=spec.regression_adjustment, nn=nn,
         )
         for o in plan.outcomes
     ]
@@ -101,7 +102,10 @@ def _with_matching_variance(fields: dict, mv) -> None:
     fields.update(std_error=se, ci_low=lo, ci_high=hi)
 
 
-def outcome_effect(outcome, matched, unmatched, regression=None, features=(), method: str = "", pair_ranks=None, treatment_words: str = "enrolment", nn: MatchingInference | None = None) -> Effect:
+def outcome_effect(
+    outcome, matched, unmatched, regression=None, features=(), method: str = "", pair_ranks=None, treatment_words: str = "enrolment",
+    adjust: bool = False, nn: MatchingInference | None = None,
+) -> Effect:
     """One outcome's effect, relative lift, risk ratio (binary), difference-in-differences (an
     outcome with a pre-window twin) and sensitivity figures, all from aggregates. With
     `nn` (nearest neighbours with replacement) the effect's variance is the Abadie-Imbens one
@@ -198,6 +202,22 @@ def outcome_effect(outcome, matched, unmatched, regression=None, features=(), me
             v1, v0 = (mv.var_treated, mv.var_control) if mv is not None else (m.var_mean_treated, m.var_mean_control)
             lift = relative_lift(m.mean_treated, v1, mean_control, v0)
             extra.update(lift=_interval(lift.estimate, lift.std_error, lift.ci_low, lift.ci_high))
+        if features and nn is None:
+            # regression adjustment within strata on the numeric features (estimators/adjusted.py);
+            # nearest neighbours with replacement have the Abadie-Imbens correction instead, whose
+            # variance counts control reuse (the stratified one here would not)
+            adj = adjusted_att(*aggregates.cell_sums(matched, outcome.name, list(features)), list(features))
+            a = adj.effect
+            extra.update(adjusted=_interval(a.estimate, a.std_error, a.ci_low, a.ci_high), adjusted_for=adj.adjusted_for)
+            if adjust:
+                extra["unadjusted"] = _interval(fields["estimate"], fields["std_error"], fields["ci_low"], fields["ci_high"])
+                fields.update(
+                    estimator=f"{fields['estimator']}, adjusted by a within-stratum regression on {', '.join(adj.adjusted_for) or 'no feature'}",
+                    estimate=a.estimate,
+                    std_error=a.std_error,
+                    ci_low=a.ci_low,
+                    ci_high=a.ci_high,
+                )
         if getattr(outcome, "twin", None):
             # Difference-in-differences on the matched sample: the same stratified estimator
             # applied to (outcome - twin), per-stratum sums from the outcome_strata query.

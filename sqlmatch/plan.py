@@ -480,13 +480,17 @@ def outcome_steps(ctx: PlanContext, outcomes, per_match: bool) -> list[Step]:
                 "outcome_strata",
                 reads=([ctx.display("measures"), ctx.display("match_weights")] if per_match else weighted) if matched else [ctx.display("measures")],
                 purpose=(
-                    "Outcome sums per stratum and group among matched units."
+                    "Outcome sums per stratum and group among matched units, with the feature sums and cross-products that adjust them by regression."
                     if matched
                     else "Outcome sums per group before matching (the naive comparison)."
                 ),
                 matched=matched,
                 per_match=per_match,
                 outcomes=outcomes,
+                # sums for regression adjustment within strata (estimators/adjusted.py)
+                adjust_features=numeric if matched else [],
+                adjust_pairs=[(numeric[i], numeric[j]) for i, j in upper_pairs(len(numeric))] if matched else [],
+                adjust_outcomes=[o.name for o in outcomes if o.kind != "ratio"] if matched else [],
                 measures_table=ctx.table("measures"),
                 weights_table=ctx.table("match_weights"),
                 weighted_table=ctx.table("weighted_units"),

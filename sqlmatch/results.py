@@ -71,12 +71,22 @@ class Effect:
     lift: Interval = Interval(None)
     # binary outcomes: risk ratio p_1 / p_0 (the risk difference is `estimate`)
     risk_ratio: Interval | None = None
+    # the matched comparison adjusted by a within-stratum regression on the numeric features
+    # (count, sum and 0/1 outcomes); the headline when [effect] regression_adjustment = true, and
+    # then `unadjusted` holds the plain matched comparison
+    adjusted: Interval | None = None
+    adjusted_for: tuple[str, ...] = ()
+    unadjusted: Interval | None = None
     # difference-in-differences: effect on (outcome - did_twin), the twin a pre-window feature
     did_twin: str | None = None
     did: Interval | None = None
     # e_value, e_value_ci, robustness_value, robustness_value_alpha, partial_r2, t_statistic, df,
     # rosenbaum (+ rosenbaum_reason when null), sentence, and what they were computed from
     sensitivity: dict = field(default_factory=dict)
+
+
+# the Effect fields that hold an Interval (flattened to `<field>.<part>` columns in effects_frame)
+INTERVAL_FIELDS = ("naive", "lift", "risk_ratio", "adjusted", "unadjusted", "did")
 
 
 @dataclass(frozen=True)
@@ -139,7 +149,7 @@ class StudyResults:
         interval_fields = list(Interval.__dataclass_fields__)
         columns = []
         for f in Effect.__dataclass_fields__:
-            if f in ("naive", "lift", "risk_ratio", "did"):
+            if f in INTERVAL_FIELDS:
                 columns += [f"{f}.{g}" for g in interval_fields]
             elif f != "sensitivity":
                 columns.append(f)
@@ -148,7 +158,7 @@ class StudyResults:
             record = self._effect_record(e)
             flat = {}
             for k, v in record.items():
-                if k in ("naive", "lift", "risk_ratio", "did"):
+                if k in INTERVAL_FIELDS:
                     flat.update({f"{k}.{g}": (v or {}).get(g) for g in interval_fields})
                 elif k != "sensitivity":
                     flat[k] = v

@@ -211,6 +211,9 @@ class Spec:
     # joins the events to every unit key, not only the study's; see benchmarks/RESULTS.md).
     check_unknown_units: bool = True
     treatment_words: str = "enrolment"  # [treatment] described_as: how sentences name the treatment
+    # [effect] regression_adjustment: the headline effect of count, sum and 0/1 outcomes is adjusted
+    # by a within-stratum regression on the numeric features (estimators/adjusted.py); both are reported
+    regression_adjustment: bool = False
     source_path: Path | None = None
 
     @property
@@ -466,7 +469,7 @@ def load_spec(path: str | Path) -> Spec:
 
 def parse_spec(raw: dict, source_path: Path | None = None) -> Spec:
     _check_values(raw, "")
-    _check_keys(raw, "", {"study", "units", "events", "treatment", "windows", "eligibility", "features", "outcomes", "matching", "propensity", "report"})
+    _check_keys(raw, "", {"study", "units", "events", "treatment", "windows", "eligibility", "features", "outcomes", "matching", "propensity", "effect", "report"})
 
     study = _table(raw, "study")
     _check_keys(study, "study", {"name", "work_schema", "database", "results_table"})
@@ -547,6 +550,12 @@ def parse_spec(raw: dict, source_path: Path | None = None) -> Spec:
     _check_keys(report, "report", {"min_cell_size"})
     min_cell = _int(report, "report", "min_cell_size", default=10, low=1, high=1000)
 
+    effect = raw.get("effect", {})
+    if not isinstance(effect, dict):
+        raise SpecError("effect", "must be a table.", "write it as [effect] with regression_adjustment = true or false.")
+    _check_keys(effect, "effect", {"regression_adjustment"})
+    regression_adjustment = read_bool(effect, "effect", "regression_adjustment", default=False)
+
     spec = Spec(
         name=name,
         work_schema=work_schema,
@@ -561,6 +570,7 @@ def parse_spec(raw: dict, source_path: Path | None = None) -> Spec:
         cohort=cohort,
         control_pool=control_pool,
         treatment_words=described_as,
+        regression_adjustment=regression_adjustment,
         windows=windows,
         filters=filters,
         filter_texts=tuple(filter_texts),
