@@ -46,6 +46,12 @@ several treated units has several rows and the stratified estimator equals the m
 estimator. Strata group the treated units by their number of controls (1..k); the plan's
 weighted_units step sums each unit's weights for balance and plots.
 
+Variance and bias correction (with replacement; nn_variance.py, run after <study>_weighted_units
+exists): the Abadie & Imbens (2006) variance, which counts how often each control is used, and
+with `matching.bias_correction` (default) the Abadie & Imbens (2011) regression correction; both
+from per-group sums in SQL (estimators/matching_variance.py). Without replacement the 1:1 pairs
+get the paired-difference interval.
+
 Guard. Before the candidate join one aggregate query counts the pairs the join will compare
 (from block counts) and the treated units with a control within the caliper; the runner refuses
 when the pairs exceed `matching.max_candidate_pairs` or when no treated unit can be matched.
