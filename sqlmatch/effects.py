@@ -13,6 +13,7 @@ from sqlmatch.columns import stat
 from sqlmatch import aggregates
 from sqlmatch.diagnostics import run_warnings
 from sqlmatch.estimators.adjusted import adjusted_att
+from sqlmatch.matching import method_for
 from sqlmatch.estimators.att import relative_lift, stratified_att
 from sqlmatch.estimators.binary import risk_ratio
 from sqlmatch.estimators.intervals import normal_interval
@@ -26,6 +27,7 @@ from sqlmatch.results import Effect, Interval, MatchingSummary, StudyResults
 from sqlmatch.runner import RunOutput
 from sqlmatch.sensitivity import e_value, e_value_continuous, plain_words, robustness_value, rosenbaum_from_signed_rank
 from sqlmatch.spec import Spec
+from sqlmatch.subgroups import subgroup_effects
 
 
 def study_results(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
@@ -87,6 +89,7 @@ def study_results(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
         histograms=aggregates.histograms(r),
         warnings=run_warnings(spec, r, balance, output.model),
         timings=output.timings,
+        subgroups=subgroup_effects(spec, plan.outcomes, r),
     )
 
 
@@ -202,7 +205,7 @@ def outcome_effect(
             v1, v0 = (mv.var_treated, mv.var_control) if mv is not None else (m.var_mean_treated, m.var_mean_control)
             lift = relative_lift(m.mean_treated, v1, mean_control, v0)
             extra.update(lift=_interval(lift.estimate, lift.std_error, lift.ci_low, lift.ci_high))
-        if features and nn is None:
+        if features and nn is None and (not method or method_for(method).adjustable):
             # regression adjustment within strata on the numeric features (estimators/adjusted.py);
             # nearest neighbours with replacement have the Abadie-Imbens correction instead, whose
             # variance counts control reuse (the stratified one here would not)
