@@ -226,9 +226,10 @@ def render(summary, failures, args, seconds: float, command: str) -> str:
         f"- Replicates: {args.replicates} seeds per process ({args.first_seed} to {args.first_seed + args.replicates - 1}); "
         f"demo {args.riders:,} riders, commuter {args.units:,} riders; wall time {seconds / 60:.1f} min"
         + (" (summarised from the checkpoint of an interrupted run: see the `ok` column for the replicates per cell)" if args.from_checkpoint else ""),
-        "- Methods at their default settings (spec.py): coarsened_exact with each spec's cut points; score_bins with 5 "
-        "subclasses at treated-score quantiles, common support, propensity on `matching.on`; nearest 1:1 with replacement, "
-        "logit distance, caliper 0.2 SD.",
+        "- Methods at their default settings: coarsened_exact with each spec's cut points; score_bins with subclasses "
+        "chosen from the data (split until the score and the model's numeric features are balanced, |t| <= 1.96), common "
+        "support, propensity on `matching.on`; nearest_neighbour 1:1 with replacement, logit distance, caliper 0.2 SD, "
+        "Abadie-Imbens (2006) variance and (2011) bias correction.",
         "- Truths. `expected`: the effect on the cohort given its units' latent values, averaged over the post-window "
         "randomness (the demo's `true_att`; what the per-stratum variance formula targets). `sample`: the realised mean of "
         "Y(1) − Y(0) over the cohort from both simulated potential outcomes. `population`: the ATT over a 1,000,000-rider "
@@ -264,6 +265,13 @@ def render(summary, failures, args, seconds: float, command: str) -> str:
             lines.append(f"- {cell[0]} / `{cell[1]}`: {len(fs)} of {args.replicates} replicates; {fs[0]['error']}")
     lines += ["", "Cells outside 0.93–0.97 (coverage of the expected truth):", ""]
     lines += [f"- {s['process']} / {s['method']} / {s['row']}: {s['coverage']:.3f}" for s in flagged] or ["- none"]
+    # the SE against the spread of the errors, in both directions (0.9-1.1: our band, about the
+    # Monte Carlo error of an SD from 100-200 replicates)
+    narrow = [s for s in summary if "(unmatched)" not in s["row"] and s["se_over_sd"] < 0.9]
+    wide = [s for s in summary if "(unmatched)" not in s["row"] and s["se_over_sd"] > 1.1]
+    lines += ["", "Mean SE against the SD of the errors (SE/SD; band 0.9–1.1, about the Monte Carlo error of an SD at these replicate counts):", ""]
+    lines += [f"- too narrow (SE/SD < 0.9): " + (", ".join(f"{s['process']} / {s['method']} / {s['row']} {s['se_over_sd']:.2f}" for s in narrow) or "none")]
+    lines += [f"- too wide (SE/SD > 1.1): " + (", ".join(f"{s['process']} / {s['method']} / {s['row']} {s['se_over_sd']:.2f}" for s in wide) or "none")]
     lines += ["", "Unmatched (naive) comparisons, for reference (biased by design):", "",
               "| process | estimate | coverage (expected) | bias |", "|---|---|---:|---:|"]
     seen = set()

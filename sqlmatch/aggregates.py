@@ -49,6 +49,7 @@ def numeric_balance(result: QueryResult, features: list[str]) -> list[BalanceRow
             GroupMoments(_f(t.get(stat(f, "w"))), _f(t.get(stat(f, "w2"))), _f(t.get(stat(f, "wsum"))), _f(t.get(stat(f, "wsumsq")))),
             GroupMoments(_f(c.get(stat(f, "w"))), _f(c.get(stat(f, "w2"))), _f(c.get(stat(f, "wsum"))), _f(c.get(stat(f, "wsumsq")))),
             binary,
+            scale=before.pooled_sd,
         )
         rows.append(_row(f, "binary" if binary else "numeric", before, after))
     return rows
@@ -78,7 +79,8 @@ def level_balance(result: QueryResult) -> list[BalanceRow]:
                 else:
                     share = float(cell["n_units"]) if cell else 0.0
                     moments.append(GroupMoments(n_total, n_total, share, share))
-            stats.append(compare(moments[0], moments[1], binary=True))
+            # after matching, the SMD keeps the before-matching pooled SD as its denominator
+            stats.append(compare(moments[0], moments[1], binary=True, scale=stats[0].pooled_sd if weighted else None))
         rows.append(_row(f"{feature}={level}", "level", stats[0], stats[1]))
     return rows
 

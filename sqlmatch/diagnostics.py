@@ -100,6 +100,7 @@ def data_warnings(spec: Spec, r, balance) -> list[str]:
     out += _unplaced_event_warnings(spec, r)
     out += _pooled_level_warnings(spec, r)
     out += _incomplete_ratio_warnings(spec, r)
+    out += imbalance_warnings(spec, balance)
     out += _kept_warning(spec, r, balance)
     for b in balance:
         if b.kind != "level" and b.mean_treated_before is None and b.mean_control_before is None:
@@ -186,6 +187,33 @@ def _unplaced_event_warnings(spec: Spec, r) -> list[str]:
             "fix the key in the events table."
         )
     return out
+SMD_WARNING = 0.1  # |SMD| after matching above which a matched feature is called imbalanced: common practice (Austin 2009)
+_FINER = {
+    "coarsened_exact": "give it finer cut points (matching.cut_points)",
+    "score_bins": "add it, or a transform of it, to propensity.features",
+    "nearest_neighbour": "add it, or a transform of it, to propensity.features, or match on it exactly or with a Mahalanobis distance",
+}
+
+
+def imbalance_warnings(spec: Spec, balance) -> list[str]:
+    """A feature the method matched on (matching.on; for score methods the propensity model's
+    features and matching.exact) still differing after matching: the effect may carry its bias."""
+    method = method_for(spec.matching.method)
+    matched = set(spec.propensity.features) | set(spec.matching.exact) if method.uses_score else set(spec.matching.on)
+    left = []
+    for b in balance:
+        name = b.covariate.split("=", 1)[0] if b.kind == "level" else b.covariate
+        if name in matched and b.smd_after is not None and abs(b.smd_after) > SMD_WARNING:
+            left.append(f"{b.covariate} ({b.smd_after:+.2f})")
+    if not left:
+        return []
+    hint = _FINER.get(spec.matching.method, "match on it more finely")
+    return [
+        f"After matching, {'a matched feature' if len(left) == 1 else 'matched features'} still "
+        f"differ{'s' if len(left) == 1 else ''} between the groups by more than {SMD_WARNING} SD (SMD after matching, "
+        f"over the pooled SD before; |SMD| > {SMD_WARNING} is common practice's limit): {', '.join(left)}. "
+        f"The effect may carry bias from {'it' if len(left) == 1 else 'them'}; {hint}."
+    ]
 
 
 # Below this share of the cohort matched, say the effect describes the kept units only. Our own

@@ -15,6 +15,10 @@ from sqlmatch.estimators.adjusted import adjusted_att
 from sqlmatch.matching import method_for
 from sqlmatch.estimators.att import relative_lift, stratified_att, stratum_weights
 from sqlmatch.estimators.binary import risk_ratio
+from sqlmatch.estimators.intervals import normal_interval
+from sqlmatch.estimators.matching_variance import MatchingInference
+from sqlmatch.matching.nn_variance import BIAS_STEP, bias_features, variable_numbers
+from sqlmatch.matching.nn_variance import STEP as MATCHING_VARIANCE
 from sqlmatch.estimators.ratio import ratio_effect
 from sqlmatch.estimators.regression import wls_from_moments
 from sqlmatch.plan import L1_BINS, Plan
@@ -47,10 +51,14 @@ def study_results(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
     if "balance_levels" in r:
         balance += aggregates.level_balance(r["balance_levels"])
     numeric = [f.name for f in spec.numeric_features]
+    nn = None
+    if MATCHING_VARIANCE in r:
+        with_bias = BIAS_STEP in r
+        nn = MatchingInference(r[MATCHING_VARIANCE], r[BIAS_STEP] if with_bias else None, variable_numbers(plan.outcomes), len(bias_features(spec)) if with_bias else 0)
     effects = [
         outcome_effect(
-            o, r["outcome_strata"], r["outcome_unmatched"], r.get("outcome_regression"), numeric, spec.matching.method, r.get("pair_signed_rank"),
-            spec.treatment_words, adjust=spec.regression_adjustment, estimand=spec.matching.estimand,
+            o, r["outcome_strata"], r["outcome_unmatched"], r.get("outcome_regression"), numeric, spec.matching.method,
+            r.get("pair_signed_rank"), spec.treatment_words, adjust=spec.regression_adjustment, nn=nn, estimand=spec.matching.estimand,
         )
         for o in plan.outcomes
     ]
@@ -84,12 +92,27 @@ def study_results(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
     )
 
 
+AI_TEXT = ", Abadie-Imbens variance (counts control reuse)"
+BIAS_TEXT = ", bias-corrected by the controls' regression on the features (Abadie-Imbens 2011)"
+
+
+def _with_matching_variance(fields: dict, mv) -> None:
+    """Replace the two-sample standard error and interval by the matching-aware ones."""
+    se = mv.std_error
+    se = se if math.isfinite(se) else None
+    lo, hi = normal_interval(fields["estimate"], se)
+    fields.update(std_error=se, ci_low=lo, ci_high=hi)
+
+
 def outcome_effect(
-    outcome, matched, unmatched, regression=None, features=(), method: str = "", pair_ranks=None, treatment_words: str = "enrolment", adjust: bool = False,
-    estimand: str = "att",
+    outcome, matched, unmatched, regression=None, features=(), method: str = "", pair_ranks=None, treatment_words: str = "enrolment",
+    adjust: bool = False, nn: MatchingInference | None = None, estimand: str = "att",
 ) -> Effect:
     """One outcome's effect, relative lift, risk ratio (binary), difference-in-differences (an
-    outcome with a pre-window twin) and sensitivity figures, all from aggregates."""
+    outcome with a pre-window twin) and sensitivity figures, all from aggregates. With
+    `nn` (nearest neighbours with replacement) the effect's variance is the Abadie-Imbens one
+    (estimators/matching_variance.py) instead of the two-sample one, and the effect bias-corrected
+    when the run has the correction's sums."""
     rr = None
     extra: dict = {}
     if outcome.kind == "ratio":
@@ -109,6 +132,26 @@ def outcome_effect(
         )
         # Lift R_1 / R_0 - 1, interval on the log scale (estimators/ratio.py).
         extra.update(lift=_interval(m.lift, m.lift_std_error, m.lift_ci_low, m.lift_ci_high))
+        if nn is not None:
+            keep = (t_sums.n > 0) & (c_sums.n > 0)
+            w = t_sums.n[keep] / t_sums.n[keep].sum()
+            ybar0 = float(np.sum(w * c_sums.sum_y[keep] / c_sums.n[keep]))
+            xbars = (float(np.sum(w * t_sums.sum_x[keep] / t_sums.n[keep])), float(np.sum(w * c_sums.sum_x[keep] / c_sums.n[keep])))
+            r1, r0 = m.treated.estimate, m.control.estimate
+            dy, dx = nn.shift(f"{outcome.name}__num"), nn.shift(f"{outcome.name}__den")
+            r0_bc = r0
+            if math.isfinite(dy) and math.isfinite(dx) and xbars[1] + dx > 0:
+                # the controls' mean numerator and denominator, each corrected, then their ratio
+                r0_bc = (ybar0 + dy) / (xbars[1] + dx)
+                fields.update(estimate=r1 - r0_bc, mean_control=r0_bc)
+                fields["estimator"] += BIAS_TEXT
+            # linearised ratios u = (y - R x) / xbar per group (the uncorrected R: the correction is of smaller order)
+            num, den = f"{outcome.name}__num", f"{outcome.name}__den"
+            mv = nn.variance({1: {num: 1.0 / xbars[0], den: -r1 / xbars[0]}, 0: {num: 1.0 / xbars[1], den: -r0 / xbars[1]}})
+            _with_matching_variance(fields, mv)
+            fields["estimator"] += AI_TEXT
+            lift = relative_lift(r1, mv.var_treated, r0_bc, mv.var_control)
+            extra.update(lift=_interval(lift.estimate, lift.std_error, lift.ci_low, lift.ci_high))
     else:
         t_mom, c_mom = aggregates.outcome_moments(matched, outcome.name)
         m = stratified_att(t_mom, c_mom, estimand=estimand)
@@ -137,6 +180,17 @@ def outcome_effect(
                 ci_low=pd_.ci_low,
                 ci_high=pd_.ci_high,
             )
+        mv = nn.variance({1: {outcome.name: 1.0}, 0: {outcome.name: 1.0}}) if nn is not None else None
+        mean_control = m.mean_control
+        if nn is not None:
+            shift = nn.shift(outcome.name)
+            if math.isfinite(shift):
+                mean_control = m.mean_control + shift
+                fields.update(estimate=m.estimate - shift, mean_control=mean_control)
+                fields["estimator"] += BIAS_TEXT
+        if mv is not None:
+            _with_matching_variance(fields, mv)
+            fields["estimator"] += AI_TEXT
         if outcome.kind == "binary":
             # Events per stratum and group are the sums of the 0/1 outcome; ATT stratum weights
             # n_1s / n_1 over the strata holding both groups (estimators/binary.py).
@@ -147,11 +201,14 @@ def outcome_effect(
                 lift=_interval(rr.lift, rr.std_error, rr.lift_ci_low, rr.lift_ci_high),
             )
         else:
-            lift = relative_lift(m.mean_treated, m.var_mean_treated, m.mean_control, m.var_mean_control)
+            v1, v0 = (mv.var_treated, mv.var_control) if mv is not None else (m.var_mean_treated, m.var_mean_control)
+            lift = relative_lift(m.mean_treated, v1, mean_control, v0)
             extra.update(lift=_interval(lift.estimate, lift.std_error, lift.ci_low, lift.ci_high))
-        if features and (not method or method_for(method).adjustable):
-            # regression adjustment within strata on the numeric features (estimators/adjusted.py)
-            adj = adjusted_att(*aggregates.cell_sums(matched, outcome.name, list(features)), list(features), estimand=estimand)
+        if features and nn is None and (not method or method_for(method).adjustable):
+            # regression adjustment within strata on the numeric features (estimators/adjusted.py);
+            # nearest neighbours with replacement have the Abadie-Imbens correction instead, whose
+            # variance counts control reuse (the stratified one here would not)
+            adj = adjusted_att(*aggregates.cell_sums(matched, outcome.name, list(features)), list(features))
             a = adj.effect
             extra.update(adjusted=_interval(a.estimate, a.std_error, a.ci_low, a.ci_high), adjusted_for=adj.adjusted_for)
             if adjust:
@@ -167,7 +224,15 @@ def outcome_effect(
             # Difference-in-differences on the matched sample: the same stratified estimator
             # applied to (outcome - twin), per-stratum sums from the outcome_strata query.
             did = stratified_att(*aggregates.outcome_moments(matched, outcome.name, "did"), estimand=estimand)
-            extra.update(did_twin=outcome.twin, did=_interval(did.estimate, did.std_error, did.ci_low, did.ci_high))
+            did_est, did_se, did_lo, did_hi = did.estimate, did.std_error, did.ci_low, did.ci_high
+            if nn is not None and math.isfinite(nn.shift(f"{outcome.name}__did")):
+                did_est = did.estimate - nn.shift(f"{outcome.name}__did")
+            if nn is not None:
+                key = f"{outcome.name}__did"
+                did_se = nn.variance({1: {key: 1.0}, 0: {key: 1.0}}).std_error
+                did_se = did_se if math.isfinite(did_se) else None
+                did_lo, did_hi = normal_interval(did_est, did_se)
+            extra.update(did_twin=outcome.twin, did=_interval(did_est, did_se, did_lo, did_hi))
     sensitivity = outcome_sensitivity(outcome, fields, rr, regression, list(features), method, pair_ranks, treatment_words)
     return Effect(
         outcome=outcome.name,

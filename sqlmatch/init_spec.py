@@ -124,7 +124,7 @@ def starter_spec(
         "[matching]",
         'method = "coarsened_exact"',
         'coarsen = "quantiles"   # cut points computed in the warehouse; or list them under [matching.cut_points]',
-        "coarsen_bins = 5",
+        "coarsen_bins = 10",
         "",
         "[report]",
         "min_cell_size = 10   # counts below this are never shown",

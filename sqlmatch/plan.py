@@ -587,6 +587,9 @@ def outcome_steps(ctx: PlanContext, outcomes, per_match: bool) -> list[Step]:
             weighted_table=ctx.table("weighted_units"),
         )
     )
+    method = method_for(spec.matching.method)
+    if method.outcome_steps is not None:
+        steps += method.outcome_steps(ctx, outcomes)
     return steps
 
 

@@ -17,7 +17,6 @@ from dataclasses import dataclass, field
 from sqlglot import exp
 
 from sqlmatch.columns import stat
-from sqlmatch.columns import stat
 from sqlmatch.dialects import BUILDING_SUFFIX
 from sqlmatch.engines.base import Engine, QueryResult
 from sqlmatch.errors import DataError, SpecError

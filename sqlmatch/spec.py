@@ -181,15 +181,16 @@ class Matching:
     # coarsened_exact
     cut_points: dict[str, tuple[float, ...]] = field(default_factory=dict)
     coarsen: str | None = None  # automatic cut points for numeric features without explicit ones
-    coarsen_bins: int = 5  # number of equal-count bins for coarsen = "quantiles"
+    coarsen_bins: int = 10  # number of equal-count bins for coarsen = "quantiles"
     # score_bins
-    bins: int = 5  # subclasses at treated-score quantiles
+    bins: int | None = None  # subclasses at treated-score quantiles; None: chosen from the data (score_bins.py)
     # nearest_neighbour
     distance: str = "logit"  # logit | mahalanobis | robust_mahalanobis
     caliper: float = 0.2  # in SDs of the logit score (pooled over the two groups)
     ratio: int = 1  # controls per treated unit (k:1)
     replacement: bool = True  # a control may serve several treated units
     max_candidate_pairs: int = 50_000_000  # refuse a candidate join larger than this
+    bias_correction: bool = True  # with replacement: Abadie & Imbens (2011) regression correction
 
 
 @dataclass(frozen=True)

@@ -32,13 +32,15 @@ def run_demo_with(demo_dir, folder, matching):
 
 
 def test_quantile_bins_follow_numpy_order_statistics(demo_dir, tmp_path):
-    """Cut k = the order statistic at position floor((n-1) k / K) (numpy.sort); bin = number of cuts <= x."""
+    """Cut k = the order statistic at position floor((n-1) k / K) (numpy.sort); bin = number of cuts <= x
+    (both at 10 decimal places)."""
     K = 6
     results, rows = run_demo_with(demo_dir, tmp_path, {"on": ["pre_minutes", "age_band"], "coarsen": "quantiles", "coarsen_bins": K})
     values = np.sort(rows.pre_minutes.to_numpy())
     n = len(values)
     cuts = [values[int(math.floor((n - 1) * k / K))] for k in range(1, K)]
-    expected = np.searchsorted(np.array(cuts), rows.pre_minutes.to_numpy(), side="right")
+    # compared at 10 decimal places, as the SQL does (a value equal to a cut in its first 10 decimals is at the cut)
+    expected = np.searchsorted(np.round(np.array(cuts), 10), np.round(rows.pre_minutes.to_numpy(), 10), side="right")
     np.testing.assert_array_equal(rows.bin.to_numpy(), expected)
     assert results.matching.n_treated_matched > 0
 
@@ -79,3 +81,74 @@ def test_nsw_coarsened_exact_matching(tmp_path):
     assert low <= effect.estimate <= high
     assert not low <= effect.naive.estimate <= high
     assert results.imbalance["l1_after"] < results.imbalance["l1_before"]
+
+
+def test_a_value_at_a_cut_point_by_its_decimal_value(demo_dir, tmp_path):
+    """Cut points compare values at 10 decimal places: a spend of 600.00 held as the floating-point
+    sum 599.9999999999999 falls on the 600 side of a cut at 600, as its decimal value does, while
+    599.99 stays below. (Plain arithmetic: 599.9999999999999 < 600 in IEEE doubles.)"""
+    shutil.copyfile(demo_dir / "bikeshare.duckdb", tmp_path / "bikeshare.duckdb")
+    with duckdb.connect(str(tmp_path / "bikeshare.duckdb")) as con:
+        con.execute("ALTER TABLE riders ADD COLUMN spend DOUBLE")
+        # every third rider at each of the three values, so every cell holds both groups
+        con.execute("UPDATE riders SET spend = CASE rider_id % 3 WHEN 0 THEN 599.9999999999999 WHEN 1 THEN 600.0 ELSE 599.99 END")
+    assert 599.9999999999999 < 600.0
+    raw = tomllib.loads(DEMO_SPEC.read_text())
+    raw["study"]["database"] = str(tmp_path / "bikeshare.duckdb")
+    raw["features"].append({"name": "spend", "aggregate": "attribute", "attribute": "spend"})
+    raw["matching"] = {"method": "coarsened_exact", "on": ["spend"], "cut_points": {"spend": [600]}}
+    api.run(parse_spec(raw))
+    with duckdb.connect(str(tmp_path / "bikeshare.duckdb"), read_only=True) as con:
+        strata = dict(con.execute("SELECT unit_key % 3, COUNT(DISTINCT match__stratum) FROM sqlmatch.annual_pass_weighted_units GROUP BY 1").fetchall())
+        same = con.execute(
+            "SELECT COUNT(DISTINCT match__stratum) FROM sqlmatch.annual_pass_weighted_units WHERE unit_key % 3 IN (0, 1)"
+        ).fetchone()[0]
+        apart = con.execute(
+            "SELECT COUNT(DISTINCT match__stratum) FROM sqlmatch.annual_pass_weighted_units WHERE unit_key % 3 IN (1, 2)"
+        ).fetchone()[0]
+    assert strata == {0: 1, 1: 1, 2: 1}
+    assert same == 1  # 599.9999999999999 with 600.0
+    assert apart == 2  # 599.99 in the stratum below
+
+
+def _demo_run(demo_dir, folder, matching=None):
+    shutil.copyfile(demo_dir / "bikeshare.duckdb", folder / "bikeshare.duckdb")
+    raw = tomllib.loads(DEMO_SPEC.read_text())
+    raw["study"]["database"] = str(folder / "bikeshare.duckdb")
+    if matching is not None:
+        raw["matching"] = matching
+    return api.run(parse_spec(raw))
+
+
+def test_a_matched_feature_left_imbalanced_is_a_warning(demo_dir, tmp_path):
+    """Two wide bins on pre_trips leave the groups apart on it after matching (|SMD| > 0.1, common
+    practice, Austin 2009): a warning names it with its SMD; the demo's fine cut points leave none."""
+    coarse = _demo_run(demo_dir, tmp_path, {"on": ["pre_trips", "age_band"], "cut_points": {"pre_trips": [1, 60]}})
+    b = next(b for b in coarse.balance if b.covariate == "pre_trips")
+    assert abs(b.smd_after) > 0.1
+    hits = [w for w in coarse.warnings if "still differ" in w]
+    assert len(hits) == 1 and f"pre_trips ({b.smd_after:+.2f})" in hits[0] and "finer cut points" in hits[0]
+    fine = _demo_run(demo_dir, tmp_path)
+    on = tomllib.loads(DEMO_SPEC.read_text())["matching"]["on"]
+    assert all(abs(b.smd_after) <= 0.1 for b in fine.balance if b.covariate.split("=")[0] in on)
+    assert not [w for w in fine.warnings if "still differ" in w]
+
+
+def test_automatic_coarsening_matches_0_1_features_exactly(tmp_path):
+    """NSW (Dehejia & Wahba 1999 data): under equal-count (quartile) cuts a rare 0/1 attribute's
+    cuts all fall at 0, which would put its 1s in the 0s' bin; a feature with no more distinct
+    values than bins is matched exactly instead, so after matching every 0/1 attribute has the
+    same share in both groups (SMD 0 up to rounding), checked on the rows."""
+    db = tmp_path / "nsw.duckdb"
+    load_nsw(str(db))
+    on = ["age", "educ", "black", "hisp", "marr", "nodegree", "re74", "re75"]
+    results = api.run(parse_spec(nsw_spec(str(db), "coarsened_exact", on=on, coarsen="quantiles", coarsen_bins=4)))
+    smd = {b.covariate: b.smd_after for b in results.balance}
+    for f in ("black", "hisp", "marr", "nodegree"):
+        assert abs(smd[f]) < 1e-9, (f, smd[f])
+    with duckdb.connect(str(db), read_only=True) as con:
+        mixed = con.execute(
+            "SELECT COUNT(*) FROM (SELECT match__stratum FROM sqlmatch.nsw_weighted_units WHERE match__stratum IS NOT NULL "
+            "GROUP BY match__stratum HAVING COUNT(DISTINCT black) > 1 OR COUNT(DISTINCT hisp) > 1) AS s"
+        ).fetchone()[0]
+    assert mixed == 0

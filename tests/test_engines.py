@@ -203,6 +203,26 @@ def test_postgres_runs_the_extended_study_with_duckdbs_numbers(postgres, demo_db
     assert_same_numbers(got, want)
 
 
+def test_postgres_runs_nearest_neighbour_with_duckdbs_numbers(postgres, demo_db):
+    """Nearest neighbours with replacement, Abadie-Imbens variance included (its window functions
+    over the score order): the same numbers on PostgreSQL as on DuckDB."""
+    engine, tag = postgres
+    with DuckDBEngine(demo_db) as duck:
+        want = _comparable(api.run(demo_spec("main", "sqlmatch_duckdb_nn").with_overrides(method="nearest_neighbour"), engine=duck))
+    assert "Abadie-Imbens" in want["effects"][0]["estimator"]
+    got = api.run(demo_spec(tag, f"{tag}_work").with_overrides(method="nearest_neighbour"), engine=engine, keep_tables=False)
+    assert_same_numbers(_comparable(got), want)
+
+
+def test_postgres_runs_score_subclasses_chosen_from_the_data_with_duckdbs_numbers(postgres, demo_db):
+    """score_bins at its default (subclasses split until balanced, window medians per round)."""
+    engine, tag = postgres
+    with DuckDBEngine(demo_db) as duck:
+        want = _comparable(api.run(demo_spec("main", "sqlmatch_duckdb_sb").with_overrides(method="score_bins"), engine=duck))
+    got = api.run(demo_spec(tag, f"{tag}_work").with_overrides(method="score_bins"), engine=engine, keep_tables=False)
+    assert_same_numbers(_comparable(got), want)
+
+
 def test_postgres_failed_run_drops_its_tables_and_the_connection_stays_usable(postgres):
     """A statement the engine refuses mid-run: the error is one line, the work tables are dropped
     (the connection must not be left in an aborted transaction for that) and the engine still works."""

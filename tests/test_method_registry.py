@@ -73,14 +73,13 @@ def test_options_of_several_methods_live_in_one_spec():
     assert (switched.matching.method, switched.matching.caliper, switched.matching.ratio) == ("nearest_neighbour", 0.1, 2)
 
 
-def test_a_check_only_for_the_chosen_method():
-    # numeric features without cut points matter to coarsened_exact only
+def test_numeric_features_without_cut_points_get_computed_ones():
+    # no cut points and no rule: equal-count cuts computed in the warehouse (10 bins), not an error
     raw = demo()
     raw["matching"].pop("cut_points", None)
     raw["matching"].pop("coarsen", None)
-    with pytest.raises(SpecError) as err:
-        parse_spec(raw)
-    assert err.value.key.startswith("matching.cut_points.")
+    spec = parse_spec(raw)
+    assert (spec.matching.coarsen, spec.matching.coarsen_bins, spec.matching.cut_points) == ("quantiles", 10, {})
     raw["matching"]["method"] = "score_bins"
     assert parse_spec(raw).matching.method == "score_bins"
 

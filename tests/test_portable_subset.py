@@ -40,6 +40,8 @@ def demo_plans():
         levels={},
     )
     plans["score_bins"] = build_plan(parse_spec(scored), "duckdb", model=model)
+    blocks = dict(raw, matching={"method": "score_bins", "exact": ["age_band"]})  # subclasses chosen from the data
+    plans["score_bins_auto"] = build_plan(parse_spec(blocks), "duckdb", model=model)
     for distance in ("logit", "mahalanobis", "robust_mahalanobis"):
         nearest = dict(raw, matching={"method": "nearest_neighbour", "distance": distance, "exact": ["age_band"]})
         plans[f"nearest_{distance}"] = build_plan(parse_spec(nearest), "duckdb", model=model)

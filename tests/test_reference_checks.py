@@ -34,16 +34,25 @@ def study(demo_dir, tmp_path_factory):
     return spec, results, rows
 
 
-def austin_smd(x1, x0, w1=None, w0=None, binary=False):
+def austin_smd(x1, x0, w1=None, w0=None, binary=False, scale=None):
     """Austin (2009, Stat Med 28:3083): pooled-SD standardized difference; weighted variances are the
-    reliability-weight unbiased form, numpy.cov(aweights=...)."""
+    reliability-weight unbiased form, numpy.cov(aweights=...). `scale`: the denominator to use
+    instead, after matching the pooled SD before matching (Stuart 2010, Stat Sci 25:1, recalled)."""
     m1, m0 = np.average(x1, weights=w1), np.average(x0, weights=w0)
     if binary:
         v1, v0 = m1 * (1 - m1), m0 * (1 - m0)
     else:
         v1 = float(np.cov(x1, aweights=w1)) if w1 is not None else np.var(x1, ddof=1)
         v0 = float(np.cov(x0, aweights=w0)) if w0 is not None else np.var(x0, ddof=1)
-    return (m1 - m0) / np.sqrt((v1 + v0) / 2), v1 / v0
+    sd = np.sqrt((v1 + v0) / 2) if scale is None else scale
+    return (m1 - m0) / sd, v1 / v0
+
+
+def pooled_sd(x1, x0, binary=False):
+    if binary:
+        p1, p0 = np.mean(x1), np.mean(x0)
+        return np.sqrt((p1 * (1 - p1) + p0 * (1 - p0)) / 2)
+    return np.sqrt((np.var(x1, ddof=1) + np.var(x0, ddof=1)) / 2)
 
 
 def test_numeric_balance_equals_numpy(study):
@@ -56,7 +65,8 @@ def test_numeric_balance_equals_numpy(study):
         assert b.smd_before == pytest.approx(smd, rel=1e-9, abs=1e-12)
         assert b.variance_ratio_before == pytest.approx(vr, rel=1e-9)
         mt, mc = matched[matched.treated == 1], matched[matched.treated == 0]
-        smd_w, vr_w = austin_smd(mt[f.name].to_numpy(), mc[f.name].to_numpy(), mt.weight.to_numpy(), mc.weight.to_numpy())
+        before_sd = pooled_sd(t.to_numpy(), c.to_numpy())
+        smd_w, vr_w = austin_smd(mt[f.name].to_numpy(), mc[f.name].to_numpy(), mt.weight.to_numpy(), mc.weight.to_numpy(), scale=before_sd)
         assert b.smd_after == pytest.approx(smd_w, rel=1e-9, abs=1e-12)
         assert b.variance_ratio_after == pytest.approx(vr_w, rel=1e-9)
 
@@ -77,6 +87,7 @@ def test_categorical_levels_use_the_binary_form(study):
                 matched.weight[matched.treated == 1].to_numpy(),
                 matched.weight[matched.treated == 0].to_numpy(),
                 binary=True,
+                scale=pooled_sd(ind[rows.treated == 1].to_numpy(), ind[rows.treated == 0].to_numpy(), binary=True),
             )
             assert b.smd_after == pytest.approx(smd_w, rel=1e-9, abs=1e-12)
 

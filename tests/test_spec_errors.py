@@ -106,7 +106,6 @@ CASES = [
     ("filter on a missing column", ["eligibility", "filters"], ["joined < DATE '2025-01-01'"], "eligibility.filters[0]", "use one of its columns"),
     ("empty cohort", ["treatment", "cohort"], "2030-01", "treatment.cohort", "cohort is empty"),
     ("no eligible controls", ["eligibility", "filters"], ["pass_bought_on < DATE '2026-04-01'"], "treatment.control_pool", "no eligible control"),
-    ("cut points missing for a numeric feature", ["matching", "on"], ["pre_minutes"], "matching.cut_points.pre_minutes", "add pre_minutes"),
     ("cut points not increasing", ["matching", "cut_points", "pre_trips"], [5, 3], "matching.cut_points.pre_trips", "strictly increasing"),
     ("bad feature name", ["features", 0, "name"], "Pre Trips", "features[0].name", "lower-case"),
 ]

@@ -1,9 +1,12 @@
 """Coarsened exact matching (Iacus, King & Porro 2012, Political Analysis 20:1).
 
 Numeric features are cut into bins, categorical features are kept exact; units sharing every
-bin form a cell (see strata.py for strata and weights). Cut points come from the spec, or are
-computed in the warehouse when `matching.coarsen` is set: "quantiles" (equal-count bins) or
-"sturges" (equal-width bins, ceil(log2 n + 1) of them; Sturges 1926, JASA 21:65).
+bin form a cell (see strata.py for strata and weights). Cut points come from the spec, or, for a
+numeric feature without them, are computed in the warehouse by `matching.coarsen`: "quantiles"
+(the default: `coarsen_bins` equal-count bins, 10 by default, where Cochran's 1968 table, recalled,
+puts the bias removed near 96% against 90% for 5) or "sturges" (equal-width bins,
+ceil(log2 n + 1) of them; Sturges 1926, JASA 21:65). A feature with no more distinct values than
+bins (a 0/1 feature above all) is matched exactly by either rule.
 """
 
 from __future__ import annotations
@@ -16,6 +19,7 @@ from sqlmatch.spec_values import read_int
 from sqlmatch.matching.strata import Axis, strata_steps
 
 COARSEN_RULES = ("quantiles", "sturges")
+DEFAULT_BINS = 10  # equal-count bins per numeric feature without cut points
 OPTION_KEYS = ("cut_points", "coarsen", "coarsen_bins")
 
 DESCRIPTION = "coarsened exact matching: strata from cut points (given, or quantile/Sturges bins computed in SQL) and exact categorical levels"
@@ -89,16 +93,10 @@ def read_options(table: dict, given: OptionInput) -> dict:
     coarsen = table.get("coarsen")
     if coarsen is not None and coarsen not in COARSEN_RULES:
         raise SpecError("matching.coarsen", f"must be one of {', '.join(COARSEN_RULES)}; got {coarsen!r}.")
-    coarsen_bins = read_int(table, "matching", "coarsen_bins", default=5, low=2, high=100)
-    if given.chosen and coarsen is None:
-        categorical = {f.name for f in given.features if f.categorical}
-        for n in given.on:
-            if n not in categorical and n not in cut_points:
-                raise SpecError(
-                    f"matching.cut_points.{n}",
-                    f"numeric feature {n!r} has no cut points for coarsened exact matching.",
-                    f"add {n} = [..] under [matching.cut_points], set matching.coarsen = \"quantiles\" or \"sturges\", or leave it out of matching.on.",
-                )
+    coarsen_bins = read_int(table, "matching", "coarsen_bins", default=DEFAULT_BINS, low=2, high=100)
+    if coarsen is None:
+        # a numeric feature without cut points gets equal-count cuts computed in the warehouse
+        coarsen = "quantiles"
     return {"cut_points": cut_points, "coarsen": coarsen, "coarsen_bins": coarsen_bins}
 
 

@@ -46,6 +46,12 @@ several treated units has several rows and the stratified estimator equals the m
 estimator. Strata group the treated units by their number of controls (1..k); the plan's
 weighted_units step sums each unit's weights for balance and plots.
 
+Variance and bias correction (with replacement; nn_variance.py, run after <study>_weighted_units
+exists): the Abadie & Imbens (2006) variance, which counts how often each control is used, and
+with `matching.bias_correction` (default) the Abadie & Imbens (2011) regression correction; both
+from per-group sums in SQL (estimators/matching_variance.py). Without replacement the 1:1 pairs
+get the paired-difference interval.
+
 Guard. Before the candidate join one aggregate query counts the pairs the join will compare
 (from block counts) and the treated units with a control within the caliper; the runner refuses
 when the pairs exceed `matching.max_candidate_pairs` or when no treated unit can be matched.
@@ -56,6 +62,7 @@ from __future__ import annotations
 import math
 
 from sqlmatch.errors import DataError, SpecError
+from sqlmatch.matching import nn_variance
 from sqlmatch.matching.base import MatchingMethod, OptionInput
 from sqlmatch.spec_values import read_bool, read_choice, read_int
 
@@ -305,15 +312,14 @@ def check_candidates(spec, result) -> None:
 
 
 def warnings(spec, results) -> list[str]:
-    """With replacement, say how often controls were reused: the variance treats each use as a new control."""
+    """With replacement, say how often controls were reused and that the variance counts it."""
     if not spec.matching.replacement or "matching_summary" not in results:
         return []
     m = results["matching_summary"].one()
     return [
         f"Nearest-neighbour matching with replacement used {int(m['n_control_matched'] or 0):,} distinct controls for "
-        f"{int(m['n_treated_matched'] or 0):,} matched enrolled units. The standard errors treat a reused control as if it "
-        "were a new one, so they are too small when controls are reused often (Abadie & Imbens 2006 give a variance "
-        "that accounts for reuse); read the intervals as too narrow, or match without replacement."
+        f"{int(m['n_treated_matched'] or 0):,} matched enrolled units. The standard errors are Abadie & Imbens's (2006), "
+        "which weight each control by how often it is used; the fewer distinct controls, the wider the intervals."
     ]
 
 
@@ -321,7 +327,7 @@ DISTANCES = ("logit", "mahalanobis", "robust_mahalanobis")
 
 
 def read_options(table: dict, given: OptionInput) -> dict:
-    """matching.distance / caliper / ratio / replacement / max_candidate_pairs."""
+    """matching.distance / caliper / ratio / replacement / max_candidate_pairs / bias_correction."""
     distance = read_choice(table, "matching", "distance", DISTANCES, default="logit")
     caliper = table.get("caliper", 0.2)
     if isinstance(caliper, bool) or not isinstance(caliper, (int, float)) or not 0.0001 <= caliper <= 10:
@@ -335,7 +341,11 @@ def read_options(table: dict, given: OptionInput) -> dict:
     if not replacement and ratio != 1:
         raise SpecError("matching.ratio", f"must be 1 when matching.replacement = false, got {ratio}.", "set ratio = 1, or replacement = true for k:1 matching.")
     max_pairs = read_int(table, "matching", "max_candidate_pairs", default=50_000_000, low=1, high=10**12)
-    return {"distance": distance, "caliper": float(caliper), "ratio": ratio, "replacement": replacement, "max_candidate_pairs": max_pairs}
+    bias_correction = read_bool(table, "matching", "bias_correction", default=True)
+    return {
+        "distance": distance, "caliper": float(caliper), "ratio": ratio, "replacement": replacement, "max_candidate_pairs": max_pairs,
+        "bias_correction": bias_correction,
+    }
 
 
 METHOD = MatchingMethod(
@@ -344,9 +354,10 @@ METHOD = MatchingMethod(
     steps=steps,
     uses_score=True,
     loosen="a wider matching.caliper or fewer exact features (matching.exact)",
-    option_keys=("distance", "caliper", "ratio", "replacement", "max_candidate_pairs"),
+    option_keys=("distance", "caliper", "ratio", "replacement", "max_candidate_pairs", "bias_correction"),
     read_options=read_options,
     checks={"candidate_pairs": check_candidates},
     warnings=warnings,
     groups_word="matched sets",
+    outcome_steps=nn_variance.steps,
 )

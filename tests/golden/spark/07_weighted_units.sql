@@ -54,41 +54,41 @@ LEFT JOIN `sqlmatch`.annual_pass_cells AS s
   ON s.pre_trips__bin = CASE
     WHEN m.pre_trips IS NULL
     THEN -1
-    WHEN m.pre_trips < 1.0
+    WHEN CAST(m.pre_trips AS DECIMAL(38, 10)) < CAST(1.0 AS DECIMAL(38, 10))
     THEN 0
-    WHEN m.pre_trips < 2.0
+    WHEN CAST(m.pre_trips AS DECIMAL(38, 10)) < CAST(2.0 AS DECIMAL(38, 10))
     THEN 1
-    WHEN m.pre_trips < 3.0
+    WHEN CAST(m.pre_trips AS DECIMAL(38, 10)) < CAST(3.0 AS DECIMAL(38, 10))
     THEN 2
-    WHEN m.pre_trips < 4.0
+    WHEN CAST(m.pre_trips AS DECIMAL(38, 10)) < CAST(4.0 AS DECIMAL(38, 10))
     THEN 3
-    WHEN m.pre_trips < 5.0
+    WHEN CAST(m.pre_trips AS DECIMAL(38, 10)) < CAST(5.0 AS DECIMAL(38, 10))
     THEN 4
-    WHEN m.pre_trips < 6.0
+    WHEN CAST(m.pre_trips AS DECIMAL(38, 10)) < CAST(6.0 AS DECIMAL(38, 10))
     THEN 5
-    WHEN m.pre_trips < 7.0
+    WHEN CAST(m.pre_trips AS DECIMAL(38, 10)) < CAST(7.0 AS DECIMAL(38, 10))
     THEN 6
-    WHEN m.pre_trips < 8.0
+    WHEN CAST(m.pre_trips AS DECIMAL(38, 10)) < CAST(8.0 AS DECIMAL(38, 10))
     THEN 7
-    WHEN m.pre_trips < 9.0
+    WHEN CAST(m.pre_trips AS DECIMAL(38, 10)) < CAST(9.0 AS DECIMAL(38, 10))
     THEN 8
-    WHEN m.pre_trips < 10.0
+    WHEN CAST(m.pre_trips AS DECIMAL(38, 10)) < CAST(10.0 AS DECIMAL(38, 10))
     THEN 9
-    WHEN m.pre_trips < 12.0
+    WHEN CAST(m.pre_trips AS DECIMAL(38, 10)) < CAST(12.0 AS DECIMAL(38, 10))
     THEN 10
-    WHEN m.pre_trips < 14.0
+    WHEN CAST(m.pre_trips AS DECIMAL(38, 10)) < CAST(14.0 AS DECIMAL(38, 10))
     THEN 11
-    WHEN m.pre_trips < 16.0
+    WHEN CAST(m.pre_trips AS DECIMAL(38, 10)) < CAST(16.0 AS DECIMAL(38, 10))
     THEN 12
-    WHEN m.pre_trips < 18.0
+    WHEN CAST(m.pre_trips AS DECIMAL(38, 10)) < CAST(18.0 AS DECIMAL(38, 10))
     THEN 13
-    WHEN m.pre_trips < 21.0
+    WHEN CAST(m.pre_trips AS DECIMAL(38, 10)) < CAST(21.0 AS DECIMAL(38, 10))
     THEN 14
-    WHEN m.pre_trips < 25.0
+    WHEN CAST(m.pre_trips AS DECIMAL(38, 10)) < CAST(25.0 AS DECIMAL(38, 10))
     THEN 15
-    WHEN m.pre_trips < 30.0
+    WHEN CAST(m.pre_trips AS DECIMAL(38, 10)) < CAST(30.0 AS DECIMAL(38, 10))
     THEN 16
-    WHEN m.pre_trips < 40.0
+    WHEN CAST(m.pre_trips AS DECIMAL(38, 10)) < CAST(40.0 AS DECIMAL(38, 10))
     THEN 17
     ELSE 18
   END

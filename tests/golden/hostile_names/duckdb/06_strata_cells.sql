@@ -16,11 +16,11 @@ WITH coarsened AS (
     CASE
       WHEN m.pre_trips IS NULL
       THEN -1
-      WHEN m.pre_trips < 1.0
+      WHEN CAST(m.pre_trips AS DECIMAL(38, 10)) < CAST(1.0 AS DECIMAL(38, 10))
       THEN 0
-      WHEN m.pre_trips < 5.0
+      WHEN CAST(m.pre_trips AS DECIMAL(38, 10)) < CAST(5.0 AS DECIMAL(38, 10))
       THEN 1
-      WHEN m.pre_trips < 10.0
+      WHEN CAST(m.pre_trips AS DECIMAL(38, 10)) < CAST(10.0 AS DECIMAL(38, 10))
       THEN 2
       ELSE 3
     END AS pre_trips__bin,

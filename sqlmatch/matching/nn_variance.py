@@ -1,0 +1,118 @@
+"""Nearest-neighbour matching with replacement: the plan step whose sums give the Abadie & Imbens
+(2006, Econometrica 74(1):235) variance of the effect on the treated, which counts how often each
+control is used (see sql_templates/nearest_neighbour_variance.sql.j2 and
+estimators/matching_variance.py). It reads only <study>_scores and <study>_weighted_units, so it
+does not depend on how the matches were found."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+STEP = "matching_variance"
+BIAS_STEP = "bias_sums"
+
+
+@dataclass(frozen=True)
+class Variable:
+    """A per-unit quantity whose neighbour difference the step takes: a column, or column - minus."""
+
+    column: str
+    minus: str | None = None
+
+
+@dataclass(frozen=True)
+class Product:
+    """Sums of d_a d_b / 2 over units, named p<a>_<b>__w2_dd and p<a>_<b>__dd (a <= b: 1-based variable numbers)."""
+
+    a: int
+    b: int
+
+    @property
+    def key(self) -> str:
+        return product_key(self.a, self.b)
+
+
+def product_key(a: int, b: int) -> str:
+    return f"p{min(a, b)}_{max(a, b)}"
+
+
+def variable_numbers(outcomes) -> dict[str, int]:
+    """The 1-based number of each outcome quantity in variables(): `<outcome>` (continuous,
+    binary), `<outcome>__did`, `<outcome>__num` and `<outcome>__den` (ratio)."""
+    out, k = {}, 0
+    for o in outcomes:
+        keys = [f"{o.name}__num", f"{o.name}__den"] if o.kind == "ratio" else [o.name] + ([f"{o.name}__did"] if o.twin else [])
+        for key in keys:
+            k += 1
+            out[key] = k
+    return out
+
+
+def variables(outcomes, features=()) -> tuple[list[Variable], list[Product]]:
+    """The outcome quantities (variable_numbers' order: an outcome's column, outcome - twin for the
+    difference-in-differences, a ratio's numerator and denominator), then the features; and the
+    products whose neighbour-difference sums the variance needs: each outcome quantity with itself,
+    a ratio's numerator with its denominator and, with features (the bias correction's), each
+    quantity with each feature and the features with each other, so the variance can be taken of
+    the regression residual (estimators/matching_variance.py)."""
+    vs: list[Variable] = []
+    ps: list[Product] = []
+    for o in outcomes:
+        if o.kind == "ratio":
+            vs += [Variable(o.num), Variable(o.den)]
+            a = len(vs) - 1
+            ps += [Product(a, a), Product(a, a + 1), Product(a + 1, a + 1)]
+        else:
+            vs.append(Variable(o.name))
+            ps.append(Product(len(vs), len(vs)))
+            if o.twin:
+                vs.append(Variable(o.name, o.twin))
+                ps.append(Product(len(vs), len(vs)))
+    n_out = len(vs)
+    vs += [Variable(f) for f in features]
+    xs = range(n_out + 1, len(vs) + 1)
+    ps += [Product(a, j) for a in range(1, n_out + 1) for j in xs] + [Product(j, k) for j in xs for k in xs if j <= k]
+    return vs, ps
+
+
+def bias_features(spec) -> list[str]:
+    """The covariates of the bias correction's regression: every numeric feature of the study (as
+    in the outcome regression), so features left out of the score still adjust the effect."""
+    return [f.name for f in spec.numeric_features]
+
+
+def steps(ctx, outcomes) -> list:
+    """The variance step, with replacement only: without replacement the 1:1 pairs get the paired
+    interval (every control is used at most once)."""
+    m = ctx.spec.matching
+    if not m.replacement:
+        return []
+    features = bias_features(ctx.spec) if m.bias_correction else []
+    vs, ps = variables(outcomes, features)
+    out = []
+    if features:
+        out.append(
+            ctx.query_step(
+                BIAS_STEP,
+                "nearest_neighbour_bias_sums",
+                reads=[ctx.display("weighted_units")],
+                purpose="Abadie-Imbens bias correction: weighted sums and cross-products of the features and outcomes per group among matched units.",
+                features=features,
+                variables=vs[: len(vs) - len(features)],
+                weighted_table=ctx.table("weighted_units"),
+            )
+        )
+    return out + [
+        ctx.query_step(
+            STEP,
+            "nearest_neighbour_variance",
+            reads=[ctx.display("scores"), ctx.display("weighted_units")],
+            purpose="Abadie-Imbens variance sums: squared matching weights (times each control is used) times conditional "
+            "variances estimated by matching each unit to its nearest unit of the same group.",
+            exact=list(m.exact),
+            variables=vs,
+            products=ps,
+            scores_table=ctx.table("scores"),
+            weighted_table=ctx.table("weighted_units"),
+        )
+    ]
