@@ -44,8 +44,10 @@ def study_results(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
     if "balance_levels" in r:
         balance += aggregates.level_balance(r["balance_levels"])
     numeric = [f.name for f in spec.numeric_features]
+    # score_weighting: the weighted effect and its sandwich variance replace the per-stratum one
+    weighting = (r["weighting_sandwich"].one(), spec.propensity.ridge) if "weighting_sandwich" in r else None
     effects = [
-        outcome_effect(o, r["outcome_strata"], r["outcome_unmatched"], r.get("outcome_regression"), numeric, spec.matching.method, r.get("pair_signed_rank"), spec.treatment_words)
+        outcome_effect(o, r["outcome_strata"], r["outcome_unmatched"], r.get("outcome_regression"), numeric, spec.matching.method, r.get("pair_signed_rank"), spec.treatment_words, weighting)
         for o in plan.outcomes
     ]
     l1 = r["imbalance_l1"].one()
@@ -77,7 +79,7 @@ def study_results(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
     )
 
 
-def outcome_effect(outcome, matched, unmatched, regression=None, features=(), method: str = "", pair_ranks=None, treatment_words: str = "enrolment") -> Effect:
+def outcome_effect(outcome, matched, unmatched, regression=None, features=(), method: str = "", pair_ranks=None, treatment_words: str = "enrolment", weighting=None) -> Effect:
     """One outcome's effect, relative lift, risk ratio (binary), difference-in-differences (an
     outcome with a pre-window twin) and sensitivity figures, all from aggregates."""
     rr = None
@@ -144,6 +146,8 @@ def outcome_effect(outcome, matched, unmatched, regression=None, features=(), me
             # applied to (outcome - twin), per-stratum sums from the outcome_strata query.
             did = stratified_att(*aggregates.outcome_moments(matched, outcome.name, "did"))
             extra.update(did_twin=outcome.twin, did=_interval(did.estimate, did.std_error, did.ci_low, did.ci_high))
+    if weighting is not None:
+        fields, extra, rr = _weighted_fields(outcome, fields, extra, *weighting)
     sensitivity = outcome_sensitivity(outcome, fields, rr, regression, list(features), method, pair_ranks, treatment_words)
     return Effect(
         outcome=outcome.name,
@@ -153,6 +157,39 @@ def outcome_effect(outcome, matched, unmatched, regression=None, features=(), me
         **extra,
         sensitivity=sensitivity,
     )
+
+
+def _weighted_fields(outcome, fields: dict, extra: dict, row: dict, ridge: float):
+    """Propensity-score weighting: the weighted difference (of means, or of ratios) with the
+    sandwich variance that counts the estimated score (estimators/weighting.py); the lift (and a
+    binary outcome's risk ratio) from the same covariance of the two weighted means."""
+    from types import SimpleNamespace
+
+    from sqlmatch.estimators.weighting import sums_from_row, weighted_effect
+
+    w = weighted_effect(sums_from_row(row, outcome.name), ridge)
+    what = "ratios" if outcome.kind == "ratio" else "means"
+    fields = dict(
+        fields,
+        estimator=f"odds-weighted difference in {what}, sandwich variance counting the estimated score" + (" (risk difference)" if outcome.kind == "binary" else ""),
+        estimate=w.estimate,
+        std_error=w.std_error,
+        ci_low=w.ci_low,
+        ci_high=w.ci_high,
+        mean_treated=w.mean_treated,
+        mean_control=w.mean_control,
+    )
+    ratio, ratio_se, lo, hi = w.ratio()
+    lift = _interval(ratio - 1.0, ratio_se, None if lo is None else lo - 1.0, None if hi is None else hi - 1.0)
+    extra = dict(extra, lift=lift)
+    rr = None
+    if outcome.kind == "binary":
+        rr = SimpleNamespace(estimate=ratio, std_error=ratio_se, ci_low=lo, ci_high=hi)
+        extra["risk_ratio"] = _interval(ratio, ratio_se, lo, hi)
+    if extra.get("did_twin"):
+        did = weighted_effect(sums_from_row(row, f"{outcome.name}__did"), ridge)
+        extra["did"] = _interval(did.estimate, did.std_error, did.ci_low, did.ci_high)
+    return fields, extra, rr
 
 
 def _interval(estimate, std_error, ci_low, ci_high) -> Interval:

@@ -1,0 +1,141 @@
+"""Weighted effect on the treated with a sandwich variance that counts the estimated propensity
+score (M-estimation; Lunceford & Davidian 2004, Statistics in Medicine 23:2937; Stefanski & Boos
+2002, The American Statistician 56:29, for the sandwich). Pure: sums in, numbers out.
+
+Parameters theta = (mu1, mu0, beta); per unit i (t treated, e = expit(x'beta), w the control's
+weight, a function of beta: exp(x'beta), or a constant where truncated), the stacked equations
+
+    psi_beta = (t - e) x                          (the logit model's score)
+    psi_1    = t (u - mu1 v)                      (the treated mean, or ratio when v is a denominator)
+    psi_0    = (1 - t) w (u - mu0 v)              (the weighted control mean)
+
+sum to zero at the estimate. With J = sum d psi / d theta' and B = sum psi psi',
+
+    V = J^-1 B J^-T,   J = [[-S1v, 0, 0], [0, -S0v, G'], [0, 0, -(H + ridge)]],
+    G = sum (1 - t) w dw (u - mu0 v) x  (dw = 1 where w = exp(x'beta), 0 where truncated),
+    H = sum e (1 - e) x x',
+
+and the effect mu1 - mu0 has variance V11 + V22 - 2 V12. A ridge penalty adds lam P to H (the fit's
+own Jacobian); B keeps the unpenalised per-unit scores.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+from sqlmatch import columns
+from sqlmatch.estimators.intervals import log_ratio_interval, normal_interval
+
+
+@dataclass(frozen=True)
+class GroupSums:
+    """One group's sums for one term: weights a (1 treated, w control), outcome u, denominator v."""
+
+    sum_av: float  # sum a v
+    sum_au: float  # sum a u
+    sum_aauu: float
+    sum_aauv: float
+    sum_aavv: float
+    ru: np.ndarray  # sum a (t - e) u x_j
+    rv: np.ndarray  # sum a (t - e) v x_j
+
+
+@dataclass(frozen=True)
+class WeightingSums:
+    treated: GroupSums
+    control: GroupSums
+    du: np.ndarray  # sum (1 - t) w dw u x_j
+    dv: np.ndarray  # sum (1 - t) w dw v x_j
+    information: np.ndarray  # sum e (1 - e) x x'
+    score_products: np.ndarray  # sum (t - e)^2 x x'
+
+
+@dataclass(frozen=True)
+class WeightedEffect:
+    estimate: float
+    std_error: float | None
+    ci_low: float | None
+    ci_high: float | None
+    mean_treated: float
+    mean_control: float
+    covariance: np.ndarray  # 2 x 2 of (mu1, mu0)
+
+    def ratio(self, level: float = 0.95):
+        """mu1 / mu0 with its delta-method interval on the log scale: (ratio, se of the ratio, low, high)."""
+        m1, m0 = self.mean_treated, self.mean_control
+        if not (m1 > 0 and m0 > 0):
+            return math.nan, None, None, None
+        c = self.covariance
+        var = c[0, 0] / m1**2 + c[1, 1] / m0**2 - 2 * c[0, 1] / (m1 * m0)
+        if not math.isfinite(var) or var < 0:
+            return m1 / m0, None, None, None
+        lo, hi = log_ratio_interval(m1 / m0, math.sqrt(var), level)
+        return m1 / m0, m1 / m0 * math.sqrt(var), lo, hi
+
+
+def sums_from_row(row: dict, key: str) -> WeightingSums:
+    """Unpack one term of the score_weighting_sandwich row (see columns.weighting)."""
+    p = 0
+    while columns.information(p, p) in row:
+        p += 1
+
+    def f(name):
+        x = row[name]
+        return 0.0 if x is None else float(x)
+
+    def group(g):
+        return GroupSums(
+            *(f(columns.weighting(key, g, w)) for w in ("v", "u", "uu", "uv", "vv")),
+            ru=np.array([f(columns.weighting(key, g, "ru", j)) for j in range(p)]),
+            rv=np.array([f(columns.weighting(key, g, "rv", j)) for j in range(p)]),
+        )
+
+    h, rr = np.empty((p, p)), np.empty((p, p))
+    for i, j in columns.upper_pairs(p):
+        h[i, j] = h[j, i] = f(columns.information(i, j))
+        rr[i, j] = rr[j, i] = f(columns.score_products(i, j))
+    return WeightingSums(
+        treated=group("t"),
+        control=group("c"),
+        du=np.array([f(columns.weighting(key, "c", "du", j)) for j in range(p)]),
+        dv=np.array([f(columns.weighting(key, "c", "dv", j)) for j in range(p)]),
+        information=h,
+        score_products=rr,
+    )
+
+
+def weighted_effect(s: WeightingSums, ridge: float = 0.0, level: float = 0.95) -> WeightedEffect:
+    """mu1 - mu0 and its sandwich variance (module docstring)."""
+    t, c = s.treated, s.control
+    nan = math.nan
+    if t.sum_av <= 0 or c.sum_av <= 0:
+        return WeightedEffect(nan, None, None, None, nan, nan, np.full((2, 2), nan))
+    mu1, mu0 = t.sum_au / t.sum_av, c.sum_au / c.sum_av
+    p = len(s.du)
+    penalty = np.eye(p) * ridge
+    if p:
+        penalty[0, 0] = 0.0  # intercept not penalised, as in the fit
+    k = 2 + p
+    jac = np.zeros((k, k))
+    jac[0, 0] = -t.sum_av
+    jac[1, 1] = -c.sum_av
+    jac[1, 2:] = s.du - mu0 * s.dv
+    jac[2:, 2:] = -(s.information + penalty)
+    meat = np.zeros((k, k))
+    meat[0, 0] = t.sum_aauu - 2 * mu1 * t.sum_aauv + mu1**2 * t.sum_aavv
+    meat[1, 1] = c.sum_aauu - 2 * mu0 * c.sum_aauv + mu0**2 * c.sum_aavv
+    meat[0, 2:] = meat[2:, 0] = t.ru - mu1 * t.rv
+    meat[1, 2:] = meat[2:, 1] = c.ru - mu0 * c.rv
+    meat[2:, 2:] = s.score_products
+    try:
+        bread = np.linalg.inv(jac)
+    except np.linalg.LinAlgError:
+        return WeightedEffect(mu1 - mu0, None, None, None, mu1, mu0, np.full((2, 2), nan))
+    cov = (bread @ meat @ bread.T)[:2, :2]
+    var = cov[0, 0] + cov[1, 1] - 2 * cov[0, 1]
+    se = math.sqrt(var) if math.isfinite(var) and var >= 0 else None
+    lo, hi = normal_interval(mu1 - mu0, se, level)
+    return WeightedEffect(mu1 - mu0, se, lo, hi, mu1, mu0, cov)
