@@ -39,6 +39,7 @@ def study_results(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
         strata_dropped=int(summary["n_cells_dropped"]),
         n_treated_outside_support=sizes.get(1, 0) - in_cells_t,
         n_control_outside_support=sizes.get(0, 0) - in_cells_c,
+        effective_controls=_kish(summary),
     )
     balance = aggregates.numeric_balance(r["balance_numeric"], [f.name for f in spec.numeric_features])
     if "balance_levels" in r:
@@ -157,6 +158,14 @@ def outcome_effect(outcome, matched, unmatched, regression=None, features=(), me
         **extra,
         sensitivity=sensitivity,
     )
+
+
+def _kish(summary: dict) -> float | None:
+    """Kish's effective number of controls, from a summary that returns their weights' sum and sum
+    of squares (score_weighting's)."""
+    from sqlmatch.estimators.weighting import kish_effective_size
+
+    return kish_effective_size(summary.get("control_weight_sum"), summary.get("control_weight_sumsq"))
 
 
 def _weighted_fields(outcome, fields: dict, extra: dict, row: dict, ridge: float):

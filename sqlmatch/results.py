@@ -104,6 +104,8 @@ class MatchingSummary:
     strata_dropped: int
     n_treated_outside_support: int = 0
     n_control_outside_support: int = 0
+    # weighting methods: Kish's effective number of weighted controls, (sum w)^2 / sum w^2
+    effective_controls: float | None = None
 
 
 @dataclass

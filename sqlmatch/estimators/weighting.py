@@ -76,6 +76,14 @@ class WeightedEffect:
         return m1 / m0, m1 / m0 * math.sqrt(var), lo, hi
 
 
+def kish_effective_size(sum_w, sum_w2) -> float | None:
+    """Kish's effective sample size (sum w)^2 / sum w^2 (Kish 1965, Survey Sampling): how many
+    unweighted units the weighted ones are worth for a mean's variance."""
+    if sum_w is None or not sum_w2:
+        return None
+    return float(sum_w) ** 2 / float(sum_w2)
+
+
 def sums_from_row(row: dict, key: str) -> WeightingSums:
     """Unpack one term of the score_weighting_sandwich row (see columns.weighting)."""
     p = 0

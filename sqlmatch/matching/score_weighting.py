@@ -137,20 +137,14 @@ def read_options(table: dict, given: OptionInput) -> dict:
     return {"score_margin": margin or 0.0, "weight_cap_quantile": cap}
 
 
-def effective_controls(summary: dict) -> float | None:
-    """Kish's effective sample size of the weighted controls, (sum w)^2 / sum w^2."""
-    s, s2 = summary.get("control_weight_sum"), summary.get("control_weight_sumsq")
-    if s is None or not s2:
-        return None
-    return float(s) ** 2 / float(s2)
-
-
 def warnings(spec, results) -> list[str]:
     """Say when a few controls carry most of the weight."""
     if "matching_summary" not in results:
         return []
+    from sqlmatch.estimators.weighting import kish_effective_size
+
     row = results["matching_summary"].one()
-    ess, n = effective_controls(row), int(row.get("n_control_matched") or 0)
+    ess, n = kish_effective_size(row.get("control_weight_sum"), row.get("control_weight_sumsq")), int(row.get("n_control_matched") or 0)
     if ess is None or n == 0 or ess >= 0.1 * n:  # a tenth: a threshold of ours
         return []
     return [

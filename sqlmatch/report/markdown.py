@@ -110,6 +110,17 @@ def _sensitivity_section(r: StudyResults) -> list[str]:
     return lines
 
 
+def _groups_line(m, flow: dict) -> str:
+    """What the method built: strata (or matched sets), or for weighting the controls' effective number."""
+    if m.effective_controls is not None:
+        # the count as the sample table shows it: withheld there, withheld here
+        return (
+            f"Weighted comparison (one group, no strata): the {flow['control']['matched']} weighted non-enrolled units count as "
+            f"about {m.effective_controls:,.0f} unweighted ones (Kish's effective sample size, (sum w)² / sum w²)."
+        )
+    return f"Strata used: {m.strata:,}; cells dropped for lacking an enrolled or a non-enrolled unit: {m.strata_dropped:,}."
+
+
 def render_markdown(r: StudyResults, balance_image: str | None = None) -> str:
     """Markdown sized for a pull-request comment; `balance_image` names the balance plot written
     beside the report, if any."""
@@ -136,7 +147,7 @@ def render_markdown(r: StudyResults, balance_image: str | None = None) -> str:
         f"| dropped: no comparable unit in the stratum | {flow['treated']['no_comparable']} | {flow['control']['no_comparable']} |",
         *(["", f"Counts under {mc} are not shown, nor (–) a second count from which one could be worked out."] if _withheld(flow) else []),
         "",
-        f"Strata used: {m.strata:,}; cells dropped for lacking an enrolled or a non-enrolled unit: {m.strata_dropped:,}.",
+        _groups_line(m, flow),
         "",
         "## Effects on the enrolled",
         "",
