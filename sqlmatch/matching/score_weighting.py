@@ -61,13 +61,7 @@ def steps(ctx, model):
 
     spec = ctx.spec
     m = spec.matching
-    if spec.propensity.sample_controls < 1.0:
-        raise SpecError(
-            "propensity.sample_controls",
-            "score_weighting needs the propensity model fitted on every unit: its variance counts the fit's uncertainty, "
-            "which a fit on sampled controls changes.",
-            "remove propensity.sample_controls (or set it to 1) for score_weighting, or use another matching.method.",
-        )
+    check_full_fit(spec)
     margin_logit = None if m.score_margin == 0 else math.log((1.0 - m.score_margin) / m.score_margin)
     limits = dict(common_support=m.common_support, margin_logit=margin_logit, margin=m.score_margin, cap_quantile=m.weight_cap_quantile, clamp=ETA_CLAMP)
     cap_text = f", control weights truncated at their {m.weight_cap_quantile} quantile" if m.weight_cap_quantile is not None else ""
@@ -121,6 +115,18 @@ def steps(ctx, model):
     return out
 
 
+def check_full_fit(spec, result=None) -> None:
+    """Refuse a fit on sampled controls: the sandwich counts the uncertainty of a fit on every unit.
+    Also run on the first aggregate step (group_sizes), so a run stops before the pass over the events."""
+    if spec.propensity.sample_controls < 1.0:
+        raise SpecError(
+            "propensity.sample_controls",
+            "score_weighting needs the propensity model fitted on every unit: its variance counts the fit's uncertainty, "
+            "which a fit on sampled controls changes.",
+            "remove propensity.sample_controls (or set it to 1) for score_weighting, or use another matching.method.",
+        )
+
+
 def _read_share(table: dict, name: str, low: float, high: float, hint: str):
     value = table.get(name)
     if value is None:
@@ -162,6 +168,7 @@ METHOD = MatchingMethod(
     loosen="matching.common_support = false, or a smaller matching.score_margin",
     option_keys=OPTION_KEYS,
     read_options=read_options,
+    checks={"group_sizes": check_full_fit},
     warnings=warnings,
     groups_word="weighted comparison",
 )
