@@ -22,6 +22,9 @@ from sqlmatch.sensitivity import e_value, e_value_continuous, plain_words, robus
 from sqlmatch.spec import Spec
 
 
+ESTIMANDS = {"enrolled": "ATT", "not_enrolled": "ATC", "everyone": "ATE"}  # matching.effect_for
+
+
 def study_results(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
     """Balance and effects from the aggregates of one run (pure: no database)."""
     r = output.results
@@ -39,7 +42,9 @@ def study_results(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
         strata_dropped=int(summary["n_cells_dropped"]),
         n_treated_outside_support=sizes.get(1, 0) - in_cells_t,
         n_control_outside_support=sizes.get(0, 0) - in_cells_c,
-        effective_controls=_kish(summary),
+        effective_controls=_kish(summary, "control"),
+        effective_treated=_kish(summary, "treated"),
+        estimand=ESTIMANDS[spec.matching.effect_for] if "weighting_sandwich" in r else "ATT",
     )
     balance = aggregates.numeric_balance(r["balance_numeric"], [f.name for f in spec.numeric_features])
     if "balance_levels" in r:
@@ -160,12 +165,12 @@ def outcome_effect(outcome, matched, unmatched, regression=None, features=(), me
     )
 
 
-def _kish(summary: dict) -> float | None:
-    """Kish's effective number of controls, from a summary that returns their weights' sum and sum
-    of squares (score_weighting's)."""
+def _kish(summary: dict, group: str) -> float | None:
+    """Kish's effective number of units of a group, from a summary that returns their weights' sum
+    and sum of squares (score_weighting's)."""
     from sqlmatch.estimators.weighting import kish_effective_size
 
-    return kish_effective_size(summary.get("control_weight_sum"), summary.get("control_weight_sumsq"))
+    return kish_effective_size(summary.get(f"{group}_weight_sum"), summary.get(f"{group}_weight_sumsq"))
 
 
 def _weighted_fields(outcome, fields: dict, extra: dict, row: dict, ridge: float):
@@ -180,7 +185,7 @@ def _weighted_fields(outcome, fields: dict, extra: dict, row: dict, ridge: float
     what = "ratios" if outcome.kind == "ratio" else "means"
     fields = dict(
         fields,
-        estimator=f"odds-weighted difference in {what}, sandwich variance counting the estimated score" + (" (risk difference)" if outcome.kind == "binary" else ""),
+        estimator=f"propensity-weighted difference in {what}, sandwich variance counting the estimated score" + (" (risk difference)" if outcome.kind == "binary" else ""),
         estimate=w.estimate,
         std_error=w.std_error,
         ci_low=w.ci_low,

@@ -104,8 +104,10 @@ class MatchingSummary:
     strata_dropped: int
     n_treated_outside_support: int = 0
     n_control_outside_support: int = 0
-    # weighting methods: Kish's effective number of weighted controls, (sum w)^2 / sum w^2
+    # weighting methods: Kish's effective numbers of weighted units, (sum w)^2 / sum w^2, per group
     effective_controls: float | None = None
+    effective_treated: float | None = None
+    estimand: str = "ATT"  # whom the effect is for: ATT (the enrolled), ATC (the not enrolled), ATE (everyone)
 
 
 @dataclass

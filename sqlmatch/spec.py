@@ -167,6 +167,7 @@ class Matching:
     replacement: bool = True  # a control may serve several treated units
     max_candidate_pairs: int = 50_000_000  # refuse a candidate join larger than this
     # score_weighting
+    effect_for: str = "enrolled"  # enrolled (ATT) | not_enrolled (ATC) | everyone (ATE)
     score_margin: float = 0.0  # leave out units whose score is outside [a, 1 - a]; 0: none
     weight_cap_quantile: float | None = None  # truncate control weights at this quantile of theirs
 

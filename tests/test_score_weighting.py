@@ -53,8 +53,19 @@ def design(rows, columns) -> np.ndarray:
     return np.column_stack(out)
 
 
-def numpy_weights(t, logit, common_support=True, margin=0.0, cap=None):
-    """Treated 1, control e / (1 - e) = exp(logit), inside the limits; NaN where not weighted."""
+def raw_weights(t, logit, effect_for="enrolled"):
+    """Published weights from the score e: ATT treated 1, control e / (1 - e); ATC treated
+    (1 - e) / e, control 1; ATE treated 1 / e, control 1 / (1 - e) (Imbens & Rubin 2015, ch. 12)."""
+    e = 1 / (1 + np.exp(-logit))
+    if effect_for == "enrolled":
+        return np.where(t == 1, 1.0, e / (1 - e))
+    if effect_for == "not_enrolled":
+        return np.where(t == 1, (1 - e) / e, 1.0)
+    return np.where(t == 1, 1 / e, 1 / (1 - e))
+
+
+def numpy_weights(t, logit, common_support=True, margin=0.0, cap=None, effect_for="enrolled"):
+    """The weights inside the limits (NaN where not weighted), and each group's cap."""
     keep = np.ones(len(t), dtype=bool)
     if common_support:
         low = max(logit[t == 1].min(), logit[t == 0].min())
@@ -63,26 +74,29 @@ def numpy_weights(t, logit, common_support=True, margin=0.0, cap=None):
     if margin:
         e = 1 / (1 + np.exp(-logit))
         keep &= (e >= margin) & (e <= 1 - margin)
-    odds = np.exp(logit)
-    limit = np.quantile(odds[keep & (t == 0)], cap) if cap is not None else np.inf  # numpy's default: linear
-    w = np.where(t == 1, 1.0, np.minimum(odds, limit))
-    return np.where(keep, w, np.nan), limit
+    raw = raw_weights(t, logit, effect_for)
+    # numpy.quantile's default (linear interpolation) within each group's weighted units
+    caps = {g: (np.quantile(raw[keep & (t == g)], cap) if cap is not None else np.inf) for g in (0, 1)}
+    w = np.minimum(raw, np.where(t == 1, caps[1], caps[0]))
+    return np.where(keep, w, np.nan), caps
 
 
-def numpy_sandwich(X, t, u, v, beta, keep, limit):
+def numpy_sandwich(X, t, u, v, beta, keep, caps, effect_for="enrolled"):
     """The published stacked estimating equations, per unit, and V = J^-1 B J^-T with J by central
     finite differences of the summed equations (not the closed form): the effect's SE."""
+    cap = np.where(t == 1, caps[1], caps[0])
+
+    def weights(b):
+        return np.where(keep, np.minimum(raw_weights(t, X @ b, effect_for), cap), 0.0)
+
     def psi(theta):
         mu1, mu0, b = theta[0], theta[1], theta[2:]
-        eta = X @ b
-        e = 1 / (1 + np.exp(-eta))
-        w = np.where(keep, np.minimum(np.exp(eta), limit), 0.0)
-        a1 = np.where(keep, t, 0.0)
-        return np.column_stack([a1 * (u - mu1 * v), (1 - t) * w * (u - mu0 * v), (t - e)[:, None] * X])
+        e = 1 / (1 + np.exp(-(X @ b)))
+        a = weights(b)
+        return np.column_stack([t * a * (u - mu1 * v), (1 - t) * a * (u - mu0 * v), (t - e)[:, None] * X])
 
-    w0 = np.where(keep, np.minimum(np.exp(X @ beta), limit), 0.0) * (1 - t)
-    a1 = np.where(keep, t, 0.0)
-    theta = np.concatenate([[np.sum(a1 * u) / np.sum(a1 * v), np.sum(w0 * u) / np.sum(w0 * v)], beta])
+    a = weights(beta)
+    theta = np.concatenate([[np.sum(t * a * u) / np.sum(t * a * v), np.sum((1 - t) * a * u) / np.sum((1 - t) * a * v)], beta])
     P = psi(theta)
     sd = X.std(axis=0)
     scale = np.concatenate([[1.0, 1.0], 1.0 / np.where(sd > 0, sd, 1.0)])  # a step of 1e-6 in x'b per column
@@ -98,6 +112,11 @@ def numpy_sandwich(X, t, u, v, beta, keep, limit):
     return theta[0] - theta[1], math.sqrt(V[0, 0] + V[1, 1] - 2 * V[0, 1]), P.sum(axis=0)
 
 
+def no_weight_at_a_cap(t, raw, keep, caps) -> bool:
+    """At a cap the weight has a kink, where finite differences average the one-sided derivatives."""
+    return all(not np.isfinite(caps[g]) or np.min(np.abs(raw[keep & (t == g)] / caps[g] - 1)) > 1e-4 or np.ptp(raw[keep & (t == g)]) == 0 for g in (0, 1))
+
+
 @pytest.mark.parametrize(
     "options",
     [
@@ -107,13 +126,17 @@ def numpy_sandwich(X, t, u, v, beta, keep, limit):
         # take the mean of the two one-sided derivatives, sqlmatch the untruncated one
         {"weight_cap_quantile": 0.987},
         {"score_margin": 0.001, "weight_cap_quantile": 0.953},
+        {"effect_for": "not_enrolled", "score_margin": 0.001},
+        {"effect_for": "everyone", "score_margin": 0.001},
+        {"effect_for": "everyone", "score_margin": 0.001, "weight_cap_quantile": 0.9713},
     ],
-    ids=["no_limits", "common_support", "cap", "margin_and_cap"],
+    ids=["no_limits", "common_support", "cap", "margin_and_cap", "atc", "ate", "ate_cap"],
 )
 def test_nsw_weights_effect_and_sandwich_equal_numpy(nsw_db, options):
     """NSW treated men vs CPS comparison men (Dehejia & Wahba 1999): the logit score refitted by
-    statsmodels on the rows, the odds weights, the weighted ATT on 1978 earnings and its sandwich SE
-    recomputed with numpy (finite-difference Jacobian) agree with sqlmatch's aggregates."""
+    statsmodels on the rows, the weights (odds weights for the ATT; ATC and ATE weights), the
+    weighted effect on 1978 earnings and its sandwich SE recomputed with numpy (finite-difference
+    Jacobian) agree with sqlmatch's aggregates."""
     spec = parse_spec(nsw_spec(nsw_db, "score_weighting", **options))
     out, results, rows = run_study(nsw_db, spec)
     X = design(rows, out.model.columns)
@@ -121,22 +144,24 @@ def test_nsw_weights_effect_and_sandwich_equal_numpy(nsw_db, options):
     fit = sm.Logit(t, X).fit(disp=0, tol=1e-12, maxiter=200)
     np.testing.assert_allclose(out.model.coefficients, fit.params, rtol=1e-6)
     logit = X @ fit.params
-    w, limit = numpy_weights(t, logit, options.get("common_support", True), options.get("score_margin", 0.0), options.get("weight_cap_quantile"))
+    effect_for = options.get("effect_for", "enrolled")
+    w, caps = numpy_weights(t, logit, options.get("common_support", True), options.get("score_margin", 0.0), options.get("weight_cap_quantile"), effect_for)
     got = rows.match__weight.to_numpy(dtype=float)
     np.testing.assert_array_equal(np.isnan(got), np.isnan(w))
     np.testing.assert_allclose(got[~np.isnan(w)], w[~np.isnan(w)], rtol=1e-9)
     keep = ~np.isnan(w)
-    if np.isfinite(limit):
-        assert np.min(np.abs(np.exp(logit[keep & (t == 0)]) / limit - 1)) > 1e-4
+    assert no_weight_at_a_cap(t, raw_weights(t, logit, effect_for), keep, caps)
     y = rows.earnings_after.to_numpy(dtype=float)
-    est, se, equations = numpy_sandwich(X, t, y, np.ones(len(y)), np.asarray(out.model.coefficients), keep, limit)
+    est, se, equations = numpy_sandwich(X, t, y, np.ones(len(y)), np.asarray(out.model.coefficients), keep, caps, effect_for)
     assert np.all(np.abs(equations[2:]) < 1e-4 * np.abs(X).sum(axis=0))  # the logit score equations hold
     effect = results.effect("earnings_after")
     assert effect.estimate == pytest.approx(est, rel=1e-6)
     assert effect.std_error == pytest.approx(se, rel=1e-6)
-    # Kish's effective sample size of the weighted controls, (sum w)^2 / sum w^2
-    wc = w[keep & (t == 0)]
+    # Kish's effective sample size of each weighted group, (sum w)^2 / sum w^2
+    wc, wt = w[keep & (t == 0)], w[keep & (t == 1)]
     assert results.matching.effective_controls == pytest.approx(wc.sum() ** 2 / np.sum(wc**2), rel=1e-9)
+    assert results.matching.effective_treated == pytest.approx(wt.sum() ** 2 / np.sum(wt**2), rel=1e-9)
+    assert results.matching.estimand == {"enrolled": "ATT", "not_enrolled": "ATC", "everyone": "ATE"}[effect_for]
     assert results.matching.n_control_matched == int(np.sum(keep & (t == 0)))
 
 
@@ -161,8 +186,8 @@ def test_the_estimated_score_changes_the_variance(nsw_db):
         out = run_plan(build_plan(spec, "duckdb"), spec, engine)
     full = weighted_effect(sums_from_row(out.results["weighting_sandwich"].one(), "earnings_after"))
     s = sums_from_row(out.results["weighting_sandwich"].one(), "earnings_after")
-    strip = lambda g: GroupSums(g.sum_av, g.sum_au, g.sum_aauu, g.sum_aauv, g.sum_aavv, np.zeros(0), np.zeros(0))  # noqa: E731
-    known = weighted_effect(WeightingSums(strip(s.treated), strip(s.control), np.zeros(0), np.zeros(0), np.zeros((0, 0)), np.zeros((0, 0))))
+    strip = lambda g: GroupSums(g.sum_av, g.sum_au, g.sum_aauu, g.sum_aauv, g.sum_aavv, *[np.zeros(0)] * 4)  # noqa: E731
+    known = weighted_effect(WeightingSums(strip(s.treated), strip(s.control), np.zeros((0, 0)), np.zeros((0, 0))))
     assert known.estimate == pytest.approx(full.estimate, rel=1e-12)
     assert abs(known.std_error / full.std_error - 1) > 1e-3
 
@@ -192,7 +217,7 @@ def test_demo_outcomes_of_every_kind_equal_numpy(demo_weighted, outcome):
     X = design(rows, out.model.columns)
     t = rows.treated.to_numpy().astype(float)
     beta = np.asarray(out.model.coefficients)
-    w, limit = numpy_weights(t, X @ beta, cap=0.995)
+    w, caps = numpy_weights(t, X @ beta, cap=0.995)
     keep = ~np.isnan(w)
     if outcome == "fare_per_trip":
         u, v = rows.fare_per_trip__num.to_numpy(float), rows.fare_per_trip__den.to_numpy(float)
@@ -200,7 +225,7 @@ def test_demo_outcomes_of_every_kind_equal_numpy(demo_weighted, outcome):
         u, v = (rows.post_trips - rows.pre_trips).to_numpy(float), np.ones(len(rows))
     else:
         u, v = rows[outcome].to_numpy(float), np.ones(len(rows))
-    est, se, _ = numpy_sandwich(X, t, u, v, beta, keep, limit)
+    est, se, _ = numpy_sandwich(X, t, u, v, beta, keep, caps)
     e = results.effect(outcome.split("__")[0])
     got = e.did if outcome.endswith("__did") else e
     assert got.estimate == pytest.approx(est, rel=1e-9)
@@ -224,7 +249,7 @@ def test_balance_after_weighting_uses_the_weights(demo_weighted):
 
 @pytest.mark.parametrize(
     "key, value",
-    [("score_margin", 0.5), ("score_margin", -0.1), ("weight_cap_quantile", 1.0), ("weight_cap_quantile", 0.2), ("weight_cap_quantile", "0.99")],
+    [("score_margin", 0.5), ("score_margin", -0.1), ("weight_cap_quantile", 1.0), ("weight_cap_quantile", 0.2), ("weight_cap_quantile", "0.99"), ("effect_for", "ate")],
 )
 def test_bad_options_name_their_key(nsw_db, key, value):
     with pytest.raises(SpecError) as err:
@@ -232,7 +257,9 @@ def test_bad_options_name_their_key(nsw_db, key, value):
     assert err.value.key == f"matching.{key}"
 
 
-def test_sampled_controls_are_refused_before_the_pass_over_the_events(nsw_db):
+def test_sampled_controls_are_refused_before_the_pass_over_the_events(tmp_path):
+    nsw_db = str(tmp_path / "nsw.duckdb")
+    load_nsw(nsw_db)
     raw = nsw_spec(nsw_db, "score_weighting")
     raw["propensity"] = {"sample_controls": 0.5}
     spec = parse_spec(raw)

@@ -2,17 +2,20 @@
 score (M-estimation; Lunceford & Davidian 2004, Statistics in Medicine 23:2937; Stefanski & Boos
 2002, The American Statistician 56:29, for the sandwich). Pure: sums in, numbers out.
 
-Parameters theta = (mu1, mu0, beta); per unit i (t treated, e = expit(x'beta), w the control's
-weight, a function of beta: exp(x'beta), or a constant where truncated), the stacked equations
+Parameters theta = (mu1, mu0, beta); per unit i (t treated, e = expit(x'beta), a the unit's
+weight, a function of beta with d a / d beta = g x: for the effect on the enrolled treated 1 and
+control e / (1 - e) = exp(x'beta) (g = a); on the not enrolled treated (1 - e) / e (g = -a) and
+control 1; on everyone 1 / e (g = -(a - 1)) and 1 / (1 - e) (g = a - 1); g = 0 where a weight is
+truncated), the stacked equations
 
     psi_beta = (t - e) x                          (the logit model's score)
-    psi_1    = t (u - mu1 v)                      (the treated mean, or ratio when v is a denominator)
-    psi_0    = (1 - t) w (u - mu0 v)              (the weighted control mean)
+    psi_1    = t a (u - mu1 v)                    (the weighted treated mean, or ratio when v is a denominator)
+    psi_0    = (1 - t) a (u - mu0 v)              (the weighted control mean)
 
 sum to zero at the estimate. With J = sum d psi / d theta' and B = sum psi psi',
 
-    V = J^-1 B J^-T,   J = [[-S1v, 0, 0], [0, -S0v, G'], [0, 0, -(H + ridge)]],
-    G = sum (1 - t) w dw (u - mu0 v) x  (dw = 1 where w = exp(x'beta), 0 where truncated),
+    V = J^-1 B J^-T,   J = [[-S1v, 0, G1'], [0, -S0v, G0'], [0, 0, -(H + ridge)]],
+    G_k = sum over group k of g (u - mu_k v) x,
     H = sum e (1 - e) x x',
 
 and the effect mu1 - mu0 has variance V11 + V22 - 2 V12. A ridge penalty adds lam P to H (the fit's
@@ -32,7 +35,7 @@ from sqlmatch.estimators.intervals import log_ratio_interval, normal_interval
 
 @dataclass(frozen=True)
 class GroupSums:
-    """One group's sums for one term: weights a (1 treated, w control), outcome u, denominator v."""
+    """One group's sums for one term: weights a, outcome u, denominator v."""
 
     sum_av: float  # sum a v
     sum_au: float  # sum a u
@@ -41,14 +44,14 @@ class GroupSums:
     sum_aavv: float
     ru: np.ndarray  # sum a (t - e) u x_j
     rv: np.ndarray  # sum a (t - e) v x_j
+    du: np.ndarray  # sum g u x_j, d a / d beta = g x (g = 0 where a is constant or truncated)
+    dv: np.ndarray  # sum g v x_j
 
 
 @dataclass(frozen=True)
 class WeightingSums:
     treated: GroupSums
     control: GroupSums
-    du: np.ndarray  # sum (1 - t) w dw u x_j
-    dv: np.ndarray  # sum (1 - t) w dw v x_j
     information: np.ndarray  # sum e (1 - e) x x'
     score_products: np.ndarray  # sum (t - e)^2 x x'
 
@@ -97,8 +100,7 @@ def sums_from_row(row: dict, key: str) -> WeightingSums:
     def group(g):
         return GroupSums(
             *(f(columns.weighting(key, g, w)) for w in ("v", "u", "uu", "uv", "vv")),
-            ru=np.array([f(columns.weighting(key, g, "ru", j)) for j in range(p)]),
-            rv=np.array([f(columns.weighting(key, g, "rv", j)) for j in range(p)]),
+            *(np.array([f(columns.weighting(key, g, what, j)) for j in range(p)]) for what in ("ru", "rv", "du", "dv")),
         )
 
     h, rr = np.empty((p, p)), np.empty((p, p))
@@ -108,8 +110,6 @@ def sums_from_row(row: dict, key: str) -> WeightingSums:
     return WeightingSums(
         treated=group("t"),
         control=group("c"),
-        du=np.array([f(columns.weighting(key, "c", "du", j)) for j in range(p)]),
-        dv=np.array([f(columns.weighting(key, "c", "dv", j)) for j in range(p)]),
         information=h,
         score_products=rr,
     )
@@ -122,7 +122,7 @@ def weighted_effect(s: WeightingSums, ridge: float = 0.0, level: float = 0.95) -
     if t.sum_av <= 0 or c.sum_av <= 0:
         return WeightedEffect(nan, None, None, None, nan, nan, np.full((2, 2), nan))
     mu1, mu0 = t.sum_au / t.sum_av, c.sum_au / c.sum_av
-    p = len(s.du)
+    p = len(s.information)
     penalty = np.eye(p) * ridge
     if p:
         penalty[0, 0] = 0.0  # intercept not penalised, as in the fit
@@ -130,7 +130,8 @@ def weighted_effect(s: WeightingSums, ridge: float = 0.0, level: float = 0.95) -
     jac = np.zeros((k, k))
     jac[0, 0] = -t.sum_av
     jac[1, 1] = -c.sum_av
-    jac[1, 2:] = s.du - mu0 * s.dv
+    jac[0, 2:] = t.du - mu1 * t.dv
+    jac[1, 2:] = c.du - mu0 * c.dv
     jac[2:, 2:] = -(s.information + penalty)
     meat = np.zeros((k, k))
     meat[0, 0] = t.sum_aauu - 2 * mu1 * t.sum_aauv + mu1**2 * t.sum_aavv

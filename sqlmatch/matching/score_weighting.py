@@ -1,23 +1,27 @@
-"""Propensity-score weighting for the effect on the treated (odds weights).
+"""Propensity-score weighting (inverse probability weights; odds weights for the effect on the treated).
 
-Treated units weigh 1 and a control weighs its odds of enrolment e / (1 - e) = exp(logit score),
-from the fitted propensity model, so the weighted controls have the treated units' feature
-distribution (Hirano, Imbens & Ridder 2003, Econometrica 71:1161; recalled). All units form one
-stratum. Options (names ours):
+From the fitted propensity model's score e, for the effect on the enrolled (ATT, the default)
+treated units weigh 1 and a control its odds of enrolment e / (1 - e) = exp(logit score), so the
+weighted controls have the treated units' feature distribution; on the not enrolled (ATC) treated
+(1 - e) / e and controls 1; on everyone (ATE) treated 1 / e and controls 1 / (1 - e) (Hirano,
+Imbens & Ridder 2003, Econometrica 71:1161; Imbens & Rubin 2015, ch. 12; recalled). Each group's
+weighted mean is normalised by its weights' sum. All units form one stratum. Options (names ours):
+
+  * matching.effect_for = "enrolled" | "not_enrolled" | "everyone": the estimand.
 
   * matching.score_margin = a: units whose score e lies outside [a, 1 - a] are not weighted
     (trimming; 0.1 is the rule of thumb of Crump et al. 2009, Biometrika 96:187, recalled; off by
     default). matching.common_support (true by default) also drops units outside the overlap of
     the two groups' scores, as for score_bins.
-  * matching.weight_cap_quantile = q: control weights above their q-quantile among the weighted
-    controls are set to it (truncation; off by default).
+  * matching.weight_cap_quantile = q: weights above their q-quantile among the weighted units of
+    their group are set to it (truncation; off by default; under ATT only the controls' vary).
 
 The effect and its variance come from one aggregate query (score_weighting_sandwich): the
 sandwich variance of the stacked estimating equations of the logit model and the weighted means
 (M-estimation; Lunceford & Davidian 2004, Statistics in Medicine 23:2937), so the uncertainty of
 the estimated score is counted (estimators/weighting.py). The trimming and truncation limits are
-taken as fixed in that variance. The summary reports the effective number of controls (Kish
-1965: (sum w)^2 / sum w^2).
+taken as fixed in that variance. The summary reports each group's effective number of units
+(Kish 1965: (sum w)^2 / sum w^2).
 """
 
 from __future__ import annotations
@@ -27,9 +31,11 @@ from dataclasses import dataclass
 
 from sqlmatch.errors import SpecError
 from sqlmatch.matching.base import MatchingMethod, OptionInput
+from sqlmatch.spec_values import read_choice
 
-DESCRIPTION = "propensity-score weighting for the effect on the treated (controls weighted by their odds of enrolment), sandwich variance"
-OPTION_KEYS = ("score_margin", "weight_cap_quantile")
+DESCRIPTION = "propensity-score weighting (odds weights for the effect on the treated; or on the controls, or everyone), sandwich variance"
+OPTION_KEYS = ("effect_for", "score_margin", "weight_cap_quantile")
+TARGETS = ("enrolled", "not_enrolled", "everyone")  # effect_for: ATT, ATC, ATE
 
 
 @dataclass(frozen=True)
@@ -63,8 +69,15 @@ def steps(ctx, model):
     m = spec.matching
     check_full_fit(spec)
     margin_logit = None if m.score_margin == 0 else math.log((1.0 - m.score_margin) / m.score_margin)
-    limits = dict(common_support=m.common_support, margin_logit=margin_logit, margin=m.score_margin, cap_quantile=m.weight_cap_quantile, clamp=ETA_CLAMP)
-    cap_text = f", control weights truncated at their {m.weight_cap_quantile} quantile" if m.weight_cap_quantile is not None else ""
+    limits = dict(
+        common_support=m.common_support, margin_logit=margin_logit, margin=m.score_margin, cap_quantile=m.weight_cap_quantile, effect_for=m.effect_for, clamp=ETA_CLAMP
+    )
+    cap_text = f", weights truncated at their group's {m.weight_cap_quantile} quantile" if m.weight_cap_quantile is not None else ""
+    weights_text = {
+        "enrolled": "for the effect on the treated (treated 1, control e / (1 - e))",
+        "not_enrolled": "for the effect on the controls (treated (1 - e) / e, control 1)",
+        "everyone": "for the average effect (treated 1 / e, control 1 / (1 - e))",
+    }[m.effect_for]
     margin_text = f", units with a score outside [{m.score_margin}, {1 - m.score_margin}] left out" if margin_logit is not None else ""
     out = [
         ctx.score_step(model, []),
@@ -73,7 +86,7 @@ def steps(ctx, model):
             "score_weighting_limits",
             writes="weighting_limits",
             reads=[ctx.display("scores")],
-            purpose="Common support of the logit scores" + (" and the cap on the control weights." if cap_text else "."),
+            purpose="Common support of the logit scores" + (" and the caps on the weights." if cap_text else "."),
             scores_table=ctx.table("scores"),
             **limits,
         ),
@@ -82,7 +95,7 @@ def steps(ctx, model):
             "score_weighting_weights",
             writes="weighted_units",
             reads=[ctx.display("measures"), ctx.display("scores"), ctx.display("weighting_limits")],
-            purpose=f"Odds weights for the effect on the treated (treated 1, control e / (1 - e)){cap_text}{margin_text}, beside every unit's features and outcomes.",
+            purpose=f"Propensity-score weights {weights_text}{cap_text}{margin_text}, beside every unit's features and outcomes.",
             columns=ctx.weighted_columns(),
             measures_table=ctx.table("measures"),
             scores_table=ctx.table("scores"),
@@ -92,10 +105,12 @@ def steps(ctx, model):
         ctx.query_step(
             "matching_summary",
             "score_weighting_summary",
-            reads=[ctx.display("weighted_units"), ctx.display("weighting_limits")],
-            purpose="Units weighted per group, and the control weights' sum, sum of squares and range (effective number of controls).",
+            reads=[ctx.display("weighted_units"), ctx.display("scores"), ctx.display("weighting_limits")],
+            purpose="Units weighted per group, and each group's weights' sum, sum of squares and range (effective numbers of units).",
             weighted_table=ctx.table("weighted_units"),
+            scores_table=ctx.table("scores"),
             limits_table=ctx.table("weighting_limits"),
+            **limits,
         ),
     ]
     out.append(
@@ -137,27 +152,32 @@ def _read_share(table: dict, name: str, low: float, high: float, hint: str):
 
 
 def read_options(table: dict, given: OptionInput) -> dict:
-    """matching.score_margin / weight_cap_quantile."""
+    """matching.effect_for / score_margin / weight_cap_quantile."""
+    effect_for = read_choice(table, "matching", "effect_for", TARGETS, default="enrolled")
     margin = _read_share(table, "score_margin", 0.0, 0.5, "e.g. score_margin = 0.05 leaves out units with a score below 0.05 or above 0.95.")
     cap = _read_share(table, "weight_cap_quantile", 0.5, 1.0, "e.g. weight_cap_quantile = 0.99 truncates the largest 1% of control weights.")
-    return {"score_margin": margin or 0.0, "weight_cap_quantile": cap}
+    return {"effect_for": effect_for, "score_margin": margin or 0.0, "weight_cap_quantile": cap}
 
 
 def warnings(spec, results) -> list[str]:
-    """Say when a few controls carry most of the weight."""
-    if "matching_summary" not in results:
-        return []
+    """Say when a few units carry most of a group's weight."""
     from sqlmatch.estimators.weighting import kish_effective_size
 
-    row = results["matching_summary"].one()
-    ess, n = kish_effective_size(row.get("control_weight_sum"), row.get("control_weight_sumsq")), int(row.get("n_control_matched") or 0)
-    if ess is None or n == 0 or ess >= 0.1 * n:  # a tenth: a threshold of ours
+    if "matching_summary" not in results:
         return []
-    return [
-        f"Propensity-score weighting: the weighted controls count as about {ess:,.0f} unweighted ones (Kish's effective "
-        f"sample size), under a tenth of those weighted: a few controls that look like enrolled units carry most of the "
-        "weight, so the estimate leans on them. Consider matching.weight_cap_quantile (e.g. 0.99) or matching.score_margin."
-    ]
+    row = results["matching_summary"].one()
+    out = []
+    for group, words in (("control", "non-enrolled"), ("treated", "enrolled")):
+        ess = kish_effective_size(row.get(f"{group}_weight_sum"), row.get(f"{group}_weight_sumsq"))
+        n = int(row.get(f"n_{group}_matched") or 0)
+        if ess is None or n == 0 or ess >= 0.1 * n:  # a tenth: a threshold of ours
+            continue
+        out.append(
+            f"Propensity-score weighting: the weighted {words} units count as about {ess:,.0f} unweighted ones (Kish's "
+            f"effective sample size), under a tenth of those weighted: a few units carry most of the weight, so the "
+            "estimate leans on them. Consider matching.weight_cap_quantile (e.g. 0.99) or matching.score_margin."
+        )
+    return out
 
 
 METHOD = MatchingMethod(
