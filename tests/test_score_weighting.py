@@ -292,3 +292,31 @@ def test_rows_fetched_do_not_grow_with_the_units(nsw_db, tmp_path):
     big, big_rows = step_rows(str(big_db))
     assert int(big.results["matching_summary"].one()["n_control"]) > 2 * int(small.results["matching_summary"].one()["n_control"])
     assert big_rows == small_rows and small_rows["weighting_sandwich"] == 1
+
+
+def test_report_speaks_of_weighting_not_strata(demo_weighted):
+    """The sample section gives the weighted comparison and Kish's effective number of controls
+    instead of strata; the heading names whom the effect is for."""
+    from sqlmatch.report.markdown import render_markdown
+
+    spec, out, results, rows = demo_weighted
+    text = render_markdown(results)
+    assert "Strata used" not in text and "Weighted comparison" in text
+    assert f"about {results.matching.effective_controls:,.0f} unweighted ones" in text
+    assert "## Effects on the enrolled" in text
+    everyone = dataclasses.replace(results, matching=dataclasses.replace(results.matching, estimand="ATE", effective_treated=123.4))
+    text = render_markdown(everyone)
+    assert "## Effects on everyone" in text and "as about 123 (Kish" in text
+
+
+def test_report_withholds_the_weighted_count_where_the_sample_table_does(demo_weighted):
+    from sqlmatch.privacy import flow_texts
+    from sqlmatch.report.markdown import render_markdown
+
+    spec, out, results, rows = demo_weighted
+    m = dataclasses.replace(results.matching, n_control_outside_support=3, n_control_matched=results.matching.n_control - 3)
+    flow = flow_texts(m, results.min_cell_size)
+    assert flow["control"]["matched"] == "–"  # 3 dropped is under min_cell_size, so the matched count would reveal it
+    text = render_markdown(dataclasses.replace(results, matching=m))
+    assert "the – weighted non-enrolled units" in text
+    assert f"{m.n_control_matched:,}" not in text.split("## Effects")[0]

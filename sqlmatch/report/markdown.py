@@ -7,6 +7,7 @@ import datetime as dt
 from sqlmatch.privacy import count_text, flow_texts, suppress_levels
 from sqlmatch.results import StudyResults
 
+ESTIMAND_WORDS = {"ATT": "the enrolled", "ATC": "the not enrolled", "ATE": "everyone (enrolled or not)"}
 SMD_REFERENCE = 0.1  # |SMD| below 0.1 read as balanced: common practice (Austin 2009)
 
 
@@ -113,10 +114,15 @@ def _sensitivity_section(r: StudyResults) -> list[str]:
 def _groups_line(m, flow: dict) -> str:
     """What the method built: strata (or matched sets), or for weighting the controls' effective number."""
     if m.effective_controls is not None:
-        # the count as the sample table shows it: withheld there, withheld here
+        # the counts as the sample table shows them: withheld there, withheld here
+        treated = (
+            f" and the {flow['treated']['matched']} weighted enrolled units as about {m.effective_treated:,.0f}"
+            if m.estimand != "ATT" and m.effective_treated is not None
+            else ""
+        )
         return (
             f"Weighted comparison (one group, no strata): the {flow['control']['matched']} weighted non-enrolled units count as "
-            f"about {m.effective_controls:,.0f} unweighted ones (Kish's effective sample size, (sum w)² / sum w²)."
+            f"about {m.effective_controls:,.0f} unweighted ones{treated} (Kish's effective sample size, (sum w)² / sum w²)."
         )
     return f"Strata used: {m.strata:,}; cells dropped for lacking an enrolled or a non-enrolled unit: {m.strata_dropped:,}."
 
@@ -149,7 +155,7 @@ def render_markdown(r: StudyResults, balance_image: str | None = None) -> str:
         "",
         _groups_line(m, flow),
         "",
-        "## Effects on the enrolled",
+        f"## Effects on {ESTIMAND_WORDS.get(m.estimand, 'the enrolled')}",
         "",
         "| outcome | kind | effect | 95% interval | relative lift | lift 95% interval | enrolled mean | matched comparison mean | unmatched difference |",
         "|---|---|---:|---|---:|---|---:|---:|---:|",
