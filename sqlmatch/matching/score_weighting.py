@@ -117,7 +117,7 @@ def steps(ctx, model):
         ctx.query_step(
             "weighting_sandwich",
             "score_weighting_sandwich",
-            reads=[ctx.display("weighted_units"), ctx.display("scores"), ctx.display("weighting_limits")],
+            reads=[ctx.display("weighted_units"), ctx.display("scores")],
             purpose="Sums for the weighted effect on the treated and its sandwich variance, which counts the estimated propensity score (one row).",
             columns=[] if model is None else model.columns,
             terms=terms(spec),
