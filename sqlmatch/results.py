@@ -7,7 +7,7 @@ import json
 import math
 from dataclasses import asdict, dataclass, field
 
-from sqlmatch.privacy import count_text, flow_texts, sample_flow, suppress_counts as _suppress_counts, suppress_histograms, suppress_levels
+from sqlmatch.privacy import count_text, flow_texts, hidden_parts, sample_flow, suppress_counts as _suppress_counts, suppress_histograms, suppress_levels
 
 ASSUMPTIONS = (
     "No unmeasured confounding: after matching on the listed features, enrolment is as good as random. "
@@ -18,6 +18,10 @@ ASSUMPTIONS = (
     "No interference: one unit's enrolment does not change another unit's outcome.",
     "The windows are fixed in advance: features come strictly before the enrolment month and outcomes strictly after it; "
     "other window choices can give other answers.",
+    "What the intervals are for: the average effect on the enrolled units this study kept, given their features "
+    "(how enrolment changes their expected outcomes). The realised difference in this cohort's outcomes also varies "
+    "by chance around that average, and other enrolees have other features: as an interval for either, it can be "
+    "too narrow, most of all for a 0/1 outcome close to 0 or 1 or an effect that differs much between units.",
     "These figures inform, and do not replace, judgement about the programme.",
 )
 
@@ -65,18 +69,31 @@ class Effect:
     n_control: int
     mean_treated: float | None
     mean_control: float | None
+    # whose effect: att on the enrolled (treated), atc on the comparison units, ate on everyone in
+    # the matched strata ([matching] estimand)
+    estimand: str = "att"
     # the same comparison before matching
     naive: Interval = Interval(None)
     # relative lift: effect / comparison mean (= mean_treated / mean_control - 1); binary: RR - 1
     lift: Interval = Interval(None)
     # binary outcomes: risk ratio p_1 / p_0 (the risk difference is `estimate`)
     risk_ratio: Interval | None = None
+    # the matched comparison adjusted by a within-stratum regression on the numeric features
+    # (count, sum and 0/1 outcomes); the headline when [effect] regression_adjustment = true, and
+    # then `unadjusted` holds the plain matched comparison
+    adjusted: Interval | None = None
+    adjusted_for: tuple[str, ...] = ()
+    unadjusted: Interval | None = None
     # difference-in-differences: effect on (outcome - did_twin), the twin a pre-window feature
     did_twin: str | None = None
     did: Interval | None = None
     # e_value, e_value_ci, robustness_value, robustness_value_alpha, partial_r2, t_statistic, df,
     # rosenbaum (+ rosenbaum_reason when null), sentence, and what they were computed from
     sensitivity: dict = field(default_factory=dict)
+
+
+# the Effect fields that hold an Interval (flattened to `<field>.<part>` columns in effects_frame)
+INTERVAL_FIELDS = ("naive", "lift", "risk_ratio", "adjusted", "unadjusted", "did")
 
 
 @dataclass(frozen=True)
@@ -107,7 +124,90 @@ class MatchingSummary:
     # weighting methods: Kish's effective numbers of weighted units, (sum w)^2 / sum w^2, per group
     effective_controls: float | None = None
     effective_treated: float | None = None
-    estimand: str = "ATT"  # whom the effect is for: ATT (the enrolled), ATC (the not enrolled), ATE (everyone)
+
+
+@dataclass(frozen=True)
+class SubgroupLevel:
+    level: str
+    n_treated: int
+    n_control: int
+    effect: Interval
+    withheld: bool = False  # too few units to show (report.min_cell_size)
+
+
+@dataclass(frozen=True)
+class SubgroupEffects:
+    """One outcome's effect in each level of one subgroup, and Cochran's Q across the levels."""
+
+    subgroup: str
+    describes: str
+    outcome: str
+    levels: tuple[SubgroupLevel, ...]
+    q: float | None = None
+    df: int | None = None
+    p_value: float | None = None
+
+    def shown(self, min_cell: int) -> list[dict]:
+        """The levels as outputs show them: a level's counts and effect withheld when either group
+        is small, and (complementary suppression) one more level's when exactly one is withheld,
+        so the levels cannot be subtracted from the matched totals."""
+        hidden: set[str] = set()
+        for group in ("n_treated", "n_control"):
+            parts = {x.level: getattr(x, group) for x in self.levels}
+            hidden |= hidden_parts(parts, sum(parts.values()), min_cell)
+        hidden |= {x.level for x in self.levels if x.withheld}
+        if len(hidden) == 1 and len(self.levels) > 1:
+            rest = sorted((x.n_treated, x.level) for x in self.levels if x.level not in hidden)
+            if rest:
+                hidden.add(rest[0][1])
+        out = []
+        for x in self.levels:
+            if x.level in hidden:
+                out.append({"level": x.level, "n_treated": None, "n_control": None, **{k: None for k in asdict(x.effect)}, "withheld": True})
+            else:
+                out.append({"level": x.level, "n_treated": x.n_treated, "n_control": x.n_control, **{k: _num(v) for k, v in asdict(x.effect).items()}, "withheld": False})
+        return out
+
+    def to_dict(self, min_cell: int) -> dict:
+        levels = self.shown(min_cell)
+        return {"subgroup": self.subgroup, "describes": self.describes, "outcome": self.outcome, "levels": levels,
+                "heterogeneity": {"q": _num(self.q), "df": self.df, "p_value": _num(self.p_value)}}
+
+
+@dataclass(frozen=True)
+class PlaceboCheck:
+    """The same design placed `months_before` earlier ([placebo]): the cohort is still the treated
+    group, but every window it reads ends before anyone in it enrolled, so each true effect is zero."""
+
+    months_before: int
+    results: "StudyResults"  # the placebo study's own results (its tables are <study>_placebo_*)
+
+    def readings(self) -> list[str]:
+        out = []
+        for e in self.results.effects:
+            if e.ci_low is None or e.ci_high is None:
+                out.append(f"{e.outcome}: {e.estimate:.3g}, no interval.")
+            elif e.ci_low <= 0.0 <= e.ci_high:
+                out.append(f"{e.outcome}: {e.estimate:.3g} [{e.ci_low:.3g}, {e.ci_high:.3g}]: no effect where there can be none, as it should be.")
+            else:
+                out.append(
+                    f"{e.outcome}: {e.estimate:.3g} [{e.ci_low:.3g}, {e.ci_high:.3g}]: an effect where there can be none. Before "
+                    "enrolling, the enrolled units already differed from their matched comparison units in a way the features do "
+                    "not capture; the same difference may be in the main estimate. (With several outcomes, one interval in "
+                    "twenty misses zero by chance.)"
+                )
+        return out
+
+    def to_dict(self) -> dict:
+        r = self.results
+        return {
+            "months_before": self.months_before,
+            "windows": r.windows,
+            "effects": [{k: r._effect_record(e)[k] for k in ("outcome", "estimate", "std_error", "ci_low", "ci_high")} for e in r.effects],
+            "matching": r._matching_dict(),
+            "warnings": list(r.warnings),
+            "readings": self.readings(),
+        }
 
 
 @dataclass
@@ -128,6 +228,8 @@ class StudyResults:
     run_id: str | None = None  # set when the run was recorded in the results history table
     warnings: list[str] = field(default_factory=list)  # data problems worth a reader's attention
     timings: dict[str, float] = field(default_factory=dict)
+    placebo: PlaceboCheck | None = None  # [placebo]: the same design before anyone enrolled
+    subgroups: list[SubgroupEffects] = field(default_factory=list)  # [[subgroups]]
 
     def effect(self, outcome: str) -> Effect:
         for e in self.effects:
@@ -143,7 +245,7 @@ class StudyResults:
         interval_fields = list(Interval.__dataclass_fields__)
         columns = []
         for f in Effect.__dataclass_fields__:
-            if f in ("naive", "lift", "risk_ratio", "did"):
+            if f in INTERVAL_FIELDS:
                 columns += [f"{f}.{g}" for g in interval_fields]
             elif f != "sensitivity":
                 columns.append(f)
@@ -152,7 +254,7 @@ class StudyResults:
             record = self._effect_record(e)
             flat = {}
             for k, v in record.items():
-                if k in ("naive", "lift", "risk_ratio", "did"):
+                if k in INTERVAL_FIELDS:
                     flat.update({f"{k}.{g}": (v or {}).get(g) for g in interval_fields})
                 elif k != "sensitivity":
                     flat[k] = v
@@ -229,6 +331,10 @@ class StudyResults:
         }
         if self.demo_truth is not None:
             out["demo_truth"] = self.demo_truth
+        if self.placebo is not None:
+            out["placebo"] = self.placebo.to_dict()
+        if self.subgroups:
+            out["subgroups"] = [s.to_dict(self.min_cell_size) for s in self.subgroups]
         return out
 
     def _matching_dict(self) -> dict:

@@ -126,9 +126,9 @@ def no_weight_at_a_cap(t, raw, keep, caps) -> bool:
         # take the mean of the two one-sided derivatives, sqlmatch the untruncated one
         {"weight_cap_quantile": 0.987},
         {"score_margin": 0.001, "weight_cap_quantile": 0.953},
-        {"effect_for": "not_enrolled", "score_margin": 0.001},
-        {"effect_for": "everyone", "score_margin": 0.001},
-        {"effect_for": "everyone", "score_margin": 0.001, "weight_cap_quantile": 0.9713},
+        {"estimand": "atc", "score_margin": 0.001},
+        {"estimand": "ate", "score_margin": 0.001},
+        {"estimand": "ate", "score_margin": 0.001, "weight_cap_quantile": 0.9713},
     ],
     ids=["no_limits", "common_support", "cap", "margin_and_cap", "atc", "ate", "ate_cap"],
 )
@@ -144,7 +144,7 @@ def test_nsw_weights_effect_and_sandwich_equal_numpy(nsw_db, options):
     fit = sm.Logit(t, X).fit(disp=0, tol=1e-12, maxiter=200)
     np.testing.assert_allclose(out.model.coefficients, fit.params, rtol=1e-6)
     logit = X @ fit.params
-    effect_for = options.get("effect_for", "enrolled")
+    effect_for = {"att": "enrolled", "atc": "not_enrolled", "ate": "everyone"}[options.get("estimand", "att")]
     w, caps = numpy_weights(t, logit, options.get("common_support", True), options.get("score_margin", 0.0), options.get("weight_cap_quantile"), effect_for)
     got = rows.match__weight.to_numpy(dtype=float)
     np.testing.assert_array_equal(np.isnan(got), np.isnan(w))
@@ -161,7 +161,7 @@ def test_nsw_weights_effect_and_sandwich_equal_numpy(nsw_db, options):
     wc, wt = w[keep & (t == 0)], w[keep & (t == 1)]
     assert results.matching.effective_controls == pytest.approx(wc.sum() ** 2 / np.sum(wc**2), rel=1e-9)
     assert results.matching.effective_treated == pytest.approx(wt.sum() ** 2 / np.sum(wt**2), rel=1e-9)
-    assert results.matching.estimand == {"enrolled": "ATT", "not_enrolled": "ATC", "everyone": "ATE"}[effect_for]
+    assert results.effect("earnings_after").estimand == options.get("estimand", "att")
     assert results.matching.n_control_matched == int(np.sum(keep & (t == 0)))
 
 
@@ -249,7 +249,7 @@ def test_balance_after_weighting_uses_the_weights(demo_weighted):
 
 @pytest.mark.parametrize(
     "key, value",
-    [("score_margin", 0.5), ("score_margin", -0.1), ("weight_cap_quantile", 1.0), ("weight_cap_quantile", 0.2), ("weight_cap_quantile", "0.99"), ("effect_for", "ate")],
+    [("score_margin", 0.5), ("score_margin", -0.1), ("weight_cap_quantile", 1.0), ("weight_cap_quantile", 0.2), ("weight_cap_quantile", "0.99"), ("estimand", "everyone")],
 )
 def test_bad_options_name_their_key(nsw_db, key, value):
     with pytest.raises(SpecError) as err:
@@ -257,16 +257,24 @@ def test_bad_options_name_their_key(nsw_db, key, value):
     assert err.value.key == f"matching.{key}"
 
 
-def test_sampled_controls_are_refused_before_the_pass_over_the_events(tmp_path):
+@pytest.mark.parametrize(
+    "section, value, key",
+    [
+        ("propensity", {"sample_controls": 0.5}, "propensity.sample_controls"),
+        ("effect", {"regression_adjustment": True}, "effect.regression_adjustment"),
+        ("subgroups", [{"name": "frequent", "where": "re75 > 0"}], "subgroups"),
+    ],
+)
+def test_what_weighting_does_not_support_is_refused_before_the_pass_over_the_events(tmp_path, section, value, key):
     nsw_db = str(tmp_path / "nsw.duckdb")
     load_nsw(nsw_db)
     raw = nsw_spec(nsw_db, "score_weighting")
-    raw["propensity"] = {"sample_controls": 0.5}
+    raw[section] = value
     spec = parse_spec(raw)
     with DuckDBEngine(nsw_db) as engine:
         with pytest.raises(SpecError) as err:
             run_plan(build_plan(spec, "duckdb"), spec, engine)
-        assert err.value.key == "propensity.sample_controls"
+        assert err.value.key == key
         assert not [t for t in engine.table_names("sqlmatch") if t.startswith("nsw_")]  # nothing left behind
 
 
@@ -304,7 +312,9 @@ def test_report_speaks_of_weighting_not_strata(demo_weighted):
     assert "Strata used" not in text and "Weighted comparison" in text
     assert f"about {results.matching.effective_controls:,.0f} unweighted ones" in text
     assert "## Effects on the enrolled" in text
-    everyone = dataclasses.replace(results, matching=dataclasses.replace(results.matching, estimand="ATE", effective_treated=123.4))
+    everyone = dataclasses.replace(
+        results, matching=dataclasses.replace(results.matching, effective_treated=123.4), effects=[dataclasses.replace(e, estimand="ate") for e in results.effects]
+    )
     text = render_markdown(everyone)
     assert "## Effects on everyone" in text and "as about 123 (Kish" in text
 
@@ -337,7 +347,7 @@ def test_postgres_gives_duckdbs_numbers(nsw_db):
     from test_engines import PG_TYPES, assert_same_numbers
 
     def spec_for(schema, work):
-        raw = nsw_spec(":memory:", "score_weighting", effect_for="everyone", score_margin=0.001, weight_cap_quantile=0.98)
+        raw = nsw_spec(":memory:", "score_weighting", estimand="ate", score_margin=0.001, weight_cap_quantile=0.98)
         raw["study"].update(work_schema=work)
         raw["units"]["table"] = {"schema": schema, "name": "men"}
         raw["events"]["table"] = {"schema": schema, "name": "earnings"}

@@ -7,7 +7,7 @@ weighted controls have the treated units' feature distribution; on the not enrol
 Imbens & Ridder 2003, Econometrica 71:1161; Imbens & Rubin 2015, ch. 12; recalled). Each group's
 weighted mean is normalised by its weights' sum. All units form one stratum. Options (names ours):
 
-  * matching.effect_for = "enrolled" | "not_enrolled" | "everyone": the estimand.
+  * matching.estimand = "att" | "atc" | "ate" (common to the methods that weight; spec.py reads it).
 
   * matching.score_margin = a: units whose score e lies outside [a, 1 - a] are not weighted
     (trimming; 0.1 is the rule of thumb of Crump et al. 2009, Biometrika 96:187, recalled; off by
@@ -31,11 +31,10 @@ from dataclasses import dataclass
 
 from sqlmatch.errors import SpecError
 from sqlmatch.matching.base import MatchingMethod, OptionInput
-from sqlmatch.spec_values import read_choice
 
 DESCRIPTION = "propensity-score weighting (odds weights for the effect on the treated; or on the controls, or everyone), sandwich variance"
-OPTION_KEYS = ("effect_for", "score_margin", "weight_cap_quantile")
-TARGETS = ("enrolled", "not_enrolled", "everyone")  # effect_for: ATT, ATC, ATE
+OPTION_KEYS = ("score_margin", "weight_cap_quantile")
+TARGETS = {"att": "enrolled", "atc": "not_enrolled", "ate": "everyone"}  # matching.estimand -> the templates' words
 
 
 @dataclass(frozen=True)
@@ -69,15 +68,16 @@ def steps(ctx, model):
     m = spec.matching
     check_full_fit(spec)
     margin_logit = None if m.score_margin == 0 else math.log((1.0 - m.score_margin) / m.score_margin)
+    effect_for = TARGETS[m.estimand]
     limits = dict(
-        common_support=m.common_support, margin_logit=margin_logit, margin=m.score_margin, cap_quantile=m.weight_cap_quantile, effect_for=m.effect_for, clamp=ETA_CLAMP
+        common_support=m.common_support, margin_logit=margin_logit, margin=m.score_margin, cap_quantile=m.weight_cap_quantile, effect_for=effect_for, clamp=ETA_CLAMP
     )
     cap_text = f", weights truncated at their group's {m.weight_cap_quantile} quantile" if m.weight_cap_quantile is not None else ""
     weights_text = {
         "enrolled": "for the effect on the treated (treated 1, control e / (1 - e))",
         "not_enrolled": "for the effect on the controls (treated (1 - e) / e, control 1)",
         "everyone": "for the average effect (treated 1 / e, control 1 / (1 - e))",
-    }[m.effect_for]
+    }[effect_for]
     margin_text = f", units with a score outside [{m.score_margin}, {1 - m.score_margin}] left out" if margin_logit is not None else ""
     out = [
         ctx.score_step(model, []),
@@ -131,8 +131,22 @@ def steps(ctx, model):
 
 
 def check_full_fit(spec, result=None) -> None:
-    """Refuse a fit on sampled controls: the sandwich counts the uncertainty of a fit on every unit.
-    Also run on the first aggregate step (group_sizes), so a run stops before the pass over the events."""
+    """Refuse what weighting does not support: a fit on sampled controls (the sandwich counts the
+    uncertainty of a fit on every unit), the within-stratum regression adjustment and subgroup
+    effects (both read unweighted per-stratum sums). Also run on the first aggregate step
+    (group_sizes), so a run stops before the pass over the events."""
+    if spec.regression_adjustment:
+        raise SpecError(
+            "effect.regression_adjustment",
+            "score_weighting has no regression-adjusted effect: the adjustment works within strata where every unit of a group weighs the same.",
+            "set regression_adjustment = false, or use coarsened_exact or score_bins.",
+        )
+    if spec.subgroups:
+        raise SpecError(
+            "subgroups",
+            "score_weighting does not estimate effects per subgroup yet (the per-level sums are unweighted).",
+            "remove [[subgroups]] for this method, or use coarsened_exact or score_bins.",
+        )
     if spec.propensity.sample_controls < 1.0:
         raise SpecError(
             "propensity.sample_controls",
@@ -152,11 +166,10 @@ def _read_share(table: dict, name: str, low: float, high: float, hint: str):
 
 
 def read_options(table: dict, given: OptionInput) -> dict:
-    """matching.effect_for / score_margin / weight_cap_quantile."""
-    effect_for = read_choice(table, "matching", "effect_for", TARGETS, default="enrolled")
+    """matching.score_margin / weight_cap_quantile."""
     margin = _read_share(table, "score_margin", 0.0, 0.5, "e.g. score_margin = 0.05 leaves out units with a score below 0.05 or above 0.95.")
     cap = _read_share(table, "weight_cap_quantile", 0.5, 1.0, "e.g. weight_cap_quantile = 0.99 truncates the largest 1% of control weights.")
-    return {"effect_for": effect_for, "score_margin": margin or 0.0, "weight_cap_quantile": cap}
+    return {"score_margin": margin or 0.0, "weight_cap_quantile": cap}
 
 
 def warnings(spec, results) -> list[str]:
@@ -190,5 +203,7 @@ METHOD = MatchingMethod(
     read_options=read_options,
     checks={"group_sizes": check_full_fit},
     warnings=warnings,
+    estimands=("att", "atc", "ate"),
+    adjustable=False,
     groups_word="weighted comparison",
 )

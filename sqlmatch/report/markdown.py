@@ -7,7 +7,6 @@ import datetime as dt
 from sqlmatch.privacy import count_text, flow_texts, suppress_levels
 from sqlmatch.results import StudyResults
 
-ESTIMAND_WORDS = {"ATT": "the enrolled", "ATC": "the not enrolled", "ATE": "everyone (enrolled or not)"}
 SMD_REFERENCE = 0.1  # |SMD| below 0.1 read as balanced: common practice (Austin 2009)
 
 
@@ -111,13 +110,20 @@ def _sensitivity_section(r: StudyResults) -> list[str]:
     return lines
 
 
-def _groups_line(m, flow: dict) -> str:
+ESTIMAND_HEADINGS = {
+    "att": "Effects on the enrolled",
+    "atc": "Effects on the comparison units, had they enrolled (ATC)",
+    "ate": "Effects on everyone in the matched strata (ATE)",
+}
+
+
+def _groups_line(m, flow: dict, estimand: str = "att") -> str:
     """What the method built: strata (or matched sets), or for weighting the controls' effective number."""
     if m.effective_controls is not None:
         # the counts as the sample table shows them: withheld there, withheld here
         treated = (
             f" and the {flow['treated']['matched']} weighted enrolled units as about {m.effective_treated:,.0f}"
-            if m.estimand != "ATT" and m.effective_treated is not None
+            if estimand != "att" and m.effective_treated is not None
             else ""
         )
         return (
@@ -153,9 +159,9 @@ def render_markdown(r: StudyResults, balance_image: str | None = None) -> str:
         f"| dropped: no comparable unit in the stratum | {flow['treated']['no_comparable']} | {flow['control']['no_comparable']} |",
         *(["", f"Counts under {mc} are not shown, nor (–) a second count from which one could be worked out."] if _withheld(flow) else []),
         "",
-        _groups_line(m, flow),
+        _groups_line(m, flow, r.effects[0].estimand if r.effects else "att"),
         "",
-        f"## Effects on {ESTIMAND_WORDS.get(m.estimand, 'the enrolled')}",
+        "## " + ESTIMAND_HEADINGS.get(r.effects[0].estimand if r.effects else "att", "Effects on the enrolled"),
         "",
         "| outcome | kind | effect | 95% interval | relative lift | lift 95% interval | enrolled mean | matched comparison mean | unmatched difference |",
         "|---|---|---:|---|---:|---|---:|---:|---:|",
@@ -196,6 +202,35 @@ def render_markdown(r: StudyResults, balance_image: str | None = None) -> str:
             f"{r.imbalance['l1_before']:.3f} before matching, {r.imbalance['l1_after']:.3f} after, on {r.imbalance['histogram']}.",
         ]
     lines += _sensitivity_section(r)
+    if r.subgroups:
+        lines += ["", "## Effects by subgroup", "", "| subgroup | level | outcome | effect [95% CI] | enrolled | comparison |", "|---|---|---|---|---|---|"]
+        for sg in r.subgroups:
+            for x in sg.shown(mc):
+                effect = "withheld (few units)" if x["withheld"] else (
+                    f"{_x(x['estimate'])} [{_x(x['ci_low'])}, {_x(x['ci_high'])}]" if x["estimate"] is not None else "no estimate (a group is empty)"
+                )
+                n_t = f"<{mc}" if x["n_treated"] is None else f"{x['n_treated']:,}"
+                n_c = f"<{mc}" if x["n_control"] is None else f"{x['n_control']:,}"
+                lines.append(f"| {sg.subgroup} | {x['level']} | {sg.outcome} | {effect} | {n_t} | {n_c} |")
+        lines.append("")
+        for sg in r.subgroups:
+            if sg.p_value is not None:
+                lines.append(
+                    f"- {sg.subgroup}, {sg.outcome}: Cochran's Q = {sg.q:.2f} on {sg.df} df, p = {sg.p_value:.2g} "
+                    + ("(the effect differs between the levels more than chance would explain)." if sg.p_value < 0.05 else "(no clear difference between the levels).")
+                )
+        lines.append("- With many subgroups and outcomes, some differences are chance; a subgroup chosen after seeing the results proves little.")
+    if r.placebo is not None:
+        pw = r.placebo.results.windows
+        lines += [
+            "",
+            "## Placebo check",
+            "",
+            f"The same design placed {r.placebo.months_before} months earlier: the same enrolled units against the same "
+            f"comparison pool, features over {pw['pre'][0]} .. {pw['pre'][1]} and outcomes over {pw['post'][0]} .. {pw['post'][1]}, "
+            "all before anyone in the cohort enrolled, so every true effect is zero.",
+            "",
+        ] + [f"- {text}" for text in r.placebo.readings()]
     if r.warnings:
         lines += ["", "## Warnings", ""] + [f"- {text}" for text in r.warnings]
     lines += ["", "## Assumptions and cautions", ""]
