@@ -121,13 +121,13 @@ def no_weight_at_a_cap(t, raw, keep, caps) -> bool:
     "options",
     [
         {"common_support": False},
-        {},  # common support on (the default)
+        pytest.param({}, marks=pytest.mark.slow),  # common support on (the default)
         # quantiles where no control's weight equals the cap: at that kink the finite differences
         # take the mean of the two one-sided derivatives, sqlmatch the untruncated one
-        {"weight_cap_quantile": 0.987},
-        {"score_margin": 0.001, "weight_cap_quantile": 0.953},
+        pytest.param({"weight_cap_quantile": 0.987}, marks=pytest.mark.slow),
+        pytest.param({"score_margin": 0.001, "weight_cap_quantile": 0.953}, marks=pytest.mark.slow),
         {"estimand": "atc", "score_margin": 0.001},
-        {"estimand": "ate", "score_margin": 0.001},
+        pytest.param({"estimand": "ate", "score_margin": 0.001}, marks=pytest.mark.slow),
         {"estimand": "ate", "score_margin": 0.001, "weight_cap_quantile": 0.9713},
     ],
     ids=["no_limits", "common_support", "cap", "margin_and_cap", "atc", "ate", "ate_cap"],
@@ -278,6 +278,7 @@ def test_what_weighting_does_not_support_is_refused_before_the_pass_over_the_eve
         assert not [t for t in engine.table_names("sqlmatch") if t.startswith("nsw_")]  # nothing left behind
 
 
+@pytest.mark.slow
 def test_rows_fetched_do_not_grow_with_the_units(nsw_db, tmp_path):
     """The same study on the NSW data and on it with every comparison man present three times (new
     keys): every aggregate step returns as many rows (the propensity fit may take another Newton
