@@ -79,3 +79,14 @@ def information(i: int, j: int) -> str:
 def coefficient(i: int) -> str:
     """The coefficient a propensity_newton row was computed at."""
     return f"b_{i}"
+
+
+def score_products(i: int, j: int) -> str:
+    """Entry (i, j), i <= j, of sum (t - e)^2 x x' (the propensity score's part of the sandwich)."""
+    return f"rr_{i}_{j}"
+
+
+def weighting(key: str, group: str, what: str, j: int | None = None) -> str:
+    """A sum of score_weighting_sandwich for one outcome (or `<outcome>__did`) and group (t, c):
+    u, v, uu, uv, vv, and per design column j: ru, rv (times the score residual), du, dv."""
+    return f"{key}__w{group}_{what}" + ("" if j is None else f"_{j}")

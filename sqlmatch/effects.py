@@ -46,6 +46,8 @@ def study_results(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
         strata_dropped=int(summary["n_cells_dropped"]),
         n_treated_outside_support=sizes.get(1, 0) - in_cells_t,
         n_control_outside_support=sizes.get(0, 0) - in_cells_c,
+        effective_controls=_kish(summary, "control"),
+        effective_treated=_kish(summary, "treated"),
     )
     balance = aggregates.numeric_balance(r["balance_numeric"], [f.name for f in spec.numeric_features])
     if "balance_levels" in r:
@@ -55,10 +57,12 @@ def study_results(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
     if MATCHING_VARIANCE in r:
         with_bias = BIAS_STEP in r
         nn = MatchingInference(r[MATCHING_VARIANCE], r[BIAS_STEP] if with_bias else None, variable_numbers(plan.outcomes), len(bias_features(spec)) if with_bias else 0)
+    # score_weighting: the weighted effect and its sandwich variance replace the per-stratum one
+    weighting = (r["weighting_sandwich"].one(), spec.propensity.ridge) if "weighting_sandwich" in r else None
     effects = [
         outcome_effect(
             o, r["outcome_strata"], r["outcome_unmatched"], r.get("outcome_regression"), numeric, spec.matching.method,
-            r.get("pair_signed_rank"), spec.treatment_words, adjust=spec.regression_adjustment, nn=nn, estimand=spec.matching.estimand,
+            r.get("pair_signed_rank"), spec.treatment_words, adjust=spec.regression_adjustment, nn=nn, estimand=spec.matching.estimand, weighting=weighting,
         )
         for o in plan.outcomes
     ]
@@ -106,7 +110,7 @@ def _with_matching_variance(fields: dict, mv) -> None:
 
 def outcome_effect(
     outcome, matched, unmatched, regression=None, features=(), method: str = "", pair_ranks=None, treatment_words: str = "enrolment",
-    adjust: bool = False, nn: MatchingInference | None = None, estimand: str = "att",
+    adjust: bool = False, nn: MatchingInference | None = None, estimand: str = "att", weighting=None,
 ) -> Effect:
     """One outcome's effect, relative lift, risk ratio (binary), difference-in-differences (an
     outcome with a pre-window twin) and sensitivity figures, all from aggregates. With
@@ -233,6 +237,8 @@ def outcome_effect(
                 did_se = did_se if math.isfinite(did_se) else None
                 did_lo, did_hi = normal_interval(did_est, did_se)
             extra.update(did_twin=outcome.twin, did=_interval(did_est, did_se, did_lo, did_hi))
+    if weighting is not None:
+        fields, extra, rr = _weighted_fields(outcome, fields, extra, *weighting)
     sensitivity = outcome_sensitivity(outcome, fields, rr, regression, list(features), method, pair_ranks, treatment_words)
     return Effect(
         outcome=outcome.name,
@@ -243,6 +249,47 @@ def outcome_effect(
         **extra,
         sensitivity=sensitivity,
     )
+
+
+def _kish(summary: dict, group: str) -> float | None:
+    """Kish's effective number of units of a group, from a summary that returns their weights' sum
+    and sum of squares (score_weighting's)."""
+    from sqlmatch.estimators.weighting import kish_effective_size
+
+    return kish_effective_size(summary.get(f"{group}_weight_sum"), summary.get(f"{group}_weight_sumsq"))
+
+
+def _weighted_fields(outcome, fields: dict, extra: dict, row: dict, ridge: float):
+    """Propensity-score weighting: the weighted difference (of means, or of ratios) with the
+    sandwich variance that counts the estimated score (estimators/weighting.py); the lift (and a
+    binary outcome's risk ratio) from the same covariance of the two weighted means."""
+    from types import SimpleNamespace
+
+    from sqlmatch.estimators.weighting import sums_from_row, weighted_effect
+
+    w = weighted_effect(sums_from_row(row, outcome.name), ridge)
+    what = "ratios" if outcome.kind == "ratio" else "means"
+    fields = dict(
+        fields,
+        estimator=f"propensity-weighted difference in {what}, sandwich variance counting the estimated score" + (" (risk difference)" if outcome.kind == "binary" else ""),
+        estimate=w.estimate,
+        std_error=w.std_error,
+        ci_low=w.ci_low,
+        ci_high=w.ci_high,
+        mean_treated=w.mean_treated,
+        mean_control=w.mean_control,
+    )
+    ratio, ratio_se, lo, hi = w.ratio()
+    lift = _interval(ratio - 1.0, ratio_se, None if lo is None else lo - 1.0, None if hi is None else hi - 1.0)
+    extra = dict(extra, lift=lift)
+    rr = None
+    if outcome.kind == "binary":
+        rr = SimpleNamespace(estimate=ratio, std_error=ratio_se, ci_low=lo, ci_high=hi)
+        extra["risk_ratio"] = _interval(ratio, ratio_se, lo, hi)
+    if extra.get("did_twin"):
+        did = weighted_effect(sums_from_row(row, f"{outcome.name}__did"), ridge)
+        extra["did"] = _interval(did.estimate, did.std_error, did.ci_low, did.ci_high)
+    return fields, extra, rr
 
 
 def _interval(estimate, std_error, ci_low, ci_high) -> Interval:

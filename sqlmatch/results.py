@@ -121,6 +121,9 @@ class MatchingSummary:
     strata_dropped: int
     n_treated_outside_support: int = 0
     n_control_outside_support: int = 0
+    # weighting methods: Kish's effective numbers of weighted units, (sum w)^2 / sum w^2, per group
+    effective_controls: float | None = None
+    effective_treated: float | None = None
 
 
 @dataclass(frozen=True)

@@ -191,6 +191,9 @@ class Matching:
     replacement: bool = True  # a control may serve several treated units
     max_candidate_pairs: int = 50_000_000  # refuse a candidate join larger than this
     bias_correction: bool = True  # with replacement: Abadie & Imbens (2011) regression correction
+    # score_weighting
+    score_margin: float = 0.0  # leave out units whose score is outside [a, 1 - a]; 0: none
+    weight_cap_quantile: float | None = None  # truncate control weights at this quantile of theirs
 
 
 @dataclass(frozen=True)

@@ -47,6 +47,8 @@ def demo_plans():
         plans[f"nearest_{distance}"] = build_plan(parse_spec(nearest), "duckdb", model=model)
     pairs = dict(raw, matching={"method": "nearest_neighbour", "replacement": False})
     plans["nearest_pairs"] = build_plan(parse_spec(pairs), "duckdb", model=model)
+    weighting = dict(raw, matching={"method": "score_weighting", "score_margin": 0.01, "weight_cap_quantile": 0.99})
+    plans["score_weighting"] = build_plan(parse_spec(weighting), "duckdb", model=model)
     return plans
 
 

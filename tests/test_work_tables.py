@@ -109,7 +109,7 @@ def test_the_old_method_name_is_refused_with_the_new_one():
     assert err.value.key == "matching.method" and "nearest_neighbour" in str(err.value)
 
 
-@pytest.mark.parametrize("method", ["coarsened_exact", "score_bins", "nearest_neighbour"])
+@pytest.mark.parametrize("method", ["coarsened_exact", "score_bins", "nearest_neighbour", "score_weighting"])
 def test_writable_tables_are_what_the_full_plans_write(method):
     """writable_tables lists the plans without rendering SQL or fitting a model; the list must be
     exactly the tables of the rendered full plans (run and scheduler forms), whatever the model."""

@@ -117,6 +117,22 @@ ESTIMAND_HEADINGS = {
 }
 
 
+def _groups_line(m, flow: dict, estimand: str = "att") -> str:
+    """What the method built: strata (or matched sets), or for weighting the controls' effective number."""
+    if m.effective_controls is not None:
+        # the counts as the sample table shows them: withheld there, withheld here
+        treated = (
+            f" and the {flow['treated']['matched']} weighted enrolled units as about {m.effective_treated:,.0f}"
+            if estimand != "att" and m.effective_treated is not None
+            else ""
+        )
+        return (
+            f"Weighted comparison (one group, no strata): the {flow['control']['matched']} weighted non-enrolled units count as "
+            f"about {m.effective_controls:,.0f} unweighted ones{treated} (Kish's effective sample size, (sum w)² / sum w²)."
+        )
+    return f"Strata used: {m.strata:,}; cells dropped for lacking an enrolled or a non-enrolled unit: {m.strata_dropped:,}."
+
+
 def render_markdown(r: StudyResults, balance_image: str | None = None) -> str:
     """Markdown sized for a pull-request comment; `balance_image` names the balance plot written
     beside the report, if any."""
@@ -143,7 +159,7 @@ def render_markdown(r: StudyResults, balance_image: str | None = None) -> str:
         f"| dropped: no comparable unit in the stratum | {flow['treated']['no_comparable']} | {flow['control']['no_comparable']} |",
         *(["", f"Counts under {mc} are not shown, nor (–) a second count from which one could be worked out."] if _withheld(flow) else []),
         "",
-        f"Strata used: {m.strata:,}; cells dropped for lacking an enrolled or a non-enrolled unit: {m.strata_dropped:,}.",
+        _groups_line(m, flow, r.effects[0].estimand if r.effects else "att"),
         "",
         "## " + ESTIMAND_HEADINGS.get(r.effects[0].estimand if r.effects else "att", "Effects on the enrolled"),
         "",
