@@ -111,6 +111,19 @@ def hash_tiebreak(t: pd.DataFrame, c: pd.DataFrame) -> np.ndarray:
     return (ts[:, None] * 2654435761 + cs[None, :] * 40503) % 4294967296
 
 
+def position_tiebreak(t: pd.DataFrame, c: pd.DataFrame, exact: list[str]) -> np.ndarray:
+    """The SQL's tiebreak among equal score distances: the gap between the two units' places in
+    their exact block's score order (ties in score: unit key), computed here in pandas."""
+    both = pd.concat([t.assign(_side="t", _i=np.arange(len(t))), c.assign(_side="c", _i=np.arange(len(c)))], ignore_index=True)
+    blocks = [both[f].fillna("(missing)").astype(str) for f in exact]
+    both["_block"] = pd.Series(list(zip(*blocks)), index=both.index) if exact else 0
+    both = both.sort_values(["score", "unit_key"])
+    both["_pos"] = both.groupby("_block").cumcount() + 1
+    tp = both[both._side == "t"].sort_values("_i")._pos.to_numpy()
+    cp = both[both._side == "c"].sort_values("_i")._pos.to_numpy()
+    return np.abs(tp[:, None] - cp[None, :])
+
+
 def in_block(t: pd.DataFrame, c: pd.DataFrame, exact: list[str]) -> np.ndarray:
     ok = np.ones((len(t), len(c)), dtype=bool)
     for f in exact:
@@ -125,9 +138,10 @@ def in_block(t: pd.DataFrame, c: pd.DataFrame, exact: list[str]) -> np.ndarray:
 @pytest.mark.parametrize("name", ["logit", "logit_blocks_k3"])
 def test_logit_matches_equal_brute_force_nearest_neighbours(runs, name):
     """Each treated unit's k matches are its k nearest controls on the logit score (gaps compared at
-    10 decimal places, ties: lower key) among controls of its exact block within the caliper, found
-    by brute force in numpy over every
-    pair: the score bins never hide a candidate. Weights: treated 1, a control the sum over the
+    10 decimal places; ties: the control nearer in the block's score order, then the lower key)
+    among controls of its exact block within the caliper, found by brute force in numpy over every
+    pair: the sorted search (k controls each side in score order) never misses one. The demo's
+    scores have many ties (riders with the same counts), so the tie rule is exercised. Weights: treated 1, a control the sum over the
     treated units it serves of 1/k_i (the usual weights of k:1 matching with replacement for the
     effect on the treated, e.g. Stuart 2010, Statistical Science 25:1, recalled)."""
     spec, out, tables = runs[name]
@@ -137,7 +151,8 @@ def test_logit_matches_equal_brute_force_nearest_neighbours(runs, name):
     gap = np.abs(t.score.to_numpy()[:, None] - c.score.to_numpy()[None, :])
     ok = in_block(t, c, list(spec.matching.exact)) & (gap <= width)
     expected = {}
-    tie = hash_tiebreak(t, c)
+    tie = position_tiebreak(t, c, list(spec.matching.exact))
+    assert (np.round(gap, 10)[:, :, None] == np.round(gap, 10)[:, None, :]).any()  # ties exist
     for i in range(len(t)):
         idx = np.flatnonzero(ok[i])
         order = np.lexsort((c.unit_key.to_numpy()[idx], tie[i, idx], np.round(gap[i, idx], 10)))
@@ -172,16 +187,16 @@ def test_logit_matches_equal_brute_force_nearest_neighbours(runs, name):
 
 
 def test_greedy_without_replacement_equals_greedy_by_distance(runs):
-    """Without replacement: the SQL rounds of mutually nearest pairs give the greedy matching that
-    takes pairs in increasing order of (distance at 10 decimal places, the hash tiebreak, treated key,
-    control key)
+    """Without replacement: the SQL rounds of mutually nearest pairs over the sorted candidates
+    (8 controls each side in score order) give the greedy matching that takes pairs in increasing
+    order of (distance at 10 decimal places, the score-order tiebreak, treated key, control key)
     while both units are free, computed here by brute force over every candidate pair in numpy."""
     spec, out, tables = runs["greedy"]
     t, c, width = brute_force_candidates(tables, spec)
     gap = np.abs(t.score.to_numpy()[:, None] - c.score.to_numpy()[None, :])
     ii, jj = np.nonzero(gap <= width)
     tk, ck = t.unit_key.to_numpy()[ii], c.unit_key.to_numpy()[jj]
-    tie = hash_tiebreak(t, c)[ii, jj]
+    tie = position_tiebreak(t, c, [])[ii, jj]
     order = np.lexsort((ck, tk, tie, np.round(gap[ii, jj], 10)))
     used_t, used_c, expected = set(), set(), set()
     for o in order:
@@ -198,6 +213,8 @@ def test_greedy_without_replacement_equals_greedy_by_distance(runs):
     summary = out.results["matching_summary"].one()
     assert summary["n_treated_matched"] == summary["n_control_matched"] == len(expected)
     assert summary["n_treated_still_open"] == 0  # the rounds ran to the end
+    assert summary["n_treated_cut_short"] == 0
+    assert 1 < out.repeats["nearest_neighbour_rounds"] < neighbours.MAX_ROUNDS
 
 
 # ---------------------------------------------------------------------------------------------
@@ -294,12 +311,24 @@ def test_demo_balance_after_matching_on_the_logit_score(runs):
 
 
 def test_candidate_guard_refuses_a_large_join(demo_db):
-    raw = demo_raw(demo_db, "nearest_neighbour_guard", max_candidate_pairs=1000)
+    """The Mahalanobis distances compare every pair of a block in adjacent score bins: guarded."""
+    raw = demo_raw(demo_db, "nearest_neighbour_guard", distance="mahalanobis", max_candidate_pairs=1000)
     with pytest.raises(DataError) as info:
         run(raw)
     assert info.value.key == "matching.max_candidate_pairs"
     assert "more than the limit of 1,000" in str(info.value) and "matching.exact" in str(info.value)
     assert study_tables(demo_db, "nearest_neighbour_guard") == []
+
+
+def test_score_distance_needs_no_candidate_join(demo_db):
+    """The score distance looks at k controls each side of a treated unit in score order, so a study
+    whose candidate join the guard would refuse (more than 1,000 pairs) runs, and never writes more
+    than 2k candidate rows per treated unit."""
+    raw = demo_raw(demo_db, "nearest_neighbour_noguard", max_candidate_pairs=1000)
+    _, out, tables = run(raw, ("nearest_neighbour_matches",))
+    assert out.results["candidate_pairs"].one()["n_candidate_pairs"] > 1000
+    summary = out.results["matching_summary"].one()
+    assert summary["n_treated_matched"] == len(tables["nearest_neighbour_matches"]) > 300
 
 
 @pytest.fixture(scope="module")
@@ -379,13 +408,16 @@ STAND_IN_MODEL = FittedModel(
 
 def test_plan_compiles_for_every_dialect():
     """Every dialect prints the plan (one configuration that uses every nearest_neighbour_ template); the greedy
-    rounds are steps of the compiled plan, and the guard runs before the candidate join."""
+    rounds are one step the runner repeats (its check query in the step), and the guard runs before the candidate join."""
     spec = parse_spec(demo_raw("unused.duckdb", "nearest_neighbour_compile", distance="robust_mahalanobis", exact=["home_district"], replacement=False))
     for dialect in DIALECTS:
         plan = build_plan(spec, dialect, model=STAND_IN_MODEL)
         names = [s.name for s in plan.steps]
         assert names.index("candidate_pairs") < names.index("nearest_neighbour_candidates")
-        assert [n for n in names if n.startswith("nearest_neighbour_round_")] == [f"nearest_neighbour_round_{r:02d}" for r in range(1, neighbours.MAX_ROUNDS + 1)]
+        assert [n for n in names if n.startswith("nearest_neighbour_round")] == ["nearest_neighbour_rounds"]
+        rounds = plan.step("nearest_neighbour_rounds")
+        assert rounds.max_repeats == neighbours.MAX_ROUNDS and "n_open" in rounds.repeat_check
+        assert len(plan.files()) <= 30  # 76 with one file per greedy round
         assert {"nearest_neighbour_features", "nearest_neighbour_whitening", "pairs", "match_weights", "matching_summary"} <= set(names)
         assert all("QUALIFY" not in sql.upper() for s in plan.steps for sql in s.statements)
 

@@ -53,6 +53,7 @@ when the pairs exceed `matching.max_candidate_pairs` or when no treated unit can
 
 from __future__ import annotations
 
+import dataclasses
 import math
 
 from sqlmatch.errors import DataError, SpecError
@@ -62,8 +63,19 @@ DESCRIPTION = (
     "nearest neighbours on the propensity score (or a Mahalanobis distance) within exact blocks and a caliper, "
     "k:1 with or without replacement"
 )
-MAX_ROUNDS = 50  # greedy rounds without replacement, each a step of the plan (the demo at 30,000 riders needs 34)
+MAX_ROUNDS = 500  # greedy rounds without replacement: the runner repeats one step at most this often
+# Without replacement on the score: controls looked at on each side of a treated unit in score order.
+# The greedy rounds over these equal the greedy matching over every pair unless a treated unit's
+# controls on one side are all taken by others (the summary counts such units: n_treated_cut_short).
+GREEDY_REACH = 8
 PIVOT_MIN = 1e-8  # 1 - R^2 of a feature on the features before it, below which the covariance is singular
+
+
+def search_route(m) -> str:
+    """How candidates are found: "sorted" (the score distance: neighbours in score order, no join of
+    all pairs) or "all_pairs" (Mahalanobis distances: every pair in adjacent score bins of a block,
+    behind the candidate guard)."""
+    return "sorted" if m.distance == "logit" else "all_pairs"
 
 
 def distance_features(spec) -> list[str]:
@@ -79,6 +91,8 @@ def _distance_text(distance: str, features: list[str]) -> str:
 
 
 def steps(ctx, model):
+    from sqlmatch import dialects, render  # render imports spec, which imports the method registry
+
     spec = ctx.spec
     m = spec.matching
     exact = list(m.exact)
@@ -161,8 +175,14 @@ def steps(ctx, model):
             **{k: tables[k] for k in ("units_table", "caliper_table")},
         ),
     ]
-    common = dict(exact=exact, dims=dims, distance_text=text, units_table=tables["units_table"], caliper_table=tables["caliper_table"])
+    search = search_route(m)
+    common = dict(exact=exact, dims=dims, distance_text=text, search=search, units_table=tables["units_table"], caliper_table=tables["caliper_table"])
     join_reads = [ctx.display("nearest_neighbour_units"), ctx.display("nearest_neighbour_caliper")]
+    looked_at = (
+        "the controls just below and above each treated unit in score order"
+        if search == "sorted"
+        else "the controls in the same or an adjacent score bin"
+    )
     if m.replacement:
         out.append(
             ctx.table_step(
@@ -170,7 +190,7 @@ def steps(ctx, model):
                 "nearest_neighbour_matches",
                 writes="nearest_neighbour_matches",
                 reads=join_reads,
-                purpose=f"The {m.ratio} nearest control(s) of each treated unit within the caliper, with replacement.",
+                purpose=f"The {m.ratio} nearest control(s) of each treated unit within the caliper, with replacement ({looked_at}).",
                 ratio=m.ratio,
                 **common,
             )
@@ -181,42 +201,37 @@ def steps(ctx, model):
             ctx.table_step(
                 "nearest_neighbour_candidates",
                 "nearest_neighbour_candidates",
-                writes="nearest_neighbour_candidates",
+                writes="nearest_neighbour_rounds",
                 reads=join_reads,
-                purpose="Candidate pairs within the caliper, with their distance.",
+                purpose=f"Candidate pairs within the caliper, with their distance ({looked_at}); none matched yet.",
+                reach=GREEDY_REACH,
                 **common,
             )
         )
-        previous = None
-        for r in range(1, MAX_ROUNDS + 1):
-            # two tables, written in turn: round r reads what round r - 1 wrote
-            current = "nearest_neighbour_round_a" if r % 2 else "nearest_neighbour_round_b"
-            out.append(
-                ctx.table_step(
-                    f"nearest_neighbour_round_{r:02d}",
-                    "nearest_neighbour_round",
-                    writes=current,
-                    reads=[ctx.display(previous) if previous else ctx.display("nearest_neighbour_candidates")],
-                    purpose=f"Greedy matching without replacement, round {r} of {MAX_ROUNDS}: mutually nearest free pairs.",
-                    round=r,
-                    rounds=MAX_ROUNDS,
-                    candidates_table=ctx.table("nearest_neighbour_candidates"),
-                    previous_table=ctx.table(previous) if previous else None,
-                )
-            )
-            previous = current
+        rounds = ctx.table("nearest_neighbour_rounds")
+        check_sql, written_in = render.render("nearest_neighbour_round_check", ctx.dialect, rounds_table=rounds)
+        (check,) = dialects.parse(check_sql, written_in)
+        round_step = ctx.table_step(
+            "nearest_neighbour_rounds",
+            "nearest_neighbour_round",
+            writes="nearest_neighbour_rounds",
+            reads=[ctx.display("nearest_neighbour_rounds")],
+            purpose=f"Greedy matching without replacement: one round of mutually nearest open pairs, repeated until none is open (at most {MAX_ROUNDS}).",
+            rounds=MAX_ROUNDS,
+            rounds_table=rounds,
+        )
+        out.append(dataclasses.replace(round_step, repeat_check=dialects.generate(check, ctx.dialect), max_repeats=MAX_ROUNDS))
         out.append(
             ctx.table_step(
                 "pairs",
                 "nearest_neighbour_pairs",
                 writes="pairs",
-                reads=[ctx.display(previous)],
+                reads=[ctx.display("nearest_neighbour_rounds")],
                 purpose="Matched pairs (no unit in two pairs), numbered.",
-                rounds=MAX_ROUNDS,
-                rounds_table=ctx.table(previous),
+                rounds_table=rounds,
             )
         )
-        matches, rounds_table = "pairs", previous
+        matches, rounds_table = "pairs", "nearest_neighbour_rounds"
         pair_outcomes = [o.name for o in ctx.spec.outcomes if o.kind != "ratio"]
         if pair_outcomes:
             out.append(
@@ -294,7 +309,8 @@ def check_candidates(spec, result) -> None:
             "widen matching.caliper" + (", or match exactly on fewer features (matching.exact)." if m.exact else "."),
         )
     n_pairs = int(row["n_candidate_pairs"])
-    if n_pairs > m.max_candidate_pairs:
+    # the sorted search looks at a fixed number of controls per treated unit: no join to guard
+    if search_route(m) == "all_pairs" and n_pairs > m.max_candidate_pairs:
         raise DataError(
             "matching.max_candidate_pairs",
             f"the candidate join would compare {n_pairs:,} (treated, control) pairs, more than the limit of {m.max_candidate_pairs:,}.",
@@ -304,10 +320,32 @@ def check_candidates(spec, result) -> None:
 
 
 def warnings(spec, results) -> list[str]:
-    """With replacement, say how often controls were reused: the variance treats each use as a new control."""
-    if not spec.matching.replacement or "matching_summary" not in results:
+    """With replacement, say how often controls were reused: the variance treats each use as a new
+    control. Without, say when the greedy rounds stopped early or may differ from the greedy
+    matching over every pair."""
+    if "matching_summary" not in results:
         return []
     m = results["matching_summary"].one()
+    if not spec.matching.replacement:
+        out = []
+        still_open = int(m.get("n_treated_still_open") or 0)
+        if still_open:
+            out.append(
+                f"The greedy rounds of nearest-neighbour matching without replacement stopped with {still_open:,} enrolled units "
+                f"still holding a free candidate control (at most {MAX_ROUNDS} rounds; a scheduler runs the rounds step once "
+                "unless told to repeat it): they count as unmatched. Run the nearest_neighbour_rounds step again until its "
+                "check returns n_open = 0 (see the step's file or manifest.json), then report again."
+            )
+        cut = int(m.get("n_treated_cut_short") or 0)
+        if cut:
+            out.append(
+                f"For {cut:,} enrolled units the {GREEDY_REACH} controls looked at on one side in score order were all taken by "
+                "other enrolled units, so the matching may differ from the greedy matching over every pair (first for them, "
+                "then for units whose controls they would have taken); with none such it is the same. With many ties in the "
+                "score, add the features that tell the units apart to the propensity model, block on a categorical feature "
+                "(matching.exact) or match with replacement."
+            )
+        return out
     return [
         f"Nearest-neighbour matching with replacement used {int(m['n_control_matched'] or 0):,} distinct controls for "
         f"{int(m['n_treated_matched'] or 0):,} matched enrolled units. The standard errors treat a reused control as if it "
