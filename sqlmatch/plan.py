@@ -15,6 +15,7 @@ from dataclasses import dataclass, field
 from sqlglot import exp
 
 from sqlmatch import dialects, render
+from sqlmatch.columns import regression_design, upper_pairs
 from sqlmatch.matching import method_for
 from sqlmatch.spec import MISSING_INDICATOR, Spec, last_period_start
 
@@ -68,6 +69,10 @@ class Step:
     max_repeats: int = 1
 
 
+BITMASK_LANE_DAYS = 63  # days per BIGINT lane: the sign bit is never set
+BITMASK_MAX_LANES = 8  # windows up to 504 days; longer ones count distinct days
+
+
 @dataclass(frozen=True)
 class MeasureColumn:
     """One per-unit aggregate of events in a window (rendered by _macros.event_aggregate)."""
@@ -78,6 +83,20 @@ class MeasureColumn:
     end: dt.date
     fill: float
     measure: str | None = None
+
+    @property
+    def days(self) -> int:
+        return (self.end - self.start).days
+
+    @property
+    def day_lanes(self) -> tuple[tuple[int, int], ...]:
+        """[low, high) day offsets of the 63-day BIGINT lanes the DuckDB active-days bitmask ORs
+        into (sql_templates/duckdb/_active_days.sql.j2); none for a window longer than
+        BITMASK_MAX_LANES lanes, which is counted with COUNT(DISTINCT day) instead."""
+        lanes = (self.days + BITMASK_LANE_DAYS - 1) // BITMASK_LANE_DAYS
+        if lanes > BITMASK_MAX_LANES:
+            return ()
+        return tuple((BITMASK_LANE_DAYS * k, BITMASK_LANE_DAYS * (k + 1)) for k in range(lanes))
 
 
 @dataclass(frozen=True)
@@ -283,7 +302,7 @@ def measure_columns(spec: Spec) -> tuple[list[MeasureColumn], list[OutcomeColumn
 
 def source_steps(ctx: PlanContext, outcomes, columns) -> list[Step]:
     """The study's units, the checks on them, and one pass over the events for every feature and outcome."""
-    spec, dialect = ctx.spec, ctx.dialect
+    spec = ctx.spec
     w = spec.windows
     control_from = w.post_end if spec.control_pool == "never_by_post_end" else w.cohort_end
     pool_text = (
@@ -342,7 +361,6 @@ def source_steps(ctx: PlanContext, outcomes, columns) -> list[Step]:
             columns=columns,
             attributes=spec.attribute_features,
             units_table=ctx.table("units"),
-            target=dialect,
             check_unknown=spec.check_unknown_units,
             units_source=spec.units,
             units_key=spec.unit_key,
@@ -477,6 +495,7 @@ def outcome_steps(ctx: PlanContext, outcomes, per_match: bool) -> list[Step]:
                 weighted_table=ctx.table("weighted_units"),
             )
         )
+    design = regression_design(numeric)
     steps.append(
         ctx.query_step(
             "outcome_regression",
@@ -484,6 +503,8 @@ def outcome_steps(ctx: PlanContext, outcomes, per_match: bool) -> list[Step]:
             reads=weighted,
             purpose="Weighted regression of each outcome on treatment and the numeric features among matched units, as sums (X'WX, X'Wy, y'Wy) for the sensitivity analysis.",
             features=numeric,
+            design=design,
+            design_pairs=upper_pairs(len(design)),
             outcomes=outcomes,
             weighted_table=ctx.table("weighted_units"),
         )
