@@ -17,9 +17,9 @@ from test_neighbours import brute_force_candidates, demo_db, demo_raw, in_block,
 
 CONFIGS = {
     "k1": {},
-    "k3_blocks": {"exact": ["age_band"], "ratio": 3},
-    "greedy": {"replacement": False},
-    "greedy_blocks": {"replacement": False, "exact": ["home_district"]},
+    "k3_blocks": {"block_on": ["age_band"], "controls_per_treated": 3},
+    "greedy": {"reuse_controls": False},
+    "greedy_blocks": {"reuse_controls": False, "block_on": ["home_district"]},
 }
 
 
@@ -30,7 +30,7 @@ def tied_raw(database: str, study: str, **matching) -> dict:
 
 
 def matches_of(tables: dict, matching: dict) -> set[tuple[int, int]]:
-    m = tables["pairs" if matching.get("replacement") is False else "nearest_neighbour_matches"]
+    m = tables["pairs" if matching.get("reuse_controls") is False else "nearest_neighbour_matches"]
     return set(zip(m.treated_key.astype(int), m.control_key.astype(int)))
 
 
@@ -41,7 +41,7 @@ def both_routes(demo_db):
         for route in ("sorted", "all_pairs"):
             mp.setattr(neighbours, "search_route", lambda m, route=route: route)
             for name, matching in CONFIGS.items():
-                matches = "pairs" if matching.get("replacement") is False else "nearest_neighbour_matches"
+                matches = "pairs" if matching.get("reuse_controls") is False else "nearest_neighbour_matches"
                 out[route, name] = run(tied_raw(demo_db, f"nn_search_{route}_{name}", **matching), ("scores", matches))
     return out
 
@@ -58,7 +58,7 @@ def test_sorted_search_selects_the_matches_of_the_join_of_all_pairs(both_routes,
     assert got == reference
     for key in ("n_treated_matched", "n_control_matched", "n_matches", "n_strata"):
         assert out_sorted.results["matching_summary"].one()[key] == out_all.results["matching_summary"].one()[key]
-    if not spec.matching.replacement:
+    if not spec.matching.reuse_controls:
         # the greedy matching over the sorted candidates is the greedy one over every pair only when no
         # treated unit ran out of candidates on a side; here none did, and the summary says so
         assert out_sorted.results["matching_summary"].one()["n_treated_cut_short"] == 0
@@ -70,7 +70,7 @@ def test_sorted_search_equals_brute_force_with_ties(both_routes, name):
     decimal places, gap in block score order, control key) over every pair in numpy."""
     spec, _, tables = both_routes["sorted", name]
     t, c, width = brute_force_candidates(tables, spec)
-    exact = list(spec.matching.exact)
+    exact = list(spec.matching.block_on)
     gap = np.round(np.abs(t.score.to_numpy()[:, None] - c.score.to_numpy()[None, :]), 10)
     ok = in_block(t, c, exact) & (np.abs(t.score.to_numpy()[:, None] - c.score.to_numpy()[None, :]) <= width)
     tie = position_tiebreak(t, c, exact)
@@ -78,7 +78,7 @@ def test_sorted_search_equals_brute_force_with_ties(both_routes, name):
     n_tied_choices = 0
     for i in range(len(t)):
         idx = np.flatnonzero(ok[i])
-        order = np.lexsort((c.unit_key.to_numpy()[idx], tie[i, idx], gap[i, idx]))[: spec.matching.ratio]
+        order = np.lexsort((c.unit_key.to_numpy()[idx], tie[i, idx], gap[i, idx]))[: spec.matching.controls_per_treated]
         if len(idx) > len(order) and gap[i, idx[order[-1]]] in np.delete(gap[i, idx], order):
             n_tied_choices += 1  # the last match was chosen among controls at the same distance
         expected |= {(int(t.unit_key[i]), int(c.unit_key[j])) for j in idx[order]}
@@ -99,7 +99,7 @@ def test_greedy_flags_treated_units_that_ran_out_of_candidates(demo_db):
     by others and more lie beyond, the summary counts the unit and the run warns: a model on the
     age band alone gives each band one score, and with one control in 20 kept the treated units
     outnumber the controls in each band, so many find all 8 controls on a side taken."""
-    raw = tied_raw(demo_db, "nn_search_cut", replacement=False)
+    raw = tied_raw(demo_db, "nn_search_cut", reuse_controls=False)
     raw["propensity"] = {"features": ["age_band"]}
     raw["eligibility"]["filters"].append("(pass_bought_on IS NOT NULL OR rider_id % 20 = 0)")
     spec, out, _ = run(raw)

@@ -73,10 +73,10 @@ def demo_db(demo_dir, tmp_path_factory) -> str:
 
 CONFIGS = {
     "logit": {},
-    "logit_blocks_k3": {"exact": ["age_band"], "ratio": 3},
+    "logit_blocks_k3": {"block_on": ["age_band"], "controls_per_treated": 3},
     "mahalanobis": {"distance": "mahalanobis"},
-    "robust": {"distance": "robust_mahalanobis", "exact": ["home_district"]},
-    "greedy": {"replacement": False},
+    "robust": {"distance": "rank_mahalanobis", "block_on": ["home_district"]},
+    "greedy": {"reuse_controls": False},
 }
 TABLES = ("scores", "nearest_neighbour_caliper", "nearest_neighbour_units", "measures", "match_weights")
 
@@ -87,7 +87,7 @@ def runs(demo_db):
     out = {}
     for name, matching in CONFIGS.items():
         extra = ("nearest_neighbour_features", "nearest_neighbour_whitening") if "distance" in matching else ()
-        matches = "pairs" if matching.get("replacement") is False else "nearest_neighbour_matches"
+        matches = "pairs" if matching.get("reuse_controls") is False else "nearest_neighbour_matches"
         out[name] = run(demo_raw(demo_db, f"nearest_neighbour_{name}", **matching), TABLES + extra + (matches,))
         out[name][2]["found_matches"] = out[name][2][matches]
     return out
@@ -147,11 +147,11 @@ def test_logit_matches_equal_brute_force_nearest_neighbours(runs, name):
     spec, out, tables = runs[name]
     t, c, width = brute_force_candidates(tables, spec)
     assert tables["nearest_neighbour_caliper"].width[0] == pytest.approx(width, rel=1e-12)
-    k = spec.matching.ratio
+    k = spec.matching.controls_per_treated
     gap = np.abs(t.score.to_numpy()[:, None] - c.score.to_numpy()[None, :])
-    ok = in_block(t, c, list(spec.matching.exact)) & (gap <= width)
+    ok = in_block(t, c, list(spec.matching.block_on)) & (gap <= width)
     expected = {}
-    tie = position_tiebreak(t, c, list(spec.matching.exact))
+    tie = position_tiebreak(t, c, list(spec.matching.block_on))
     assert (np.round(gap, 10)[:, :, None] == np.round(gap, 10)[:, None, :]).any()  # ties exist
     for i in range(len(t)):
         idx = np.flatnonzero(ok[i])
@@ -166,7 +166,7 @@ def test_logit_matches_equal_brute_force_nearest_neighbours(runs, name):
     # the guard's count of candidate pairs: same block and score bins at most one apart (numpy)
     bins = np.floor((np.r_[t.score, c.score] - tables["nearest_neighbour_caliper"].score_min[0]) / tables["nearest_neighbour_caliper"].width[0])
     tb, cb = bins[: len(t)], bins[len(t) :]
-    pairs = (in_block(t, c, list(spec.matching.exact)) & (np.abs(tb[:, None] - cb[None, :]) <= 1)).sum()
+    pairs = (in_block(t, c, list(spec.matching.block_on)) & (np.abs(tb[:, None] - cb[None, :]) <= 1)).sum()
     assert out.results["candidate_pairs"].one()["n_candidate_pairs"] == pairs
     # weights
     # one weights row per (treated unit, control) match: a unit's weight is the sum of its rows
@@ -316,7 +316,7 @@ def test_candidate_guard_refuses_a_large_join(demo_db):
     with pytest.raises(DataError) as info:
         run(raw)
     assert info.value.key == "matching.max_candidate_pairs"
-    assert "more than the limit of 1,000" in str(info.value) and "matching.exact" in str(info.value)
+    assert "more than the limit of 1,000" in str(info.value) and "matching.block_on" in str(info.value)
     assert study_tables(demo_db, "nearest_neighbour_guard") == []
 
 
@@ -383,9 +383,9 @@ def test_check_candidates_names_a_constant_or_collinear_feature():
         ({"distance": "euclid"}, "matching.distance"),
         ({"caliper": 0}, "matching.caliper"),
         ({"caliper": True}, "matching.caliper"),
-        ({"ratio": 0}, "matching.ratio"),
-        ({"replacement": "no"}, "matching.replacement"),
-        ({"replacement": False, "ratio": 2}, "matching.ratio"),
+        ({"controls_per_treated": 0}, "matching.controls_per_treated"),
+        ({"reuse_controls": "no"}, "matching.reuse_controls"),
+        ({"reuse_controls": False, "controls_per_treated": 2}, "matching.controls_per_treated"),
         ({"max_candidate_pairs": 0}, "matching.max_candidate_pairs"),
     ],
 )
@@ -393,6 +393,23 @@ def test_spec_errors_name_the_key(matching, key):
     with pytest.raises(SpecError) as info:
         parse_spec(demo_raw("unused.duckdb", "nearest_neighbour_spec", **matching))
     assert info.value.key == key
+
+
+@pytest.mark.parametrize(
+    "matching, key, new",
+    [
+        ({"exact": ["age_band"]}, "matching.exact", "block_on"),
+        ({"ratio": 2}, "matching.ratio", "controls_per_treated"),
+        ({"replacement": False}, "matching.replacement", "reuse_controls"),
+        ({"distance": "logit"}, "matching.distance", '"score"'),
+        ({"distance": "robust_mahalanobis"}, "matching.distance", '"rank_mahalanobis"'),
+    ],
+)
+def test_earlier_option_names_are_refused_with_the_new_name(matching, key, new):
+    with pytest.raises(SpecError) as info:
+        parse_spec(demo_raw("unused.duckdb", "nearest_neighbour_spec", **matching))
+    assert info.value.key == key
+    assert new in str(info.value)
 
 
 STAND_IN_MODEL = FittedModel(
@@ -409,7 +426,7 @@ STAND_IN_MODEL = FittedModel(
 def test_plan_compiles_for_every_dialect():
     """Every dialect prints the plan (one configuration that uses every nearest_neighbour_ template); the greedy
     rounds are one step the runner repeats (its check query in the step), and the guard runs before the candidate join."""
-    spec = parse_spec(demo_raw("unused.duckdb", "nearest_neighbour_compile", distance="robust_mahalanobis", exact=["home_district"], replacement=False))
+    spec = parse_spec(demo_raw("unused.duckdb", "nearest_neighbour_compile", distance="rank_mahalanobis", block_on=["home_district"], reuse_controls=False))
     for dialect in DIALECTS:
         plan = build_plan(spec, dialect, model=STAND_IN_MODEL)
         names = [s.name for s in plan.steps]
@@ -434,7 +451,7 @@ def test_nsw_att_inside_the_experimental_interval(nsw_db, replacement):
     earnings minus the mean of their matches', computed here from the tables) lie inside the
     experimental 95% interval [479, 3110]; the naive difference (-8,498) does not. Beside DW's
     matching estimate 1,582 (SE 1,069): see the report of this change for the values."""
-    results = api.run(parse_spec(nsw_spec(nsw_db, "nearest_neighbour", replacement=replacement)))
+    results = api.run(parse_spec(nsw_spec(nsw_db, "nearest_neighbour", reuse_controls=replacement)))
     effect = results.effect("earnings_after")
     low, high = EXPERIMENTAL_INTERVAL
     assert low <= effect.estimate <= high, (effect.estimate, DW_MATCHING)
@@ -484,7 +501,7 @@ def test_pairs_give_paired_t_and_rosenbaum_bounds_equal_to_scipy(demo_dir, tmp_p
     shutil.copyfile(demo_dir / "bikeshare.duckdb", tmp_path / "bikeshare.duckdb")
     raw = tomllib.loads(DEMO_SPEC.read_text())
     raw["study"]["database"] = str(tmp_path / "bikeshare.duckdb")
-    raw["matching"] = {"method": "nearest_neighbour", "replacement": False}
+    raw["matching"] = {"method": "nearest_neighbour", "reuse_controls": False}
     results = api.run(parse_spec(raw))
     with duckdb.connect(str(tmp_path / "bikeshare.duckdb"), read_only=True) as con:
         d = con.execute(

@@ -19,7 +19,7 @@ DESCRIPTION = "subclassification on the propensity score (logit scale), boundari
 def steps(ctx, model):
     spec = ctx.spec
     m = spec.matching
-    exact = list(m.exact)
+    exact = list(m.block_on)
     out = [
         ctx.score_step(model, exact),
         ctx.table_step(
@@ -63,7 +63,7 @@ METHOD = MatchingMethod(
     description=DESCRIPTION,
     steps=steps,
     uses_score=True,
-    loosen="fewer exact features (matching.exact) or fewer matching.bins",
+    loosen="fewer exact features (matching.block_on) or fewer matching.bins",
     option_keys=("bins",),
     read_options=read_options,
 )
