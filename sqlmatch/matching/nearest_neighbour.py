@@ -353,7 +353,7 @@ def warnings(spec, results) -> list[str]:
                 f"The greedy rounds of nearest-neighbour matching without replacement stopped with {still_open:,} enrolled units "
                 f"still holding a free candidate control (at most {MAX_ROUNDS} rounds; a scheduler runs the rounds step once "
                 "unless told to repeat it): they count as unmatched. Run the nearest_neighbour_rounds step again until its "
-                "check returns n_open = 0 (see the step's file or manifest.json), then report again."
+                "check returns n_open = 0 (see the step's file or manifest.json), then the steps after it, then report again."
             )
         cut = int(m.get("n_treated_cut_short") or 0)
         if cut:
