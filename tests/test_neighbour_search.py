@@ -13,6 +13,13 @@ import pytest
 
 from sqlmatch.matching import nearest_neighbour as neighbours
 
+import duckdb
+
+from sqlmatch.engines.duckdb import DuckDBEngine
+from sqlmatch.plan import build_plan
+from sqlmatch.runner import run_plan
+from sqlmatch.spec import parse_spec
+
 from test_neighbours import brute_force_candidates, demo_db, demo_raw, in_block, position_tiebreak, run  # noqa: F401 (demo_db: a fixture)
 
 CONFIGS = {
@@ -34,15 +41,34 @@ def matches_of(tables: dict, matching: dict) -> set[tuple[int, int]]:
     return set(zip(m.treated_key.astype(int), m.control_key.astype(int)))
 
 
+def run_with_model(raw: dict, model, tables: tuple[str, ...]):
+    """Run with a given fitted propensity model (no refit), reading the named work tables back."""
+    spec = parse_spec(raw)
+    database = raw["study"]["database"]
+    with DuckDBEngine(database) as engine:
+        out = run_plan(build_plan(spec, "duckdb", model=model), spec, engine)
+    with duckdb.connect(database, read_only=True) as con:
+        read = {t: con.execute(f"SELECT * FROM sqlmatch.{spec.name}_{t}").df() for t in tables}
+    return spec, out, read
+
+
 @pytest.fixture(scope="module")
 def both_routes(demo_db):
+    """Each configuration by both routes, on the scores of one propensity fit (a refit adds up in
+    another order, and a last-bit change can reorder near-ties)."""
     out = {}
+    model = None
     with pytest.MonkeyPatch.context() as mp:
         for route in ("sorted", "all_pairs"):
             mp.setattr(neighbours, "search_route", lambda m, route=route: route)
             for name, matching in CONFIGS.items():
                 matches = "pairs" if matching.get("reuse_controls") is False else "nearest_neighbour_matches"
-                out[route, name] = run(tied_raw(demo_db, f"nn_search_{route}_{name}", **matching), ("scores", matches))
+                raw = tied_raw(demo_db, f"nn_search_{route}_{name}", **matching)
+                if model is None:
+                    out[route, name] = run(raw, ("scores", matches))
+                    model = out[route, name][1].model
+                else:
+                    out[route, name] = run_with_model(raw, model, ("scores", matches))
     return out
 
 
