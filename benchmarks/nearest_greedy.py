@@ -41,7 +41,11 @@ MODELS = {
     "full": {"features": ["pre_trips", "pre_minutes", "pre_active_days", "age_band", "home_district"], "log1p": ["pre_trips", "pre_minutes"]},
     # one count and one category: every rider with the same count and band has the same score
     "tied": {"features": ["pre_trips", "age_band"]},
+    # one category, and only one never-enrolled rider in 20 kept: the enrolled outnumber the controls
+    # at each score, so many find all controls looked at on a side taken (cut short)
+    "scarce": {"features": ["age_band"]},
 }
+FILTERS = {"scarce": ["(pass_bought_on IS NOT NULL OR rider_id % 20 = 0)"]}
 
 
 def spec_for(database: str, study: str, block_on: list[str], model: str):
@@ -50,6 +54,7 @@ def spec_for(database: str, study: str, block_on: list[str], model: str):
     raw["study"]["name"] = study
     raw["matching"] = {"method": "nearest_neighbour", "reuse_controls": False, "block_on": block_on, "max_candidate_pairs": 10**10}
     raw["propensity"] = MODELS[model]
+    raw["eligibility"]["filters"] += FILTERS.get(model, [])
     return parse_spec(raw)
 
 
