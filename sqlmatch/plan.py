@@ -17,7 +17,7 @@ from sqlglot import exp
 from sqlmatch import dialects, render
 from sqlmatch.columns import regression_design, upper_pairs
 from sqlmatch.matching import method_for
-from sqlmatch.spec import MISSING_INDICATOR, Spec, last_period_start
+from sqlmatch.spec import MISSING_INDICATOR, Spec, is_boolean, last_period_start
 
 MANIFEST_VERSION = 1
 HISTOGRAM_BINS = 20  # bins of the report's distribution plots
@@ -114,6 +114,9 @@ class PlanContext:
 
     spec: Spec
     dialect: str
+    # list what the steps write without rendering SQL (writable_tables): a score-based plan then
+    # needs no fitted model, since no table name depends on its coefficients
+    names_only: bool = False
     tables: dict[str, str] = field(default_factory=dict)  # logical name -> quoted SQL name
     table_names: dict[str, str] = field(default_factory=dict)  # logical name -> schema.table (display)
 
@@ -140,6 +143,8 @@ class PlanContext:
     # -- building steps from templates
 
     def table_step(self, name: str, template: str, writes: str, reads: list[str], purpose: str, **context) -> Step:
+        if self.names_only:
+            return Step(name=name, kind="table", purpose=purpose, reads=tuple(reads), writes=(self.display(writes),), statements=())
         sql, written_in = render.render(template, self.dialect, **context)
         (query,) = dialects.parse(sql, written_in)
         statements = dialects.create_table_as(self.table_node(writes), query, self.dialect)
@@ -154,30 +159,31 @@ class PlanContext:
 
     def score_step(self, model, exact: list[str]) -> Step:
         """Propensity scores (logit scale) of every unit, from a fitted model."""
+        fitted = {} if self.names_only else dict(
+            columns=model.columns, beta=model.coefficients, fitted_on=model.fitted_on, iterations=model.iterations, fingerprint=model.fingerprint
+        )
         return self.table_step(
             "propensity_scores",
             "propensity_scores",
             writes="scores",
             reads=[self.display("measures")],
             purpose="Propensity score (logit scale) of every unit in the study.",
-            columns=model.columns,
-            beta=model.coefficients,
             exact=exact,
-            fitted_on=model.fitted_on,
-            iterations=model.iterations,
-            fingerprint=model.fingerprint,
             measures_table=self.table("measures"),
+            **fitted,
         )
 
     def materialized(self, step: Step) -> Step:
         """An aggregate query turned into a table step writing <study>_agg_<step name>. Every row
         carries the spec's fingerprint, so `sqlmatch report` can refuse tables a different spec
         (or sqlmatch version) compiled."""
+        logical = f"agg_{step.name}"
+        if self.names_only:
+            return Step(name=step.name, kind="table", purpose=step.purpose, reads=step.reads, writes=(self.display(logical),), statements=())
         (sql,) = step.statements
         (query,) = dialects.parse(sql, self.dialect)
         mark = exp.alias_(exp.Literal.string(spec_fingerprint(self.spec)), FINGERPRINT_COLUMN)
         query = query.select(mark) if isinstance(query, exp.Select) else exp.select("*", mark).from_(query.subquery("q"))
-        logical = f"agg_{step.name}"
         statements = dialects.create_table_as(self.table_node(logical), query, self.dialect)
         return Step(
             name=step.name,
@@ -189,6 +195,8 @@ class PlanContext:
         )
 
     def query_step(self, name: str, template: str, reads: list[str], purpose: str, kind: str = "query", **context) -> Step:
+        if self.names_only:
+            return Step(name=name, kind=kind, purpose=purpose, reads=tuple(reads), writes=(), statements=())
         sql, written_in = render.render(template, self.dialect, **context)
         statements = dialects.parse(sql, written_in)
         return Step(
@@ -300,15 +308,36 @@ def measure_columns(spec: Spec) -> tuple[list[MeasureColumn], list[OutcomeColumn
     return cols, outcomes
 
 
+@dataclass(frozen=True)
+class AttributeColumn:
+    """An attribute feature as study_units selects it: `value` is SQL built by sqlglot, the quoted
+    column or the feature's expression (a condition made 1 / 0, NULL staying NULL)."""
+
+    name: str
+    categorical: bool
+    value: str
+
+
+def attribute_column(f) -> AttributeColumn:
+    if f.expression is None:
+        return AttributeColumn(f.name, f.categorical, exp.column(exp.to_identifier(f.attribute, quoted=True), table=exp.to_identifier("u")).sql(render.SOURCE_DIALECT))
+    value = render.expression_sql(f.expression, alias="u")
+    if is_boolean(f.expression):
+        value = f"CASE WHEN {value} THEN 1 WHEN NOT ({value}) THEN 0 END"
+    return AttributeColumn(f.name, f.categorical, value)
+
+
 def source_steps(ctx: PlanContext, outcomes, columns) -> list[Step]:
     """The study's units, the checks on them, and one pass over the events for every feature and outcome."""
     spec = ctx.spec
     w = spec.windows
-    control_from = w.post_end if spec.control_pool == "never_by_post_end" else w.cohort_end
+    # who is treated and who is a control: the real study's windows, also in a placebo study
+    e = spec.enrolment_windows
+    control_from = e.post_end if spec.control_pool == "never_by_post_end" else e.cohort_end
     pool_text = (
-        f"never enrolled, or enrolled on or after {w.post_end} (after the post window)"
+        f"never enrolled, or enrolled on or after {e.post_end} (after the post window)"
         if spec.control_pool == "never_by_post_end"
-        else f"never enrolled, or enrolled on or after {w.cohort_end} (not yet enrolled at the cohort month)"
+        else f"never enrolled, or enrolled on or after {e.cohort_end} (not yet enrolled at the cohort month)"
     )
     units_src, events_src = spec.units.display, spec.events.display
 
@@ -323,11 +352,11 @@ def source_steps(ctx: PlanContext, outcomes, columns) -> list[Step]:
             units=spec.units,
             key=spec.unit_key,
             enrolled=spec.enrolled_on,
-            windows=w,
+            enrolment=e,
             cohort=spec.cohort,
             control_from=control_from,
             pool_text=pool_text,
-            attributes=spec.attribute_features,
+            attributes=[attribute_column(f) for f in spec.attribute_features],
             filters=[render.expression_sql(f, alias="u") for f in spec.filters],
         ),
         ctx.query_step(
@@ -483,13 +512,17 @@ def outcome_steps(ctx: PlanContext, outcomes, per_match: bool) -> list[Step]:
                 "outcome_strata",
                 reads=([ctx.display("measures"), ctx.display("match_weights")] if per_match else weighted) if matched else [ctx.display("measures")],
                 purpose=(
-                    "Outcome sums per stratum and group among matched units."
+                    "Outcome sums per stratum and group among matched units, with the feature sums and cross-products that adjust them by regression."
                     if matched
                     else "Outcome sums per group before matching (the naive comparison)."
                 ),
                 matched=matched,
                 per_match=per_match,
                 outcomes=outcomes,
+                # sums for regression adjustment within strata (estimators/adjusted.py)
+                adjust_features=numeric if matched else [],
+                adjust_pairs=[(numeric[i], numeric[j]) for i, j in upper_pairs(len(numeric))] if matched else [],
+                adjust_outcomes=[o.name for o in outcomes if o.kind != "ratio"] if matched else [],
                 measures_table=ctx.table("measures"),
                 weights_table=ctx.table("match_weights"),
                 weighted_table=ctx.table("weighted_units"),
@@ -512,24 +545,25 @@ def outcome_steps(ctx: PlanContext, outcomes, per_match: bool) -> list[Step]:
     return steps
 
 
-def build_plan(spec: Spec, dialect: str = "duckdb", model=None, materialize: bool = False) -> Plan:
+def build_plan(spec: Spec, dialect: str = "duckdb", model=None, materialize: bool = False, names_only: bool = False) -> Plan:
     """The study's steps, stage by stage: sources, propensity model (score-based methods),
     matching, balance, outcomes. For a score-based method without a fitted `model` the plan is
     partial: it ends with the propensity model's data, and the runner fits the model and then
     builds the full plan.
 
     With `materialize`, every aggregate query instead writes a small table `<study>_agg_<step>`,
-    so a scheduler can run the whole plan and `sqlmatch report` read the results afterwards."""
+    so a scheduler can run the whole plan and `sqlmatch report` read the results afterwards.
+    With `names_only`, the steps carry no SQL: the full plan's table names, no model needed."""
     from sqlmatch import propensity
 
     dialect = dialects.check_dialect(dialect)
-    ctx = PlanContext(spec=spec, dialect=dialect)
+    ctx = PlanContext(spec=spec, dialect=dialect, names_only=names_only)
     columns, outcomes = measure_columns(spec)
     method = method_for(spec.matching.method)
     steps = source_steps(ctx, outcomes, columns)
     if method.uses_score:
         steps += propensity.plan_steps(ctx, model)
-        if model is None:
+        if model is None and not names_only:
             work_tables = tuple(t for s in steps for t in s.writes)
             check_work_tables(spec, work_tables)
             return Plan(study=spec.name, dialect=dialect, steps=tuple(steps), work_tables=work_tables, outcomes=tuple(outcomes), complete=False)
@@ -577,11 +611,6 @@ def check_work_tables(spec: Spec, work_tables) -> None:
 def writable_tables(spec: Spec, dialect: str = "duckdb") -> tuple[str, ...]:
     """Every work table this study's plan can write, run directly or by a scheduler: what
     cleanup may drop. Table names do not depend on the propensity coefficients, so a score-based
-    plan is listed with placeholder ones."""
-    from sqlmatch.propensity import DesignColumn, FittedModel
-
-    model = None
-    if method_for(spec.matching.method).uses_score:
-        model = FittedModel([DesignColumn("intercept", "intercept")], [0.0], 0, 0.0, 0, "-", {})
-    names = [t for materialize in (False, True) for t in build_plan(spec, dialect, model=model, materialize=materialize).work_tables]
+    plan's steps are listed without rendering their SQL (no fitted model is needed)."""
+    names = [t for materialize in (False, True) for t in build_plan(spec, dialect, materialize=materialize, names_only=True).work_tables]
     return tuple(dict.fromkeys(names))

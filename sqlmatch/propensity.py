@@ -134,7 +134,8 @@ def model_path(spec) -> Path | None:
     """Where a study keeps its fitted model: beside the spec, `<spec name>.model.json`."""
     if spec.source_path is None:
         return None
-    return spec.source_path.with_name(spec.source_path.stem + ".model.json")
+    suffix = ".placebo.model.json" if spec.enrolment_windows_of is not None else ".model.json"
+    return spec.source_path.with_name(spec.source_path.stem + suffix)
 
 
 def load_model(spec) -> FittedModel | None:
@@ -358,6 +359,8 @@ def plan_steps(ctx, model) -> list:
     Newton step sums over), then, without a fitted model, the categorical levels the runner needs
     to fit one; with one, the Newton-step aggregates at its coefficients (the stored-model check)."""
     steps = [cells_step(ctx)]
+    if ctx.names_only:  # the steps' names and tables only (plan.writable_tables)
+        return steps + [newton_step(ctx, (), (), name="propensity_check")]
     if model is None:
         levels = levels_step(ctx)
         return steps + ([levels] if levels else [])
