@@ -228,8 +228,11 @@ def steps(ctx, model):
             )
         )
         rounds = ctx.table("nearest_neighbour_rounds")
-        check_sql, written_in = render.render("nearest_neighbour_round_check", ctx.dialect, rounds_table=rounds)
-        (check,) = dialects.parse(check_sql, written_in)
+        check = None
+        if not ctx.names_only:
+            check_sql, written_in = render.render("nearest_neighbour_round_check", ctx.dialect, rounds_table=rounds)
+            (parsed,) = dialects.parse(check_sql, written_in)
+            check = dialects.generate(parsed, ctx.dialect)
         round_step = ctx.table_step(
             "nearest_neighbour_rounds",
             "nearest_neighbour_round",
@@ -239,7 +242,7 @@ def steps(ctx, model):
             rounds=MAX_ROUNDS,
             rounds_table=rounds,
         )
-        out.append(dataclasses.replace(round_step, repeat_check=dialects.generate(check, ctx.dialect), max_repeats=MAX_ROUNDS))
+        out.append(dataclasses.replace(round_step, repeat_check=check, max_repeats=MAX_ROUNDS))
         out.append(
             ctx.table_step(
                 "pairs",
