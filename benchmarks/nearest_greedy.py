@@ -41,9 +41,9 @@ MODELS = {
     "full": {"features": ["pre_trips", "pre_minutes", "pre_active_days", "age_band", "home_district"], "log1p": ["pre_trips", "pre_minutes"]},
     # one count and one category: every rider with the same count and band has the same score
     "tied": {"features": ["pre_trips", "age_band"]},
-    # one category, and only one never-enrolled rider in 20 kept: the enrolled outnumber the controls
-    # at each score, so many find all controls looked at on a side taken (cut short)
-    "scarce": {"features": ["age_band"]},
+    # "tied", with only one never-enrolled rider in 20 kept: the enrolled outnumber the controls at
+    # many scores, so some find all controls looked at on a side taken (cut short)
+    "scarce": {"features": ["pre_trips", "age_band"]},
 }
 FILTERS = {"scarce": ["(pass_bought_on IS NOT NULL OR rider_id % 20 = 0)"]}
 
@@ -110,7 +110,7 @@ def main(argv=None) -> int:
             print(
                 f"| {riders:,} | {model} | {', '.join(block_on) or '(none)'} | {s['n_treated']:,} | {a['join_pairs']:,} | {a['candidates']:,} / {s['candidates']:,} "
                 f"| {len(a['pairs']):,} / {len(s['pairs']):,} | {len(set(s['pairs']) - set(a['pairs'])):,} | {total_a:.6f} / {total_s:.6f} "
-                f"| {total_s / total_a:.6f} | {s['cut_short']:,} | {a['rounds']} / {s['rounds']} | {a['seconds']:.2f} s / {s['seconds']:.2f} s |",
+                f"| {total_s / total_a if total_a else float('nan'):.6f} | {s['cut_short']:,} | {a['rounds']} / {s['rounds']} | {a['seconds']:.2f} s / {s['seconds']:.2f} s |",
                 flush=True,
             )
             print(f"{riders} {model} {block_on}: {time.perf_counter() - t0:.0f} s", file=sys.stderr, flush=True)
