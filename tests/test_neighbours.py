@@ -271,7 +271,7 @@ def test_robust_ranks_equal_scipy_rankdata(runs):
         assert ranks[f].nunique() < len(ranks)  # ties are exercised
 
 
-def test_robust_mahalanobis_distance_follows_rosenbaum(runs):
+def test_rank_mahalanobis_distance_follows_rosenbaum(runs):
     """Robust Mahalanobis distance (Rosenbaum 2010, Design of Observational Studies, section 8.3,
     recalled): Mahalanobis distance between rank vectors, with the covariance of the ranks rescaled
     so that every variance equals that of untied ranks 1..n; computed in numpy/scipy, to 1e-9."""
