@@ -156,6 +156,18 @@ class Outcome:
 
 
 @dataclass(frozen=True)
+class Subgroup:
+    """[[subgroups]]: effects per level of a categorical feature, or for the units a condition over
+    the features holds for ("yes") and the others ("no")."""
+
+    name: str
+    feature: str | None = None
+    where: exp.Expression | None = field(default=None, compare=False)
+    where_text: str | None = None
+    key: str = field(default="", compare=False)
+
+
+@dataclass(frozen=True)
 class Matching:
     """[matching]. The first five fields are read here; the rest are the options of one method
     each, read and checked by that method's module (matching/<method>.py, read_options)."""
@@ -165,6 +177,7 @@ class Matching:
     block_on: tuple[str, ...] = ()  # categorical features matched exactly on top of the score
     common_support: bool = True  # drop units outside the overlap of treated and control scores
     min_treated: int = 10  # refuse a run that matches fewer treated units than this (see _matching)
+    estimand: str = "att"  # att: on the treated | atc: on the controls | ate: on everyone (methods list theirs)
     # coarsened_exact
     cut_points: dict[str, tuple[float, ...]] = field(default_factory=dict)
     coarsen: str | None = None  # automatic cut points for numeric features without explicit ones
@@ -257,6 +270,7 @@ class Spec:
 
     # [placebo] months_before: the placebo study runs the same design this many months earlier
     placebo_months: int | None = None
+    subgroups: tuple[Subgroup, ...] = ()
     # in a placebo study: the real study's windows, which still say who enrolled (treated) and
     # who is a control; `windows` then holds the shifted feature and outcome windows
     enrolment_windows_of: Windows | None = None
@@ -387,6 +401,39 @@ def _windows(cohort: str, unit: str, pre: int, post: int, post_starts: str = "af
         post_end=post_end,
         post_starts=post_starts,
     )
+
+
+def _subgroups(value: Any, features: tuple[Feature, ...]) -> tuple[Subgroup, ...]:
+    if value is None:
+        return ()
+    out: list[Subgroup] = []
+    names = [f.name for f in features]
+    for i, item in enumerate(_list_of_tables(value, "subgroups")):
+        key = f"subgroups[{i}]"
+        _check_keys(item, key, {"name", "feature", "where"})
+        feature, where_text = item.get("feature"), item.get("where")
+        if (feature is None) == (where_text is None):
+            raise SpecError(key, "needs exactly one of feature (a categorical feature) or where (a condition over the features).",
+                            'e.g. feature = "age_band", or name = "frequent" with where = "pre_trips >= 10".')
+        if feature is not None:
+            f = next((f for f in features if f.name == feature), None)
+            if f is None or not f.categorical:
+                cats = ", ".join(f.name for f in features if f.categorical) or "(none)"
+                raise SpecError(f"{key}.feature", f"{feature!r} is not a categorical feature.", f"use one of: {cats}; or a condition with where = \"...\".")
+            name = _name(item.get("name", feature), f"{key}.name")
+            out.append(Subgroup(name=name, feature=feature, key=key))
+        else:
+            where = parse_filter(where_text, f"{key}.where")
+            unknown = [c for c in filter_columns(where) if c not in names]
+            if unknown:
+                raise SpecError(f"{key}.where", f"names {unknown[0]!r}, which is not a feature.", f"a subgroup condition reads the features: {', '.join(names)}.")
+            name = _name(_str(item, key, "name"), f"{key}.name")
+            out.append(Subgroup(name=name, where=where, where_text=where_text, key=key))
+    seen = [s.name for s in out]
+    for s in out:
+        if seen.count(s.name) > 1:
+            raise SpecError(f"{s.key}.name", f"{s.name!r} names two subgroups.", "give each subgroup its own name.")
+    return tuple(out)
 
 
 def _placebo_windows(windows: Windows, months: int) -> Windows:
@@ -537,7 +584,7 @@ def load_spec(path: str | Path) -> Spec:
 
 def parse_spec(raw: dict, source_path: Path | None = None) -> Spec:
     _check_values(raw, "")
-    _check_keys(raw, "", {"study", "units", "events", "treatment", "windows", "eligibility", "features", "outcomes", "matching", "propensity", "effect", "placebo", "report"})
+    _check_keys(raw, "", {"study", "units", "events", "treatment", "windows", "eligibility", "features", "outcomes", "matching", "propensity", "effect", "placebo", "subgroups", "report"})
 
     study = _table(raw, "study")
     _check_keys(study, "study", {"name", "work_schema", "database", "results_table"})
@@ -624,6 +671,7 @@ def parse_spec(raw: dict, source_path: Path | None = None) -> Spec:
     _check_keys(effect, "effect", {"regression_adjustment"})
     regression_adjustment = read_bool(effect, "effect", "regression_adjustment", default=False)
     placebo_months = _placebo(raw.get("placebo"), windows)
+    subgroups = _subgroups(raw.get("subgroups"), features)
 
     spec = Spec(
         name=name,
@@ -641,6 +689,7 @@ def parse_spec(raw: dict, source_path: Path | None = None) -> Spec:
         treatment_words=described_as,
         regression_adjustment=regression_adjustment,
         placebo_months=placebo_months,
+        subgroups=subgroups,
         windows=windows,
         filters=filters,
         filter_texts=tuple(filter_texts),
@@ -784,7 +833,7 @@ def _matching(value: Any, features: tuple[Feature, ...]) -> Matching:
     for old_key, new_key in renamed.items():
         if old_key in value:
             raise SpecError(f"matching.{old_key}", f"is now called matching.{new_key}.", f"write {new_key} = ... under [matching] instead of {old_key}.")
-    _check_keys(value, "matching", {"method", "on", "block_on", "common_support", "min_treated"} | method_keys)
+    _check_keys(value, "matching", {"method", "on", "block_on", "common_support", "min_treated", "estimand"} | method_keys)
     old = value.get("method")
     if isinstance(old, str) and old in RENAMED_METHODS:
         raise SpecError("matching.method", f"{old!r} is now called {RENAMED_METHODS[old]!r}.", f"write method = \"{RENAMED_METHODS[old]}\".")
@@ -816,11 +865,16 @@ def _matching(value: Any, features: tuple[Feature, ...]) -> Matching:
             f"must be a whole number of treated units >= 1, got {min_treated!r}.",
             "write e.g. min_treated = 10 under [matching] (1 accepts any run that matches a treated unit).",
         )
+    estimand = _choice(value, "matching", "estimand", ("att", "atc", "ate"), default="att")
+    supported = _matching_methods.METHODS[method].estimands
+    if estimand not in supported:
+        raise SpecError("matching.estimand", f"{method} estimates {', '.join(e.upper() for e in supported)} only, not {estimand.upper()}.",
+                        f"use estimand = \"att\", or a method that weights strata: {', '.join(m.name for m in _matching_methods.METHODS.values() if estimand in m.estimands)}.")
     # each method reads and checks its own keys (matching/<method>.py read_options)
     options: dict[str, Any] = {}
     for m in _matching_methods.METHODS.values():
         options.update(m.read_options(value, OptionInput(features=features, on=tuple(on), chosen=m.name == method)))
-    return Matching(method=method, on=tuple(on), block_on=tuple(exact), common_support=support, min_treated=min_treated, **options)
+    return Matching(method=method, on=tuple(on), block_on=tuple(exact), common_support=support, min_treated=min_treated, estimand=estimand, **options)
 
 
 def _with_indicators(names: list[str], features: tuple[Feature, ...]) -> list[str]:

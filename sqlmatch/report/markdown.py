@@ -110,6 +110,13 @@ def _sensitivity_section(r: StudyResults) -> list[str]:
     return lines
 
 
+ESTIMAND_HEADINGS = {
+    "att": "Effects on the enrolled",
+    "atc": "Effects on the comparison units, had they enrolled (ATC)",
+    "ate": "Effects on everyone in the matched strata (ATE)",
+}
+
+
 def render_markdown(r: StudyResults, balance_image: str | None = None) -> str:
     """Markdown sized for a pull-request comment; `balance_image` names the balance plot written
     beside the report, if any."""
@@ -138,7 +145,7 @@ def render_markdown(r: StudyResults, balance_image: str | None = None) -> str:
         "",
         f"Strata used: {m.strata:,}; cells dropped for lacking an enrolled or a non-enrolled unit: {m.strata_dropped:,}.",
         "",
-        "## Effects on the enrolled",
+        "## " + ESTIMAND_HEADINGS.get(r.effects[0].estimand if r.effects else "att", "Effects on the enrolled"),
         "",
         "| outcome | kind | effect | 95% interval | relative lift | lift 95% interval | enrolled mean | matched comparison mean | unmatched difference |",
         "|---|---|---:|---|---:|---|---:|---:|---:|",
@@ -179,6 +186,24 @@ def render_markdown(r: StudyResults, balance_image: str | None = None) -> str:
             f"{r.imbalance['l1_before']:.3f} before matching, {r.imbalance['l1_after']:.3f} after, on {r.imbalance['histogram']}.",
         ]
     lines += _sensitivity_section(r)
+    if r.subgroups:
+        lines += ["", "## Effects by subgroup", "", "| subgroup | level | outcome | effect [95% CI] | enrolled | comparison |", "|---|---|---|---|---|---|"]
+        for sg in r.subgroups:
+            for x in sg.shown(mc):
+                effect = "withheld (few units)" if x["withheld"] else (
+                    f"{_x(x['estimate'])} [{_x(x['ci_low'])}, {_x(x['ci_high'])}]" if x["estimate"] is not None else "no estimate (a group is empty)"
+                )
+                n_t = f"<{mc}" if x["n_treated"] is None else f"{x['n_treated']:,}"
+                n_c = f"<{mc}" if x["n_control"] is None else f"{x['n_control']:,}"
+                lines.append(f"| {sg.subgroup} | {x['level']} | {sg.outcome} | {effect} | {n_t} | {n_c} |")
+        lines.append("")
+        for sg in r.subgroups:
+            if sg.p_value is not None:
+                lines.append(
+                    f"- {sg.subgroup}, {sg.outcome}: Cochran's Q = {sg.q:.2f} on {sg.df} df, p = {sg.p_value:.2g} "
+                    + ("(the effect differs between the levels more than chance would explain)." if sg.p_value < 0.05 else "(no clear difference between the levels).")
+                )
+        lines.append("- With many subgroups and outcomes, some differences are chance; a subgroup chosen after seeing the results proves little.")
     if r.placebo is not None:
         pw = r.placebo.results.windows
         lines += [
