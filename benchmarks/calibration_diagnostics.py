@@ -56,7 +56,7 @@ def _variant(spec_text: str, name: str) -> str | None:
     if name == "score_bins_20":
         return spec_text.replace('method = "coarsened_exact"', 'method = "score_bins"\nbins = 20')
     if name == "nearest_1to1":
-        return spec_text.replace('method = "coarsened_exact"', 'method = "nearest_neighbour"\nreplacement = false')
+        return spec_text.replace('method = "coarsened_exact"', 'method = "nearest_neighbour"\nreuse_controls = false')
     if name == "coarsened_fine":
         if "commute_km" not in spec_text:
             return None

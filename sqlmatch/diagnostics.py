@@ -126,7 +126,7 @@ def _pooled_level_warnings(spec: Spec, r) -> list[str]:
         if row["level"] == POOLED_LEVEL:
             pooled[row["feature"]] = pooled.get(row["feature"], 0) + int(row["n_units"] or 0)
     out = []
-    matched_on = set(spec.matching.on) | set(spec.matching.exact)
+    matched_on = set(spec.matching.on) | set(spec.matching.block_on)
     for f in spec.categorical_features:
         if f.name not in pooled:
             continue
@@ -197,9 +197,9 @@ _FINER = {
 
 def imbalance_warnings(spec: Spec, balance) -> list[str]:
     """A feature the method matched on (matching.on; for score methods the propensity model's
-    features and matching.exact) still differing after matching: the effect may carry its bias."""
+    features and matching.block_on) still differing after matching: the effect may carry its bias."""
     method = method_for(spec.matching.method)
-    matched = set(spec.propensity.features) | set(spec.matching.exact) if method.uses_score else set(spec.matching.on)
+    matched = set(spec.propensity.features) | set(spec.matching.block_on) if method.uses_score else set(spec.matching.on)
     left = []
     for b in balance:
         name = b.covariate.split("=", 1)[0] if b.kind == "level" else b.covariate

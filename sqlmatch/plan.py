@@ -73,6 +73,11 @@ class Step:
     reads: tuple[str, ...]
     writes: tuple[str, ...]
     statements: tuple[str, ...]
+    # A table step run again until `repeat_check` (a one-row query) returns n_open = 0, at most
+    # `max_repeats` times: one templated statement iterated instead of one file per iteration. The
+    # step rewrites the table it reads, and once nothing is open another run changes nothing.
+    repeat_check: str | None = None
+    max_repeats: int = 1
 
 
 BITMASK_LANE_DAYS = 63  # days per BIGINT lane: the sign bit is never set
@@ -249,6 +254,11 @@ class Plan:
             ]
             if step.writes:
                 header.append(f"-- writes: {', '.join(step.writes)}")
+            if step.repeat_check:
+                header.append(
+                    f"-- repeat: run this file again until the query below returns n_open = 0 (at most {step.max_repeats} "
+                    "times; once it does, another run changes nothing): " + step.repeat_check.replace("\n", " ")
+                )
             # names come from the spec: a line break in one would end the comment line
             header = [render.comment_text(line) for line in header]
             body = "\n\n".join(s + ";" for s in step.statements)
@@ -270,6 +280,7 @@ class Plan:
                     "reads": list(s.reads),
                     "writes": list(s.writes),
                     "purpose": s.purpose,
+                    **({"repeat": {"until": "n_open = 0", "check": s.repeat_check, "max": s.max_repeats}} if s.repeat_check else {}),
                 }
                 for i, s in enumerate(self.steps)
             ],

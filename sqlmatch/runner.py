@@ -35,6 +35,7 @@ class RunOutput:
     results: dict[str, QueryResult] = field(default_factory=dict)
     timings: dict[str, float] = field(default_factory=dict)
     rows_fetched: int = 0
+    repeats: dict[str, int] = field(default_factory=dict)  # a repeated step's count (e.g. greedy rounds)
 
 
 class Progress:
@@ -342,10 +343,17 @@ def _run_steps(plan: Plan, spec: Spec, engine: Engine, out: RunOutput, progress:
                 engine.execute(statement)
         elif step.kind == "table":
             # build under a temporary name, then drop the old table and rename in one transaction
-            engine.execute(step.statements[0])
-            written = engine.execute(step.statements[1])
-            _pause_for_tests(step.name)
-            engine.execute_atomic(list(step.statements[2:]))
+            for _ in range(step.max_repeats):
+                engine.execute(step.statements[0])
+                written = engine.execute(step.statements[1])
+                _pause_for_tests(step.name)
+                engine.execute_atomic(list(step.statements[2:]))
+                if step.repeat_check is None:
+                    break
+                check = engine.fetch(step.repeat_check).one()
+                out.repeats[step.name] = int(check.get("n_rounds") or 0)
+                if not check["n_open"]:
+                    break
         else:
             (statement,) = step.statements
             out.results[step.name] = engine.fetch(statement)

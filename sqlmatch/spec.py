@@ -46,6 +46,7 @@ POST_STARTS = ("after_cohort", "cohort")
 METHODS = tuple(_matching_methods.METHODS)
 # Names of earlier versions, refused with the name to use now.
 RENAMED_METHODS = {"nearest": "nearest_neighbour"}
+RENAMED_MATCHING_KEYS = {"exact": "block_on"}  # common keys; each method lists its own (renamed_options)
 
 # Columns the templates write into unit-level tables (study units, measures, weighted, scores,
 # weights): a feature or outcome of the same name would shadow or collide with them.
@@ -174,7 +175,7 @@ class Matching:
 
     method: str
     on: tuple[str, ...]
-    exact: tuple[str, ...] = ()  # categorical features matched exactly on top of the score
+    block_on: tuple[str, ...] = ()  # categorical features matched exactly on top of the score
     common_support: bool = True  # drop units outside the overlap of treated and control scores
     min_treated: int = 10  # refuse a run that matches fewer treated units than this (see _matching)
     estimand: str = "att"  # att: on the treated | atc: on the controls | ate: on everyone (methods list theirs)
@@ -185,10 +186,10 @@ class Matching:
     # score_bins
     bins: int | None = None  # subclasses at treated-score quantiles; None: chosen from the data (score_bins.py)
     # nearest_neighbour
-    distance: str = "logit"  # logit | mahalanobis | robust_mahalanobis
+    distance: str = "score"  # score | mahalanobis | rank_mahalanobis
     caliper: float = 0.2  # in SDs of the logit score (pooled over the two groups)
-    ratio: int = 1  # controls per treated unit (k:1)
-    replacement: bool = True  # a control may serve several treated units
+    controls_per_treated: int = 1  # k of k:1 matching
+    reuse_controls: bool = True  # a control may serve several treated units (with replacement)
     max_candidate_pairs: int = 50_000_000  # refuse a candidate join larger than this
     bias_correction: bool = True  # with replacement: Abadie & Imbens (2011) regression correction
     # score_weighting
@@ -831,7 +832,13 @@ def _matching(value: Any, features: tuple[Feature, ...]) -> Matching:
     if not isinstance(value, dict):
         raise SpecError("matching", "must be a table.", "write it as [matching].")
     method_keys = {k for m in _matching_methods.METHODS.values() for k in m.option_keys}
-    _check_keys(value, "matching", {"method", "on", "exact", "common_support", "min_treated", "estimand"} | method_keys)
+    renamed = dict(RENAMED_MATCHING_KEYS)
+    for m in _matching_methods.METHODS.values():
+        renamed.update(m.renamed_options)
+    for old_key, new_key in renamed.items():
+        if old_key in value:
+            raise SpecError(f"matching.{old_key}", f"is now called matching.{new_key}.", f"write {new_key} = ... under [matching] instead of {old_key}.")
+    _check_keys(value, "matching", {"method", "on", "block_on", "common_support", "min_treated", "estimand"} | method_keys)
     old = value.get("method")
     if isinstance(old, str) and old in RENAMED_METHODS:
         raise SpecError("matching.method", f"{old!r} is now called {RENAMED_METHODS[old]!r}.", f"write method = \"{RENAMED_METHODS[old]}\".")
@@ -845,13 +852,13 @@ def _matching(value: Any, features: tuple[Feature, ...]) -> Matching:
             raise SpecError("matching.on", f"{n!r} is not a feature.", f"use names from [[features]]: {', '.join(names)}.")
     on = _with_indicators(on, features)
     feats = {f.name: f for f in features}
-    exact = value.get("exact", [])
+    exact = value.get("block_on", [])
     if not isinstance(exact, list) or not all(isinstance(x, str) for x in exact):
-        raise SpecError("matching.exact", "must be a list of categorical feature names.")
+        raise SpecError("matching.block_on", "must be a list of categorical feature names.")
     for n in exact:
         if n not in feats or not feats[n].categorical:
             cats = ", ".join(f.name for f in features if f.categorical) or "(none)"
-            raise SpecError("matching.exact", f"{n!r} is not a categorical feature.", f"use categorical features: {cats}.")
+            raise SpecError("matching.block_on", f"{n!r} is not a categorical feature.", f"use categorical features: {cats}.")
     support = read_bool(value, "matching", "common_support", default=True)
     # Fewest matched treated units a run may report an effect for (runner._check_matched). Default 10,
     # common practice: below about ten units per group the per-stratum variances behind the standard
@@ -872,7 +879,7 @@ def _matching(value: Any, features: tuple[Feature, ...]) -> Matching:
     options: dict[str, Any] = {}
     for m in _matching_methods.METHODS.values():
         options.update(m.read_options(value, OptionInput(features=features, on=tuple(on), chosen=m.name == method)))
-    return Matching(method=method, on=tuple(on), exact=tuple(exact), common_support=support, min_treated=min_treated, estimand=estimand, **options)
+    return Matching(method=method, on=tuple(on), block_on=tuple(exact), common_support=support, min_treated=min_treated, estimand=estimand, **options)
 
 
 def _with_indicators(names: list[str], features: tuple[Feature, ...]) -> list[str]:
@@ -889,7 +896,7 @@ def _propensity(value: Any, features: tuple[Feature, ...], matching: Matching) -
         raise SpecError("propensity", "must be a table.", "write it as [propensity].")
     _check_keys(value, "propensity", {"features", "log1p", "ridge", "max_iterations", "sample_controls"})
     names = [f.name for f in features]
-    chosen = value.get("features", [n for n in matching.on if n not in matching.exact])
+    chosen = value.get("features", [n for n in matching.on if n not in matching.block_on])
     for key, items in (("propensity.features", chosen), ("propensity.log1p", value.get("log1p", []))):
         feature_list(items, key, names)
     if not chosen:

@@ -54,9 +54,11 @@ def _session_tag() -> str:
     return f"sqlmatch_test_{os.getpid()}_{secrets.token_hex(3)}"
 
 
-def demo_spec(schema: str, work_schema: str):
+def demo_spec(schema: str, work_schema: str, matching: dict | None = None):
     """The demo study, reading riders/trips from `schema` and writing into `work_schema`."""
     raw = tomllib.loads(demo_spec_path().read_text(encoding="utf-8"))
+    if matching is not None:
+        raw["matching"] = matching
     raw["study"].pop("database", None)
     raw["study"]["work_schema"] = work_schema
     raw["units"]["table"] = {"schema": schema, "name": "riders"}
@@ -127,6 +129,19 @@ def duckdb_results(demo_db):
     return _comparable(results)
 
 
+# Nearest neighbours on the score without replacement, in blocks: the sorted search, the greedy
+# round the runner repeats and the summary's counts, on every engine.
+NEAREST = {"method": "nearest_neighbour", "reuse_controls": False, "block_on": ["age_band"]}
+
+
+@pytest.fixture(scope="session")
+def duckdb_nearest_results(demo_db):
+    with DuckDBEngine(demo_db) as engine:
+        results = api.run(demo_spec("main", "sqlmatch_duckdb_nn", NEAREST), engine=engine)
+    assert results.matching.n_treated_matched > 50
+    return _comparable(results)
+
+
 # ---------------------------------------------------------------------------------------------
 # PostgreSQL
 
@@ -181,6 +196,12 @@ def test_postgres_runs_the_demo_study_with_duckdbs_numbers(postgres, duckdb_resu
     assert results.dialect == "postgres"
     assert_same_numbers(_comparable(results), duckdb_results)
     assert set(engine.table_names(f"{tag}_work")) >= {"annual_pass_units", "annual_pass_measures", "annual_pass_weighted_units"}
+
+
+def test_postgres_runs_nearest_neighbours_with_duckdbs_numbers(postgres, duckdb_nearest_results):
+    engine, tag = postgres
+    results = api.run(demo_spec(tag, f"{tag}_work", NEAREST), engine=engine)
+    assert_same_numbers(_comparable(results), duckdb_nearest_results)
 
 
 def extended_spec(schema: str, work_schema: str):
@@ -337,6 +358,12 @@ def test_spark_runs_the_demo_study_with_duckdbs_numbers(spark, duckdb_results):
     assert results.dialect == "spark"
     assert_same_numbers(_comparable(results), duckdb_results)
     assert set(engine.table_names(f"{tag}_work")) >= {"annual_pass_units", "annual_pass_measures", "annual_pass_weighted_units"}
+
+
+def test_spark_runs_nearest_neighbours_with_duckdbs_numbers(spark, duckdb_nearest_results):
+    engine, tag = spark
+    results = api.run(demo_spec(tag, f"{tag}_work", NEAREST), engine=engine)
+    assert_same_numbers(_comparable(results), duckdb_nearest_results)
 
 
 def test_spark_failed_run_drops_its_tables(spark):

@@ -74,7 +74,7 @@ def test_score_method_plan_matches_golden(spec, method, dialect, update_golden, 
     """A method's snapshot keeps its manifest and the steps the demo's snapshot (and, for nearest
     neighbours, the score_bins one) does not already hold with the same SQL, so an edit of a shared
     template changes one file per dialect, not one per method."""
-    matching = {"method": "score_bins", "bins": 5} if method == "score_bins" else {"method": method, "exact": ["age_band"]}
+    matching = {"method": "score_bins", "bins": 5} if method == "score_bins" else {"method": method, "block_on": ["age_band"]}
     plan = score_plan(dialect, matching)
     shared = {s.name: {s.statements} for s in api.compile_plan(spec, dialect).steps}
     if method == "nearest_neighbour":  # the propensity steps are held once, by the score_bins snapshot

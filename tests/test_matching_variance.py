@@ -33,7 +33,7 @@ from sqlmatch.spec import parse_spec
 
 from test_neighbours import demo_raw
 
-CONFIGS = {"k1": {}, "k2_blocks": {"ratio": 2, "exact": ["age_band"]}, "k1_uncorrected": {"bias_correction": False}}
+CONFIGS = {"k1": {}, "k2_blocks": {"controls_per_treated": 2, "block_on": ["age_band"]}, "k1_uncorrected": {"bias_correction": False}}
 
 
 @pytest.fixture(scope="module")
@@ -96,7 +96,7 @@ def numpy_variance(spec, tables, value) -> float:
         beta = sm.WLS(y[fit_on], X[fit_on], weights=weight[fit_on]).fit().params
         rows = units.treated.to_numpy() == g
         y = np.where(rows, y - X[:, 1:] @ beta[1:], y)
-    nb = nearest_same_group(units, list(spec.matching.exact))
+    nb = nearest_same_group(units, list(spec.matching.block_on))
     sigma2 = np.where(nb >= 0, 0.5 * (y - y[np.maximum(nb, 0)]) ** 2, np.nan)
     assert (nb[matched] >= 0).all()  # every matched unit has a neighbour here (no borrowing to check)
     n1 = weight[matched & (units.treated.to_numpy() == 1)].sum()

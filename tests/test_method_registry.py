@@ -16,7 +16,7 @@ from sqlmatch.spec import Matching, parse_spec
 
 from conftest import DEMO_SPEC
 
-COMMON = {"method", "on", "exact", "common_support", "min_treated", "estimand"}
+COMMON = {"method", "on", "block_on", "common_support", "min_treated", "estimand"}
 ROOT = Path(__file__).resolve().parents[1]
 
 
@@ -50,7 +50,7 @@ def test_spec_module_names_no_method_option():
     "key, value, owner",
     [
         ("caliper", -1, "nearest_neighbour"),
-        ("ratio", 0, "nearest_neighbour"),
+        ("controls_per_treated", 0, "nearest_neighbour"),
         ("distance", "euclid", "nearest_neighbour"),
         ("bins", 3, "score_bins"),
         ("coarsen", "deciles", "coarsened_exact"),
@@ -67,10 +67,10 @@ def test_an_option_of_another_method_is_still_checked(key, value, owner):
 
 
 def test_options_of_several_methods_live_in_one_spec():
-    spec = parse_spec(demo(caliper=0.1, bins=8, ratio=2))
-    assert (spec.matching.method, spec.matching.caliper, spec.matching.bins, spec.matching.ratio) == ("coarsened_exact", 0.1, 8, 2)
+    spec = parse_spec(demo(caliper=0.1, bins=8, controls_per_treated=2))
+    assert (spec.matching.method, spec.matching.caliper, spec.matching.bins, spec.matching.controls_per_treated) == ("coarsened_exact", 0.1, 8, 2)
     switched = spec.with_overrides(method="nearest_neighbour")
-    assert (switched.matching.method, switched.matching.caliper, switched.matching.ratio) == ("nearest_neighbour", 0.1, 2)
+    assert (switched.matching.method, switched.matching.caliper, switched.matching.controls_per_treated) == ("nearest_neighbour", 0.1, 2)
 
 
 def test_numeric_features_without_cut_points_get_computed_ones():

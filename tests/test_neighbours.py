@@ -73,10 +73,10 @@ def demo_db(demo_dir, tmp_path_factory) -> str:
 
 CONFIGS = {
     "logit": {},
-    "logit_blocks_k3": {"exact": ["age_band"], "ratio": 3},
+    "logit_blocks_k3": {"block_on": ["age_band"], "controls_per_treated": 3},
     "mahalanobis": {"distance": "mahalanobis"},
-    "robust": {"distance": "robust_mahalanobis", "exact": ["home_district"]},
-    "greedy": {"replacement": False},
+    "robust": {"distance": "rank_mahalanobis", "block_on": ["home_district"]},
+    "greedy": {"reuse_controls": False},
 }
 TABLES = ("scores", "nearest_neighbour_caliper", "nearest_neighbour_units", "measures", "match_weights")
 
@@ -87,7 +87,7 @@ def runs(demo_db):
     out = {}
     for name, matching in CONFIGS.items():
         extra = ("nearest_neighbour_features", "nearest_neighbour_whitening") if "distance" in matching else ()
-        matches = "pairs" if matching.get("replacement") is False else "nearest_neighbour_matches"
+        matches = "pairs" if matching.get("reuse_controls") is False else "nearest_neighbour_matches"
         out[name] = run(demo_raw(demo_db, f"nearest_neighbour_{name}", **matching), TABLES + extra + (matches,))
         out[name][2]["found_matches"] = out[name][2][matches]
     return out
@@ -111,6 +111,19 @@ def hash_tiebreak(t: pd.DataFrame, c: pd.DataFrame) -> np.ndarray:
     return (ts[:, None] * 2654435761 + cs[None, :] * 40503) % 4294967296
 
 
+def position_tiebreak(t: pd.DataFrame, c: pd.DataFrame, exact: list[str]) -> np.ndarray:
+    """The SQL's tiebreak among equal score distances: the gap between the two units' places in
+    their exact block's score order (ties in score: unit key), computed here in pandas."""
+    both = pd.concat([t.assign(_side="t", _i=np.arange(len(t))), c.assign(_side="c", _i=np.arange(len(c)))], ignore_index=True)
+    blocks = [both[f].fillna("(missing)").astype(str) for f in exact]
+    both["_block"] = pd.Series(list(zip(*blocks)), index=both.index) if exact else 0
+    both = both.sort_values(["score", "unit_key"])
+    both["_pos"] = both.groupby("_block").cumcount() + 1
+    tp = both[both._side == "t"].sort_values("_i")._pos.to_numpy()
+    cp = both[both._side == "c"].sort_values("_i")._pos.to_numpy()
+    return np.abs(tp[:, None] - cp[None, :])
+
+
 def in_block(t: pd.DataFrame, c: pd.DataFrame, exact: list[str]) -> np.ndarray:
     ok = np.ones((len(t), len(c)), dtype=bool)
     for f in exact:
@@ -125,19 +138,21 @@ def in_block(t: pd.DataFrame, c: pd.DataFrame, exact: list[str]) -> np.ndarray:
 @pytest.mark.parametrize("name", ["logit", "logit_blocks_k3"])
 def test_logit_matches_equal_brute_force_nearest_neighbours(runs, name):
     """Each treated unit's k matches are its k nearest controls on the logit score (gaps compared at
-    10 decimal places, ties: lower key) among controls of its exact block within the caliper, found
-    by brute force in numpy over every
-    pair: the score bins never hide a candidate. Weights: treated 1, a control the sum over the
+    10 decimal places; ties: the control nearer in the block's score order, then the lower key)
+    among controls of its exact block within the caliper, found by brute force in numpy over every
+    pair: the sorted search (k controls each side in score order) never misses one. The demo's
+    scores have many ties (riders with the same counts), so the tie rule is exercised. Weights: treated 1, a control the sum over the
     treated units it serves of 1/k_i (the usual weights of k:1 matching with replacement for the
     effect on the treated, e.g. Stuart 2010, Statistical Science 25:1, recalled)."""
     spec, out, tables = runs[name]
     t, c, width = brute_force_candidates(tables, spec)
     assert tables["nearest_neighbour_caliper"].width[0] == pytest.approx(width, rel=1e-12)
-    k = spec.matching.ratio
+    k = spec.matching.controls_per_treated
     gap = np.abs(t.score.to_numpy()[:, None] - c.score.to_numpy()[None, :])
-    ok = in_block(t, c, list(spec.matching.exact)) & (gap <= width)
+    ok = in_block(t, c, list(spec.matching.block_on)) & (gap <= width)
     expected = {}
-    tie = hash_tiebreak(t, c)
+    tie = position_tiebreak(t, c, list(spec.matching.block_on))
+    assert (np.round(gap, 10)[:, :, None] == np.round(gap, 10)[:, None, :]).any()  # ties exist
     for i in range(len(t)):
         idx = np.flatnonzero(ok[i])
         order = np.lexsort((c.unit_key.to_numpy()[idx], tie[i, idx], np.round(gap[i, idx], 10)))
@@ -151,7 +166,7 @@ def test_logit_matches_equal_brute_force_nearest_neighbours(runs, name):
     # the guard's count of candidate pairs: same block and score bins at most one apart (numpy)
     bins = np.floor((np.r_[t.score, c.score] - tables["nearest_neighbour_caliper"].score_min[0]) / tables["nearest_neighbour_caliper"].width[0])
     tb, cb = bins[: len(t)], bins[len(t) :]
-    pairs = (in_block(t, c, list(spec.matching.exact)) & (np.abs(tb[:, None] - cb[None, :]) <= 1)).sum()
+    pairs = (in_block(t, c, list(spec.matching.block_on)) & (np.abs(tb[:, None] - cb[None, :]) <= 1)).sum()
     assert out.results["candidate_pairs"].one()["n_candidate_pairs"] == pairs
     # weights
     # one weights row per (treated unit, control) match: a unit's weight is the sum of its rows
@@ -172,16 +187,16 @@ def test_logit_matches_equal_brute_force_nearest_neighbours(runs, name):
 
 
 def test_greedy_without_replacement_equals_greedy_by_distance(runs):
-    """Without replacement: the SQL rounds of mutually nearest pairs give the greedy matching that
-    takes pairs in increasing order of (distance at 10 decimal places, the hash tiebreak, treated key,
-    control key)
+    """Without replacement: the SQL rounds of mutually nearest pairs over the sorted candidates
+    (8 controls each side in score order) give the greedy matching that takes pairs in increasing
+    order of (distance at 10 decimal places, the score-order tiebreak, treated key, control key)
     while both units are free, computed here by brute force over every candidate pair in numpy."""
     spec, out, tables = runs["greedy"]
     t, c, width = brute_force_candidates(tables, spec)
     gap = np.abs(t.score.to_numpy()[:, None] - c.score.to_numpy()[None, :])
     ii, jj = np.nonzero(gap <= width)
     tk, ck = t.unit_key.to_numpy()[ii], c.unit_key.to_numpy()[jj]
-    tie = hash_tiebreak(t, c)[ii, jj]
+    tie = position_tiebreak(t, c, [])[ii, jj]
     order = np.lexsort((ck, tk, tie, np.round(gap[ii, jj], 10)))
     used_t, used_c, expected = set(), set(), set()
     for o in order:
@@ -198,6 +213,8 @@ def test_greedy_without_replacement_equals_greedy_by_distance(runs):
     summary = out.results["matching_summary"].one()
     assert summary["n_treated_matched"] == summary["n_control_matched"] == len(expected)
     assert summary["n_treated_still_open"] == 0  # the rounds ran to the end
+    assert summary["n_treated_cut_short"] == 0
+    assert 1 < out.repeats["nearest_neighbour_rounds"] < neighbours.MAX_ROUNDS
 
 
 # ---------------------------------------------------------------------------------------------
@@ -254,7 +271,7 @@ def test_robust_ranks_equal_scipy_rankdata(runs):
         assert ranks[f].nunique() < len(ranks)  # ties are exercised
 
 
-def test_robust_mahalanobis_distance_follows_rosenbaum(runs):
+def test_rank_mahalanobis_distance_follows_rosenbaum(runs):
     """Robust Mahalanobis distance (Rosenbaum 2010, Design of Observational Studies, section 8.3,
     recalled): Mahalanobis distance between rank vectors, with the covariance of the ranks rescaled
     so that every variance equals that of untied ranks 1..n; computed in numpy/scipy, to 1e-9."""
@@ -294,12 +311,24 @@ def test_demo_balance_after_matching_on_the_logit_score(runs):
 
 
 def test_candidate_guard_refuses_a_large_join(demo_db):
-    raw = demo_raw(demo_db, "nearest_neighbour_guard", max_candidate_pairs=1000)
+    """The Mahalanobis distances compare every pair of a block in adjacent score bins: guarded."""
+    raw = demo_raw(demo_db, "nearest_neighbour_guard", distance="mahalanobis", max_candidate_pairs=1000)
     with pytest.raises(DataError) as info:
         run(raw)
     assert info.value.key == "matching.max_candidate_pairs"
-    assert "more than the limit of 1,000" in str(info.value) and "matching.exact" in str(info.value)
+    assert "more than the limit of 1,000" in str(info.value) and "matching.block_on" in str(info.value)
     assert study_tables(demo_db, "nearest_neighbour_guard") == []
+
+
+def test_score_distance_needs_no_candidate_join(demo_db):
+    """The score distance looks at k controls each side of a treated unit in score order, so a study
+    whose candidate join the guard would refuse (more than 1,000 pairs) runs, and never writes more
+    than 2k candidate rows per treated unit."""
+    raw = demo_raw(demo_db, "nearest_neighbour_noguard", max_candidate_pairs=1000)
+    _, out, tables = run(raw, ("nearest_neighbour_matches",))
+    assert out.results["candidate_pairs"].one()["n_candidate_pairs"] > 1000
+    summary = out.results["matching_summary"].one()
+    assert summary["n_treated_matched"] == len(tables["nearest_neighbour_matches"]) > 300
 
 
 @pytest.fixture(scope="module")
@@ -354,9 +383,9 @@ def test_check_candidates_names_a_constant_or_collinear_feature():
         ({"distance": "euclid"}, "matching.distance"),
         ({"caliper": 0}, "matching.caliper"),
         ({"caliper": True}, "matching.caliper"),
-        ({"ratio": 0}, "matching.ratio"),
-        ({"replacement": "no"}, "matching.replacement"),
-        ({"replacement": False, "ratio": 2}, "matching.ratio"),
+        ({"controls_per_treated": 0}, "matching.controls_per_treated"),
+        ({"reuse_controls": "no"}, "matching.reuse_controls"),
+        ({"reuse_controls": False, "controls_per_treated": 2}, "matching.controls_per_treated"),
         ({"max_candidate_pairs": 0}, "matching.max_candidate_pairs"),
     ],
 )
@@ -364,6 +393,23 @@ def test_spec_errors_name_the_key(matching, key):
     with pytest.raises(SpecError) as info:
         parse_spec(demo_raw("unused.duckdb", "nearest_neighbour_spec", **matching))
     assert info.value.key == key
+
+
+@pytest.mark.parametrize(
+    "matching, key, new",
+    [
+        ({"exact": ["age_band"]}, "matching.exact", "block_on"),
+        ({"ratio": 2}, "matching.ratio", "controls_per_treated"),
+        ({"replacement": False}, "matching.replacement", "reuse_controls"),
+        ({"distance": "logit"}, "matching.distance", '"score"'),
+        ({"distance": "robust_mahalanobis"}, "matching.distance", '"rank_mahalanobis"'),
+    ],
+)
+def test_earlier_option_names_are_refused_with_the_new_name(matching, key, new):
+    with pytest.raises(SpecError) as info:
+        parse_spec(demo_raw("unused.duckdb", "nearest_neighbour_spec", **matching))
+    assert info.value.key == key
+    assert new in str(info.value)
 
 
 STAND_IN_MODEL = FittedModel(
@@ -379,13 +425,16 @@ STAND_IN_MODEL = FittedModel(
 
 def test_plan_compiles_for_every_dialect():
     """Every dialect prints the plan (one configuration that uses every nearest_neighbour_ template); the greedy
-    rounds are steps of the compiled plan, and the guard runs before the candidate join."""
-    spec = parse_spec(demo_raw("unused.duckdb", "nearest_neighbour_compile", distance="robust_mahalanobis", exact=["home_district"], replacement=False))
+    rounds are one step the runner repeats (its check query in the step), and the guard runs before the candidate join."""
+    spec = parse_spec(demo_raw("unused.duckdb", "nearest_neighbour_compile", distance="rank_mahalanobis", block_on=["home_district"], reuse_controls=False))
     for dialect in DIALECTS:
         plan = build_plan(spec, dialect, model=STAND_IN_MODEL)
         names = [s.name for s in plan.steps]
         assert names.index("candidate_pairs") < names.index("nearest_neighbour_candidates")
-        assert [n for n in names if n.startswith("nearest_neighbour_round_")] == [f"nearest_neighbour_round_{r:02d}" for r in range(1, neighbours.MAX_ROUNDS + 1)]
+        assert [n for n in names if n.startswith("nearest_neighbour_round")] == ["nearest_neighbour_rounds"]
+        rounds = plan.step("nearest_neighbour_rounds")
+        assert rounds.max_repeats == neighbours.MAX_ROUNDS and "n_open" in rounds.repeat_check
+        assert len(plan.files()) <= 30  # 76 with one file per greedy round
         assert {"nearest_neighbour_features", "nearest_neighbour_whitening", "pairs", "match_weights", "matching_summary"} <= set(names)
         assert all("QUALIFY" not in sql.upper() for s in plan.steps for sql in s.statements)
 
@@ -402,7 +451,7 @@ def test_nsw_att_inside_the_experimental_interval(nsw_db, replacement):
     earnings minus the mean of their matches', computed here from the tables) lie inside the
     experimental 95% interval [479, 3110]; the naive difference (-8,498) does not. Beside DW's
     matching estimate 1,582 (SE 1,069): see the report of this change for the values."""
-    results = api.run(parse_spec(nsw_spec(nsw_db, "nearest_neighbour", replacement=replacement)))
+    results = api.run(parse_spec(nsw_spec(nsw_db, "nearest_neighbour", reuse_controls=replacement)))
     effect = results.effect("earnings_after")
     low, high = EXPERIMENTAL_INTERVAL
     assert low <= effect.estimate <= high, (effect.estimate, DW_MATCHING)
@@ -452,7 +501,7 @@ def test_pairs_give_paired_t_and_rosenbaum_bounds_equal_to_scipy(demo_dir, tmp_p
     shutil.copyfile(demo_dir / "bikeshare.duckdb", tmp_path / "bikeshare.duckdb")
     raw = tomllib.loads(DEMO_SPEC.read_text())
     raw["study"]["database"] = str(tmp_path / "bikeshare.duckdb")
-    raw["matching"] = {"method": "nearest_neighbour", "replacement": False}
+    raw["matching"] = {"method": "nearest_neighbour", "reuse_controls": False}
     results = api.run(parse_spec(raw))
     with duckdb.connect(str(tmp_path / "bikeshare.duckdb"), read_only=True) as con:
         d = con.execute(

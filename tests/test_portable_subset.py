@@ -29,7 +29,7 @@ def demo_plans():
     plans["coarsened_auto"] = build_plan(parse_spec(auto), "duckdb")
     sturges = dict(raw, matching={"method": "coarsened_exact", "on": ["pre_minutes"], "coarsen": "sturges"})
     plans["coarsened_sturges"] = build_plan(parse_spec(sturges), "duckdb")
-    scored = dict(raw, matching={"method": "score_bins", "bins": 5, "exact": ["age_band"]})
+    scored = dict(raw, matching={"method": "score_bins", "bins": 5, "block_on": ["age_band"]})
     model = FittedModel(
         columns=[DesignColumn("intercept", "intercept"), DesignColumn("pre_trips", "numeric", "pre_trips")],
         coefficients=[-2.0, 0.1],
@@ -40,12 +40,12 @@ def demo_plans():
         levels={},
     )
     plans["score_bins"] = build_plan(parse_spec(scored), "duckdb", model=model)
-    blocks = dict(raw, matching={"method": "score_bins", "exact": ["age_band"]})  # subclasses chosen from the data
+    blocks = dict(raw, matching={"method": "score_bins", "block_on": ["age_band"]})  # subclasses chosen from the data
     plans["score_bins_auto"] = build_plan(parse_spec(blocks), "duckdb", model=model)
-    for distance in ("logit", "mahalanobis", "robust_mahalanobis"):
-        nearest = dict(raw, matching={"method": "nearest_neighbour", "distance": distance, "exact": ["age_band"]})
+    for distance in ("score", "mahalanobis", "rank_mahalanobis"):
+        nearest = dict(raw, matching={"method": "nearest_neighbour", "distance": distance, "block_on": ["age_band"]})
         plans[f"nearest_{distance}"] = build_plan(parse_spec(nearest), "duckdb", model=model)
-    pairs = dict(raw, matching={"method": "nearest_neighbour", "replacement": False})
+    pairs = dict(raw, matching={"method": "nearest_neighbour", "reuse_controls": False})
     plans["nearest_pairs"] = build_plan(parse_spec(pairs), "duckdb", model=model)
     weighting = dict(raw, matching={"method": "score_weighting", "score_margin": 0.01, "weight_cap_quantile": 0.99})
     plans["score_weighting"] = build_plan(parse_spec(weighting), "duckdb", model=model)

@@ -141,3 +141,45 @@ def test_report_refuses_tables_of_an_earlier_spec(demo_dir, tmp_path, capsys):
     err = capsys.readouterr().err
     assert code == 2 and "outcome_strata" in err and "outcomes" in err and "compile the spec again" in err
     assert not (tmp_path / "after" / "results.json").exists()
+
+
+def test_scheduled_greedy_rounds_repeat_as_the_manifest_says(demo_dir, tmp_path):
+    """Nearest neighbours without replacement: the greedy round is one file the manifest marks to
+    repeat until its check returns n_open = 0. A scheduler that runs it once leaves pairs undone and
+    `report` warns, naming the step; one that repeats it as told gives the results of `run`."""
+    shutil.copyfile(demo_dir / "bikeshare.duckdb", tmp_path / "bikeshare.duckdb")
+    spec = tmp_path / "annual_pass.toml"
+    spec.write_text(DEMO_SPEC.read_text().replace('method = "coarsened_exact"', 'method = "nearest_neighbour"\nreuse_controls = false'))
+    assert main(["run", str(spec), "--out", str(tmp_path / "direct"), "--quiet"]) == 0
+    sql = tmp_path / "sql"
+    assert main(["compile", str(spec), "--out", str(sql), "--for-scheduler"]) == 0
+    manifest = json.loads((sql / "manifest.json").read_text())
+    (repeated,) = [s for s in manifest["steps"] if "repeat" in s]
+    assert repeated["name"] == "nearest_neighbour_rounds" and repeated["repeat"]["until"] == "n_open = 0"
+
+    _run_files(sql, tmp_path / "bikeshare.duckdb")  # every file once
+    assert main(["report", str(spec), "--out", str(tmp_path / "once")]) == 0
+    once = json.loads((tmp_path / "once" / "results.json").read_text())
+    (warning,) = [w for w in once["warnings"] if "greedy rounds" in w]
+    assert "nearest_neighbour_rounds" in warning and "n_open = 0" in warning
+
+    rounds = 0
+    with duckdb.connect(str(tmp_path / "bikeshare.duckdb")) as con:
+        for step in manifest["steps"]:
+            while True:
+                for statement in sqlglot.parse((sql / step["file"]).read_text(), read="duckdb"):
+                    if statement is not None:
+                        con.execute(statement.sql("duckdb"))
+                if "repeat" not in step:
+                    break
+                rounds += 1
+                n_open = con.execute(step["repeat"]["check"]).fetchone()[1]
+                if n_open == 0 or rounds >= step["repeat"]["max"]:
+                    break
+    assert rounds > 1
+    assert main(["report", str(spec), "--out", str(tmp_path / "repeated")]) == 0
+    repeated_results = json.loads((tmp_path / "repeated" / "results.json").read_text())
+    assert not any("greedy rounds" in w for w in repeated_results["warnings"])
+    direct = json.loads((tmp_path / "direct" / "results.json").read_text())
+    close(repeated_results["effects"], direct["effects"])
+    close(repeated_results["matching"], direct["matching"])

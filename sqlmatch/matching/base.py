@@ -40,6 +40,8 @@ class MatchingMethod:
     # the options of several methods and switch with --method; a typo is refused either way.
     option_keys: tuple[str, ...] = ()
     read_options: Callable = _no_options
+    # keys of earlier versions -> the key to use now; refused with the new name
+    renamed_options: Mapping[str, str] = field(default_factory=dict)
     # refusals run on an aggregate step's result: {step name: check(spec, result)}
     checks: Mapping[str, Callable] = field(default_factory=dict)
     # plain-words warnings from the run's aggregates: warnings(spec, results) -> [str]

@@ -1,16 +1,23 @@
 """Nearest neighbours within blocks: k:1 matching on the propensity score, run entirely in SQL.
 
-Blocks. Units are blocked on the exact levels of `matching.exact` (categorical features) and on
-fine bins of the logit propensity score, bin = CAST(FLOOR((score - lowest score) / width) AS
-INTEGER), where the width is the caliper: `matching.caliper` (default 0.2) standard deviations of
-the logit score, the SD pooled over the groups, sqrt((s2_T + s2_C) / 2) (Austin 2011,
-Pharmaceutical Statistics 10:150, recalled; 0.2 is common practice). A control within the
-caliper of a treated unit is always in the treated unit's bin or an adjacent one, so candidates
-for a treated unit are the controls of its exact block in bins b-1, b and b+1 that are within
-the caliper.
+Options ([matching], our names): distance = "score" | "mahalanobis" | "rank_mahalanobis",
+caliper, controls_per_treated (k), reuse_controls (with replacement), block_on (categorical
+features matched exactly, shared with score_bins), max_candidate_pairs (the Mahalanobis guard).
+
+Blocks and caliper. Units are blocked on the exact levels of `matching.block_on`. The caliper is
+`matching.caliper` (default 0.2) standard deviations of the logit score, the SD pooled over the
+groups, sqrt((s2_T + s2_C) / 2) (Austin 2011, Pharmaceutical Statistics 10:150, recalled; 0.2 is
+common practice); for every distance a pair further apart than the caliper on the logit score is
+never matched.
 
 Distance (`matching.distance`):
-  * "logit": |score_t - score_c|.
+  * "score": |score_t - score_c| on the logit of the propensity score. Candidates come from a sort,
+    never a join of all pairs: in each block, units are numbered in score order (ties: unit key)
+    and every control gets its index among the block's controls; a treated unit's k nearest
+    controls are among the k just below and the k just above it (any control nearer, or as near
+    and nearer in that order, lies between), found by one equality join on the index
+    (`sorted_candidates` in nearest_neighbour_macros). Cost: a sort of the units and 2k rows per
+    treated unit, whatever the block sizes.
   * "mahalanobis": sqrt((x_t - x_c)' S^-1 (x_t - x_c)) over the numeric features of the propensity
     model (raw values, not the model's log1p), S the covariance over all units with a score
     (treated and control together; one of the usual choices, the other being the control group's
@@ -19,25 +26,35 @@ Distance (`matching.distance`):
     from the aggregate covariance (one row, see nearest_neighbour_whitening.sql.j2), so the plan stays one
     compiled SQL script with no number pasted in mid-run; each unit gets whitened coordinates z
     and the distance is the Euclidean distance between z's.
-  * "robust_mahalanobis" (Rosenbaum 2010, Design of Observational Studies, section 8.3, recalled):
-    each feature is replaced by its rank among all units with a score (ties: average rank), and
-    the covariance of the ranks is rescaled so every diagonal entry is the variance of untied
-    ranks, n (n + 1) / 12, which keeps heavily tied features (counts with many zeros) from
-    counting more.
-  For every distance the caliper applies to the logit score: a pair further apart than the
-  caliper on the score is never matched. Distances (and, for ranks, feature values) are compared
-  at 10 decimal places, so values equal in exact arithmetic tie on every engine whatever order
-  it added them in, and the unit key breaks the tie.
+  * "rank_mahalanobis", the rank-based Mahalanobis distance (Rosenbaum 2010, Design of
+    Observational Studies, section 8.3, recalled): each feature is replaced by its rank among all
+    units with a score (ties: average rank), and the covariance of the ranks is rescaled so every
+    diagonal entry is the variance of untied ranks, n (n + 1) / 12, which keeps heavily tied
+    features (counts with many zeros) from counting more.
+  The Mahalanobis distances have no order to sort by: candidates are every control of the treated
+  unit's block in the same or an adjacent bin of the logit score one caliper wide, bin =
+  CAST(FLOOR((score - lowest score) / width) AS INTEGER) (a control within the caliper is always
+  there), a join whose size the guard checks first.
+  Distances (and, for ranks, feature values) are compared at 10 decimal places, so values equal in
+  exact arithmetic tie on every engine whatever order it added them in. Ties in distance: the score
+  distance takes the control nearer in the block's score order (so treated units tied in score
+  spread over the controls tied with them), the Mahalanobis distances a multiplicative hash of the
+  two units' numbers; then the control key.
 
-Matching. With replacement (default), each treated unit takes its `matching.ratio` (= k) nearest
-candidates: ROW_NUMBER() OVER (PARTITION BY treated unit ORDER BY distance, control key) <= k.
-Without replacement (ratio 1 only), greedy rounds in SQL: in each round every treated unit and
-control unit both still free that are each other's nearest free candidate are paired (ties by
-unit key); each round pairs at least the closest free pair, and run to the end the rounds give
-the greedy matching that takes pairs in increasing order of (distance, treated key, control key).
-The rounds are MAX_ROUNDS steps of the plan, each reading only the pairs still open; treated
-units still free after the last round stay unmatched and are counted (n_treated_still_open in
-the summary). The pairs are written to <study>_pairs(pair_id, treated_key, control_key,
+Matching. With reuse_controls = true (default), each treated unit takes its k =
+`matching.controls_per_treated` nearest candidates: ROW_NUMBER() OVER (PARTITION BY treated unit
+ORDER BY distance, tiebreak, control key) <= k. Without (k = 1 only), greedy rounds in SQL: in
+each round every treated unit and control unit both still free that are each other's nearest free
+candidate are paired; each round pairs at least the closest free pair, and run to the end the
+rounds give the greedy matching that takes pairs in increasing order of (distance, tiebreak,
+keys). The round is one step that rewrites the table it reads; the runner repeats it until no
+candidate pair is open (at most MAX_ROUNDS times; a scheduler is told so in the step's file and
+manifest.json). On the score distance the rounds pick from the GREEDY_REACH controls each side in
+score order; the summary counts the treated units that found every control looked at on a side
+taken by others with more beyond (n_treated_cut_short): when none did, the result is the greedy
+matching over every pair (the first pair where the two could differ belongs to such a unit).
+Treated units still free when the rounds stop stay unmatched and are counted
+(n_treated_still_open). The pairs are written to <study>_pairs(pair_id, treated_key, control_key,
 distance) for paired analyses.
 
 Weights (effect on the treated): treated 1; a control, 1 / (number of controls matched to that
@@ -52,13 +69,15 @@ with `matching.bias_correction` (default) the Abadie & Imbens (2011) regression 
 from per-group sums in SQL (estimators/matching_variance.py). Without replacement the 1:1 pairs
 get the paired-difference interval.
 
-Guard. Before the candidate join one aggregate query counts the pairs the join will compare
-(from block counts) and the treated units with a control within the caliper; the runner refuses
-when the pairs exceed `matching.max_candidate_pairs` or when no treated unit can be matched.
+Guard. One aggregate query counts the pairs the Mahalanobis join would compare (from block
+counts) and the treated units with a control within the caliper; the runner refuses when no
+treated unit can be matched, and, for the Mahalanobis distances, when the pairs exceed
+`matching.max_candidate_pairs`.
 """
 
 from __future__ import annotations
 
+import dataclasses
 import math
 
 from sqlmatch.errors import DataError, SpecError
@@ -70,8 +89,19 @@ DESCRIPTION = (
     "nearest neighbours on the propensity score (or a Mahalanobis distance) within exact blocks and a caliper, "
     "k:1 with or without replacement"
 )
-MAX_ROUNDS = 50  # greedy rounds without replacement, each a step of the plan (the demo at 30,000 riders needs 34)
+MAX_ROUNDS = 500  # greedy rounds without replacement: the runner repeats one step at most this often
+# Without replacement on the score: controls looked at on each side of a treated unit in score order.
+# The greedy rounds over these equal the greedy matching over every pair unless a treated unit's
+# controls on one side are all taken by others (the summary counts such units: n_treated_cut_short).
+GREEDY_REACH = 8
 PIVOT_MIN = 1e-8  # 1 - R^2 of a feature on the features before it, below which the covariance is singular
+
+
+def search_route(m) -> str:
+    """How candidates are found: "sorted" (the score distance: neighbours in score order, no join of
+    all pairs) or "all_pairs" (Mahalanobis distances: every pair in adjacent score bins of a block,
+    behind the candidate guard)."""
+    return "sorted" if m.distance == "score" else "all_pairs"
 
 
 def distance_features(spec) -> list[str]:
@@ -80,25 +110,27 @@ def distance_features(spec) -> list[str]:
 
 
 def _distance_text(distance: str, features: list[str]) -> str:
-    if distance == "logit":
+    if distance == "score":
         return "the gap in the logit propensity score"
-    kind = "robust (rank-based) Mahalanobis distance" if distance == "robust_mahalanobis" else "Mahalanobis distance"
+    kind = "rank-based Mahalanobis distance" if distance == "rank_mahalanobis" else "Mahalanobis distance"
     return f"the {kind} on {', '.join(features)}"
 
 
 def steps(ctx, model):
+    from sqlmatch import dialects, render  # render imports spec, which imports the method registry
+
     spec = ctx.spec
     m = spec.matching
-    exact = list(m.exact)
-    features = distance_features(spec) if m.distance != "logit" else []
-    if m.distance != "logit" and not features:
+    exact = list(m.block_on)
+    features = distance_features(spec) if m.distance != "score" else []
+    if m.distance != "score" and not features:
         raise SpecError(
             "matching.distance",
             f"{m.distance} needs numeric features in the propensity model; propensity.features has none.",
-            "add numeric features to propensity.features, or use distance = \"logit\".",
+            "add numeric features to propensity.features, or use distance = \"score\".",
         )
     dims = len(features)
-    ranks = m.distance == "robust_mahalanobis"
+    ranks = m.distance == "rank_mahalanobis"
     text = _distance_text(m.distance, features)
     tables = {
         "scores_table": ctx.table("scores"),
@@ -169,17 +201,23 @@ def steps(ctx, model):
             **{k: tables[k] for k in ("units_table", "caliper_table")},
         ),
     ]
-    common = dict(exact=exact, dims=dims, distance_text=text, units_table=tables["units_table"], caliper_table=tables["caliper_table"])
+    search = search_route(m)
+    common = dict(exact=exact, dims=dims, distance_text=text, search=search, units_table=tables["units_table"], caliper_table=tables["caliper_table"])
     join_reads = [ctx.display("nearest_neighbour_units"), ctx.display("nearest_neighbour_caliper")]
-    if m.replacement:
+    looked_at = (
+        "the controls just below and above each treated unit in score order"
+        if search == "sorted"
+        else "the controls in the same or an adjacent score bin"
+    )
+    if m.reuse_controls:
         out.append(
             ctx.table_step(
                 "nearest_neighbour_matches",
                 "nearest_neighbour_matches",
                 writes="nearest_neighbour_matches",
                 reads=join_reads,
-                purpose=f"The {m.ratio} nearest control(s) of each treated unit within the caliper, with replacement.",
-                ratio=m.ratio,
+                purpose=f"The {m.controls_per_treated} nearest control(s) of each treated unit within the caliper, with replacement ({looked_at}).",
+                ratio=m.controls_per_treated,
                 **common,
             )
         )
@@ -189,42 +227,40 @@ def steps(ctx, model):
             ctx.table_step(
                 "nearest_neighbour_candidates",
                 "nearest_neighbour_candidates",
-                writes="nearest_neighbour_candidates",
+                writes="nearest_neighbour_rounds",
                 reads=join_reads,
-                purpose="Candidate pairs within the caliper, with their distance.",
+                purpose=f"Candidate pairs within the caliper, with their distance ({looked_at}); none matched yet.",
+                reach=GREEDY_REACH,
                 **common,
             )
         )
-        previous = None
-        for r in range(1, MAX_ROUNDS + 1):
-            # two tables, written in turn: round r reads what round r - 1 wrote
-            current = "nearest_neighbour_round_a" if r % 2 else "nearest_neighbour_round_b"
-            out.append(
-                ctx.table_step(
-                    f"nearest_neighbour_round_{r:02d}",
-                    "nearest_neighbour_round",
-                    writes=current,
-                    reads=[ctx.display(previous) if previous else ctx.display("nearest_neighbour_candidates")],
-                    purpose=f"Greedy matching without replacement, round {r} of {MAX_ROUNDS}: mutually nearest free pairs.",
-                    round=r,
-                    rounds=MAX_ROUNDS,
-                    candidates_table=ctx.table("nearest_neighbour_candidates"),
-                    previous_table=ctx.table(previous) if previous else None,
-                )
-            )
-            previous = current
+        rounds = ctx.table("nearest_neighbour_rounds")
+        check = None
+        if not ctx.names_only:
+            check_sql, written_in = render.render("nearest_neighbour_round_check", ctx.dialect, rounds_table=rounds)
+            (parsed,) = dialects.parse(check_sql, written_in)
+            check = dialects.generate(parsed, ctx.dialect)
+        round_step = ctx.table_step(
+            "nearest_neighbour_rounds",
+            "nearest_neighbour_round",
+            writes="nearest_neighbour_rounds",
+            reads=[ctx.display("nearest_neighbour_rounds")],
+            purpose=f"Greedy matching without replacement: one round of mutually nearest open pairs, repeated until none is open (at most {MAX_ROUNDS}).",
+            rounds=MAX_ROUNDS,
+            rounds_table=rounds,
+        )
+        out.append(dataclasses.replace(round_step, repeat_check=check, max_repeats=MAX_ROUNDS))
         out.append(
             ctx.table_step(
                 "pairs",
                 "nearest_neighbour_pairs",
                 writes="pairs",
-                reads=[ctx.display(previous)],
+                reads=[ctx.display("nearest_neighbour_rounds")],
                 purpose="Matched pairs (no unit in two pairs), numbered.",
-                rounds=MAX_ROUNDS,
-                rounds_table=ctx.table(previous),
+                rounds_table=rounds,
             )
         )
-        matches, rounds_table = "pairs", previous
+        matches, rounds_table = "pairs", "nearest_neighbour_rounds"
         pair_outcomes = [o.name for o in ctx.spec.outcomes if o.kind != "ratio"]
         if pair_outcomes:
             out.append(
@@ -245,7 +281,7 @@ def steps(ctx, model):
             writes="match_weights",
             reads=[ctx.display(matches)],
             purpose="Matching weights for the effect on the treated (matched units only).",
-            ratio=m.ratio,
+            ratio=m.controls_per_treated,
             matches_table=ctx.table(matches),
         ),
         ctx.query_step(
@@ -253,7 +289,7 @@ def steps(ctx, model):
             "nearest_neighbour_summary",
             reads=[ctx.display("nearest_neighbour_units"), ctx.display(matches), ctx.display("match_weights")] + ([ctx.display(rounds_table)] if rounds_table else []),
             purpose="Units considered and matched by nearest-neighbour matching.",
-            replacement=m.replacement,
+            replacement=m.reuse_controls,
             rounds_table=ctx.table(rounds_table) if rounds_table else None,
             weights_table=ctx.table("match_weights"),
             units_table=tables["units_table"],
@@ -275,7 +311,7 @@ def check_candidates(spec, result) -> None:
             f"the logit propensity score does not vary (pooled SD {row['score_sd']}), so a caliper in SDs of it is empty.",
             "check the propensity model's features (propensity.features) vary between units.",
         )
-    if m.distance != "logit":
+    if m.distance != "score":
         features = distance_features(spec)
         for i, name in enumerate(features, start=1):
             pivot = row[f"pivot_{i}"]
@@ -283,7 +319,7 @@ def check_candidates(spec, result) -> None:
                 raise DataError(
                     "propensity.features",
                     f"feature {name!r} takes one value for every unit, so the {m.distance} distance is undefined.",
-                    f"leave {name} out of propensity.features, or use distance = \"logit\".",
+                    f"leave {name} out of propensity.features, or use distance = \"score\".",
                 )
             if float(pivot) < PIVOT_MIN:
                 before = ", ".join(features[: i - 1])
@@ -291,31 +327,54 @@ def check_candidates(spec, result) -> None:
                     "propensity.features",
                     f"feature {name!r} is (almost) a linear combination of {before} (1 - R^2 = {float(pivot):.2g}), "
                     f"so their covariance cannot be inverted for the {m.distance} distance.",
-                    f"leave {name} (or one of those features) out of propensity.features, or use distance = \"logit\".",
+                    f"leave {name} (or one of those features) out of propensity.features, or use distance = \"score\".",
                 )
     if not row["n_treated_in_reach"]:
-        block = f" in its exact block ({', '.join(m.exact)})" if m.exact else ""
+        block = f" in its exact block ({', '.join(m.block_on)})" if m.block_on else ""
         raise DataError(
             "matching.caliper",
             f"no treated unit has a control unit within the caliper ({m.caliper} SD of the logit score = {float(width):.4g}){block}, "
             "so nothing can be matched.",
-            "widen matching.caliper" + (", or match exactly on fewer features (matching.exact)." if m.exact else "."),
+            "widen matching.caliper" + (", or match exactly on fewer features (matching.block_on)." if m.block_on else "."),
         )
     n_pairs = int(row["n_candidate_pairs"])
-    if n_pairs > m.max_candidate_pairs:
+    # the sorted search looks at a fixed number of controls per treated unit: no join to guard
+    if search_route(m) == "all_pairs" and n_pairs > m.max_candidate_pairs:
         raise DataError(
             "matching.max_candidate_pairs",
             f"the candidate join would compare {n_pairs:,} (treated, control) pairs, more than the limit of {m.max_candidate_pairs:,}.",
-            "block more finely (add categorical features to matching.exact), use a smaller matching.caliper "
+            "block more finely (add categorical features to matching.block_on), use a smaller matching.caliper "
             "(narrower score bins), or raise matching.max_candidate_pairs if the warehouse can afford the join.",
         )
 
 
 def warnings(spec, results) -> list[str]:
-    """With replacement, say how often controls were reused and that the variance counts it."""
-    if not spec.matching.replacement or "matching_summary" not in results:
+    """With replacement, say how often controls were reused (the Abadie-Imbens variance counts it).
+    Without, say when the greedy rounds stopped early or may differ from the greedy matching over
+    every pair."""
+    if "matching_summary" not in results:
         return []
     m = results["matching_summary"].one()
+    if not spec.matching.reuse_controls:
+        out = []
+        still_open = int(m.get("n_treated_still_open") or 0)
+        if still_open:
+            out.append(
+                f"The greedy rounds of nearest-neighbour matching without replacement stopped with {still_open:,} enrolled units "
+                f"still holding a free candidate control (at most {MAX_ROUNDS} rounds; a scheduler runs the rounds step once "
+                "unless told to repeat it): they count as unmatched. Run the nearest_neighbour_rounds step again until its "
+                "check returns n_open = 0 (see the step's file or manifest.json), then the steps after it, then report again."
+            )
+        cut = int(m.get("n_treated_cut_short") or 0)
+        if cut:
+            out.append(
+                f"For {cut:,} enrolled units the {GREEDY_REACH} controls looked at on one side in score order were all taken by "
+                "other enrolled units, so the matching may differ from the greedy matching over every pair (first for them, "
+                "then for units whose controls they would have taken); with none such it is the same. With many ties in the "
+                "score, add the features that tell the units apart to the propensity model, block on a categorical feature "
+                "(matching.block_on) or set matching.reuse_controls = true."
+            )
+        return out
     return [
         f"Nearest-neighbour matching with replacement used {int(m['n_control_matched'] or 0):,} distinct controls for "
         f"{int(m['n_treated_matched'] or 0):,} matched enrolled units. The standard errors are Abadie & Imbens's (2006), "
@@ -323,12 +382,19 @@ def warnings(spec, results) -> list[str]:
     ]
 
 
-DISTANCES = ("logit", "mahalanobis", "robust_mahalanobis")
+DISTANCES = ("score", "mahalanobis", "rank_mahalanobis")
+# Names of earlier versions, refused with the name to use now.
+RENAMED_DISTANCES = {"logit": "score", "robust_mahalanobis": "rank_mahalanobis"}
+RENAMED_OPTIONS = {"ratio": "controls_per_treated", "replacement": "reuse_controls"}
 
 
 def read_options(table: dict, given: OptionInput) -> dict:
-    """matching.distance / caliper / ratio / replacement / max_candidate_pairs / bias_correction."""
-    distance = read_choice(table, "matching", "distance", DISTANCES, default="logit")
+    """matching.distance / caliper / controls_per_treated / reuse_controls / max_candidate_pairs / bias_correction."""
+    old = table.get("distance")
+    if isinstance(old, str) and old in RENAMED_DISTANCES:
+        new = RENAMED_DISTANCES[old]
+        raise SpecError("matching.distance", f"{old!r} is now called {new!r}.", f'write distance = "{new}".')
+    distance = read_choice(table, "matching", "distance", DISTANCES, default="score")
     caliper = table.get("caliper", 0.2)
     if isinstance(caliper, bool) or not isinstance(caliper, (int, float)) or not 0.0001 <= caliper <= 10:
         raise SpecError(
@@ -336,14 +402,18 @@ def read_options(table: dict, given: OptionInput) -> dict:
             f"must be a number of standard deviations of the logit score between 0.0001 and 10, got {caliper!r}.",
             "0.2 is common practice (Austin 2011).",
         )
-    ratio = read_int(table, "matching", "ratio", default=1, low=1, high=20)
-    replacement = read_bool(table, "matching", "replacement", default=True)
-    if not replacement and ratio != 1:
-        raise SpecError("matching.ratio", f"must be 1 when matching.replacement = false, got {ratio}.", "set ratio = 1, or replacement = true for k:1 matching.")
+    ratio = read_int(table, "matching", "controls_per_treated", default=1, low=1, high=20)
+    reuse = read_bool(table, "matching", "reuse_controls", default=True)
+    if not reuse and ratio != 1:
+        raise SpecError(
+            "matching.controls_per_treated",
+            f"must be 1 when matching.reuse_controls = false, got {ratio}.",
+            "set controls_per_treated = 1, or reuse_controls = true for k:1 matching.",
+        )
     max_pairs = read_int(table, "matching", "max_candidate_pairs", default=50_000_000, low=1, high=10**12)
     bias_correction = read_bool(table, "matching", "bias_correction", default=True)
     return {
-        "distance": distance, "caliper": float(caliper), "ratio": ratio, "replacement": replacement, "max_candidate_pairs": max_pairs,
+        "distance": distance, "caliper": float(caliper), "controls_per_treated": ratio, "reuse_controls": reuse, "max_candidate_pairs": max_pairs,
         "bias_correction": bias_correction,
     }
 
@@ -353,8 +423,9 @@ METHOD = MatchingMethod(
     description=DESCRIPTION,
     steps=steps,
     uses_score=True,
-    loosen="a wider matching.caliper or fewer exact features (matching.exact)",
-    option_keys=("distance", "caliper", "ratio", "replacement", "max_candidate_pairs", "bias_correction"),
+    loosen="a wider matching.caliper or fewer exact features (matching.block_on)",
+    option_keys=("distance", "caliper", "controls_per_treated", "reuse_controls", "max_candidate_pairs", "bias_correction"),
+    renamed_options=RENAMED_OPTIONS,
     read_options=read_options,
     checks={"candidate_pairs": check_candidates},
     warnings=warnings,

@@ -85,7 +85,7 @@ def steps(ctx, outcomes) -> list:
     """The variance step, with replacement only: without replacement the 1:1 pairs get the paired
     interval (every control is used at most once)."""
     m = ctx.spec.matching
-    if not m.replacement:
+    if not m.reuse_controls:
         return []
     features = bias_features(ctx.spec) if m.bias_correction else []
     vs, ps = variables(outcomes, features)
@@ -109,7 +109,7 @@ def steps(ctx, outcomes) -> list:
             reads=[ctx.display("scores"), ctx.display("weighted_units")],
             purpose="Abadie-Imbens variance sums: squared matching weights (times each control is used) times conditional "
             "variances estimated by matching each unit to its nearest unit of the same group.",
-            exact=list(m.exact),
+            exact=list(m.block_on),
             variables=vs,
             products=ps,
             scores_table=ctx.table("scores"),

@@ -62,7 +62,7 @@ def block_steps(ctx, exact: list[str]) -> list:
 def steps(ctx, model):
     spec = ctx.spec
     m = spec.matching
-    exact = list(m.exact)
+    exact = list(m.block_on)
     if m.bins is None:
         out = [ctx.score_step(model, exact)] + block_steps(ctx, exact)
         axes = [Axis(feature="score_bin", kind="given")] + [Axis(feature=f, kind="exact") for f in exact]
@@ -118,7 +118,7 @@ METHOD = MatchingMethod(
     description=DESCRIPTION,
     steps=steps,
     uses_score=True,
-    loosen="fewer exact features (matching.exact) or fewer matching.bins",
+    loosen="fewer exact features (matching.block_on) or fewer matching.bins",
     option_keys=("bins",),
     read_options=read_options,
     estimands=("att", "atc", "ate"),

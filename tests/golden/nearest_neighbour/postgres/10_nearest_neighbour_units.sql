@@ -11,19 +11,36 @@ CREATE TABLE "sqlmatch".annual_pass_nearest_neighbour_units__building AS
    its exact block (age_band; a missing level is a level of its own) and its score
    bin, CAST(FLOOR((score - lowest score) / width) AS INTEGER) with the caliper's width, so a control within the
    caliper of a treated unit is always in the treated unit's bin or an adjacent one.
-   unit_seq numbers the units by key; it feeds a multiplicative hash that breaks ties in distance, so
-   that treated units with identical scores do not all take the same control (the one with the
-   lowest key), while the result stays the same on every engine.
+   unit_seq (Mahalanobis distances only) numbers the units by key; it feeds a multiplicative hash that breaks ties in the
+   Mahalanobis distances, so that treated units at the same distance do not all take the same control
+   (the one with the lowest key), while the result stays the same on every engine.
+   score_position: the unit's place in its exact block in score order (ties: unit key), and
+   controls_through the number of controls up to and including that place (its place minus its place
+   among the block's treated units, for a treated unit: ROW_NUMBER only). For a control it is
+   the control's index in the block's score order; for a treated unit the number of controls below
+   it, so its neighbouring controls in score order have the indices just below and just above it
+   (the score distance finds them by an equality join on that index, never a join of all pairs).
 */
 SELECT
   s.unit_key,
   s.treated,
-  ROW_NUMBER() OVER (ORDER BY s.unit_key) AS unit_seq,
   COALESCE(s.age_band, '(missing)') AS age_band,
   s.score,
   CAST(FLOOR(CAST((
     s.score - k.score_min
-  ) AS DOUBLE PRECISION) / NULLIF(k.width, 0.0)) AS INT) AS score_bin
+  ) AS DOUBLE PRECISION) / NULLIF(k.width, 0.0)) AS INT) AS score_bin,
+  ROW_NUMBER() OVER (PARTITION BY COALESCE(s.age_band, '(missing)') ORDER BY s.score, s.unit_key) AS score_position,
+  CASE
+    WHEN s.treated = 1
+    THEN ROW_NUMBER() OVER (PARTITION BY COALESCE(s.age_band, '(missing)') ORDER BY s.score, s.unit_key) - ROW_NUMBER() OVER (
+      PARTITION BY COALESCE(s.age_band, '(missing)'), s.treated
+      ORDER BY s.score, s.unit_key
+    )
+    ELSE ROW_NUMBER() OVER (
+      PARTITION BY COALESCE(s.age_band, '(missing)'), s.treated
+      ORDER BY s.score, s.unit_key
+    )
+  END AS controls_through
 FROM "sqlmatch".annual_pass_scores AS s
 CROSS JOIN "sqlmatch".annual_pass_nearest_neighbour_caliper AS k
 WHERE

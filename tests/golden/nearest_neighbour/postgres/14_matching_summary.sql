@@ -32,7 +32,8 @@ SELECT
   COALESCE(c.n_control, 0) AS n_control,
   m.n_control_matched,
   m.n_matches,
-  0 AS n_treated_still_open
+  0 AS n_treated_still_open,
+  0 AS n_treated_cut_short
 FROM considered AS c
 CROSS JOIN matched AS m
 CROSS JOIN strata AS s;
