@@ -71,7 +71,7 @@ def study_results(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
         min_cell_size=spec.min_cell_size,
         imbalance=imbalance,
         histograms=aggregates.histograms(r),
-        warnings=run_warnings(spec, r, balance, output.model),
+        warnings=run_warnings(spec, r, balance, output.model, matching),
         timings=output.timings,
     )
 
