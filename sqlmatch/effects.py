@@ -9,6 +9,7 @@ import math
 import numpy as np
 
 from sqlmatch import aggregates
+from sqlmatch.design import provenance, study_design
 from sqlmatch.diagnostics import run_warnings
 from sqlmatch.estimators.att import relative_lift, stratified_att
 from sqlmatch.estimators.binary import risk_ratio
@@ -73,6 +74,8 @@ def study_results(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
         histograms=aggregates.histograms(r),
         warnings=run_warnings(spec, r, balance, output.model, matching),
         timings=output.timings,
+        design=study_design(spec, r, output.model),
+        provenance=provenance(spec, plan.dialect, output.timings),
     )
 
 

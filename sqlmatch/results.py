@@ -156,6 +156,8 @@ class StudyResults:
     run_id: str | None = None  # set when the run was recorded in the results history table
     warnings: list[str] = field(default_factory=list)  # data problems worth a reader's attention
     timings: dict[str, float] = field(default_factory=dict)
+    design: dict | None = None  # what was compared and how (sqlmatch.design.study_design)
+    provenance: dict | None = None  # sqlmatch version, spec hash, plan fingerprint, engine, time
 
     def effect(self, outcome: str) -> Effect:
         for e in self.effects:
@@ -255,6 +257,8 @@ class StudyResults:
             "rows_fetched": self.rows_fetched,
             "min_cell_size": self.min_cell_size,
             "assumptions": list(self.assumptions),
+            "design": self.design,
+            "provenance": self.provenance,
         }
         if self.demo_truth is not None:
             out["demo_truth"] = self.demo_truth
