@@ -170,10 +170,9 @@ def _dispatch(args) -> int:
             paths = api.write_cohort_results(combined, args.out)
             print(f"sqlmatch: wrote {', '.join(str(p) for p in paths)}")
             return _summary(combined.cohorts, args.fail_on, pooled=combined.pooled)
-        results = api.run(
-            spec, database=args.database, progress=Progress(quiet=args.quiet, verbose=args.verbose), engine_url=args.engine, keep_tables=args.keep
-        )
-        paths = api.write_results(results, args.out)
+        progress = Progress(quiet=args.quiet, verbose=args.verbose)
+        results = api.run(spec, database=args.database, progress=progress, engine_url=args.engine, keep_tables=args.keep)
+        paths = api.write_results(results, args.out, progress=progress)
         print(f"sqlmatch: wrote {', '.join(str(p) for p in paths)}")
         return _summary([results], args.fail_on)
     if args.command == "init":

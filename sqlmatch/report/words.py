@@ -99,3 +99,142 @@ def headline(e: Effect) -> str:
 def _signed(x: float | None) -> str:
     s = number(x)
     return s if s == "–" or s.startswith("-") else "+" + s
+
+
+# ------------------------------------------------------------------------------ who was compared
+
+MATCHED = "#009E73"
+OUTSIDE = "#999999"
+NO_MATCH = "#E69F00"
+NOT_PICKED = "#56B4E9"
+WITHHELD = "#DDDDDD"
+
+
+def _is_nearest(r: StudyResults) -> bool:
+    return (r.design or {}).get("groups_word") == "matched sets" or r.matching.method == "nearest_neighbour"
+
+
+def sample_rows(r: StudyResults) -> list[tuple[str, str, str]]:
+    """The rows of the "who was compared" table, (label, enrolled, not enrolled), in the method's
+    words: strata drop units without a counterpart in their stratum; nearest neighbours leave
+    enrolled units without a control in the caliper unmatched and simply do not pick most controls.
+    Counts as privacy.flow_texts gives them (small ones "<10", revealing ones "–")."""
+    from sqlmatch.privacy import flow_texts
+
+    f = flow_texts(r.matching, r.min_cell_size)
+    t, c = f["treated"], f["control"]
+    rows = [("in the study", t["in_study"], c["in_study"])]
+    if _is_nearest(r):
+        rows += [
+            ("matched (comparison: used as a match)", t["matched"], c["matched"]),
+            ("outside the common support", t["outside_support"], c["outside_support"]),
+            ("enrolled with no control within the caliper", t["no_comparable"], ""),
+            ("comparison units not picked as a match", "", c["no_comparable"]),
+        ]
+    else:
+        rows += [
+            ("matched", t["matched"], c["matched"]),
+            ("dropped: outside the common support", t["outside_support"], c["outside_support"]),
+            ("dropped: no comparable unit in the stratum", t["no_comparable"], c["no_comparable"]),
+        ]
+    return rows
+
+
+def flow_segments(r: StudyResults) -> tuple[dict, dict]:
+    """Parts of each group for the "who was compared" bar chart: (group -> [(label, count or
+    None, colour)], group -> total). Withheld counts are drawn as one grey part of their sum."""
+    from sqlmatch.privacy import sample_flow
+
+    flow = sample_flow(r.matching, r.min_cell_size)
+    nearest = _is_nearest(r)
+    out, totals = {}, {}
+    for group, label, total in (("treated", "enrolled", r.matching.n_treated), ("control", "not enrolled", r.matching.n_control)):
+        rows = flow[group]
+        if nearest:
+            unmatched = "no control within the caliper" if group == "treated" else "not picked as a match"
+            colour = NO_MATCH if group == "treated" else NOT_PICKED
+        else:
+            unmatched, colour = "no comparable unit in the stratum", NO_MATCH
+        parts = [("matched (comparison: used as a match)" if nearest else "matched", rows["matched"], MATCHED), ("outside the common support", rows["outside_support"], OUTSIDE), (unmatched, rows["no_comparable"], colour)]
+        if rows["in_study"] is not None:
+            withheld = total - sum(v for _, v, _ in parts if v is not None)
+            parts.append(("not shown (small counts)", withheld, WITHHELD))
+        out[label], totals[label] = parts, total
+    return out, totals
+
+
+def groups_sentence(r: StudyResults) -> str:
+    """What the matching built, in the method's words."""
+    from sqlmatch.privacy import flow_texts
+
+    m, d = r.matching, r.design or {}
+    if _is_nearest(r):
+        f = flow_texts(m, r.min_cell_size)
+        k = d.get("ratio", 1)
+        cal = d.get("caliper") or {}
+        width = f" = {cal['width']:.3g} on the logit scale" if cal.get("width") is not None else ""
+        reuse = "with replacement (a control may serve several enrolled units)" if d.get("replacement", True) else "without replacement"
+        return (
+            f"Matched sets: each matched enrolled unit with its {k} nearest comparison unit{'s' if k != 1 else ''} within the caliper "
+            f"({cal.get('sd', '?')} SD of the logit propensity score{width}), {reuse}: {f['control']['matched']} distinct comparison "
+            f"units serve {f['treated']['matched']} matched enrolled units."
+        )
+    return f"Strata used: {m.strata:,}; cells dropped for lacking an enrolled or a non-enrolled unit: {m.strata_dropped:,}."
+
+
+def design_lines(r: StudyResults) -> list[tuple[str, str]]:
+    """The study's design as (heading, text) pairs, for both reports."""
+    d = r.design or {}
+    w = r.windows
+    out = [
+        ("Treatment", f"{d.get('treatment', 'enrolment')} in {r.cohort} ({w['cohort'][0]} to {w['cohort'][1]}, exclusive); comparison pool: {d.get('control_pool', '–')}"),
+        ("Pre window (features)", f"{w['pre'][0]} to {w['pre'][1]} (exclusive), {window_length(w['pre'], w['unit'])}"),
+        ("Post window (outcomes)", f"{w['post'][0]} to {w['post'][1]} (exclusive), {window_length(w['post'], w['unit'])}"),
+    ]
+    if d.get("eligibility"):
+        out.append(("Eligibility", "; ".join(d["eligibility"])))
+    if d.get("features"):
+        out.append(("Features", ", ".join(f"{f['name']} ({_feature_text(f)})" for f in d["features"])))
+    out.append(("Method", f"{r.matching.method}: {d.get('method_description', '')}".rstrip(": ")))
+    for item in d.get("matched_on", []):
+        text = item["how"]
+        if item.get("cut_points"):
+            text += ": " + ", ".join(f"{c:g}" for c in item["cut_points"])
+        out.append((f"Matched on {item['feature']}", text))
+    if "caliper" in d:
+        cal = d["caliper"]
+        width = f" = {cal['width']:.4g} on the logit scale" if cal.get("width") is not None else ""
+        out.append(("Caliper", f"{cal['sd']} SD of the logit propensity score (pooled over the groups){width}"))
+        out.append(("Controls per enrolled unit", f"{d.get('ratio', 1)}, {'with' if d.get('replacement', True) else 'without'} replacement"))
+    if "common_support" in d:
+        out.append(("Common support", "units outside the overlap of the two groups' scores are dropped" if d["common_support"] else "not enforced"))
+    p = d.get("propensity")
+    if p:
+        text = f"logistic regression of {d.get('treatment', 'enrolment')} on {', '.join(p['features'])}"
+        if p.get("log1p"):
+            text += f" (log(1 + x) of {', '.join(p['log1p'])})"
+        if p.get("ridge"):
+            text += f", ridge {p['ridge']:g}"
+        if p.get("sample_controls", 1.0) < 1.0:
+            text += f", fitted on {100 * p['sample_controls']:g}% of the comparison units"
+        if p.get("coefficients"):
+            text += "; coefficients: " + ", ".join(f"{c['term']} {c['coefficient']:+.3g}" for c in p["coefficients"])
+            text += f" (fitted {p.get('fitted_on', '?')}, {p.get('iterations', '?')} Newton steps)"
+        out.append(("Propensity model", text))
+    return out
+
+
+def _feature_text(f: dict) -> str:
+    if f["aggregate"] == "attribute":
+        return f"{'categorical ' if f.get('categorical') else ''}attribute {f.get('attribute', f['name'])}"
+    return f"{f['aggregate']} of {f['measure']}" if f.get("measure") else f["aggregate"].replace("_", " ")
+
+
+def provenance_text(r: StudyResults) -> str:
+    p = r.provenance or {}
+    if not p:
+        return ""
+    return (
+        f"sqlmatch {p.get('sqlmatch_version')}, engine {p.get('engine')}, finished {p.get('finished_at')} "
+        f"({p.get('sql_seconds')} s of SQL); spec sha256 {str(p.get('spec_sha256'))[:12]}…, plan fingerprint {p.get('plan_fingerprint')}."
+    )
