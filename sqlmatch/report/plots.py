@@ -12,6 +12,7 @@ from sqlmatch.report.svg import CONTROL, GREY, LIGHT, TREATED, Scale, Svg, nice_
 
 WIDTH = 720
 SMD_REFERENCE = 0.1  # |SMD| below 0.1 read as balanced: common practice (Austin 2009)
+WITHHELD_STRIP = 10  # px: a withheld bin is a hatched strip on the axis, its height unknown
 TAIL_SHARE = 0.99  # distributions are drawn up to where 99% of both groups lie; the rest is noted
 
 
@@ -139,7 +140,7 @@ def _histogram(s: Svg, bins, weighted: bool, x0: float, y0: float, w: float, h: 
     s.text(x0 + w / 2, y0 - 8, title, anchor="middle", size=12, weight="bold")
     for b, v in zip(control, sc):
         if v is None:
-            s.rect(x(b["low"]), y0, x(b["high"]) - x(b["low"]), h, "url(#withheld)", title="withheld (small count)")
+            s.rect(x(b["low"]), y0 + h - WITHHELD_STRIP, x(b["high"]) - x(b["low"]), WITHHELD_STRIP, "url(#withheld)", title="withheld (small count)")
         elif v > 0:
             s.rect(x(b["low"]), y(v), x(b["high"]) - x(b["low"]), y(0) - y(v), CONTROL, opacity=0.3)
     # the enrolled as a step outline over the fill
@@ -155,7 +156,7 @@ def _histogram(s: Svg, bins, weighted: bool, x0: float, y0: float, w: float, h: 
         s.path("".join(d), stroke=TREATED, width=2)
     for b, v in zip(treated, st):
         if v is None:
-            s.rect(x(b["low"]), y0, x(b["high"]) - x(b["low"]), h, "url(#withheld)", title="withheld (small count)")
+            s.rect(x(b["low"]), y0 + h - WITHHELD_STRIP, x(b["high"]) - x(b["low"]), WITHHELD_STRIP, "url(#withheld)", title="withheld (small count)")
     s.y_axis(y, x0, ticks, y_label, as_percent=True)
     s.x_axis(x, y0 + h, nice_ticks(lo, hi, 5))
 
@@ -172,7 +173,10 @@ def distribution_plot(name: str, bins, clip: bool = True, what: str | None = Non
     last, above = tail_cut(bins) if clip else (None, {})
     s = Svg(WIDTH, 222, f"Distribution of {name} before and after matching")
     s.add(PATTERN)
-    s.legend(64, 14, [("outline:" + TREATED, "enrolled"), ("fill:" + CONTROL, "not enrolled (comparison)")])
+    entries = [("outline:" + TREATED, "enrolled"), ("fill:" + CONTROL, "not enrolled (comparison)")]
+    if any(b["n_units"] is None for b in bins):
+        entries.append(("hatch:url(#withheld)", "withheld (small count)"))
+    s.legend(64, 14, entries)
     _histogram(s, bins, False, 64, 52, 290, 130, f"{what or name}: before matching", last, "share of the group")
     _histogram(s, bins, True, 64 + 290 + 56, 52, 290, 130, f"after matching (weighted)", last, None)
     note = None

@@ -128,6 +128,8 @@ class Svg:
                 self.rect(cx, y - 9, 14, 10, colour, opacity=0.35)
             elif kind == "outline":
                 self.path(f"M{cx:.1f},{y + 1:.1f}V{y - 9:.1f}H{cx + 14:.1f}V{y + 1:.1f}", stroke=colour, width=2)
+            elif kind == "hatch":
+                self.rect(cx, y - 9, 14, 10, colour, stroke="#bbbbbb")
             elif kind == "solid":
                 self.rect(cx, y - 9, 14, 10, colour)
             elif kind == "dot":
