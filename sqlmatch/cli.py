@@ -222,7 +222,7 @@ def _summary(runs, fail_on: frozenset[str], pooled=None, stream=None) -> int:
     """The result and every warning on stderr, where a scheduler's log keeps them: one line per
     outcome and per warning (its kind in brackets). Returns the exit status: 1 when a warning's
     kind is in `fail_on`, else 0."""
-    from sqlmatch.report.words import headline, number
+    from sqlmatch.report.words import figure_line, headline
 
     stream = stream or sys.stderr
     several = len(runs) > 1
@@ -231,7 +231,8 @@ def _summary(runs, fail_on: frozenset[str], pooled=None, stream=None) -> int:
         for e in r.effects:
             print(f"sqlmatch: result: {where}{headline(e)}", file=stream)
     for p in pooled or ():
-        print(f"sqlmatch: result: pooled over {p.cohorts} cohorts: {p.outcome}: {number(p.estimate)}, 95% interval [{number(p.ci_low)}, {number(p.ci_high)}]", file=stream)
+        kind = runs[0].effect(p.outcome).kind
+        print(f"sqlmatch: result: pooled over {p.cohorts} cohorts: {figure_line(p.outcome, kind, p.estimate, p.ci_low, p.ci_high)}", file=stream)
     failing = []
     for r in runs:
         where = f"cohort {r.cohort}: " if several else ""

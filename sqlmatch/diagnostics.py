@@ -29,7 +29,7 @@ def balance_warnings(spec: Spec, balance, matching) -> list[Caution]:
     off = [b for b in shown if b.smd_after is not None and abs(b.smd_after) > SMD_BALANCED]
     if not off:
         return []
-    listed = ", ".join(f"{b.covariate} {b.smd_after:+.2f}" for b in sorted(off, key=lambda b: -abs(b.smd_after)))
+    listed = ", ".join(f"{b.covariate} {b.smd_after:+.3f}" for b in sorted(off, key=lambda b: -abs(b.smd_after)))
     return [
         Caution(
             f"Balance not achieved: after matching, {len(off)} feature(s) keep |SMD| above {SMD_BALANCED} ({listed}; "

@@ -75,5 +75,20 @@ def test_imbalance_after_matching_is_a_balance_warning(demo_dir, tmp_path, capsy
     vt, vc = np.cov(t[:, 0], aweights=t[:, 1]), np.cov(c[:, 0], aweights=c[:, 1])
     smd = (mt - mc) / np.sqrt((vt + vc) / 2)
     assert abs(smd) > 0.1
-    assert f"pre_trips {smd:+.2f}" in line
+    assert f"pre_trips {smd:+.3f}" in line
     main(["cleanup", str(spec)])
+
+
+def test_a_multi_cohort_run_names_each_cohort_and_the_pooled_effect(demo_dir, tmp_path, capsys):
+    spec = _study(demo_dir, tmp_path)
+    assert main(["run", str(spec), "--out", str(tmp_path / "a"), "--quiet", "--cohorts", "2026-02:2026-03"]) == 0
+    err = capsys.readouterr().err
+    body = json.loads((tmp_path / "a" / "results.json").read_text())
+    pooled = next(p for p in body["pooled"] if p["outcome"] == "active_last_month")
+    # a binary outcome's pooled risk difference in percentage points, as each cohort's line gives it
+    assert (
+        f"sqlmatch: result: pooled over 2 cohorts: active_last_month: +{100 * pooled['estimate']:.1f} percentage points, "
+        f"95% interval [{100 * pooled['ci_low']:.1f}, {100 * pooled['ci_high']:.1f}]"
+    ) in err
+    for month in ("2026-02", "2026-03"):
+        assert f"sqlmatch: result: cohort {month}: post_trips: " in err

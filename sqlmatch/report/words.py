@@ -82,18 +82,21 @@ def _share(p: float | None) -> str:
 
 def headline(e: Effect) -> str:
     """One line per outcome for the end of a run: effect, interval, relative lift."""
-    if e.kind == "binary" and e.estimate is not None:
-        scale = 100.0
-        unit = " percentage points"
-    else:
-        scale, unit = 1.0, " per enrolled unit" if e.kind == "continuous" else ""
-    low = None if e.ci_low is None else scale * e.ci_low
-    high = None if e.ci_high is None else scale * e.ci_high
-    estimate = None if e.estimate is None else scale * e.estimate
-    line = f"{e.outcome}: {_signed(estimate)}{unit}, 95% interval [{number(low)}, {number(high)}]"
+    line = figure_line(e.outcome, e.kind, e.estimate, e.ci_low, e.ci_high)
     if e.lift.estimate is not None:
         line += f", {pct(e.lift.estimate)} relative to the matched comparison"
     return line
+
+
+def figure_line(outcome: str, kind: str, estimate, low, high) -> str:
+    """"post_trips: +4.56 per enrolled unit, 95% interval [4.44, 4.68]"; binary outcomes in
+    percentage points."""
+    scale, unit = (100.0, " percentage points") if kind == "binary" else (1.0, " per enrolled unit" if kind == "continuous" else "")
+
+    def scaled(x):
+        return None if x is None else scale * x
+
+    return f"{outcome}: {_signed(scaled(estimate))}{unit}, 95% interval [{number(scaled(low))}, {number(scaled(high))}]"
 
 
 def _signed(x: float | None) -> str:
