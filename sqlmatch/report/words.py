@@ -239,5 +239,5 @@ def provenance_text(r: StudyResults) -> str:
         return ""
     return (
         f"sqlmatch {p.get('sqlmatch_version')}, engine {p.get('engine')}, finished {p.get('finished_at')} "
-        f"({p.get('sql_seconds')} s of SQL); spec sha256 {str(p.get('spec_sha256'))[:12]}…, plan fingerprint {p.get('plan_fingerprint')}."
+        f"({p.get('sql_seconds')} s of SQL); spec sha256 {str(p.get('spec_sha256'))[:12]}…, plan fingerprint {str(p.get('plan_fingerprint')).replace(',', ', ')}."
     )
