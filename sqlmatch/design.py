@@ -84,7 +84,8 @@ def provenance(spec: Spec, dialect: str, timings: dict | None = None) -> dict:
         "plan_fingerprint": spec_fingerprint(spec),
         "engine": dialect,
         "finished_at": dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"),
-        "sql_seconds": round(sum((timings or {}).values()), 3),
+        # None on the scheduler path: the scheduler ran the SQL, sqlmatch only read its tables
+        "sql_seconds": round(sum(timings.values()), 3) if timings else None,
     }
 
 

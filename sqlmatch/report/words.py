@@ -239,5 +239,6 @@ def provenance_text(r: StudyResults) -> str:
         return ""
     return (
         f"sqlmatch {p.get('sqlmatch_version')}, engine {p.get('engine')}, finished {p.get('finished_at')} "
-        f"({p.get('sql_seconds')} s of SQL); spec sha256 {str(p.get('spec_sha256'))[:12]}…, plan fingerprint {str(p.get('plan_fingerprint')).replace(',', ', ')}."
+        + (f"({p['sql_seconds']} s of SQL); " if p.get("sql_seconds") is not None else "(from the tables a scheduled run wrote); ")
+        + f"spec sha256 {str(p.get('spec_sha256'))[:12]}…, plan fingerprint {str(p.get('plan_fingerprint')).replace(',', ', ')}."
     )
