@@ -30,11 +30,14 @@ def balance_warnings(spec: Spec, balance, matching) -> list[Caution]:
     if not off:
         return []
     listed = ", ".join(f"{b.covariate} {b.smd_after:+.3f}" for b in sorted(off, key=lambda b: -abs(b.smd_after)))
+    if method_for(spec.matching.method).uses_score:
+        fix = "add them to propensity.features, or match exactly on the categorical ones (matching.exact)"
+    else:
+        fix = "match on them too (matching.on) or on finer cut points (matching.cut_points)"
     return [
         Caution(
             f"Balance not achieved: after matching, {len(off)} feature(s) keep |SMD| above {SMD_BALANCED} ({listed}; "
-            f"below {SMD_BALANCED} is common practice). The effects may partly be these differences: match on finer "
-            "cut points or more features, or add them to the propensity model, and compare again.",
+            f"below {SMD_BALANCED} is common practice). The effects may partly be these differences: {fix}, and compare again.",
             "balance",
         )
     ]
