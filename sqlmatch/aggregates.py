@@ -1,6 +1,6 @@
 """Turn the aggregate query results into the inputs of estimators and balance diagnostics.
 
-Column names follow the templates: `<feature>__sum`, `<outcome>__sumsq`, ... Everything here
+Column names come from columns.py, which the templates use too. Everything here
 works on a handful of rows per group or stratum.
 """
 
@@ -11,10 +11,12 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from sqlmatch import columns
 from sqlmatch.balance import GroupMoments, compare
 from sqlmatch.engines.base import QueryResult
 from sqlmatch.estimators.att import StratumMoments
 from sqlmatch.estimators.ratio import RatioSums
+from sqlmatch.columns import stat
 from sqlmatch.results import BalanceRow
 
 
@@ -35,16 +37,16 @@ def numeric_balance(result: QueryResult, features: list[str]) -> list[BalanceRow
     t, c = groups.get(1, {}), groups.get(0, {})
     rows = []
     for f in features:
-        values = {_f(t.get(f"{f}__min")), _f(t.get(f"{f}__max")), _f(c.get(f"{f}__min")), _f(c.get(f"{f}__max"))}
+        values = {_f(t.get(stat(f, "min"))), _f(t.get(stat(f, "max"))), _f(c.get(stat(f, "min"))), _f(c.get(stat(f, "max")))}
         binary = values <= {0.0, 1.0}
         before = compare(
-            GroupMoments(_f(t.get(f"{f}__n")), _f(t.get(f"{f}__n")), _f(t.get(f"{f}__sum")), _f(t.get(f"{f}__sumsq"))),
-            GroupMoments(_f(c.get(f"{f}__n")), _f(c.get(f"{f}__n")), _f(c.get(f"{f}__sum")), _f(c.get(f"{f}__sumsq"))),
+            GroupMoments(_f(t.get(stat(f, "n"))), _f(t.get(stat(f, "n"))), _f(t.get(stat(f, "sum"))), _f(t.get(stat(f, "sumsq")))),
+            GroupMoments(_f(c.get(stat(f, "n"))), _f(c.get(stat(f, "n"))), _f(c.get(stat(f, "sum"))), _f(c.get(stat(f, "sumsq")))),
             binary,
         )
         after = compare(
-            GroupMoments(_f(t.get(f"{f}__w")), _f(t.get(f"{f}__w2")), _f(t.get(f"{f}__wsum")), _f(t.get(f"{f}__wsumsq"))),
-            GroupMoments(_f(c.get(f"{f}__w")), _f(c.get(f"{f}__w2")), _f(c.get(f"{f}__wsum")), _f(c.get(f"{f}__wsumsq"))),
+            GroupMoments(_f(t.get(stat(f, "w"))), _f(t.get(stat(f, "w2"))), _f(t.get(stat(f, "wsum"))), _f(t.get(stat(f, "wsumsq")))),
+            GroupMoments(_f(c.get(stat(f, "w"))), _f(c.get(stat(f, "w2"))), _f(c.get(stat(f, "wsum"))), _f(c.get(stat(f, "wsumsq")))),
             binary,
         )
         rows.append(_row(f, "binary" if binary else "numeric", before, after))
@@ -109,8 +111,8 @@ def outcome_moments(result: QueryResult, outcome: str, suffix: str = "") -> tupl
     picks another pair of columns of the same query: "did" reads `<outcome>__did_sum` and
     `<outcome>__did_sumsq`, the sums of (outcome - its pre-window twin)."""
     treated, control = _aligned(result)
-    sum_key = f"{outcome}__{suffix + '_' if suffix else ''}sum"
-    sq_key = f"{outcome}__{suffix + '_' if suffix else ''}sumsq"
+    sum_key = stat(outcome, f"{suffix}_sum" if suffix else "sum")
+    sq_key = stat(outcome, f"{suffix}_sumsq" if suffix else "sumsq")
 
     def moments(rows):
         return StratumMoments.of(
@@ -129,11 +131,11 @@ def ratio_sums(result: QueryResult, outcome: str) -> tuple[RatioSums, RatioSums]
         get = lambda key: np.array([_f(r.get(key, 0.0)) for r in rows])  # noqa: E731
         return RatioSums(
             n=np.array([_f(r.get("n_units", 0)) for r in rows]),
-            sum_y=get(f"{outcome}__sum_y"),
-            sum_x=get(f"{outcome}__sum_x"),
-            sum_yy=get(f"{outcome}__sumsq_y"),
-            sum_xx=get(f"{outcome}__sumsq_x"),
-            sum_xy=get(f"{outcome}__sum_xy"),
+            sum_y=get(stat(outcome, "sum_y")),
+            sum_x=get(stat(outcome, "sum_x")),
+            sum_yy=get(stat(outcome, "sumsq_y")),
+            sum_xx=get(stat(outcome, "sumsq_x")),
+            sum_xy=get(stat(outcome, "sum_xy")),
         )
 
     return sums(treated), sums(control)
@@ -160,28 +162,28 @@ def regression_sums(result: QueryResult, outcome: str, kind: str, features: list
     """Unpack one outcome from the one-row regression query. Ratio outcomes carry their own
     weight set (matching weight x denominator): its columns are prefixed with the outcome name."""
     row = result.one()
+    design = columns.regression_design(features)
     names = ("intercept", "treated", *features)
-    p = len(names)
-    prefix = f"{outcome}__" if kind == "ratio" else ""
+    p = len(design)
+    own = outcome if kind == "ratio" else None  # ratio outcomes carry their own weight set
     xtx = np.empty((p, p))
-    for i in range(p):
-        for j in range(i, p):
-            xtx[i, j] = xtx[j, i] = _f(row[f"{prefix}xtx_{i}_{j}"])
-    xty = np.array([_f(row[f"{outcome}__xty_{i}"]) for i in range(p)])
-    yty = _f(row[f"{outcome}__yty"])
-    n = int(row[f"{prefix}n_units"] or 0)
+    for i, j in columns.upper_pairs(p):
+        xtx[i, j] = xtx[j, i] = _f(row[columns.xtx(i, j, own)])
+    xty = np.array([_f(row[columns.xty(outcome, i)]) for i in range(p)])
+    yty = _f(row[stat(outcome, "yty")])
+    n = int(row[columns.weight_total("n_units", own)] or 0)
     sum_w, sum_w_t = xtx[0, 0], xtx[0, 1]  # treated is 0/1, so sum w t is the treated weight
-    sum_w2, sum_w2_t = _f(row[f"{prefix}sum_w2"]), _f(row[f"{prefix}sum_w2_t"])
+    sum_w2, sum_w2_t = _f(row[columns.weight_total("sum_w2", own)]), _f(row[columns.weight_total("sum_w2_t", own)])
     sum_y, sum_ty = xty[0], xty[1]
-    sum_yy, sum_tyy = yty, _f(row[f"{outcome}__tyy"])
+    sum_yy, sum_tyy = yty, _f(row[stat(outcome, "tyy")])
     return RegressionSums(
         names=names,
         xtx=xtx,
         xty=xty,
         yty=yty,
         n=n,
-        x_centres={f: _f(row[f"{f}__centre"]) for f in features},
-        y_centre=_f(row[f"{outcome}__centre"]),
+        x_centres={f: _f(row[stat(f, "centre")]) for f in features},
+        y_centre=_f(row[stat(outcome, "centre")]),
         treated=GroupMoments(sum_w_t, sum_w2_t, sum_ty, sum_tyy),
         control=GroupMoments(sum_w - sum_w_t, sum_w2 - sum_w2_t, sum_y - sum_ty, sum_yy - sum_tyy),
     )

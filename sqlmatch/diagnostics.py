@@ -6,6 +6,7 @@ from __future__ import annotations
 
 import datetime as dt
 
+from sqlmatch.columns import stat
 from sqlmatch.matching import method_for
 from sqlmatch.privacy import count_text, suppress_levels
 from sqlmatch.results import Caution
@@ -138,7 +139,7 @@ def _missing_warnings(spec: Spec, r) -> list[str]:
 
     out = []
     for f in spec.attribute_features:
-        t, c = (int(groups.get(g, {}).get(f"{f.name}__null") or 0) for g in (1, 0))
+        t, c = (int(groups.get(g, {}).get(stat(f.name, "null")) or 0) for g in (1, 0))
         if not t + c:
             continue
         who = f"{count(t + c)} units ({count(t)} treated, {count(c)} control) have no value for {f.name!r}"

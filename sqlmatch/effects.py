@@ -8,6 +8,7 @@ import math
 
 import numpy as np
 
+from sqlmatch.columns import stat
 from sqlmatch import aggregates
 from sqlmatch.design import provenance, study_design
 from sqlmatch.diagnostics import run_warnings
@@ -116,12 +117,12 @@ def outcome_effect(outcome, matched, unmatched, regression=None, features=(), me
             mean_treated=m.mean_treated,
             mean_control=m.mean_control,
         )
-        if pair_ranks is not None and f"{outcome.name}__sum_d" in pair_ranks.columns:
+        if pair_ranks is not None and stat(outcome.name, "sum_d") in pair_ranks.columns:
             # 1:1 pairs: the paired-difference t interval (the pairs are not independent samples)
             from sqlmatch.estimators.pairs import paired_difference
 
             row = pair_ranks.one()
-            pd_ = paired_difference(int(row["n_pairs"]), float(row[f"{outcome.name}__sum_d"]), float(row[f"{outcome.name}__sum_d2"]))
+            pd_ = paired_difference(int(row["n_pairs"]), float(row[stat(outcome.name, "sum_d")]), float(row[stat(outcome.name, "sum_d2")]))
             fields.update(
                 estimator="mean within-pair difference, paired t interval" + (" (risk difference)" if outcome.kind == "binary" else ""),
                 estimate=pd_.estimate,
@@ -233,13 +234,13 @@ def outcome_sensitivity(outcome, fields: dict, rr, regression, features: list[st
     # Rosenbaum bounds need 1:1 matched pairs and their signed-rank aggregates (a `pair_signed_rank`
     # query with <outcome>__t_plus, __n_nonzero, __tie_term); stratum-based methods have none.
     scan = None
-    if pair_ranks is not None and f"{outcome.name}__t_plus" in pair_ranks.columns:
+    if pair_ranks is not None and stat(outcome.name, "t_plus") in pair_ranks.columns:
         row = pair_ranks.one()
-        n_nonzero = int(row[f"{outcome.name}__n_nonzero"] or 0)
+        n_nonzero = int(row[stat(outcome.name, "n_nonzero")] or 0)
         if n_nonzero > 0:
             alternative = "greater" if fields["estimate"] >= 0 else "less"
             scan = rosenbaum_from_signed_rank(
-                float(row[f"{outcome.name}__t_plus"]), n_nonzero, float(row[f"{outcome.name}__tie_term"] or 0.0), alternative=alternative
+                float(row[stat(outcome.name, "t_plus")]), n_nonzero, float(row[stat(outcome.name, "tie_term")] or 0.0), alternative=alternative
             )
     if scan is not None:
         out["rosenbaum"] = {

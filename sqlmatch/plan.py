@@ -15,6 +15,7 @@ from dataclasses import dataclass, field
 from sqlglot import exp
 
 from sqlmatch import dialects, render
+from sqlmatch.columns import regression_design, upper_pairs
 from sqlmatch.matching import method_for
 from sqlmatch.spec import MISSING_INDICATOR, Spec, last_period_start
 
@@ -63,6 +64,10 @@ class Step:
     statements: tuple[str, ...]
 
 
+BITMASK_LANE_DAYS = 63  # days per BIGINT lane: the sign bit is never set
+BITMASK_MAX_LANES = 8  # windows up to 504 days; longer ones count distinct days
+
+
 @dataclass(frozen=True)
 class MeasureColumn:
     """One per-unit aggregate of events in a window (rendered by _macros.event_aggregate)."""
@@ -73,6 +78,20 @@ class MeasureColumn:
     end: dt.date
     fill: float
     measure: str | None = None
+
+    @property
+    def days(self) -> int:
+        return (self.end - self.start).days
+
+    @property
+    def day_lanes(self) -> tuple[tuple[int, int], ...]:
+        """[low, high) day offsets of the 63-day BIGINT lanes the DuckDB active-days bitmask ORs
+        into (sql_templates/duckdb/_active_days.sql.j2); none for a window longer than
+        BITMASK_MAX_LANES lanes, which is counted with COUNT(DISTINCT day) instead."""
+        lanes = (self.days + BITMASK_LANE_DAYS - 1) // BITMASK_LANE_DAYS
+        if lanes > BITMASK_MAX_LANES:
+            return ()
+        return tuple((BITMASK_LANE_DAYS * k, BITMASK_LANE_DAYS * (k + 1)) for k in range(lanes))
 
 
 @dataclass(frozen=True)
@@ -90,6 +109,9 @@ class PlanContext:
 
     spec: Spec
     dialect: str
+    # list what the steps write without rendering SQL (writable_tables): a score-based plan then
+    # needs no fitted model, since no table name depends on its coefficients
+    names_only: bool = False
     tables: dict[str, str] = field(default_factory=dict)  # logical name -> quoted SQL name
     table_names: dict[str, str] = field(default_factory=dict)  # logical name -> schema.table (display)
 
@@ -116,6 +138,8 @@ class PlanContext:
     # -- building steps from templates
 
     def table_step(self, name: str, template: str, writes: str, reads: list[str], purpose: str, **context) -> Step:
+        if self.names_only:
+            return Step(name=name, kind="table", purpose=purpose, reads=tuple(reads), writes=(self.display(writes),), statements=())
         sql, written_in = render.render(template, self.dialect, **context)
         (query,) = dialects.parse(sql, written_in)
         statements = dialects.create_table_as(self.table_node(writes), query, self.dialect)
@@ -130,30 +154,31 @@ class PlanContext:
 
     def score_step(self, model, exact: list[str]) -> Step:
         """Propensity scores (logit scale) of every unit, from a fitted model."""
+        fitted = {} if self.names_only else dict(
+            columns=model.columns, beta=model.coefficients, fitted_on=model.fitted_on, iterations=model.iterations, fingerprint=model.fingerprint
+        )
         return self.table_step(
             "propensity_scores",
             "propensity_scores",
             writes="scores",
             reads=[self.display("measures")],
             purpose="Propensity score (logit scale) of every unit in the study.",
-            columns=model.columns,
-            beta=model.coefficients,
             exact=exact,
-            fitted_on=model.fitted_on,
-            iterations=model.iterations,
-            fingerprint=model.fingerprint,
             measures_table=self.table("measures"),
+            **fitted,
         )
 
     def materialized(self, step: Step) -> Step:
         """An aggregate query turned into a table step writing <study>_agg_<step name>. Every row
         carries the spec's fingerprint, so `sqlmatch report` can refuse tables a different spec
         (or sqlmatch version) compiled."""
+        logical = f"agg_{step.name}"
+        if self.names_only:
+            return Step(name=step.name, kind="table", purpose=step.purpose, reads=step.reads, writes=(self.display(logical),), statements=())
         (sql,) = step.statements
         (query,) = dialects.parse(sql, self.dialect)
         mark = exp.alias_(exp.Literal.string(spec_fingerprint(self.spec)), FINGERPRINT_COLUMN)
         query = query.select(mark) if isinstance(query, exp.Select) else exp.select("*", mark).from_(query.subquery("q"))
-        logical = f"agg_{step.name}"
         statements = dialects.create_table_as(self.table_node(logical), query, self.dialect)
         return Step(
             name=step.name,
@@ -165,6 +190,8 @@ class PlanContext:
         )
 
     def query_step(self, name: str, template: str, reads: list[str], purpose: str, kind: str = "query", **context) -> Step:
+        if self.names_only:
+            return Step(name=name, kind=kind, purpose=purpose, reads=tuple(reads), writes=(), statements=())
         sql, written_in = render.render(template, self.dialect, **context)
         statements = dialects.parse(sql, written_in)
         return Step(
@@ -272,7 +299,7 @@ def measure_columns(spec: Spec) -> tuple[list[MeasureColumn], list[OutcomeColumn
 
 def source_steps(ctx: PlanContext, outcomes, columns) -> list[Step]:
     """The study's units, the checks on them, and one pass over the events for every feature and outcome."""
-    spec, dialect = ctx.spec, ctx.dialect
+    spec = ctx.spec
     w = spec.windows
     control_from = w.post_end if spec.control_pool == "never_by_post_end" else w.cohort_end
     pool_text = (
@@ -331,7 +358,6 @@ def source_steps(ctx: PlanContext, outcomes, columns) -> list[Step]:
             columns=columns,
             attributes=spec.attribute_features,
             units_table=ctx.table("units"),
-            target=dialect,
             check_unknown=spec.check_unknown_units,
             units_source=spec.units,
             units_key=spec.unit_key,
@@ -466,6 +492,7 @@ def outcome_steps(ctx: PlanContext, outcomes, per_match: bool) -> list[Step]:
                 weighted_table=ctx.table("weighted_units"),
             )
         )
+    design = regression_design(numeric)
     steps.append(
         ctx.query_step(
             "outcome_regression",
@@ -473,6 +500,8 @@ def outcome_steps(ctx: PlanContext, outcomes, per_match: bool) -> list[Step]:
             reads=weighted,
             purpose="Weighted regression of each outcome on treatment and the numeric features among matched units, as sums (X'WX, X'Wy, y'Wy) for the sensitivity analysis.",
             features=numeric,
+            design=design,
+            design_pairs=upper_pairs(len(design)),
             outcomes=outcomes,
             weighted_table=ctx.table("weighted_units"),
         )
@@ -480,24 +509,25 @@ def outcome_steps(ctx: PlanContext, outcomes, per_match: bool) -> list[Step]:
     return steps
 
 
-def build_plan(spec: Spec, dialect: str = "duckdb", model=None, materialize: bool = False) -> Plan:
+def build_plan(spec: Spec, dialect: str = "duckdb", model=None, materialize: bool = False, names_only: bool = False) -> Plan:
     """The study's steps, stage by stage: sources, propensity model (score-based methods),
     matching, balance, outcomes. For a score-based method without a fitted `model` the plan is
     partial: it ends with the propensity model's data, and the runner fits the model and then
     builds the full plan.
 
     With `materialize`, every aggregate query instead writes a small table `<study>_agg_<step>`,
-    so a scheduler can run the whole plan and `sqlmatch report` read the results afterwards."""
+    so a scheduler can run the whole plan and `sqlmatch report` read the results afterwards.
+    With `names_only`, the steps carry no SQL: the full plan's table names, no model needed."""
     from sqlmatch import propensity
 
     dialect = dialects.check_dialect(dialect)
-    ctx = PlanContext(spec=spec, dialect=dialect)
+    ctx = PlanContext(spec=spec, dialect=dialect, names_only=names_only)
     columns, outcomes = measure_columns(spec)
     method = method_for(spec.matching.method)
     steps = source_steps(ctx, outcomes, columns)
     if method.uses_score:
         steps += propensity.plan_steps(ctx, model)
-        if model is None:
+        if model is None and not names_only:
             work_tables = tuple(t for s in steps for t in s.writes)
             check_work_tables(spec, work_tables)
             return Plan(study=spec.name, dialect=dialect, steps=tuple(steps), work_tables=work_tables, outcomes=tuple(outcomes), complete=False)
@@ -545,11 +575,6 @@ def check_work_tables(spec: Spec, work_tables) -> None:
 def writable_tables(spec: Spec, dialect: str = "duckdb") -> tuple[str, ...]:
     """Every work table this study's plan can write, run directly or by a scheduler: what
     cleanup may drop. Table names do not depend on the propensity coefficients, so a score-based
-    plan is listed with placeholder ones."""
-    from sqlmatch.propensity import DesignColumn, FittedModel
-
-    model = None
-    if method_for(spec.matching.method).uses_score:
-        model = FittedModel([DesignColumn("intercept", "intercept")], [0.0], 0, 0.0, 0, "-", {})
-    names = [t for materialize in (False, True) for t in build_plan(spec, dialect, model=model, materialize=materialize).work_tables]
+    plan's steps are listed without rendering their SQL (no fitted model is needed)."""
+    names = [t for materialize in (False, True) for t in build_plan(spec, dialect, materialize=materialize, names_only=True).work_tables]
     return tuple(dict.fromkeys(names))

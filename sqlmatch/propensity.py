@@ -21,6 +21,7 @@ from pathlib import Path
 
 import numpy as np
 
+from sqlmatch import columns
 from sqlmatch.errors import DataError, SqlmatchError
 
 MODEL_VERSION = 1
@@ -149,11 +150,10 @@ def load_model(spec) -> FittedModel | None:
 
 def unpack(row: dict, p: int) -> tuple[float, np.ndarray, np.ndarray, float, float, float]:
     """n, gradient, information matrix, log-likelihood, min and max fitted p from one result row."""
-    g = np.array([float(row[f"g_{i}"]) for i in range(p)])
+    g = np.array([float(row[columns.gradient(i)]) for i in range(p)])
     h = np.empty((p, p))
-    for i in range(p):
-        for j in range(i, p):
-            h[i, j] = h[j, i] = float(row[f"h_{i}_{j}"])
+    for i, j in columns.upper_pairs(p):
+        h[i, j] = h[j, i] = float(row[columns.information(i, j)])
     return float(row["n_units"]), g, h, float(row["log_likelihood"]), float(row["p_min"]), float(row["p_max"])
 
 
@@ -240,7 +240,7 @@ def check_model(row: dict, model: FittedModel) -> ModelCheck | None:
     None when the row was computed at other coefficients than `model`'s (the model file was
     rewritten after the SQL that ran was compiled): the row's b_i say which ones it used."""
     p = len(model.columns)
-    used = [row.get(f"b_{i}") for i in range(p + 1)]
+    used = [row.get(columns.coefficient(i)) for i in range(p + 1)]
     if used[p] is not None or any(b is None for b in used[:p]):
         return None
     if not np.allclose([float(b) for b in used[:p]], model.coefficients, rtol=1e-9, atol=1e-12):
@@ -358,6 +358,8 @@ def plan_steps(ctx, model) -> list:
     Newton step sums over), then, without a fitted model, the categorical levels the runner needs
     to fit one; with one, the Newton-step aggregates at its coefficients (the stored-model check)."""
     steps = [cells_step(ctx)]
+    if ctx.names_only:  # the steps' names and tables only (plan.writable_tables)
+        return steps + [newton_step(ctx, (), (), name="propensity_check")]
     if model is None:
         levels = levels_step(ctx)
         return steps + ([levels] if levels else [])

@@ -17,6 +17,7 @@ from sqlglot import exp
 from sqlglot.dialects import Dialect
 from sqlglot.tokens import Tokenizer
 
+from sqlmatch import columns
 from sqlmatch.spec import TableRef
 
 SOURCE_DIALECT = "duckdb"
@@ -103,10 +104,14 @@ def expression_sql(tree: exp.Expression, alias: str | None = None) -> str:
     return tree.sql(SOURCE_DIALECT)
 
 
-@functools.lru_cache(maxsize=4)
-def environment(root: str | None = None) -> jinja2.Environment:
+@functools.lru_cache(maxsize=16)
+def environment(root: str | None = None, dialect: str | None = None) -> jinja2.Environment:
+    """Templates of one dialect: a file in `<root>/<dialect>/` overrides the one of the same name
+    in `<root>/`, for steps and for imported macro files alike (e.g. duckdb/_active_days.sql.j2)."""
+    base = root or str(template_dir())
+    search = [str(Path(base) / dialect)] if dialect and (Path(base) / dialect).is_dir() else []
     env = jinja2.Environment(
-        loader=jinja2.FileSystemLoader(root or str(template_dir())),
+        loader=jinja2.FileSystemLoader(search + [base]),
         undefined=jinja2.StrictUndefined,
         autoescape=False,
         keep_trailing_newline=False,
@@ -121,16 +126,17 @@ def environment(root: str | None = None) -> jinja2.Environment:
         date=date_literal,
         note=comment_name,
     )
+    env.globals["col"] = columns  # aggregate column names (columns.py)
     return env
 
 
 def template_for(step: str, dialect: str) -> tuple[jinja2.Template, str]:
-    """The dialect's own template when one exists, else the default; and the dialect it is written in."""
-    env = environment()
-    override = f"{dialect}/{step}.sql.j2"
-    if (template_dir() / override).is_file():
-        return env.get_template(override), dialect
-    return env.get_template(f"{step}.sql.j2"), SOURCE_DIALECT
+    """The dialect's own template when one exists, else the default; and the dialect it is written
+    in. (Macro files a template imports are looked up the same way; they are written in the source
+    dialect unless the step itself is overridden.)"""
+    env = environment(dialect=dialect)
+    own = (template_dir() / dialect / f"{step}.sql.j2").is_file()
+    return env.get_template(f"{step}.sql.j2"), dialect if own else SOURCE_DIALECT
 
 
 def render(step: str, dialect: str, **context) -> tuple[str, str]:

@@ -15,6 +15,7 @@ from dataclasses import dataclass, field
 
 from sqlglot import exp
 
+from sqlmatch.columns import stat
 from sqlmatch.dialects import BUILDING_SUFFIX
 from sqlmatch.engines.base import Engine, QueryResult
 from sqlmatch.errors import DataError, SpecError
@@ -156,7 +157,7 @@ def _check_missing(spec: Spec, result: QueryResult) -> None:
     rows = result.records()
     by_group = {int(r["treated"]): r for r in rows}
     for f in spec.attribute_features:
-        nulls = {g: int(r.get(f"{f.name}__null") or 0) for g, r in by_group.items()}
+        nulls = {g: int(r.get(stat(f.name, "null")) or 0) for g, r in by_group.items()}
         if f.missing == "error" and sum(nulls.values()):
             raise DataError(
                 f"{f.key}.missing",
@@ -172,7 +173,7 @@ def _check_missing(spec: Spec, result: QueryResult) -> None:
             raise DataError(
                 key,
                 f"every {what} unit has a NULL in {', '.join(dropped)} (missing = \"drop\"), so none is left in the study.",
-                f'fill those values instead (missing = "fill" with fill = <number>), or fix the source column.',
+                'fill those values instead (missing = "fill" with fill = <number>), or fix the source column.',
             )
 
 

@@ -22,6 +22,12 @@ from sqlglot import exp
 
 from sqlmatch import matching as _matching_methods
 from sqlmatch.errors import SpecError
+from sqlmatch.matching.base import OptionInput
+from sqlmatch.spec_values import check_keys as _check_keys
+from sqlmatch.spec_values import feature_list, read_bool
+from sqlmatch.spec_values import read_choice as _choice
+from sqlmatch.spec_values import read_int as _int
+from sqlmatch.spec_values import read_str as _str
 
 # Names we create columns and tables from: plain identifiers, so generated SQL stays readable.
 _NAME_RE = re.compile(r"^[a-z](?!.*__)[a-z0-9_]{0,47}$")
@@ -34,7 +40,6 @@ MISSING_INDICATOR = "missing_indicator"
 MISSING_POLICIES = {"numeric": ("error", "fill", "drop"), "categorical": ("level", "drop")}
 OUTCOME_AGGREGATES = ("count", "sum", "active_days", "ratio", "active_at_end")
 CONTROL_POOLS = ("never_by_post_end", "not_yet_enrolled")
-COARSEN_RULES = ("quantiles", "sturges")
 WINDOW_UNITS = ("month", "day")
 METHODS = tuple(_matching_methods.METHODS)
 # Names of earlier versions, refused with the name to use now.
@@ -114,6 +119,11 @@ class Feature:
         """Name of the missing-value indicator feature this feature adds (missing = "fill")."""
         return f"{self.name}_missing" if self.missing == "fill" else None
 
+    @property
+    def is_missing_indicator(self) -> bool:
+        """This feature is the 0/1 indicator another feature's missing = "fill" added."""
+        return self.aggregate == MISSING_INDICATOR
+
 
 @dataclass(frozen=True)
 class Outcome:
@@ -136,20 +146,26 @@ class Outcome:
 
 @dataclass(frozen=True)
 class Matching:
+    """[matching]. The first five fields are read here; the rest are the options of one method
+    each, read and checked by that method's module (matching/<method>.py, read_options)."""
+
     method: str
     on: tuple[str, ...]
+    exact: tuple[str, ...] = ()  # categorical features matched exactly on top of the score
+    common_support: bool = True  # drop units outside the overlap of treated and control scores
+    min_treated: int = 10  # refuse a run that matches fewer treated units than this (see _matching)
+    # coarsened_exact
     cut_points: dict[str, tuple[float, ...]] = field(default_factory=dict)
     coarsen: str | None = None  # automatic cut points for numeric features without explicit ones
     coarsen_bins: int = 5  # number of equal-count bins for coarsen = "quantiles"
-    bins: int = 5  # score_bins: subclasses at treated-score quantiles
-    exact: tuple[str, ...] = ()  # categorical features matched exactly on top of the score
-    common_support: bool = True  # drop units outside the overlap of treated and control scores
-    distance: str = "logit"  # nearest: logit | mahalanobis | robust_mahalanobis
-    caliper: float = 0.2  # nearest: in SDs of the logit score (pooled over the two groups)
-    ratio: int = 1  # nearest: controls per treated unit (k:1)
-    replacement: bool = True  # nearest: a control may serve several treated units
-    max_candidate_pairs: int = 50_000_000  # nearest: refuse a candidate join larger than this
-    min_treated: int = 10  # refuse a run that matches fewer treated units than this (see _matching)
+    # score_bins
+    bins: int = 5  # subclasses at treated-score quantiles
+    # nearest_neighbour
+    distance: str = "logit"  # logit | mahalanobis | robust_mahalanobis
+    caliper: float = 0.2  # in SDs of the logit score (pooled over the two groups)
+    ratio: int = 1  # controls per treated unit (k:1)
+    replacement: bool = True  # a control may serve several treated units
+    max_candidate_pairs: int = 50_000_000  # refuse a candidate join larger than this
 
 
 @dataclass(frozen=True)
@@ -272,44 +288,6 @@ def _table(raw: dict, key: str) -> dict:
         raise SpecError(key, "is missing.", f"add a [{key}] table to the spec.")
     if not isinstance(value, dict):
         raise SpecError(key, f"must be a table, got {type(value).__name__}.", f"write it as [{key}].")
-    return value
-
-
-def _check_keys(section: dict, key: str, allowed: set[str]) -> None:
-    for k in section:
-        if k not in allowed:
-            hint = ", ".join(sorted(allowed))
-            raise SpecError(f"{key}.{k}" if key else k, "is not a known key.", f"use one of: {hint}.")
-
-
-def _str(section: dict, key: str, name: str, *, required: bool = True, default: str | None = None) -> str | None:
-    value = section.get(name, default)
-    full = f"{key}.{name}" if key else name
-    if value is None:
-        if required:
-            raise SpecError(full, "is missing.", f"set {name} = \"...\" under [{key}].")
-        return None
-    if not isinstance(value, str) or not value.strip():
-        raise SpecError(full, f"must be a non-empty string, got {value!r}.")
-    return value
-
-
-def _int(section: dict, key: str, name: str, *, default: int | None = None, low: int = 1, high: int = 10_000) -> int:
-    value = section.get(name, default)
-    full = f"{key}.{name}"
-    if value is None:
-        raise SpecError(full, "is missing.", f"set {name} = <whole number> under [{key}].")
-    if isinstance(value, bool) or not isinstance(value, int):
-        raise SpecError(full, f"must be a whole number, got {value!r}.")
-    if not low <= value <= high:
-        raise SpecError(full, f"must be between {low} and {high}, got {value}.")
-    return value
-
-
-def _choice(section: dict, key: str, name: str, choices: tuple[str, ...], default: str | None = None) -> str:
-    value = _str(section, key, name, required=default is None, default=default)
-    if value not in choices:
-        raise SpecError(f"{key}.{name}", f"must be one of {', '.join(choices)}; got {value!r}.")
     return value
 
 
@@ -699,7 +677,8 @@ def _outcomes(value: Any, windows: Windows, features: tuple[Feature, ...] = ()) 
 def _matching(value: Any, features: tuple[Feature, ...]) -> Matching:
     if not isinstance(value, dict):
         raise SpecError("matching", "must be a table.", "write it as [matching].")
-    _check_keys(value, "matching", {"method", "on", "cut_points", "coarsen", "coarsen_bins", "bins", "exact", "common_support", "distance", "caliper", "ratio", "replacement", "max_candidate_pairs", "min_treated"})
+    method_keys = {k for m in _matching_methods.METHODS.values() for k in m.option_keys}
+    _check_keys(value, "matching", {"method", "on", "exact", "common_support", "min_treated"} | method_keys)
     old = value.get("method")
     if isinstance(old, str) and old in RENAMED_METHODS:
         raise SpecError("matching.method", f"{old!r} is now called {RENAMED_METHODS[old]!r}.", f"write method = \"{RENAMED_METHODS[old]}\".")
@@ -712,38 +691,6 @@ def _matching(value: Any, features: tuple[Feature, ...]) -> Matching:
         if n not in names:
             raise SpecError("matching.on", f"{n!r} is not a feature.", f"use names from [[features]]: {', '.join(names)}.")
     on = _with_indicators(on, features)
-    cuts_raw = value.get("cut_points", {})
-    if not isinstance(cuts_raw, dict):
-        raise SpecError("matching.cut_points", "must be a table of feature name = [cut points].")
-    cut_points: dict[str, tuple[float, ...]] = {}
-    for n, pts in cuts_raw.items():
-        key = f"matching.cut_points.{n}"
-        if n not in names:
-            raise SpecError(key, f"{n!r} is not a feature.", f"use names from [[features]]: {', '.join(names)}.")
-        if not isinstance(pts, list) or not pts or not all(isinstance(p, (int, float)) and not isinstance(p, bool) for p in pts):
-            raise SpecError(key, "must be a non-empty list of numbers.")
-        if any(b <= a for a, b in zip(pts, pts[1:])):
-            raise SpecError(key, f"cut points {pts} are not strictly increasing.", "sort them and remove repeats.")
-        cut_points[n] = tuple(float(p) for p in pts)
-    for f in features:
-        if f.aggregate == MISSING_INDICATOR and f.name in on:
-            cut_points.setdefault(f.name, (0.5,))  # 0 = observed, 1 = filled: matched exactly
-    coarsen = value.get("coarsen")
-    if coarsen is not None and coarsen not in COARSEN_RULES:
-        raise SpecError("matching.coarsen", f"must be one of {', '.join(COARSEN_RULES)}; got {coarsen!r}.")
-    coarsen_bins = _int(value, "matching", "coarsen_bins", default=5, low=2, high=100)
-    if method == "coarsened_exact" and coarsen is None:
-        feats = {f.name: f for f in features}
-        for n in on:
-            if not feats[n].categorical and n not in cut_points:
-                raise SpecError(
-                    f"matching.cut_points.{n}",
-                    f"numeric feature {n!r} has no cut points for coarsened exact matching.",
-                    f"add {n} = [..] under [matching.cut_points], set matching.coarsen = \"quantiles\" or \"sturges\", or leave it out of matching.on.",
-                )
-    bins = _int(value, "matching", "bins", default=5, low=2, high=50)
-    if "bins" in value and not 5 <= bins <= 50:
-        raise SpecError("matching.bins", f"must be between 5 and 50, got {bins}.", "5 subclasses remove most of the bias (Cochran 1968); use more for large samples.")
     feats = {f.name: f for f in features}
     exact = value.get("exact", [])
     if not isinstance(exact, list) or not all(isinstance(x, str) for x in exact):
@@ -752,25 +699,7 @@ def _matching(value: Any, features: tuple[Feature, ...]) -> Matching:
         if n not in feats or not feats[n].categorical:
             cats = ", ".join(f.name for f in features if f.categorical) or "(none)"
             raise SpecError("matching.exact", f"{n!r} is not a categorical feature.", f"use categorical features: {cats}.")
-    support = value.get("common_support", True)
-    if not isinstance(support, bool):
-        raise SpecError("matching.common_support", f"must be true or false, got {support!r}.")
-    # nearest neighbours within blocks (sqlmatch/matching/nearest_neighbour.py)
-    distance = _choice(value, "matching", "distance", ("logit", "mahalanobis", "robust_mahalanobis"), default="logit")
-    caliper = value.get("caliper", 0.2)
-    if isinstance(caliper, bool) or not isinstance(caliper, (int, float)) or not 0.0001 <= caliper <= 10:
-        raise SpecError(
-            "matching.caliper",
-            f"must be a number of standard deviations of the logit score between 0.0001 and 10, got {caliper!r}.",
-            "0.2 is common practice (Austin 2011).",
-        )
-    ratio = _int(value, "matching", "ratio", default=1, low=1, high=20)
-    replacement = value.get("replacement", True)
-    if not isinstance(replacement, bool):
-        raise SpecError("matching.replacement", f"must be true or false, got {replacement!r}.")
-    if not replacement and ratio != 1:
-        raise SpecError("matching.ratio", f"must be 1 when matching.replacement = false, got {ratio}.", "set ratio = 1, or replacement = true for k:1 matching.")
-    max_pairs = _int(value, "matching", "max_candidate_pairs", default=50_000_000, low=1, high=10**12)
+    support = read_bool(value, "matching", "common_support", default=True)
     # Fewest matched treated units a run may report an effect for (runner._check_matched). Default 10,
     # common practice: below about ten units per group the per-stratum variances behind the standard
     # error and the normal-approximation interval are too unstable to report (no single source).
@@ -781,10 +710,11 @@ def _matching(value: Any, features: tuple[Feature, ...]) -> Matching:
             f"must be a whole number of treated units >= 1, got {min_treated!r}.",
             "write e.g. min_treated = 10 under [matching] (1 accepts any run that matches a treated unit).",
         )
-    return Matching(
-        method=method, on=tuple(on), cut_points=cut_points, coarsen=coarsen, coarsen_bins=coarsen_bins, bins=bins, exact=tuple(exact), common_support=support,
-        distance=distance, caliper=float(caliper), ratio=ratio, replacement=replacement, max_candidate_pairs=max_pairs, min_treated=min_treated,
-    )
+    # each method reads and checks its own keys (matching/<method>.py read_options)
+    options: dict[str, Any] = {}
+    for m in _matching_methods.METHODS.values():
+        options.update(m.read_options(value, OptionInput(features=features, on=tuple(on), chosen=m.name == method)))
+    return Matching(method=method, on=tuple(on), exact=tuple(exact), common_support=support, min_treated=min_treated, **options)
 
 
 def _with_indicators(names: list[str], features: tuple[Feature, ...]) -> list[str]:
@@ -803,11 +733,7 @@ def _propensity(value: Any, features: tuple[Feature, ...], matching: Matching) -
     names = [f.name for f in features]
     chosen = value.get("features", [n for n in matching.on if n not in matching.exact])
     for key, items in (("propensity.features", chosen), ("propensity.log1p", value.get("log1p", []))):
-        if not isinstance(items, list) or not all(isinstance(x, str) for x in items):
-            raise SpecError(key, "must be a list of feature names.")
-        for n in items:
-            if n not in names:
-                raise SpecError(key, f"{n!r} is not a feature.", f"use names from [[features]]: {', '.join(names)}.")
+        feature_list(items, key, names)
     if not chosen:
         raise SpecError("propensity.features", "is empty.", "list the features the propensity model uses.")
     chosen = _with_indicators(chosen, features)

@@ -2,11 +2,12 @@
 in pandas from the raw events (the reference here is pandas' own groupby / nunique).
 
 On DuckDB active days are counted with a per-day bitmask instead of COUNT(DISTINCT day) (see
-_macros.active_days_bitmask); these checks put events on the days where the 63-day lanes meet
+sql_templates/duckdb/_active_days.sql.j2); these checks put events on the days where the 63-day lanes meet
 and on the window's edges, where an off-by-one would show."""
 
 from __future__ import annotations
 
+import datetime as dt
 import shutil
 import tomllib
 
@@ -15,7 +16,8 @@ import pandas as pd
 import pytest
 
 from sqlmatch import api
-from sqlmatch.plan import build_plan
+from sqlmatch import render
+from sqlmatch.plan import MeasureColumn, build_plan
 from sqlmatch.spec import parse_spec
 
 from conftest import DEMO_SPEC
@@ -79,3 +81,15 @@ def test_other_dialects_keep_the_portable_distinct_count(db):
     for dialect in ("postgres", "spark"):
         sql = " ".join(build_plan(spec, dialect).step("unit_measures").statements[-3].replace("(", "( ").split())
         assert "COUNT( DISTINCT" in sql and "BIT_OR" not in sql.upper(), dialect
+
+
+@pytest.mark.parametrize("days, lanes", [(63, 1), (64, 2), (504, 8), (505, 0)])
+def test_duckdb_bitmask_only_for_windows_it_can_hold(days, lanes):
+    # 8 BIGINT lanes of 63 days hold 504 days; a longer window is counted with COUNT(DISTINCT day)
+    start = dt.date(2025, 1, 1)
+    col = MeasureColumn(name="x", agg="active_days", start=start, end=start + dt.timedelta(days=days), fill=0.0)
+    assert len(col.day_lanes) == lanes
+    sql = {d: render.environment(dialect=d).get_template("_macros.sql.j2").module.event_aggregate(col, "ts") for d in ("duckdb", "postgres")}
+    assert sql["duckdb"].count("BIT_COUNT") == lanes
+    assert ("COUNT(DISTINCT" in sql["duckdb"]) is (lanes == 0)
+    assert "BIT_COUNT" not in sql["postgres"] and "COUNT(DISTINCT" in sql["postgres"]

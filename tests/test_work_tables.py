@@ -107,3 +107,19 @@ def test_the_old_method_name_is_refused_with_the_new_one():
     with pytest.raises(SpecError) as err:
         parse_spec(raw)
     assert err.value.key == "matching.method" and "nearest_neighbour" in str(err.value)
+
+
+@pytest.mark.parametrize("method", ["coarsened_exact", "score_bins", "nearest_neighbour"])
+def test_writable_tables_are_what_the_full_plans_write(method):
+    """writable_tables lists the plans without rendering SQL or fitting a model; the list must be
+    exactly the tables of the rendered full plans (run and scheduler forms), whatever the model."""
+    from sqlmatch.plan import build_plan
+    from sqlmatch.propensity import DesignColumn, FittedModel
+
+    spec = parse_spec(tomllib.loads(DEMO_SPEC.read_text())).with_overrides(method=method)
+    columns = [DesignColumn("intercept", "intercept")] + [DesignColumn(f, "numeric", feature=f) for f in spec.propensity.features if not spec.feature(f).categorical]
+    model = FittedModel(columns, [0.1] * len(columns), 3, -1.0, 100, "test", {}) if method != "coarsened_exact" else None
+    rendered = [t for materialize in (False, True) for t in build_plan(spec, model=model, materialize=materialize).work_tables]
+    assert writable_tables(spec) == tuple(dict.fromkeys(rendered))
+    listed = build_plan(spec, names_only=True)
+    assert listed.complete and all(not s.statements for s in listed.steps)

@@ -11,6 +11,19 @@ def _no_warnings(spec, results) -> list[str]:
     return []
 
 
+def _no_options(table: dict, given: "OptionInput") -> dict:
+    return {}
+
+
+@dataclass(frozen=True)
+class OptionInput:
+    """What a method's option reader may consult besides the [matching] table."""
+
+    features: tuple  # spec.Feature, in spec order
+    on: tuple[str, ...]  # matching.on, missing-value indicators included
+    chosen: bool  # this method is matching.method (checks that only matter for the chosen one)
+
+
 @dataclass(frozen=True)
 class MatchingMethod:
     name: str  # the value of matching.method
@@ -22,6 +35,11 @@ class MatchingMethod:
     uses_score: bool  # needs the fitted propensity model (the plan adds its steps)
     # how to keep more treated units, for the matching.min_treated refusal
     loosen: str
+    # the [matching] keys this method owns, and their reader: read_options(table, OptionInput) ->
+    # {spec.Matching field: value}. Every method's reader runs on every spec, so a spec can carry
+    # the options of several methods and switch with --method; a typo is refused either way.
+    option_keys: tuple[str, ...] = ()
+    read_options: Callable = _no_options
     # refusals run on an aggregate step's result: {step name: check(spec, result)}
     checks: Mapping[str, Callable] = field(default_factory=dict)
     # plain-words warnings from the run's aggregates: warnings(spec, results) -> [str]

@@ -56,7 +56,8 @@ from __future__ import annotations
 import math
 
 from sqlmatch.errors import DataError, SpecError
-from sqlmatch.matching.base import MatchingMethod
+from sqlmatch.matching.base import MatchingMethod, OptionInput
+from sqlmatch.spec_values import read_bool, read_choice, read_int
 
 DESCRIPTION = (
     "nearest neighbours on the propensity score (or a Mahalanobis distance) within exact blocks and a caliper, "
@@ -316,12 +317,35 @@ def warnings(spec, results) -> list[str]:
     ]
 
 
+DISTANCES = ("logit", "mahalanobis", "robust_mahalanobis")
+
+
+def read_options(table: dict, given: OptionInput) -> dict:
+    """matching.distance / caliper / ratio / replacement / max_candidate_pairs."""
+    distance = read_choice(table, "matching", "distance", DISTANCES, default="logit")
+    caliper = table.get("caliper", 0.2)
+    if isinstance(caliper, bool) or not isinstance(caliper, (int, float)) or not 0.0001 <= caliper <= 10:
+        raise SpecError(
+            "matching.caliper",
+            f"must be a number of standard deviations of the logit score between 0.0001 and 10, got {caliper!r}.",
+            "0.2 is common practice (Austin 2011).",
+        )
+    ratio = read_int(table, "matching", "ratio", default=1, low=1, high=20)
+    replacement = read_bool(table, "matching", "replacement", default=True)
+    if not replacement and ratio != 1:
+        raise SpecError("matching.ratio", f"must be 1 when matching.replacement = false, got {ratio}.", "set ratio = 1, or replacement = true for k:1 matching.")
+    max_pairs = read_int(table, "matching", "max_candidate_pairs", default=50_000_000, low=1, high=10**12)
+    return {"distance": distance, "caliper": float(caliper), "ratio": ratio, "replacement": replacement, "max_candidate_pairs": max_pairs}
+
+
 METHOD = MatchingMethod(
     name="nearest_neighbour",
     description=DESCRIPTION,
     steps=steps,
     uses_score=True,
     loosen="a wider matching.caliper or fewer exact features (matching.exact)",
+    option_keys=("distance", "caliper", "ratio", "replacement", "max_candidate_pairs"),
+    read_options=read_options,
     checks={"candidate_pairs": check_candidates},
     warnings=warnings,
     groups_word="matched sets",

@@ -8,7 +8,9 @@ outside the common support are dropped first. Strata and weights: see strata.py.
 
 from __future__ import annotations
 
-from sqlmatch.matching.base import MatchingMethod
+from sqlmatch.errors import SpecError
+from sqlmatch.matching.base import MatchingMethod, OptionInput
+from sqlmatch.spec_values import read_int
 from sqlmatch.matching.strata import Axis, strata_steps
 
 DESCRIPTION = "subclassification on the propensity score (logit scale), boundaries at treated-score quantiles"
@@ -48,10 +50,20 @@ def steps(ctx, model):
     return out
 
 
+def read_options(table: dict, given: OptionInput) -> dict:
+    """matching.bins: the number of score subclasses."""
+    bins = read_int(table, "matching", "bins", default=5, low=2, high=50)
+    if "bins" in table and not 5 <= bins <= 50:
+        raise SpecError("matching.bins", f"must be between 5 and 50, got {bins}.", "5 subclasses remove most of the bias (Cochran 1968); use more for large samples.")
+    return {"bins": bins}
+
+
 METHOD = MatchingMethod(
     name="score_bins",
     description=DESCRIPTION,
     steps=steps,
     uses_score=True,
     loosen="fewer exact features (matching.exact) or fewer matching.bins",
+    option_keys=("bins",),
+    read_options=read_options,
 )

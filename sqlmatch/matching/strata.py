@@ -54,6 +54,8 @@ def strata_steps(ctx, axes: list[Axis], source: str, title: str, cell_text: str)
             columns=ctx.weighted_columns(),
             measures_table=ctx.table("measures"),
             source_table=ctx.table(source),
+            # cells from the measures themselves (cut points known when compiling): no join back
+            inline=source == "measures",
             cells_table=ctx.table("cells"),
         ),
         ctx.query_step(

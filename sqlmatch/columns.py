@@ -1,0 +1,75 @@
+"""Names of the aggregate columns: the one contract between the templates that write them and
+the Python that reads them (aggregates.py, propensity.py). Templates call these through the
+`col` global (render.environment); nothing else spells a column name of an aggregate row.
+
+Every name is ours and is quoted by the `name` filter when it is printed, so a feature called
+`select` still gives a usable column.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+# The statistics in use (the part after `__`): balance_numeric n, sum, sumsq, min, max and, after
+# matching, w (sum of weights), w2 (of squared weights), wsum, wsumsq; outcome_strata sum, sumsq,
+# did_sum, did_sumsq and for ratios sum_y, sum_x, sumsq_y, sumsq_x, sum_xy; group_sizes null;
+# outcome_regression centre, yty, tyy; pair_signed_rank sum_d, sum_d2, t_plus, n_nonzero, tie_term.
+
+
+def stat(name: str, what: str) -> str:
+    """A per-feature or per-outcome statistic: `<name>__<what>` (e.g. pre_trips__sumsq). Feature
+    and outcome names have no double underscore (spec._NAME_RE), so the split is unambiguous."""
+    return f"{name}__{what}"
+
+
+@dataclass(frozen=True)
+class DesignColumn:
+    """One column of outcome_regression's design: x<index>."""
+
+    index: int
+    describes: str
+    feature: str | None = None  # the numeric feature, None for the intercept and treatment
+
+    @property
+    def column(self) -> str:
+        return f"x{self.index}"
+
+
+def regression_design(features: list[str]) -> list[DesignColumn]:
+    """x0 = 1, x1 = treated, then one column per numeric feature (aggregates.regression_sums
+    reads X'WX and X'Wy in this order)."""
+    return [DesignColumn(0, "1"), DesignColumn(1, "treated")] + [DesignColumn(i + 2, f, f) for i, f in enumerate(features)]
+
+
+def upper_pairs(p: int) -> list[tuple[int, int]]:
+    """(i, j) with i <= j < p: the upper triangle of a symmetric p x p matrix of sums."""
+    return [(i, j) for i in range(p) for j in range(i, p)]
+
+
+def xtx(i: int, j: int, outcome: str | None = None) -> str:
+    """Entry (i, j), i <= j, of X'WX in outcome_regression; ratio outcomes have their own."""
+    return f"{outcome}__xtx_{i}_{j}" if outcome else f"xtx_{i}_{j}"
+
+
+def xty(outcome: str, i: int) -> str:
+    return f"{outcome}__xty_{i}"
+
+
+def weight_total(what: str, outcome: str | None = None) -> str:
+    """n_units, sum_w2, sum_w2_t of outcome_regression: overall, or a ratio outcome's own weights."""
+    return f"{outcome}__{what}" if outcome else what
+
+
+def gradient(i: int) -> str:
+    """Entry i of the propensity model's score vector (propensity_newton)."""
+    return f"g_{i}"
+
+
+def information(i: int, j: int) -> str:
+    """Entry (i, j), i <= j, of the propensity model's information matrix."""
+    return f"h_{i}_{j}"
+
+
+def coefficient(i: int) -> str:
+    """The coefficient a propensity_newton row was computed at."""
+    return f"b_{i}"
