@@ -8,7 +8,7 @@ import datetime as dt
 
 from sqlmatch.columns import stat
 from sqlmatch.matching import method_for
-from sqlmatch.privacy import count_text, suppress_levels
+from sqlmatch.privacy import count_text, is_small, suppress_levels
 from sqlmatch.results import Caution
 from sqlmatch.spec import Spec
 
@@ -98,7 +98,9 @@ def data_warnings(spec: Spec, r, balance) -> list[str]:
                 "if the data is still arriving, the outcomes are cut short for everyone. Wait for the data or use a shorter post window.",
                 "coverage",
             ))
-        if first is not None and _as_date(first) > w.pre_start + dt.timedelta(days=7):
+        # a study whose features are all unit attributes reads no pre-window events
+        reads_pre = any(f.aggregate != "attribute" and not f.is_missing_indicator for f in spec.features)
+        if reads_pre and first is not None and _as_date(first) > w.pre_start + dt.timedelta(days=7):
             out.append(Caution(
                 f"The events start on {_as_date(first)}, more than a week after the pre window starts ({w.pre_start}): "
                 "pre-window features may be incomplete.",
@@ -106,6 +108,13 @@ def data_warnings(spec: Spec, r, balance) -> list[str]:
             ))
         if c["n_units"] and c["n_units_without_events"] / c["n_units"] > 0.5:
             out.append(Caution(f"{c['n_units_without_events'] / c['n_units']:.0%} of the units have no event in either window.", "coverage"))
+    if w.post_starts == "cohort":
+        out.append(Caution(
+            f"The post window starts with the cohort month ({w.post_start}; windows.post_starts = \"cohort\"), so the "
+            "outcomes include the days of that month before each unit enrolled, when it could not yet benefit. The effect "
+            "is diluted toward zero by about that share of the window; post_starts = \"after_cohort\" avoids it.",
+            "design",
+        ))
     out += [Caution(t, "method") for t in method_for(spec.matching.method).warnings(spec, r)]
     out += [Caution(t, "missing") for t in _missing_warnings(spec, r)]
     if "data_coverage" in r and "n_events_unknown" in r["data_coverage"].columns:
@@ -119,12 +128,49 @@ def data_warnings(spec: Spec, r, balance) -> list[str]:
                 "and units.key name the same thing, and that the units table is complete.",
                 "coverage",
             ))
+    out += [Caution(t, "kept") for t in _kept_warning(spec, r, balance)]
     for b in balance:
         if b.kind != "level" and b.mean_treated_before is None and b.mean_control_before is None:
             out.append(Caution(f"Feature {b.covariate!r} is NULL for every unit: it carries no information. Fix its definition or drop it.", "features"))
         elif b.kind != "level" and b.smd_before == 0.0 and b.variance_ratio_before is None:
             out.append(Caution(f"Feature {b.covariate!r} has the same value for every unit: it carries no information and can be dropped.", "features"))
     return out
+
+
+# Below this share of the cohort matched, say the effect describes the kept units only. Our own
+# threshold (no published rule): a tenth of the cohort left out can already change who the
+# effect is about, when the units left out are the unusual ones.
+KEPT_SHARE_WARN = 0.9
+
+
+def _kept_warning(spec: Spec, r, balance) -> list[str]:
+    """When matching kept few of the treated, the effect is for those units only: say so, with the
+    kept units' feature means beside the whole cohort's where they differ most."""
+    if "matching_summary" not in r:
+        return []
+    m = r["matching_summary"].one()
+    n_t, kept = int(m.get("n_treated") or 0), int(m.get("n_treated_matched") or 0)
+    if not n_t or kept >= KEPT_SHARE_WARN * n_t:
+        return []
+    shifts = []
+    for b in balance:
+        before, after = b.mean_treated_before, b.mean_treated_after
+        if b.kind == "level" or before is None or after is None:
+            continue
+        scale = abs(before) if before else 1.0
+        shifts.append((abs(after - before) / scale, b.covariate, after, before))
+    shifts.sort(reverse=True)
+    means = "; ".join(f"{name} {after:.3g} (cohort {before:.3g})" for rel, name, after, before in shifts[:3] if rel >= 0.05)
+    n = count_text(kept, spec.min_cell_size, words=True)
+    # the share would give back a suppressed count (or the count of those left out)
+    share = "" if is_small(kept, spec.min_cell_size) or is_small(n_t - kept, spec.min_cell_size) else f" ({kept / n_t:.0%})"
+    text = (
+        f"Only {n} of the {count_text(n_t, spec.min_cell_size, words=True)} enrolled units{share} were matched: every effect "
+        f"below is for those units only, not for the whole cohort."
+    )
+    if means:
+        text += f" The kept units differ from the cohort in their means: {means}."
+    return [text + f" To describe more of the cohort: {method_for(spec.matching.method).loosen}."]
 
 
 def _missing_warnings(spec: Spec, r) -> list[str]:

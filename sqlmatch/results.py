@@ -26,6 +26,8 @@ ASSUMPTIONS = (
 WARNING_KINDS = {
     "coverage": "the events do not cover the windows, or belong to units missing from the units table",
     "balance": "a feature still differs between the groups after matching: |SMD| above 0.1",
+    "kept": "matching kept under 90% of the enrolled units, so the effect describes the kept ones only",
+    "design": "a choice of the study's design that changes what the effect means (a post window opening in the cohort month)",
     "model": "the stored propensity model no longer fits the units it scores",
     "method": "a caution of the matching method, such as controls reused by nearest neighbours",
     "missing": "what a missing-value policy did to units without a value",

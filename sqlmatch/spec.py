@@ -41,6 +41,7 @@ MISSING_POLICIES = {"numeric": ("error", "fill", "drop"), "categorical": ("level
 OUTCOME_AGGREGATES = ("count", "sum", "active_days", "ratio", "active_at_end")
 CONTROL_POOLS = ("never_by_post_end", "not_yet_enrolled")
 WINDOW_UNITS = ("month", "day")
+POST_STARTS = ("after_cohort", "cohort")
 METHODS = tuple(_matching_methods.METHODS)
 # Names of earlier versions, refused with the name to use now.
 RENAMED_METHODS = {"nearest": "nearest_neighbour"}
@@ -94,6 +95,10 @@ class Windows:
     pre_start: dt.date
     post_start: dt.date
     post_end: dt.date
+    # "after_cohort": the post window opens when the cohort month ends (no unit is half-enrolled
+    # in it); "cohort": it opens with the cohort month, so outcomes include the days of that
+    # month before each unit enrolled (diagnostics says so)
+    post_starts: str = "after_cohort"
 
     @property
     def pre_days(self) -> int:
@@ -322,19 +327,20 @@ def _table_ref(value: str, key: str) -> TableRef:
     )
 
 
-def _windows(cohort: str, unit: str, pre: int, post: int) -> Windows:
+def _windows(cohort: str, unit: str, pre: int, post: int, post_starts: str = "after_cohort") -> Windows:
     m = _COHORT_RE.match(cohort)
     if not m or not 1 <= int(m.group(2)) <= 12:
         raise SpecError("treatment.cohort", f"{cohort!r} is not a month.", "write the enrolment month as \"YYYY-MM\".")
     try:
         cohort_start = dt.date(int(m.group(1)), int(m.group(2)), 1)
         cohort_end = add_months(cohort_start, 1)
+        post_start = cohort_start if post_starts == "cohort" else cohort_end
         if unit == "month":
             pre_start = add_months(cohort_start, -pre)
-            post_end = add_months(cohort_end, post)
+            post_end = add_months(post_start, post)
         else:
             pre_start = cohort_start - dt.timedelta(days=pre)
-            post_end = cohort_end + dt.timedelta(days=post)
+            post_end = post_start + dt.timedelta(days=post)
     except (ValueError, OverflowError):
         raise SpecError(
             "treatment.cohort",
@@ -348,8 +354,9 @@ def _windows(cohort: str, unit: str, pre: int, post: int) -> Windows:
         cohort_start=cohort_start,
         cohort_end=cohort_end,
         pre_start=pre_start,
-        post_start=cohort_end,
+        post_start=post_start,
         post_end=post_end,
+        post_starts=post_starts,
     )
 
 
@@ -494,12 +501,13 @@ def parse_spec(raw: dict, source_path: Path | None = None) -> Spec:
         raise SpecError("treatment.described_as", "must be a short phrase of printable characters (at most 80).", 'e.g. described_as = "buying the annual pass".')
 
     windows_raw = _table(raw, "windows")
-    _check_keys(windows_raw, "windows", {"unit", "pre", "post"})
+    _check_keys(windows_raw, "windows", {"unit", "pre", "post", "post_starts"})
     unit = _choice(windows_raw, "windows", "unit", WINDOW_UNITS, default="month")
     high = 36 if unit == "month" else 1100
     pre = _int(windows_raw, "windows", "pre", high=high)
     post = _int(windows_raw, "windows", "post", high=high)
-    windows = _windows(cohort, unit, pre, post)
+    post_starts = _choice(windows_raw, "windows", "post_starts", POST_STARTS, default="after_cohort")
+    windows = _windows(cohort, unit, pre, post, post_starts)
 
     eligibility = raw.get("eligibility", {})
     if not isinstance(eligibility, dict):

@@ -17,6 +17,7 @@ from __future__ import annotations
 import json
 import math
 import os
+from pathlib import Path
 import secrets
 import subprocess
 import sys
@@ -438,3 +439,20 @@ def test_spark_runs_the_nsw_study_with_duckdbs_numbers(spark_engine, nsw_tables,
     finally:
         for db in (tag, f"{tag}_work"):
             spark_engine.execute(f"DROP DATABASE IF EXISTS `{db}` CASCADE")
+
+
+REPO_ROOT = Path(__file__).resolve().parents[1]
+
+
+def test_duckdb_engine_draws_no_progress_bar_of_its_own():
+    # DuckDB's bar (on for queries over 2 s) would print into sqlmatch's per-step lines on stderr.
+    # Read in a fresh interpreter: under pytest's capture DuckDB starts with the bar off anyway.
+    import subprocess
+    import sys
+
+    code = (
+        "import duckdb; from sqlmatch.engines.duckdb import DuckDBEngine; q = \"SELECT current_setting('enable_progress_bar')\"; "
+        "print(duckdb.connect(':memory:').execute(q).fetchone()[0], DuckDBEngine(':memory:').con.execute(q).fetchone()[0])"
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True, cwd=REPO_ROOT, env={**os.environ, "PYTHONPATH": str(REPO_ROOT)})
+    assert out.stdout.split() == ["True", "False"]

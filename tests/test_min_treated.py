@@ -134,3 +134,34 @@ def test_bad_min_treated_on_the_command_line(database, tmp_path, capsys):
     assert "Traceback" not in err
     assert study_tables(database) == []
 
+
+
+def test_few_treated_kept_says_the_effect_is_for_them_only(tmp_path, demo_dir):
+    """Fine cut points keep part of the cohort: the warning says the effect is for the kept units,
+    with their feature means (the balance table's treated-after means) beside the cohort's."""
+    import shutil
+    import tomllib
+
+    from sqlmatch import api
+    from sqlmatch.spec import parse_spec
+
+    from conftest import DEMO_SPEC
+
+    db = tmp_path / "bikeshare.duckdb"
+    shutil.copyfile(demo_dir / "bikeshare.duckdb", db)
+    raw = tomllib.loads(DEMO_SPEC.read_text())
+    raw["study"]["database"] = str(db)
+    baseline = api.run(parse_spec(raw))
+    assert not any("were matched: every effect" in w for w in baseline.warnings)  # the demo keeps all 1,458
+    numeric = [f["name"] for f in raw["features"] if f.get("type") != "categorical" and "twin" not in f]
+    raw["matching"]["on"] = [f["name"] for f in raw["features"]]
+    raw["matching"]["cut_points"] = {k: [float(x) for x in range(1, 400, 3)] for k in numeric}
+    results = api.run(parse_spec(raw))
+    m = results.matching
+    assert m.n_treated_matched < 0.9 * m.n_treated
+    (text,) = [w for w in results.warnings if "were matched: every effect" in w]
+    assert f"Only {m.n_treated_matched:,} of the {m.n_treated:,} enrolled units ({m.n_treated_matched / m.n_treated:.0%})" in text
+    rows = {b.covariate: b for b in results.balance}
+    named = [part.split(" ")[0] for part in text.split("their means: ")[1].split("; ")]
+    for name in named:
+        assert f"{name} {rows[name].mean_treated_after:.3g} (cohort {rows[name].mean_treated_before:.3g})" in text

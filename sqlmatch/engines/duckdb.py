@@ -27,6 +27,9 @@ class DuckDBEngine(Engine):
                     "Fix: another process may hold it open for writing (DuckDB allows one writer); wait for it or use another file."
                 ) from None
             self._owns = True
+            # DuckDB draws its own progress bar for queries over 2 s, in the middle of
+            # sqlmatch's per-step lines (a connection the caller passes keeps its settings)
+            self.con.execute("SET enable_progress_bar = false")
 
     def execute(self, sql: str) -> int | None:
         try:
