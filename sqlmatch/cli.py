@@ -15,7 +15,7 @@ from sqlmatch.runner import Progress
 FAIL_ON_HELP = (
     "exit with status 1 (after writing the results) when the run raised a warning of one of these kinds, "
     "comma-separated: " + "; ".join(f"{k} ({v})" for k, v in WARNING_KINDS.items()) + "; or all"
-)
+).replace("%", "%%")  # argparse expands % in help texts
 
 
 def _fail_on(text: str) -> frozenset[str]:

@@ -92,3 +92,12 @@ def test_a_multi_cohort_run_names_each_cohort_and_the_pooled_effect(demo_dir, tm
     ) in err
     for month in ("2026-02", "2026-03"):
         assert f"sqlmatch: result: cohort {month}: post_trips: " in err
+
+
+@pytest.mark.parametrize("command", ["run", "demo", "report"])
+def test_the_help_of_each_command_with_fail_on_prints(command, capsys):
+    with pytest.raises(SystemExit) as info:
+        main([command, "--help"])
+    assert info.value.code == 0
+    out = capsys.readouterr().out
+    assert "--fail-on KINDS" in out and "90%" in out  # the kept kind's threshold, as written
