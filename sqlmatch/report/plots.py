@@ -143,16 +143,21 @@ def _histogram(s: Svg, bins, weighted: bool, x0: float, y0: float, w: float, h: 
             s.rect(x(b["low"]), y0 + h - WITHHELD_STRIP, x(b["high"]) - x(b["low"]), WITHHELD_STRIP, "url(#withheld)", title="withheld (small count)")
         elif v > 0:
             s.rect(x(b["low"]), y(v), x(b["high"]) - x(b["low"]), y(0) - y(v), CONTROL, opacity=0.3)
-    # the enrolled as a step outline over the fill
-    d, prev = [], None
+    # the enrolled as a step outline over the fill, broken at withheld bins (their height is unknown)
+    d, open_ = [], False
     for b, v in zip(treated, st):
-        v = v or 0.0
-        if prev is None:
+        if v is None:
+            if open_:
+                d.append(f"V{y(0):.1f}")
+            open_ = False
+            continue
+        if not open_:
             d.append(f"M{x(b['low']):.1f},{y(0):.1f}")
+            open_ = True
         d.append(f"V{y(v):.1f}H{x(b['high']):.1f}")
-        prev = v
-    if d:
+    if open_:
         d.append(f"V{y(0):.1f}")
+    if d:
         s.path("".join(d), stroke=TREATED, width=2)
     for b, v in zip(treated, st):
         if v is None:
@@ -182,9 +187,11 @@ def distribution_plot(name: str, bins, clip: bool = True, what: str | None = Non
     note = None
     if last is not None:
         edge = _group_bins(bins, 1)[last]["high"]
+        withheld = any(b["n_units"] is None and b["low"] >= edge for b in bins)
         note = (
             f"Long tail cut: {name} is drawn up to {edge:,.4g}; above it lie {100 * above.get(1, 0):.1f}% of the enrolled and "
-            f"{100 * above.get(0, 0):.1f}% of the comparison units before matching (not drawn)."
+            f"{100 * above.get(0, 0):.1f}% of the comparison units before matching (not drawn)"
+            + ("; of the bins shown, withheld ones not counted." if withheld else ".")
         )
     return s.render(), note
 
