@@ -197,3 +197,11 @@ def test_the_demo_says_what_it_builds(tmp_path):
             (line,) = [x for x in lines if re.search(rf"demo warehouse: {table}\s", x)]
             assert f"{n:,} rows written" in line
     assert lines[-1].startswith("sqlmatch: demo warehouse built in")
+
+
+def test_the_enrolled_outline_breaks_at_a_withheld_bin():
+    bins = [{"low": float(k), "high": float(k + 1), "treated": g, "n_units": (None if (g, k) == (1, 2) else 50), "sum_w": (None if (g, k) == (1, 2) else 50.0)} for k in range(6) for g in (0, 1)]
+    svg, _ = plots.distribution_plot("x", bins, clip=False)
+    outlines = re.findall(rf'<path d="([^"]+)" stroke="{plots.TREATED}" fill="none"', svg)
+    panels = [d for d in outlines if d.count("H") > 1]  # the legend's swatch is one short path
+    assert len(panels) == 2 and all(d.count("M") == 2 for d in panels)  # bins 0-1, then 3-5: no line through bin 2
