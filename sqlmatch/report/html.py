@@ -10,7 +10,7 @@ import math
 
 from sqlmatch.privacy import suppress_histograms, suppress_levels
 from sqlmatch.report import plots
-from sqlmatch.report.words import design_lines, effect_sentence, flow_segments, groups_sentence, provenance_text, sample_rows
+from sqlmatch.report.words import design_lines, effect_sentence, flow_segments, groups_sentence, provenance_text, sample_rows, window_length
 from sqlmatch.results import StudyResults, warning_kind
 
 SMD_REFERENCE = plots.SMD_REFERENCE
@@ -123,7 +123,7 @@ def render_html(r: StudyResults) -> str:
             parts.append(
                 "<p class='note'>Difference-in-differences: the effect on the outcome minus its pre-window twin, on the matched "
                 "sample. The two are compared as they are (pre window "
-                f"{_e(_len(w['pre'], w['unit']))}, post window {_e(_len(w['post'], w['unit']))}); no rescaling to a common length.</p>"
+                f"{_e(window_length(w['pre'], w['unit']))}, post window {_e(window_length(w['post'], w['unit']))}); no rescaling to a common length.</p>"
             )
     if r.demo_truth:
         parts.append("<p class='note'>Simulated truth (demo only): " + ", ".join(f"{_e(k)} = {v:.3f}" for k, v in sorted(r.demo_truth.items())) + ".</p>")
@@ -208,12 +208,6 @@ def render_html(r: StudyResults) -> str:
         "</body></html>",
     ]
     return "\n".join(parts)
-
-
-def _len(window, unit) -> str:
-    from sqlmatch.report.words import window_length
-
-    return window_length(window, unit)
 
 
 def _sensitivity(r: StudyResults) -> list[str]:

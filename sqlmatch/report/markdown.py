@@ -2,10 +2,8 @@
 
 from __future__ import annotations
 
-import datetime as dt
-
 from sqlmatch.privacy import count_text, suppress_levels
-from sqlmatch.report.words import design_lines, effect_sentence, groups_sentence, provenance_text, sample_rows
+from sqlmatch.report.words import design_lines, effect_sentence, groups_sentence, provenance_text, sample_rows, window_length
 from sqlmatch.results import StudyResults, warning_kind
 
 SMD_REFERENCE = 0.1  # |SMD| below 0.1 read as balanced: common practice (Austin 2009)
@@ -35,16 +33,6 @@ def _pct_interval(lo: float | None, hi: float | None) -> str:
     return "–" if lo is None or hi is None else f"[{100.0 * lo:+.1f}%, {100.0 * hi:+.1f}%]"
 
 
-def _length(window: list[str], unit: str) -> str:
-    """Length of a [start, end) window in the study's window unit."""
-    start, end = dt.date.fromisoformat(window[0]), dt.date.fromisoformat(window[1])
-    if unit == "month":
-        n = (end.year - start.year) * 12 + end.month - start.month
-    else:
-        n = (end - start).days
-    return f"{n} {unit}{'s' if n != 1 else ''}"
-
-
 def _effect_notes(r: StudyResults) -> list[str]:
     """Risk ratios of binary outcomes and differences-in-differences, in words."""
     lines = []
@@ -61,8 +49,8 @@ def _effect_notes(r: StudyResults) -> list[str]:
             lines.append(
                 f"- **{e.outcome} − {e.did_twin}** (difference-in-differences on the matched sample): "
                 f"{_x(e.did.estimate)} {_interval(e.did.ci_low, e.did.ci_high)}. The two measures are compared as they "
-                f"are: {e.did_twin} covers the pre window ({_length(w['pre'], w['unit'])}), {e.outcome} the post window "
-                f"({_length(w['post'], w['unit'])}); no rescaling to a common length."
+                f"are: {e.did_twin} covers the pre window ({window_length(w['pre'], w['unit'])}), {e.outcome} the post window "
+                f"({window_length(w['post'], w['unit'])}); no rescaling to a common length."
             )
     if lines:
         lines = ["", *lines]

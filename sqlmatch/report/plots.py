@@ -183,7 +183,7 @@ def distribution_plot(name: str, bins, clip: bool = True, what: str | None = Non
         entries.append(("hatch:url(#withheld)", "withheld (small count)"))
     s.legend(64, 14, entries)
     _histogram(s, bins, False, 64, 52, 290, 130, f"{what or name}: before matching", last, "share of the group")
-    _histogram(s, bins, True, 64 + 290 + 56, 52, 290, 130, f"after matching (weighted)", last, None)
+    _histogram(s, bins, True, 64 + 290 + 56, 52, 290, 130, "after matching (weighted)", last, None)
     note = None
     if last is not None:
         edge = _group_bins(bins, 1)[last]["high"]
