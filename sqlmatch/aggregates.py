@@ -14,6 +14,7 @@ import numpy as np
 from sqlmatch import columns
 from sqlmatch.balance import GroupMoments, compare
 from sqlmatch.engines.base import QueryResult
+from sqlmatch.estimators.adjusted import CellSums
 from sqlmatch.estimators.att import StratumMoments
 from sqlmatch.estimators.ratio import RatioSums
 from sqlmatch.columns import stat
@@ -122,6 +123,30 @@ def outcome_moments(result: QueryResult, outcome: str, suffix: str = "") -> tupl
         )
 
     return moments(treated), moments(control)
+
+
+def cell_sums(result: QueryResult, outcome: str, features: list[str]) -> tuple[CellSums, CellSums]:
+    """Per-stratum sums of the numeric features, their cross-products and their products with the
+    outcome (outcome_strata, matched), treated and control, for the regression adjustment."""
+    treated, control = _aligned(result)
+    p = len(features)
+
+    def sums(rows):
+        get = lambda r, key: _f(r.get(key, 0.0) or 0.0)  # noqa: E731
+        sxx = np.zeros((len(rows), p, p))
+        for k, r in enumerate(rows):
+            for i, j in columns.upper_pairs(p):
+                sxx[k, i, j] = sxx[k, j, i] = get(r, columns.cross(features[i], features[j]))
+        return CellSums.of(
+            [get(r, "n_units") for r in rows],
+            [[get(r, stat(f, "xsum")) for f in features] for r in rows] if p else np.zeros((len(rows), 0)),
+            sxx,
+            [get(r, stat(outcome, "sum")) for r in rows],
+            [get(r, stat(outcome, "sumsq")) for r in rows],
+            [[get(r, columns.cross(f, outcome)) for f in features] for r in rows] if p else np.zeros((len(rows), 0)),
+        )
+
+    return sums(treated), sums(control)
 
 
 def ratio_sums(result: QueryResult, outcome: str) -> tuple[RatioSums, RatioSums]:

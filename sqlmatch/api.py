@@ -153,6 +153,11 @@ def run(
     try:
         output = run_plan(build_plan(spec, engine.dialect), spec, engine, progress=progress, keep_tables=keep_tables)
         results = study_results(spec, output.plan, output)
+        if spec.placebo_months:
+            from sqlmatch.results import PlaceboCheck
+
+            placebo = run(spec.placebo_spec(), engine=engine, progress=progress, keep_tables=keep_tables)
+            results.placebo = PlaceboCheck(spec.placebo_months, placebo)
         if spec.results_table:
             from sqlmatch.history import record
 

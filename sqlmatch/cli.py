@@ -233,15 +233,24 @@ def _summary(runs, fail_on: frozenset[str], pooled=None, stream=None) -> int:
     for p in pooled or ():
         kind = runs[0].effect(p.outcome).kind
         print(f"sqlmatch: result: pooled over {p.cohorts} cohorts: {figure_line(p.outcome, kind, p.estimate, p.ci_low, p.ci_high)}", file=stream)
-    failing = []
+    failing, warned = [], False
     for r in runs:
         where = f"cohort {r.cohort}: " if several else ""
         for w in r.warnings:
             kind = warning_kind(w) or "other"
             print(f"sqlmatch: warning [{kind}]: {where}{w}", file=stream)
+            warned = True
             if kind in fail_on:
                 failing.append(kind)
-    if not any(r.warnings for r in runs):
+        if r.placebo is not None:
+            for e, text in zip(r.placebo.results.effects, r.placebo.readings()):
+                missed = e.ci_low is not None and e.ci_high is not None and not e.ci_low <= 0.0 <= e.ci_high
+                print(f"sqlmatch: {'warning [placebo]' if missed else 'placebo'}: {where}{text}", file=stream)
+                if missed:
+                    warned = True
+                    if "placebo" in fail_on:
+                        failing.append("placebo")
+    if not warned:
         print("sqlmatch: no warnings", file=stream)
     if failing:
         counts = ", ".join(f"{failing.count(k)} {k}" for k in sorted(set(failing)))

@@ -46,6 +46,11 @@ def upper_pairs(p: int) -> list[tuple[int, int]]:
     return [(i, j) for i in range(p) for j in range(i, p)]
 
 
+def cross(a: str, b: str) -> str:
+    """Sum of the product of two columns (a feature with a feature or with an outcome), outcome_strata."""
+    return f"{a}__x__{b}"
+
+
 def xtx(i: int, j: int, outcome: str | None = None) -> str:
     """Entry (i, j), i <= j, of X'WX in outcome_regression; ratio outcomes have their own."""
     return f"{outcome}__xtx_{i}_{j}" if outcome else f"xtx_{i}_{j}"

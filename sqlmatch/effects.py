@@ -12,6 +12,7 @@ from sqlmatch.columns import stat
 from sqlmatch import aggregates
 from sqlmatch.design import provenance, study_design
 from sqlmatch.diagnostics import run_warnings
+from sqlmatch.estimators.adjusted import adjusted_att
 from sqlmatch.estimators.att import relative_lift, stratified_att
 from sqlmatch.estimators.binary import risk_ratio
 from sqlmatch.estimators.ratio import ratio_effect
@@ -46,7 +47,10 @@ def study_results(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
         balance += aggregates.level_balance(r["balance_levels"])
     numeric = [f.name for f in spec.numeric_features]
     effects = [
-        outcome_effect(o, r["outcome_strata"], r["outcome_unmatched"], r.get("outcome_regression"), numeric, spec.matching.method, r.get("pair_signed_rank"), spec.treatment_words)
+        outcome_effect(
+            o, r["outcome_strata"], r["outcome_unmatched"], r.get("outcome_regression"), numeric, spec.matching.method, r.get("pair_signed_rank"),
+            spec.treatment_words, adjust=spec.regression_adjustment,
+        )
         for o in plan.outcomes
     ]
     l1 = r["imbalance_l1"].one()
@@ -80,7 +84,9 @@ def study_results(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
     )
 
 
-def outcome_effect(outcome, matched, unmatched, regression=None, features=(), method: str = "", pair_ranks=None, treatment_words: str = "enrolment") -> Effect:
+def outcome_effect(
+    outcome, matched, unmatched, regression=None, features=(), method: str = "", pair_ranks=None, treatment_words: str = "enrolment", adjust: bool = False
+) -> Effect:
     """One outcome's effect, relative lift, risk ratio (binary), difference-in-differences (an
     outcome with a pre-window twin) and sensitivity figures, all from aggregates."""
     rr = None
@@ -142,6 +148,20 @@ def outcome_effect(outcome, matched, unmatched, regression=None, features=(), me
         else:
             lift = relative_lift(m.mean_treated, m.var_mean_treated, m.mean_control, m.var_mean_control)
             extra.update(lift=_interval(lift.estimate, lift.std_error, lift.ci_low, lift.ci_high))
+        if features:
+            # regression adjustment within strata on the numeric features (estimators/adjusted.py)
+            adj = adjusted_att(*aggregates.cell_sums(matched, outcome.name, list(features)), list(features))
+            a = adj.effect
+            extra.update(adjusted=_interval(a.estimate, a.std_error, a.ci_low, a.ci_high), adjusted_for=adj.adjusted_for)
+            if adjust:
+                extra["unadjusted"] = _interval(fields["estimate"], fields["std_error"], fields["ci_low"], fields["ci_high"])
+                fields.update(
+                    estimator=f"{fields['estimator']}, adjusted by a within-stratum regression on {', '.join(adj.adjusted_for) or 'no feature'}",
+                    estimate=a.estimate,
+                    std_error=a.std_error,
+                    ci_low=a.ci_low,
+                    ci_high=a.ci_high,
+                )
         if getattr(outcome, "twin", None):
             # Difference-in-differences on the matched sample: the same stratified estimator
             # applied to (outcome - twin), per-stratum sums from the outcome_strata query.

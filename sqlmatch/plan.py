@@ -17,7 +17,7 @@ from sqlglot import exp
 from sqlmatch import dialects, render
 from sqlmatch.columns import regression_design, upper_pairs
 from sqlmatch.matching import method_for
-from sqlmatch.spec import MISSING_INDICATOR, Spec, last_period_start
+from sqlmatch.spec import MISSING_INDICATOR, Spec, is_boolean, last_period_start
 
 MANIFEST_VERSION = 1
 HISTOGRAM_BINS = 60  # bins of the report's distribution plots: fine enough that a plot cut at the 99th percentile keeps a dozen or more
@@ -297,15 +297,36 @@ def measure_columns(spec: Spec) -> tuple[list[MeasureColumn], list[OutcomeColumn
     return cols, outcomes
 
 
+@dataclass(frozen=True)
+class AttributeColumn:
+    """An attribute feature as study_units selects it: `value` is SQL built by sqlglot, the quoted
+    column or the feature's expression (a condition made 1 / 0, NULL staying NULL)."""
+
+    name: str
+    categorical: bool
+    value: str
+
+
+def attribute_column(f) -> AttributeColumn:
+    if f.expression is None:
+        return AttributeColumn(f.name, f.categorical, exp.column(exp.to_identifier(f.attribute, quoted=True), table=exp.to_identifier("u")).sql(render.SOURCE_DIALECT))
+    value = render.expression_sql(f.expression, alias="u")
+    if is_boolean(f.expression):
+        value = f"CASE WHEN {value} THEN 1 WHEN NOT ({value}) THEN 0 END"
+    return AttributeColumn(f.name, f.categorical, value)
+
+
 def source_steps(ctx: PlanContext, outcomes, columns) -> list[Step]:
     """The study's units, the checks on them, and one pass over the events for every feature and outcome."""
     spec = ctx.spec
     w = spec.windows
-    control_from = w.post_end if spec.control_pool == "never_by_post_end" else w.cohort_end
+    # who is treated and who is a control: the real study's windows, also in a placebo study
+    e = spec.enrolment_windows
+    control_from = e.post_end if spec.control_pool == "never_by_post_end" else e.cohort_end
     pool_text = (
-        f"never enrolled, or enrolled on or after {w.post_end} (after the post window)"
+        f"never enrolled, or enrolled on or after {e.post_end} (after the post window)"
         if spec.control_pool == "never_by_post_end"
-        else f"never enrolled, or enrolled on or after {w.cohort_end} (not yet enrolled at the cohort month)"
+        else f"never enrolled, or enrolled on or after {e.cohort_end} (not yet enrolled at the cohort month)"
     )
     units_src, events_src = spec.units.display, spec.events.display
 
@@ -320,11 +341,11 @@ def source_steps(ctx: PlanContext, outcomes, columns) -> list[Step]:
             units=spec.units,
             key=spec.unit_key,
             enrolled=spec.enrolled_on,
-            windows=w,
+            enrolment=e,
             cohort=spec.cohort,
             control_from=control_from,
             pool_text=pool_text,
-            attributes=spec.attribute_features,
+            attributes=[attribute_column(f) for f in spec.attribute_features],
             filters=[render.expression_sql(f, alias="u") for f in spec.filters],
         ),
         ctx.query_step(
@@ -480,13 +501,17 @@ def outcome_steps(ctx: PlanContext, outcomes, per_match: bool) -> list[Step]:
                 "outcome_strata",
                 reads=([ctx.display("measures"), ctx.display("match_weights")] if per_match else weighted) if matched else [ctx.display("measures")],
                 purpose=(
-                    "Outcome sums per stratum and group among matched units."
+                    "Outcome sums per stratum and group among matched units, with the feature sums and cross-products that adjust them by regression."
                     if matched
                     else "Outcome sums per group before matching (the naive comparison)."
                 ),
                 matched=matched,
                 per_match=per_match,
                 outcomes=outcomes,
+                # sums for regression adjustment within strata (estimators/adjusted.py)
+                adjust_features=numeric if matched else [],
+                adjust_pairs=[(numeric[i], numeric[j]) for i, j in upper_pairs(len(numeric))] if matched else [],
+                adjust_outcomes=[o.name for o in outcomes if o.kind != "ratio"] if matched else [],
                 measures_table=ctx.table("measures"),
                 weights_table=ctx.table("match_weights"),
                 weighted_table=ctx.table("weighted_units"),

@@ -134,7 +134,8 @@ def model_path(spec) -> Path | None:
     """Where a study keeps its fitted model: beside the spec, `<spec name>.model.json`."""
     if spec.source_path is None:
         return None
-    return spec.source_path.with_name(spec.source_path.stem + ".model.json")
+    suffix = ".placebo.model.json" if spec.enrolment_windows_of is not None else ".model.json"
+    return spec.source_path.with_name(spec.source_path.stem + suffix)
 
 
 def load_model(spec) -> FittedModel | None:

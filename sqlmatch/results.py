@@ -18,6 +18,10 @@ ASSUMPTIONS = (
     "No interference: one unit's enrolment does not change another unit's outcome.",
     "The windows are fixed in advance: features come strictly before the enrolment month and outcomes strictly after it; "
     "other window choices can give other answers.",
+    "What the intervals are for: the average effect on the enrolled units this study kept, given their features "
+    "(how enrolment changes their expected outcomes). The realised difference in this cohort's outcomes also varies "
+    "by chance around that average, and other enrolees have other features: as an interval for either, it can be "
+    "too narrow, most of all for a 0/1 outcome close to 0 or 1 or an effect that differs much between units.",
     "These figures inform, and do not replace, judgement about the programme.",
 )
 
@@ -28,6 +32,7 @@ WARNING_KINDS = {
     "balance": "a feature still differs between the groups after matching: |SMD| above 0.1",
     "kept": "matching kept under 90% of the enrolled units, so the effect describes the kept ones only",
     "design": "a choice of the study's design that changes what the effect means (a post window opening in the cohort month)",
+    "placebo": "the placebo check ([placebo]) found an effect where there can be none",
     "model": "the stored propensity model no longer fits the units it scores",
     "method": "a caution of the matching method, such as controls reused by nearest neighbours",
     "missing": "what a missing-value policy did to units without a value",
@@ -105,12 +110,22 @@ class Effect:
     lift: Interval = Interval(None)
     # binary outcomes: risk ratio p_1 / p_0 (the risk difference is `estimate`)
     risk_ratio: Interval | None = None
+    # the matched comparison adjusted by a within-stratum regression on the numeric features
+    # (count, sum and 0/1 outcomes); the headline when [effect] regression_adjustment = true, and
+    # then `unadjusted` holds the plain matched comparison
+    adjusted: Interval | None = None
+    adjusted_for: tuple[str, ...] = ()
+    unadjusted: Interval | None = None
     # difference-in-differences: effect on (outcome - did_twin), the twin a pre-window feature
     did_twin: str | None = None
     did: Interval | None = None
     # e_value, e_value_ci, robustness_value, robustness_value_alpha, partial_r2, t_statistic, df,
     # rosenbaum (+ rosenbaum_reason when null), sentence, and what they were computed from
     sensitivity: dict = field(default_factory=dict)
+
+
+# the Effect fields that hold an Interval (flattened to `<field>.<part>` columns in effects_frame)
+INTERVAL_FIELDS = ("naive", "lift", "risk_ratio", "adjusted", "unadjusted", "did")
 
 
 @dataclass(frozen=True)
@@ -140,6 +155,42 @@ class MatchingSummary:
     n_control_outside_support: int = 0
 
 
+@dataclass(frozen=True)
+class PlaceboCheck:
+    """The same design placed `months_before` earlier ([placebo]): the cohort is still the treated
+    group, but every window it reads ends before anyone in it enrolled, so each true effect is zero."""
+
+    months_before: int
+    results: "StudyResults"  # the placebo study's own results (its tables are <study>_placebo_*)
+
+    def readings(self) -> list[str]:
+        out = []
+        for e in self.results.effects:
+            if e.ci_low is None or e.ci_high is None:
+                out.append(f"{e.outcome}: {e.estimate:.3g}, no interval.")
+            elif e.ci_low <= 0.0 <= e.ci_high:
+                out.append(f"{e.outcome}: {e.estimate:.3g} [{e.ci_low:.3g}, {e.ci_high:.3g}]: no effect where there can be none, as it should be.")
+            else:
+                out.append(
+                    f"{e.outcome}: {e.estimate:.3g} [{e.ci_low:.3g}, {e.ci_high:.3g}]: an effect where there can be none. Before "
+                    "enrolling, the enrolled units already differed from their matched comparison units in a way the features do "
+                    "not capture; the same difference may be in the main estimate. (With several outcomes, one interval in "
+                    "twenty misses zero by chance.)"
+                )
+        return out
+
+    def to_dict(self) -> dict:
+        r = self.results
+        return {
+            "months_before": self.months_before,
+            "windows": r.windows,
+            "effects": [{k: r._effect_record(e)[k] for k in ("outcome", "estimate", "std_error", "ci_low", "ci_high")} for e in r.effects],
+            "matching": r._matching_dict(),
+            "warnings": list(r.warnings),
+            "readings": self.readings(),
+        }
+
+
 @dataclass
 class StudyResults:
     study: str
@@ -160,6 +211,7 @@ class StudyResults:
     timings: dict[str, float] = field(default_factory=dict)
     design: dict | None = None  # what was compared and how (sqlmatch.design.study_design)
     provenance: dict | None = None  # sqlmatch version, spec hash, plan fingerprint, engine, time
+    placebo: PlaceboCheck | None = None  # [placebo]: the same design before anyone enrolled
 
     def effect(self, outcome: str) -> Effect:
         for e in self.effects:
@@ -175,7 +227,7 @@ class StudyResults:
         interval_fields = list(Interval.__dataclass_fields__)
         columns = []
         for f in Effect.__dataclass_fields__:
-            if f in ("naive", "lift", "risk_ratio", "did"):
+            if f in INTERVAL_FIELDS:
                 columns += [f"{f}.{g}" for g in interval_fields]
             elif f != "sensitivity":
                 columns.append(f)
@@ -184,7 +236,7 @@ class StudyResults:
             record = self._effect_record(e)
             flat = {}
             for k, v in record.items():
-                if k in ("naive", "lift", "risk_ratio", "did"):
+                if k in INTERVAL_FIELDS:
                     flat.update({f"{k}.{g}": (v or {}).get(g) for g in interval_fields})
                 elif k != "sensitivity":
                     flat[k] = v
@@ -264,6 +316,8 @@ class StudyResults:
         }
         if self.demo_truth is not None:
             out["demo_truth"] = self.demo_truth
+        if self.placebo is not None:
+            out["placebo"] = self.placebo.to_dict()
         return out
 
     def _matching_dict(self) -> dict:

@@ -88,6 +88,9 @@ def preflight(spec: Spec, engine: Engine) -> None:
         if f.attribute:
             kinds = None if f.categorical else NUMERIC_TYPE_WORDS
             need(units, spec.units.display, f"features[{i}] ({f.name}).attribute", f.attribute, kinds, "numeric")
+        elif f.expression is not None and not f.is_missing_indicator:
+            for col in filter_columns(f.expression):
+                need(units, spec.units.display, f"{f.key}.expression", col)
     for i, tree in enumerate(spec.filters):
         for col in filter_columns(tree):
             need(units, spec.units.display, f"eligibility.filters[{i}]", col)
@@ -162,7 +165,7 @@ def _check_missing(spec: Spec, result: QueryResult) -> None:
             raise DataError(
                 f"{f.key}.missing",
                 f"{sum(nulls.values()):,} units in the study ({nulls.get(1, 0):,} treated, {nulls.get(0, 0):,} control) have no value "
-                f"for {f.name!r} (column {f.attribute!r} of {spec.units.display!r}).",
+                f"for {f.name!r} ({f'column {f.attribute!r}' if f.attribute else f'expression {f.expression_text!r}'} of {spec.units.display!r}).",
                 f'say what a missing value means: missing = "fill" with fill = <number> (adds the indicator feature {f.name}_missing) '
                 'or missing = "drop" (those units leave the study).',
             )

@@ -8,6 +8,7 @@ checked later against the engine's catalog (preflight).
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as dt
 import math
 import re
@@ -118,6 +119,10 @@ class Feature:
     # the study, "level" (categorical) makes it a level of its own. Event features are never NULL.
     missing: str | None = None
     key: str = field(default="", compare=False)  # the spec key naming this feature, for messages
+    # attribute features: a SQL expression over unit columns instead of one column (parsed and
+    # allowlisted as filters are; a condition counts as 1 when true, 0 when false)
+    expression: exp.Expression | None = field(default=None, compare=False)
+    expression_text: str | None = None
 
     @property
     def indicator(self) -> str | None:
@@ -210,6 +215,9 @@ class Spec:
     # joins the events to every unit key, not only the study's; see benchmarks/RESULTS.md).
     check_unknown_units: bool = True
     treatment_words: str = "enrolment"  # [treatment] described_as: how sentences name the treatment
+    # [effect] regression_adjustment: the headline effect of count, sum and 0/1 outcomes is adjusted
+    # by a within-stratum regression on the numeric features (estimators/adjusted.py); both are reported
+    regression_adjustment: bool = False
     source_path: Path | None = None
 
     @property
@@ -245,6 +253,26 @@ class Spec:
         return parse_spec(raw, source_path=self.source_path)
 
     _raw: dict = field(default_factory=dict, repr=False, compare=False)
+
+    # [placebo] months_before: the placebo study runs the same design this many months earlier
+    placebo_months: int | None = None
+    # in a placebo study: the real study's windows, which still say who enrolled (treated) and
+    # who is a control; `windows` then holds the shifted feature and outcome windows
+    enrolment_windows_of: Windows | None = None
+
+    @property
+    def enrolment_windows(self) -> Windows:
+        """The windows that define who is treated and who is a control."""
+        return self.enrolment_windows_of or self.windows
+
+    def placebo_spec(self) -> "Spec":
+        """The same design placed `placebo_months` earlier: the real cohort stays the treated group,
+        features and outcomes are measured in windows that end before anyone in it enrolled, so the
+        true effect is zero by construction. Its tables and model file are its own."""
+        windows = _placebo_windows(self.windows, self.placebo_months)
+        return dataclasses.replace(
+            self, name=f"{self.name}_placebo", windows=windows, enrolment_windows_of=self.windows, placebo_months=None, results_table=None
+        )
 
 
 # --------------------------------------------------------------------------------------------
@@ -360,6 +388,32 @@ def _windows(cohort: str, unit: str, pre: int, post: int, post_starts: str = "af
     )
 
 
+def _placebo_windows(windows: Windows, months: int) -> Windows:
+    """The same windows around the cohort month `months` earlier."""
+    shifted = add_months(windows.cohort_start, -months)
+    return _windows(f"{shifted.year:04d}-{shifted.month:02d}", windows.unit, windows.pre, windows.post, windows.post_starts)
+
+
+def _placebo(value: Any, windows: Windows) -> int | None:
+    """[placebo] months_before: far enough back that the placebo's post window ends before the
+    cohort month begins (nobody in the cohort has enrolled during any window it reads)."""
+    if value is None:
+        return None
+    if not isinstance(value, dict):
+        raise SpecError("placebo", "must be a table.", "write it as [placebo] with months_before = <whole number>.")
+    _check_keys(value, "placebo", {"months_before"})
+    months = _int(value, "placebo", "months_before", low=1, high=120)
+    placebo = _placebo_windows(windows, months)
+    if placebo.post_end > windows.cohort_start:
+        need = next(k for k in range(months + 1, months + 200) if _placebo_windows(windows, k).post_end <= windows.cohort_start)
+        raise SpecError(
+            "placebo.months_before",
+            f"{months} months back, the placebo's post window ends on {placebo.post_end}, after the cohort month begins ({windows.cohort_start}).",
+            f"use months_before = {need} or more, so every window the placebo reads ends before anyone in the cohort enrolled.",
+        )
+    return months
+
+
 def add_months(day: dt.date, months: int) -> dt.date:
     """First-of-month arithmetic (windows always start on the first of a month)."""
     index = day.year * 12 + (day.month - 1) + months
@@ -381,8 +435,31 @@ def parse_filter(text: Any, key: str) -> exp.Expression:
     CASE, IN over literals, BETWEEN, IS NULL, LIKE, CAST, literals, unit columns and a few pure
     scalar functions. Comments are dropped so nothing can hide inside them in the compiled SQL.
     """
+    tree = _parse_unit_expression(text, key, "filter", "a SQL boolean expression")
+    if not is_boolean(tree):
+        raise SpecError(
+            key,
+            f"{text!r} is not a boolean expression.",
+            "write a condition such as signup_date < DATE '2025-09-01'.",
+        )
+    return tree
+
+
+def parse_attribute_expression(text: Any, key: str) -> exp.Expression:
+    """One SQL expression over unit columns that gives a feature's value (e.g. re74 * re74, or a
+    condition such as re74 = 0, which counts as 1 / 0): the same parse and allowlist as filters."""
+    return _parse_unit_expression(text, key, "feature expression", "a SQL expression")
+
+
+def is_boolean(tree: exp.Expression) -> bool:
+    return isinstance(tree, (exp.Predicate, exp.Connector, exp.Not, exp.Boolean, exp.Is, exp.In, exp.Between)) or (
+        isinstance(tree, exp.Paren) and is_boolean(tree.this)
+    )
+
+
+def _parse_unit_expression(text: Any, key: str, what_kind: str, wanted: str) -> exp.Expression:
     if not isinstance(text, str) or not text.strip():
-        raise SpecError(key, f"must be a SQL boolean expression as a string, got {text!r}.")
+        raise SpecError(key, f"must be {wanted} as a string, got {text!r}.")
     depth = deepest = 0
     for ch in text:  # sqlglot recurses per nesting level: refuse deep nesting before it overflows
         depth += ch == "("
@@ -394,7 +471,7 @@ def parse_filter(text: Any, key: str) -> exp.Expression:
         statements = sqlglot.parse(text, read="duckdb")
     except sqlglot.errors.SqlglotError as err:
         first = str(err).splitlines()[0]
-        raise SpecError(key, f"could not be parsed as SQL: {first}", "write one boolean expression over unit columns.") from None
+        raise SpecError(key, f"could not be parsed as SQL: {first}", f"write one {wanted[2:]} over unit columns.") from None
     except RecursionError:
         raise SpecError(key, "is nested too deeply to parse.", "write a flatter expression.") from None
     statements = [s for s in statements if s is not None]
@@ -402,10 +479,10 @@ def parse_filter(text: Any, key: str) -> exp.Expression:
         raise SpecError(
             key,
             f"holds {len(statements)} statements.",
-            "write exactly one boolean expression, with no semicolon, e.g. signup_date < DATE '2025-09-01'.",
+            f"write exactly one {wanted[2:]}, with no semicolon, e.g. signup_date < DATE '2025-09-01'.",
         )
     tree = statements[0]
-    allowed_fix = f"filters may use unit columns, literals, comparisons, AND/OR/NOT, arithmetic, CASE, IN (...), BETWEEN, IS NULL, LIKE, CAST and the functions {FILTER_FUNCTIONS_TEXT}."
+    allowed_fix = f"{what_kind}s may use unit columns, literals, comparisons, AND/OR/NOT, arithmetic, CASE, IN (...), BETWEEN, IS NULL, LIKE, CAST and the functions {FILTER_FUNCTIONS_TEXT}."
     for node in tree.walk():
         if isinstance(node, tuple(_FILTER_FUNCTIONS)) or isinstance(node, _FILTER_NODES):
             if isinstance(node, exp.In) and (node.args.get("query") or node.args.get("field") or node.args.get("unnest")):
@@ -420,13 +497,7 @@ def parse_filter(text: Any, key: str) -> exp.Expression:
             what = f"{type(node).__name__.upper()} ({node.sql(dialect='duckdb')[:40]!r})"
         statement = isinstance(node, (exp.Query, exp.Subquery, exp.DML, exp.DDL, exp.Command))
         fix = ("remove the statement or subquery; " if statement else "") + allowed_fix
-        raise SpecError(key, f"{what} is not allowed in a filter; only a boolean expression over unit columns is.", fix)
-    if not isinstance(tree, (exp.Predicate, exp.Connector, exp.Not, exp.Paren, exp.Boolean, exp.Is, exp.In, exp.Between)):
-        raise SpecError(
-            key,
-            f"{text!r} is not a boolean expression.",
-            "write a condition such as signup_date < DATE '2025-09-01'.",
-        )
+        raise SpecError(key, f"{what} is not allowed in a {what_kind}; only {wanted} over unit columns is.", fix)
     for node in tree.walk():
         node.comments = None
         if isinstance(node, exp.Column) and node.table:
@@ -465,7 +536,7 @@ def load_spec(path: str | Path) -> Spec:
 
 def parse_spec(raw: dict, source_path: Path | None = None) -> Spec:
     _check_values(raw, "")
-    _check_keys(raw, "", {"study", "units", "events", "treatment", "windows", "eligibility", "features", "outcomes", "matching", "propensity", "report"})
+    _check_keys(raw, "", {"study", "units", "events", "treatment", "windows", "eligibility", "features", "outcomes", "matching", "propensity", "effect", "placebo", "report"})
 
     study = _table(raw, "study")
     _check_keys(study, "study", {"name", "work_schema", "database", "results_table"})
@@ -546,6 +617,13 @@ def parse_spec(raw: dict, source_path: Path | None = None) -> Spec:
     _check_keys(report, "report", {"min_cell_size"})
     min_cell = _int(report, "report", "min_cell_size", default=10, low=1, high=1000)
 
+    effect = raw.get("effect", {})
+    if not isinstance(effect, dict):
+        raise SpecError("effect", "must be a table.", "write it as [effect] with regression_adjustment = true or false.")
+    _check_keys(effect, "effect", {"regression_adjustment"})
+    regression_adjustment = read_bool(effect, "effect", "regression_adjustment", default=False)
+    placebo_months = _placebo(raw.get("placebo"), windows)
+
     spec = Spec(
         name=name,
         work_schema=work_schema,
@@ -560,6 +638,8 @@ def parse_spec(raw: dict, source_path: Path | None = None) -> Spec:
         cohort=cohort,
         control_pool=control_pool,
         treatment_words=described_as,
+        regression_adjustment=regression_adjustment,
+        placebo_months=placebo_months,
         windows=windows,
         filters=filters,
         filter_texts=tuple(filter_texts),
@@ -591,14 +671,20 @@ def _features(value: Any, windows: Windows) -> list[Feature]:
     out = []
     for i, item in enumerate(_list_of_tables(value, "features")):
         key = f"features[{i}]"
-        _check_keys(item, key, {"name", "aggregate", "measure", "attribute", "type", "fill", "missing"})
+        _check_keys(item, key, {"name", "aggregate", "measure", "attribute", "expression", "type", "fill", "missing"})
         name = _name(_str(item, key, "name"), f"{key}.name")
         key = f"features[{i}] ({name})"
         agg = _choice(item, key, "aggregate", FEATURE_AGGREGATES)
         measure = _str(item, key, "measure", required=agg in ("sum", "mean"))
         if measure and agg not in ("sum", "mean"):
             raise SpecError(f"{key}.measure", f"is only used with aggregate sum or mean, not {agg}.", "remove it.")
-        attribute = _str(item, key, "attribute", required=agg == "attribute")
+        expression_text = item.get("expression")
+        if expression_text is not None and agg != "attribute":
+            raise SpecError(f"{key}.expression", "is only used with aggregate = \"attribute\" (an expression over unit columns).", "remove it, or make the feature an attribute.")
+        if expression_text is not None and "attribute" in item:
+            raise SpecError(f"{key}.expression", "is given with attribute: a feature is one column or one expression.", "remove one of them.")
+        expression = parse_attribute_expression(expression_text, f"{key}.expression") if expression_text is not None else None
+        attribute = _str(item, key, "attribute", required=agg == "attribute" and expression is None)
         if attribute and agg != "attribute":
             raise SpecError(f"{key}.attribute", "is only used with aggregate = \"attribute\".", "remove it.")
         kind = _choice(item, key, "type", ("numeric", "categorical"), default="numeric")
@@ -621,10 +707,15 @@ def _features(value: Any, windows: Windows) -> list[Feature]:
                 "only applies to attribute features: a feature built from events is never NULL (a unit without events in the window gets `fill`).",
                 "remove it, or set fill = <number> for units without events.",
             )
-        feature = Feature(name=name, aggregate=agg, measure=measure, attribute=attribute, categorical=kind == "categorical", fill=fill, missing=missing, key=key)
+        feature = Feature(
+            name=name, aggregate=agg, measure=measure, attribute=attribute, categorical=kind == "categorical", fill=fill, missing=missing, key=key,
+            expression=expression, expression_text=expression_text,
+        )
         out.append(feature)
         if feature.indicator:
-            out.append(Feature(name=feature.indicator, aggregate=MISSING_INDICATOR, attribute=attribute, key=f"{key}.missing"))
+            out.append(Feature(
+                name=feature.indicator, aggregate=MISSING_INDICATOR, attribute=attribute, key=f"{key}.missing", expression=expression, expression_text=expression_text
+            ))
     names = [f.name for f in out]
     for f in out:
         if f.aggregate == MISSING_INDICATOR and names.count(f.name) > 1:

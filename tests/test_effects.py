@@ -363,6 +363,10 @@ def test_report_shows_lift_sensitivity_and_assumptions(study):
     assert e.sensitivity["sentence"] in text
     assert "adjusting for the numeric features" in text
     assert "risk ratio is" in text and "difference-in-differences" in text and "(6 months)" in text and "(3 months)" in text
+    # every assumption, and what the intervals are for, in plain words
+    for a in results.assumptions:
+        assert a in text
+    assert any(a.startswith("What the intervals are for") for a in results.assumptions)
 
 
 # ---------------------------------------------------------------------------------------------

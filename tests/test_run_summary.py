@@ -3,6 +3,7 @@
 
 from __future__ import annotations
 
+import html
 import json
 import shutil
 
@@ -100,3 +101,20 @@ def test_the_help_of_each_command_with_fail_on_prints(command, capsys):
     assert info.value.code == 0
     out = capsys.readouterr().out
     assert "--fail-on KINDS" in out and "90%" in out  # the kept kind's threshold, as written
+
+
+def test_a_placebo_effect_where_there_can_be_none_is_a_placebo_warning(demo_dir, tmp_path, capsys):
+    # The demo design at pre=3/post=2 placed 3 months earlier; its windows all end before the cohort enrolled.
+    spec = _study(demo_dir, tmp_path)
+    spec.write_text(spec.read_text().replace("pre = 6\npost = 3", "pre = 3\npost = 2") + "\n[placebo]\nmonths_before = 3\n")
+    code = main(["run", str(spec), "--out", str(tmp_path / "a"), "--quiet", "--fail-on", "placebo"])
+    err = capsys.readouterr().err
+    body = json.loads((tmp_path / "a" / "results.json").read_text())["placebo"]
+    missed = [e["outcome"] for e in body["effects"] if not e["ci_low"] <= 0.0 <= e["ci_high"]]
+    flagged = [line.split(": ")[2] for line in err.splitlines() if line.startswith("sqlmatch: warning [placebo]:")]
+    assert [f.split(":")[0] for f in flagged] == missed
+    assert missed and code == 1  # this design does miss (README: the placebo finds trips where there are none)
+    page = (tmp_path / "a" / "report.html").read_text()
+    assert "<h2>Placebo check</h2>" in page
+    for reading in body["readings"]:
+        assert html.escape(reading) in page

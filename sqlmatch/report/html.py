@@ -192,6 +192,19 @@ def render_html(r: StudyResults) -> str:
         parts += ["<h2>Overlap of propensity scores</h2>", f"<div class='plot'>{svg}</div>"]
     # ---- sensitivity
     parts += _sensitivity(r)
+    # ---- placebo check
+    if r.placebo is not None:
+        pw = r.placebo.results.windows
+        parts += [
+            "<h2>Placebo check</h2>",
+            f"<p>The same design placed {r.placebo.months_before} months earlier: the same enrolled units against the same "
+            f"comparison pool, features over {_e(pw['pre'][0])} .. {_e(pw['pre'][1])} and outcomes over {_e(pw['post'][0])} .. "
+            f"{_e(pw['post'][1])}, all before anyone in the cohort enrolled, so every true effect is zero.</p>",
+            f"<div class='plot'>{plots.effects_plot(r.placebo.results.effects)}</div>",
+            "<ul>",
+            *[f"<li>{_e(text)}</li>" for text in r.placebo.readings()],
+            "</ul>",
+        ]
     # ---- design and provenance
     parts += ["<h2>Design</h2>", "<table class='design'>"]
     parts += [f"<tr><td>{_e(k)}</td><td>{_e(v)}</td></tr>" for k, v in design_lines(r)]

@@ -178,6 +178,17 @@ def render_markdown(r: StudyResults, balance_image: str | None = None) -> str:
             f"{r.imbalance['l1_before']:.3f} before matching, {r.imbalance['l1_after']:.3f} after, on {r.imbalance['histogram']}.",
         ]
     lines += _sensitivity_section(r)
+    if r.placebo is not None:
+        pw = r.placebo.results.windows
+        lines += [
+            "",
+            "## Placebo check",
+            "",
+            f"The same design placed {r.placebo.months_before} months earlier: the same enrolled units against the same "
+            f"comparison pool, features over {pw['pre'][0]} .. {pw['pre'][1]} and outcomes over {pw['post'][0]} .. {pw['post'][1]}, "
+            "all before anyone in the cohort enrolled, so every true effect is zero.",
+            "",
+        ] + [f"- {text}" for text in r.placebo.readings()]
     lines += ["", "## Design", ""] + [f"- **{k}**: {v}" for k, v in design_lines(r)]
     prov = provenance_text(r)
     if prov:

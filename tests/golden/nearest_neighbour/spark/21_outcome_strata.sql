@@ -1,11 +1,13 @@
 -- sqlmatch study 'annual_pass', step 21: outcome_strata (spark)
--- Outcome sums per stratum and group among matched units.
+-- Outcome sums per stratum and group among matched units, with the feature sums and cross-products that adjust them by regression.
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_measures, sqlmatch.annual_pass_match_weights
 
 /* Outcomes per stratum and group among matched units:
    counts, sums, sums of squares (and, for ratio outcomes, the cross-product) from which the
-   effect and its variance are computed. Rows grow with the number of strata, never with the
+   effect and its variance are computed. Also the sums of the numeric features, their
+   cross-products and their products with each outcome, from which the within-stratum regression
+   adjustment is computed. Rows grow with the number of strata, never with the
    number of units. An outcome with a pre-window twin (the same measure before
    enrolment) also gets the sums of (outcome - twin), for the difference-in-differences. */
 SELECT
@@ -13,6 +15,41 @@ SELECT
   m.treated,
   COUNT(*) AS n_units,
   SUM(w.weight) AS sum_w,
+  SUM(m.pre_trips) AS pre_trips__xsum,
+  SUM(m.pre_minutes) AS pre_minutes__xsum,
+  SUM(m.pre_fare_per_trip) AS pre_fare_per_trip__xsum,
+  SUM(m.pre_active_days) AS pre_active_days__xsum,
+  SUM(m.pre_days_since_last) AS pre_days_since_last__xsum,
+  SUM(m.pre_trips * m.pre_trips) AS pre_trips__x__pre_trips,
+  SUM(m.pre_trips * m.pre_minutes) AS pre_trips__x__pre_minutes,
+  SUM(m.pre_trips * m.pre_fare_per_trip) AS pre_trips__x__pre_fare_per_trip,
+  SUM(m.pre_trips * m.pre_active_days) AS pre_trips__x__pre_active_days,
+  SUM(m.pre_trips * m.pre_days_since_last) AS pre_trips__x__pre_days_since_last,
+  SUM(m.pre_minutes * m.pre_minutes) AS pre_minutes__x__pre_minutes,
+  SUM(m.pre_minutes * m.pre_fare_per_trip) AS pre_minutes__x__pre_fare_per_trip,
+  SUM(m.pre_minutes * m.pre_active_days) AS pre_minutes__x__pre_active_days,
+  SUM(m.pre_minutes * m.pre_days_since_last) AS pre_minutes__x__pre_days_since_last,
+  SUM(m.pre_fare_per_trip * m.pre_fare_per_trip) AS pre_fare_per_trip__x__pre_fare_per_trip,
+  SUM(m.pre_fare_per_trip * m.pre_active_days) AS pre_fare_per_trip__x__pre_active_days,
+  SUM(m.pre_fare_per_trip * m.pre_days_since_last) AS pre_fare_per_trip__x__pre_days_since_last,
+  SUM(m.pre_active_days * m.pre_active_days) AS pre_active_days__x__pre_active_days,
+  SUM(m.pre_active_days * m.pre_days_since_last) AS pre_active_days__x__pre_days_since_last,
+  SUM(m.pre_days_since_last * m.pre_days_since_last) AS pre_days_since_last__x__pre_days_since_last,
+  SUM(m.pre_trips * m.post_trips) AS pre_trips__x__post_trips,
+  SUM(m.pre_minutes * m.post_trips) AS pre_minutes__x__post_trips,
+  SUM(m.pre_fare_per_trip * m.post_trips) AS pre_fare_per_trip__x__post_trips,
+  SUM(m.pre_active_days * m.post_trips) AS pre_active_days__x__post_trips,
+  SUM(m.pre_days_since_last * m.post_trips) AS pre_days_since_last__x__post_trips,
+  SUM(m.pre_trips * m.post_minutes) AS pre_trips__x__post_minutes,
+  SUM(m.pre_minutes * m.post_minutes) AS pre_minutes__x__post_minutes,
+  SUM(m.pre_fare_per_trip * m.post_minutes) AS pre_fare_per_trip__x__post_minutes,
+  SUM(m.pre_active_days * m.post_minutes) AS pre_active_days__x__post_minutes,
+  SUM(m.pre_days_since_last * m.post_minutes) AS pre_days_since_last__x__post_minutes,
+  SUM(m.pre_trips * m.active_last_month) AS pre_trips__x__active_last_month,
+  SUM(m.pre_minutes * m.active_last_month) AS pre_minutes__x__active_last_month,
+  SUM(m.pre_fare_per_trip * m.active_last_month) AS pre_fare_per_trip__x__active_last_month,
+  SUM(m.pre_active_days * m.active_last_month) AS pre_active_days__x__active_last_month,
+  SUM(m.pre_days_since_last * m.active_last_month) AS pre_days_since_last__x__active_last_month,
   SUM(m.post_trips) AS post_trips__sum,
   SUM(m.post_trips * m.post_trips) AS post_trips__sumsq,
   SUM(m.post_trips - m.pre_trips) AS post_trips__did_sum,
