@@ -13,6 +13,7 @@ from sqlmatch import aggregates
 from sqlmatch.design import provenance, study_design
 from sqlmatch.diagnostics import run_warnings
 from sqlmatch.estimators.adjusted import adjusted_att
+from sqlmatch.matching import method_for
 from sqlmatch.estimators.att import relative_lift, stratified_att
 from sqlmatch.estimators.binary import risk_ratio
 from sqlmatch.estimators.ratio import ratio_effect
@@ -148,7 +149,7 @@ def outcome_effect(
         else:
             lift = relative_lift(m.mean_treated, m.var_mean_treated, m.mean_control, m.var_mean_control)
             extra.update(lift=_interval(lift.estimate, lift.std_error, lift.ci_low, lift.ci_high))
-        if features:
+        if features and (not method or method_for(method).adjustable):
             # regression adjustment within strata on the numeric features (estimators/adjusted.py)
             adj = adjusted_att(*aggregates.cell_sums(matched, outcome.name, list(features)), list(features))
             a = adj.effect

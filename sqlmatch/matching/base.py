@@ -46,3 +46,7 @@ class MatchingMethod:
     warnings: Callable = _no_warnings
     # the words reports use for what the method builds ("strata" or "matched sets")
     groups_word: str = "strata"
+    # every unit of a group weighs the same within a stratum (true of strata and of matched sets
+    # listed once per match), so the outcome_strata sums are the weighted ones and the
+    # within-stratum regression adjustment (estimators/adjusted.py) applies
+    adjustable: bool = True
