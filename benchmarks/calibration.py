@@ -120,6 +120,9 @@ def replicate(task) -> tuple[list[dict], list[dict]]:
                 base = dict(process=process, seed=seed, method=method, kind=e.kind, seconds=seconds, n_treated=e.n_treated, n_control=e.n_control, **t)
                 records.append(dict(base, row=e.outcome, estimate=e.estimate, se=e.std_error, lo=e.ci_low, hi=e.ci_high))
                 records.append(dict(base, row=f"{e.outcome} (unmatched)", estimate=e.naive.estimate, se=e.naive.std_error, lo=e.naive.ci_low, hi=e.naive.ci_high))
+                if e.adjusted is not None:
+                    a = e.adjusted
+                    records.append(dict(base, row=f"{e.outcome} (regression-adjusted)", estimate=a.estimate, se=a.std_error, lo=a.ci_low, hi=a.ci_high))
                 if e.did is not None:
                     records.append(dict(base, row=f"{e.outcome} − {e.did_twin} (DiD)", estimate=e.did.estimate, se=e.did.std_error, lo=e.did.ci_low, hi=e.did.ci_high))
     finally:

@@ -23,6 +23,7 @@ from sqlmatch.results import Effect, Interval, MatchingSummary, StudyResults
 from sqlmatch.runner import RunOutput
 from sqlmatch.sensitivity import e_value, e_value_continuous, plain_words, robustness_value, rosenbaum_from_signed_rank
 from sqlmatch.spec import Spec
+from sqlmatch.subgroups import subgroup_effects
 
 
 def study_results(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
@@ -82,6 +83,7 @@ def study_results(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
         timings=output.timings,
         design=study_design(spec, r, output.model),
         provenance=provenance(spec, plan.dialect, output.timings),
+        subgroups=subgroup_effects(spec, plan.outcomes, r),
     )
 
 

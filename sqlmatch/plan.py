@@ -488,6 +488,18 @@ def balance_steps(ctx: PlanContext) -> list[Step]:
     return steps
 
 
+def subgroup_text(g) -> str:
+    return f"the levels of {g.feature}" if g.feature else f"{g.where_text}: yes / no"
+
+
+def subgroup_level_sql(g) -> str:
+    """The subgroup level of a unit (alias m), as SQL built from quoted pieces: a categorical
+    feature's level (NULL as '(missing)'), or 'yes' / 'no' for a condition (NULL counts as no)."""
+    if g.feature:
+        return f"COALESCE(m.{render.quote_name(g.feature)}, {render.literal('(missing)')})"
+    return f"CASE WHEN {render.expression_sql(g.where, alias='m')} THEN {render.literal('yes')} ELSE {render.literal('no')} END"
+
+
 def outcome_steps(ctx: PlanContext, outcomes, per_match: bool) -> list[Step]:
     """Outcome sums per stratum and group (matched and naive) and the regression cross-products."""
     spec = ctx.spec
@@ -512,6 +524,26 @@ def outcome_steps(ctx: PlanContext, outcomes, per_match: bool) -> list[Step]:
                 adjust_features=numeric if matched else [],
                 adjust_pairs=[(numeric[i], numeric[j]) for i, j in upper_pairs(len(numeric))] if matched else [],
                 adjust_outcomes=[o.name for o in outcomes if o.kind != "ratio"] if matched else [],
+                level=None,
+                measures_table=ctx.table("measures"),
+                weights_table=ctx.table("match_weights"),
+                weighted_table=ctx.table("weighted_units"),
+            )
+        )
+    for g in spec.subgroups:
+        steps.append(
+            ctx.query_step(
+                f"subgroup_{g.name}",
+                "outcome_strata",
+                reads=[ctx.display("measures"), ctx.display("match_weights")] if per_match else weighted,
+                purpose=f"Outcome sums per level of subgroup {g.name!r} ({subgroup_text(g)}), stratum and group among matched units.",
+                matched=True,
+                per_match=per_match,
+                outcomes=outcomes,
+                adjust_features=[],
+                adjust_pairs=[],
+                adjust_outcomes=[],
+                level=subgroup_level_sql(g),
                 measures_table=ctx.table("measures"),
                 weights_table=ctx.table("match_weights"),
                 weighted_table=ctx.table("weighted_units"),

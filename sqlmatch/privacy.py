@@ -27,7 +27,7 @@ def suppress_counts(record: dict, min_cell: int) -> dict:  # noqa: D401
 FLOW_ROWS = ("matched", "outside_support", "no_comparable")
 
 
-def _complement(parts: dict[str, int], total: int, min_cell: int) -> set[str]:
+def hidden_parts(parts: dict[str, int], total: int, min_cell: int) -> set[str]:
     """Which parts of a visible total to hide: the small ones, and, when exactly one is small, the
     smallest other non-zero part too, so the small one cannot be recovered by subtraction
     (complementary suppression). A small total hides everything."""
@@ -51,7 +51,7 @@ def sample_flow(matching, min_cell: int) -> dict[str, dict[str, int | None]]:
         matched = int(getattr(matching, f"n_{group}_matched"))
         outside = int(getattr(matching, f"n_{group}_outside_support"))
         parts = {"matched": matched, "outside_support": outside, "no_comparable": total - matched - outside}
-        hidden = _complement(parts, total, min_cell)
+        hidden = hidden_parts(parts, total, min_cell)
         out[group] = {"in_study": None if is_small(total, min_cell) else total, **{k: (None if k in hidden else v) for k, v in parts.items()}}
     return out
 
@@ -85,7 +85,7 @@ def suppress_histograms(histograms: dict | None, min_cell: int) -> dict | None:
             for key in ("n_units", "sum_w") if group == 1 else ("n_units",):
                 parts = {i: int(round(bins[i][key] or 0)) for i in idx}
                 if sum(parts.values()):
-                    hide |= _complement(parts, sum(parts.values()), min_cell)
+                    hide |= hidden_parts(parts, sum(parts.values()), min_cell)
         out[name] = [{**b, "n_units": None, "sum_w": None} if i in hide else b for i, b in enumerate(bins)]
     return out
 
@@ -108,7 +108,7 @@ def suppress_levels(balance: list, matching, min_cell: int) -> list:
             ("mean_treated_after", matching.n_treated_matched),
         ):
             parts = {i: int(round((getattr(balance[i], attr) or 0.0) * n)) for i in idx}
-            hide |= _complement(parts, n, min_cell)
+            hide |= hidden_parts(parts, n, min_cell)
     blank = dict(mean_treated_before=None, mean_control_before=None, smd_before=None, variance_ratio_before=None,
                  mean_treated_after=None, mean_control_after=None, smd_after=None, variance_ratio_after=None)
     return [replace(b, **blank) if i in hide else b for i, b in enumerate(balance)]

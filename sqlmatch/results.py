@@ -7,7 +7,7 @@ import json
 import math
 from dataclasses import asdict, dataclass, field
 
-from sqlmatch.privacy import count_text, flow_texts, sample_flow, suppress_counts as _suppress_counts, suppress_histograms, suppress_levels
+from sqlmatch.privacy import count_text, flow_texts, hidden_parts, sample_flow, suppress_counts as _suppress_counts, suppress_histograms, suppress_levels
 
 ASSUMPTIONS = (
     "No unmeasured confounding: after matching on the listed features, enrolment is as good as random. "
@@ -156,6 +156,54 @@ class MatchingSummary:
 
 
 @dataclass(frozen=True)
+class SubgroupLevel:
+    level: str
+    n_treated: int
+    n_control: int
+    effect: Interval
+    withheld: bool = False  # too few units to show (report.min_cell_size)
+
+
+@dataclass(frozen=True)
+class SubgroupEffects:
+    """One outcome's effect in each level of one subgroup, and Cochran's Q across the levels."""
+
+    subgroup: str
+    describes: str
+    outcome: str
+    levels: tuple[SubgroupLevel, ...]
+    q: float | None = None
+    df: int | None = None
+    p_value: float | None = None
+
+    def shown(self, min_cell: int) -> list[dict]:
+        """The levels as outputs show them: a level's counts and effect withheld when either group
+        is small, and (complementary suppression) one more level's when exactly one is withheld,
+        so the levels cannot be subtracted from the matched totals."""
+        hidden: set[str] = set()
+        for group in ("n_treated", "n_control"):
+            parts = {x.level: getattr(x, group) for x in self.levels}
+            hidden |= hidden_parts(parts, sum(parts.values()), min_cell)
+        hidden |= {x.level for x in self.levels if x.withheld}
+        if len(hidden) == 1 and len(self.levels) > 1:
+            rest = sorted((x.n_treated, x.level) for x in self.levels if x.level not in hidden)
+            if rest:
+                hidden.add(rest[0][1])
+        out = []
+        for x in self.levels:
+            if x.level in hidden:
+                out.append({"level": x.level, "n_treated": None, "n_control": None, **{k: None for k in asdict(x.effect)}, "withheld": True})
+            else:
+                out.append({"level": x.level, "n_treated": x.n_treated, "n_control": x.n_control, **{k: _num(v) for k, v in asdict(x.effect).items()}, "withheld": False})
+        return out
+
+    def to_dict(self, min_cell: int) -> dict:
+        levels = self.shown(min_cell)
+        return {"subgroup": self.subgroup, "describes": self.describes, "outcome": self.outcome, "levels": levels,
+                "heterogeneity": {"q": _num(self.q), "df": self.df, "p_value": _num(self.p_value)}}
+
+
+@dataclass(frozen=True)
 class PlaceboCheck:
     """The same design placed `months_before` earlier ([placebo]): the cohort is still the treated
     group, but every window it reads ends before anyone in it enrolled, so each true effect is zero."""
@@ -212,6 +260,7 @@ class StudyResults:
     design: dict | None = None  # what was compared and how (sqlmatch.design.study_design)
     provenance: dict | None = None  # sqlmatch version, spec hash, plan fingerprint, engine, time
     placebo: PlaceboCheck | None = None  # [placebo]: the same design before anyone enrolled
+    subgroups: list[SubgroupEffects] = field(default_factory=list)  # [[subgroups]]
 
     def effect(self, outcome: str) -> Effect:
         for e in self.effects:
@@ -318,6 +367,8 @@ class StudyResults:
             out["demo_truth"] = self.demo_truth
         if self.placebo is not None:
             out["placebo"] = self.placebo.to_dict()
+        if self.subgroups:
+            out["subgroups"] = [s.to_dict(self.min_cell_size) for s in self.subgroups]
         return out
 
     def _matching_dict(self) -> dict:

@@ -155,6 +155,18 @@ class Outcome:
 
 
 @dataclass(frozen=True)
+class Subgroup:
+    """[[subgroups]]: effects per level of a categorical feature, or for the units a condition over
+    the features holds for ("yes") and the others ("no")."""
+
+    name: str
+    feature: str | None = None
+    where: exp.Expression | None = field(default=None, compare=False)
+    where_text: str | None = None
+    key: str = field(default="", compare=False)
+
+
+@dataclass(frozen=True)
 class Matching:
     """[matching]. The first five fields are read here; the rest are the options of one method
     each, read and checked by that method's module (matching/<method>.py, read_options)."""
@@ -256,6 +268,7 @@ class Spec:
 
     # [placebo] months_before: the placebo study runs the same design this many months earlier
     placebo_months: int | None = None
+    subgroups: tuple[Subgroup, ...] = ()
     # in a placebo study: the real study's windows, which still say who enrolled (treated) and
     # who is a control; `windows` then holds the shifted feature and outcome windows
     enrolment_windows_of: Windows | None = None
@@ -386,6 +399,39 @@ def _windows(cohort: str, unit: str, pre: int, post: int, post_starts: str = "af
         post_end=post_end,
         post_starts=post_starts,
     )
+
+
+def _subgroups(value: Any, features: tuple[Feature, ...]) -> tuple[Subgroup, ...]:
+    if value is None:
+        return ()
+    out: list[Subgroup] = []
+    names = [f.name for f in features]
+    for i, item in enumerate(_list_of_tables(value, "subgroups")):
+        key = f"subgroups[{i}]"
+        _check_keys(item, key, {"name", "feature", "where"})
+        feature, where_text = item.get("feature"), item.get("where")
+        if (feature is None) == (where_text is None):
+            raise SpecError(key, "needs exactly one of feature (a categorical feature) or where (a condition over the features).",
+                            'e.g. feature = "age_band", or name = "frequent" with where = "pre_trips >= 10".')
+        if feature is not None:
+            f = next((f for f in features if f.name == feature), None)
+            if f is None or not f.categorical:
+                cats = ", ".join(f.name for f in features if f.categorical) or "(none)"
+                raise SpecError(f"{key}.feature", f"{feature!r} is not a categorical feature.", f"use one of: {cats}; or a condition with where = \"...\".")
+            name = _name(item.get("name", feature), f"{key}.name")
+            out.append(Subgroup(name=name, feature=feature, key=key))
+        else:
+            where = parse_filter(where_text, f"{key}.where")
+            unknown = [c for c in filter_columns(where) if c not in names]
+            if unknown:
+                raise SpecError(f"{key}.where", f"names {unknown[0]!r}, which is not a feature.", f"a subgroup condition reads the features: {', '.join(names)}.")
+            name = _name(_str(item, key, "name"), f"{key}.name")
+            out.append(Subgroup(name=name, where=where, where_text=where_text, key=key))
+    seen = [s.name for s in out]
+    for s in out:
+        if seen.count(s.name) > 1:
+            raise SpecError(f"{s.key}.name", f"{s.name!r} names two subgroups.", "give each subgroup its own name.")
+    return tuple(out)
 
 
 def _placebo_windows(windows: Windows, months: int) -> Windows:
@@ -536,7 +582,7 @@ def load_spec(path: str | Path) -> Spec:
 
 def parse_spec(raw: dict, source_path: Path | None = None) -> Spec:
     _check_values(raw, "")
-    _check_keys(raw, "", {"study", "units", "events", "treatment", "windows", "eligibility", "features", "outcomes", "matching", "propensity", "effect", "placebo", "report"})
+    _check_keys(raw, "", {"study", "units", "events", "treatment", "windows", "eligibility", "features", "outcomes", "matching", "propensity", "effect", "placebo", "subgroups", "report"})
 
     study = _table(raw, "study")
     _check_keys(study, "study", {"name", "work_schema", "database", "results_table"})
@@ -623,6 +669,7 @@ def parse_spec(raw: dict, source_path: Path | None = None) -> Spec:
     _check_keys(effect, "effect", {"regression_adjustment"})
     regression_adjustment = read_bool(effect, "effect", "regression_adjustment", default=False)
     placebo_months = _placebo(raw.get("placebo"), windows)
+    subgroups = _subgroups(raw.get("subgroups"), features)
 
     spec = Spec(
         name=name,
@@ -640,6 +687,7 @@ def parse_spec(raw: dict, source_path: Path | None = None) -> Spec:
         treatment_words=described_as,
         regression_adjustment=regression_adjustment,
         placebo_months=placebo_months,
+        subgroups=subgroups,
         windows=windows,
         filters=filters,
         filter_texts=tuple(filter_texts),

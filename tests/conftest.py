@@ -33,3 +33,13 @@ def demo_dir(tmp_path_factory) -> Path:
     out = tmp_path_factory.mktemp("demo_small")
     build_demo(out, riders=SMALL_RIDERS, seed=20260301)
     return out
+
+
+@pytest.fixture
+def demo_db(demo_dir, tmp_path) -> Path:
+    """A private copy of the small demo warehouse, for a test that writes to it or runs a study."""
+    import shutil
+
+    path = tmp_path / "bikeshare.duckdb"
+    shutil.copyfile(demo_dir / "bikeshare.duckdb", path)
+    return path

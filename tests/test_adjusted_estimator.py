@@ -83,11 +83,10 @@ def test_a_column_constant_within_cells_gets_no_slope(men):
     assert got.effect.estimate == pytest.approx(fit.params["t"], rel=1e-9)
 
 
-def test_the_run_adjusts_as_statsmodels_does_on_the_matched_units(tmp_path, demo_dir):
+def test_the_run_adjusts_as_statsmodels_does_on_the_matched_units(demo_db):
     """End to end on the demo: the adjusted effect from the warehouse's sums equals statsmodels'
     cell-intercept contrast fitted on the matched units' rows (read here only to check); with
     [effect] regression_adjustment = true it becomes the headline and the plain one is kept."""
-    import shutil
     import tomllib
 
     import duckdb
@@ -97,8 +96,7 @@ def test_the_run_adjusts_as_statsmodels_does_on_the_matched_units(tmp_path, demo
 
     from conftest import DEMO_SPEC
 
-    db = tmp_path / "bikeshare.duckdb"
-    shutil.copyfile(demo_dir / "bikeshare.duckdb", db)
+    db = demo_db
     raw = tomllib.loads(DEMO_SPEC.read_text())
     raw["study"]["database"] = str(db)
     spec = parse_spec(raw)

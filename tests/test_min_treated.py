@@ -136,10 +136,9 @@ def test_bad_min_treated_on_the_command_line(database, tmp_path, capsys):
 
 
 
-def test_few_treated_kept_says_the_effect_is_for_them_only(tmp_path, demo_dir):
+def test_few_treated_kept_says_the_effect_is_for_them_only(demo_db):
     """Fine cut points keep part of the cohort: the warning says the effect is for the kept units,
     with their feature means (the balance table's treated-after means) beside the cohort's."""
-    import shutil
     import tomllib
 
     from sqlmatch import api
@@ -147,10 +146,8 @@ def test_few_treated_kept_says_the_effect_is_for_them_only(tmp_path, demo_dir):
 
     from conftest import DEMO_SPEC
 
-    db = tmp_path / "bikeshare.duckdb"
-    shutil.copyfile(demo_dir / "bikeshare.duckdb", db)
     raw = tomllib.loads(DEMO_SPEC.read_text())
-    raw["study"]["database"] = str(db)
+    raw["study"]["database"] = str(demo_db)
     baseline = api.run(parse_spec(raw))
     assert not any("were matched: every effect" in w for w in baseline.warnings)  # the demo keeps all 1,458
     numeric = [f["name"] for f in raw["features"] if f.get("type") != "categorical" and "twin" not in f]

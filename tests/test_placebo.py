@@ -7,7 +7,6 @@ from __future__ import annotations
 
 import datetime as dt
 import json
-import shutil
 import tomllib
 
 import duckdb
@@ -30,10 +29,8 @@ def raw_spec(db, **placebo) -> dict:
 
 
 @pytest.fixture
-def db(demo_dir, tmp_path):
-    path = tmp_path / "bikeshare.duckdb"
-    shutil.copyfile(demo_dir / "bikeshare.duckdb", path)
-    return path
+def db(demo_db):
+    return demo_db
 
 
 def test_placebo_windows_end_before_the_cohort_and_the_treated_are_the_cohort(db, tmp_path):

@@ -205,3 +205,21 @@ def test_the_enrolled_outline_breaks_at_a_withheld_bin():
     outlines = re.findall(rf'<path d="([^"]+)" stroke="{plots.TREATED}" fill="none"', svg)
     panels = [d for d in outlines if d.count("H") > 1]  # the legend's swatch is one short path
     assert len(panels) == 2 and all(d.count("M") == 2 for d in panels)  # bins 0-1, then 3-5: no line through bin 2
+
+
+def test_the_html_shows_the_subgroup_effects_the_markdown_shows(demo_db):
+    from sqlmatch.spec import parse_spec
+
+    raw = tomllib.loads(DEMO_SPEC.read_text())
+    raw["study"]["database"] = str(demo_db)
+    raw["subgroups"] = [{"feature": "age_band"}]
+    results = api.run(parse_spec(raw), keep_tables=False)
+    page, md = render_html(results), render_markdown(results)
+    assert "<h2>Effects by subgroup</h2>" in page
+    shown = results.subgroups[0].shown(results.min_cell_size)
+    assert shown and not any(x["withheld"] for x in shown)
+    for x in shown:
+        cell = f"[{x['ci_low']:,.3f}, {x['ci_high']:,.3f}]"
+        assert f"{x['estimate']:,.3f} {cell}" in md
+        assert f"<td class='num'>{x['estimate']:,.3f}</td><td class='ci'>{cell}</td>" in page
+    assert "Cochran's Q" in page

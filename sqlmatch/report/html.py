@@ -192,6 +192,32 @@ def render_html(r: StudyResults) -> str:
         parts += ["<h2>Overlap of propensity scores</h2>", f"<div class='plot'>{svg}</div>"]
     # ---- sensitivity
     parts += _sensitivity(r)
+    # ---- subgroups (levels as SubgroupEffects.shown gives them: small ones withheld)
+    if r.subgroups:
+        parts += [
+            "<h2>Effects by subgroup</h2>",
+            "<table><tr><th>subgroup</th><th>level</th><th>outcome</th><th>effect</th><th>95% interval</th><th>enrolled</th><th>comparison</th></tr>",
+        ]
+        for sg in r.subgroups:
+            for x in sg.shown(mc):
+                if x["withheld"]:
+                    effect, interval = "withheld (few units)", ""
+                elif x["estimate"] is None:
+                    effect, interval = "no estimate (a group is empty)", ""
+                else:
+                    effect, interval = _fmt(x["estimate"]), _ci(x["ci_low"], x["ci_high"])
+                n_t = f"<{mc}" if x["n_treated"] is None else f"{x['n_treated']:,}"
+                n_c = f"<{mc}" if x["n_control"] is None else f"{x['n_control']:,}"
+                parts.append(
+                    f"<tr><td>{_e(sg.subgroup)}</td><td>{_e(x['level'])}</td><td>{_e(sg.outcome)}</td><td class='num'>{_e(effect)}</td>"
+                    f"<td class='ci'>{interval}</td><td class='num'>{_e(n_t)}</td><td class='num'>{_e(n_c)}</td></tr>"
+                )
+        parts.append("</table><ul>")
+        for sg in r.subgroups:
+            if sg.p_value is not None:
+                verdict = "the effect differs between the levels more than chance would explain" if sg.p_value < 0.05 else "no clear difference between the levels"
+                parts.append(f"<li>{_e(sg.subgroup)}, {_e(sg.outcome)}: Cochran's Q = {sg.q:.2f} on {sg.df} df, p = {sg.p_value:.2g} ({verdict}).</li>")
+        parts.append("<li>With many subgroups and outcomes, some differences are chance; a subgroup chosen after seeing the results proves little.</li></ul>")
     # ---- placebo check
     if r.placebo is not None:
         pw = r.placebo.results.windows

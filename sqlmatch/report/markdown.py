@@ -178,6 +178,24 @@ def render_markdown(r: StudyResults, balance_image: str | None = None) -> str:
             f"{r.imbalance['l1_before']:.3f} before matching, {r.imbalance['l1_after']:.3f} after, on {r.imbalance['histogram']}.",
         ]
     lines += _sensitivity_section(r)
+    if r.subgroups:
+        lines += ["", "## Effects by subgroup", "", "| subgroup | level | outcome | effect [95% CI] | enrolled | comparison |", "|---|---|---|---|---|---|"]
+        for sg in r.subgroups:
+            for x in sg.shown(mc):
+                effect = "withheld (few units)" if x["withheld"] else (
+                    f"{_x(x['estimate'])} [{_x(x['ci_low'])}, {_x(x['ci_high'])}]" if x["estimate"] is not None else "no estimate (a group is empty)"
+                )
+                n_t = f"<{mc}" if x["n_treated"] is None else f"{x['n_treated']:,}"
+                n_c = f"<{mc}" if x["n_control"] is None else f"{x['n_control']:,}"
+                lines.append(f"| {sg.subgroup} | {x['level']} | {sg.outcome} | {effect} | {n_t} | {n_c} |")
+        lines.append("")
+        for sg in r.subgroups:
+            if sg.p_value is not None:
+                lines.append(
+                    f"- {sg.subgroup}, {sg.outcome}: Cochran's Q = {sg.q:.2f} on {sg.df} df, p = {sg.p_value:.2g} "
+                    + ("(the effect differs between the levels more than chance would explain)." if sg.p_value < 0.05 else "(no clear difference between the levels).")
+                )
+        lines.append("- With many subgroups and outcomes, some differences are chance; a subgroup chosen after seeing the results proves little.")
     if r.placebo is not None:
         pw = r.placebo.results.windows
         lines += [
