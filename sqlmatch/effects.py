@@ -14,7 +14,7 @@ from sqlmatch.design import provenance, study_design
 from sqlmatch.diagnostics import run_warnings
 from sqlmatch.estimators.adjusted import adjusted_att
 from sqlmatch.matching import method_for
-from sqlmatch.estimators.att import relative_lift, stratified_att
+from sqlmatch.estimators.att import relative_lift, stratified_att, stratum_weights
 from sqlmatch.estimators.binary import risk_ratio
 from sqlmatch.estimators.ratio import ratio_effect
 from sqlmatch.estimators.regression import wls_from_moments
@@ -51,7 +51,7 @@ def study_results(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
     effects = [
         outcome_effect(
             o, r["outcome_strata"], r["outcome_unmatched"], r.get("outcome_regression"), numeric, spec.matching.method, r.get("pair_signed_rank"),
-            spec.treatment_words, adjust=spec.regression_adjustment,
+            spec.treatment_words, adjust=spec.regression_adjustment, estimand=spec.matching.estimand,
         )
         for o in plan.outcomes
     ]
@@ -88,16 +88,17 @@ def study_results(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
 
 
 def outcome_effect(
-    outcome, matched, unmatched, regression=None, features=(), method: str = "", pair_ranks=None, treatment_words: str = "enrolment", adjust: bool = False
+    outcome, matched, unmatched, regression=None, features=(), method: str = "", pair_ranks=None, treatment_words: str = "enrolment", adjust: bool = False,
+    estimand: str = "att",
 ) -> Effect:
     """One outcome's effect, relative lift, risk ratio (binary), difference-in-differences (an
     outcome with a pre-window twin) and sensitivity figures, all from aggregates."""
     rr = None
     extra: dict = {}
     if outcome.kind == "ratio":
-        m = ratio_effect(*aggregates.ratio_sums(matched, outcome.name), singleton="pool")
-        n = ratio_effect(*aggregates.ratio_sums(unmatched, outcome.name), singleton="pool")
         t_sums, c_sums = aggregates.ratio_sums(matched, outcome.name)
+        m = ratio_effect(t_sums, c_sums, weights=stratum_weights(t_sums.n, c_sums.n, estimand), singleton="pool")
+        n = ratio_effect(*aggregates.ratio_sums(unmatched, outcome.name), singleton="pool")
         fields = dict(
             estimator="ratio of weighted sums, delta-method variance",
             estimate=m.estimate,
@@ -113,7 +114,7 @@ def outcome_effect(
         extra.update(lift=_interval(m.lift, m.lift_std_error, m.lift_ci_low, m.lift_ci_high))
     else:
         t_mom, c_mom = aggregates.outcome_moments(matched, outcome.name)
-        m = stratified_att(t_mom, c_mom)
+        m = stratified_att(t_mom, c_mom, estimand=estimand)
         n = stratified_att(*aggregates.outcome_moments(unmatched, outcome.name))
         fields = dict(
             estimator="stratified difference in means" + (" (risk difference)" if outcome.kind == "binary" else ""),
@@ -143,7 +144,7 @@ def outcome_effect(
             # Events per stratum and group are the sums of the 0/1 outcome; ATT stratum weights
             # n_1s / n_1 over the strata holding both groups (estimators/binary.py).
             keep = (t_mom.n > 0) & (c_mom.n > 0)
-            rr = risk_ratio(t_mom.total[keep], t_mom.n[keep], c_mom.total[keep], c_mom.n[keep])
+            rr = risk_ratio(t_mom.total[keep], t_mom.n[keep], c_mom.total[keep], c_mom.n[keep], weights=stratum_weights(t_mom.n[keep], c_mom.n[keep], estimand))
             extra.update(
                 risk_ratio=_interval(rr.estimate, rr.std_error, rr.ci_low, rr.ci_high),
                 lift=_interval(rr.lift, rr.std_error, rr.lift_ci_low, rr.lift_ci_high),
@@ -153,7 +154,7 @@ def outcome_effect(
             extra.update(lift=_interval(lift.estimate, lift.std_error, lift.ci_low, lift.ci_high))
         if features and (not method or method_for(method).adjustable):
             # regression adjustment within strata on the numeric features (estimators/adjusted.py)
-            adj = adjusted_att(*aggregates.cell_sums(matched, outcome.name, list(features)), list(features))
+            adj = adjusted_att(*aggregates.cell_sums(matched, outcome.name, list(features)), list(features), estimand=estimand)
             a = adj.effect
             extra.update(adjusted=_interval(a.estimate, a.std_error, a.ci_low, a.ci_high), adjusted_for=adj.adjusted_for)
             if adjust:
@@ -168,12 +169,13 @@ def outcome_effect(
         if getattr(outcome, "twin", None):
             # Difference-in-differences on the matched sample: the same stratified estimator
             # applied to (outcome - twin), per-stratum sums from the outcome_strata query.
-            did = stratified_att(*aggregates.outcome_moments(matched, outcome.name, "did"))
+            did = stratified_att(*aggregates.outcome_moments(matched, outcome.name, "did"), estimand=estimand)
             extra.update(did_twin=outcome.twin, did=_interval(did.estimate, did.std_error, did.ci_low, did.ci_high))
     sensitivity = outcome_sensitivity(outcome, fields, rr, regression, list(features), method, pair_ranks, treatment_words)
     return Effect(
         outcome=outcome.name,
         kind=outcome.kind,
+        estimand=estimand,
         **fields,
         naive=_interval(n.estimate, n.std_error, n.ci_low, n.ci_high),
         **extra,

@@ -104,6 +104,9 @@ class Effect:
     n_control: int
     mean_treated: float | None
     mean_control: float | None
+    # whose effect: att on the enrolled (treated), atc on the comparison units, ate on everyone in
+    # the matched strata ([matching] estimand)
+    estimand: str = "att"
     # the same comparison before matching
     naive: Interval = Interval(None)
     # relative lift: effect / comparison mean (= mean_treated / mean_control - 1); binary: RR - 1

@@ -176,6 +176,7 @@ class Matching:
     exact: tuple[str, ...] = ()  # categorical features matched exactly on top of the score
     common_support: bool = True  # drop units outside the overlap of treated and control scores
     min_treated: int = 10  # refuse a run that matches fewer treated units than this (see _matching)
+    estimand: str = "att"  # att: on the treated | atc: on the controls | ate: on everyone (methods list theirs)
     # coarsened_exact
     cut_points: dict[str, tuple[float, ...]] = field(default_factory=dict)
     coarsen: str | None = None  # automatic cut points for numeric features without explicit ones
@@ -825,7 +826,7 @@ def _matching(value: Any, features: tuple[Feature, ...]) -> Matching:
     if not isinstance(value, dict):
         raise SpecError("matching", "must be a table.", "write it as [matching].")
     method_keys = {k for m in _matching_methods.METHODS.values() for k in m.option_keys}
-    _check_keys(value, "matching", {"method", "on", "exact", "common_support", "min_treated"} | method_keys)
+    _check_keys(value, "matching", {"method", "on", "exact", "common_support", "min_treated", "estimand"} | method_keys)
     old = value.get("method")
     if isinstance(old, str) and old in RENAMED_METHODS:
         raise SpecError("matching.method", f"{old!r} is now called {RENAMED_METHODS[old]!r}.", f"write method = \"{RENAMED_METHODS[old]}\".")
@@ -857,11 +858,16 @@ def _matching(value: Any, features: tuple[Feature, ...]) -> Matching:
             f"must be a whole number of treated units >= 1, got {min_treated!r}.",
             "write e.g. min_treated = 10 under [matching] (1 accepts any run that matches a treated unit).",
         )
+    estimand = _choice(value, "matching", "estimand", ("att", "atc", "ate"), default="att")
+    supported = _matching_methods.METHODS[method].estimands
+    if estimand not in supported:
+        raise SpecError("matching.estimand", f"{method} estimates {', '.join(e.upper() for e in supported)} only, not {estimand.upper()}.",
+                        f"use estimand = \"att\", or a method that weights strata: {', '.join(m.name for m in _matching_methods.METHODS.values() if estimand in m.estimands)}.")
     # each method reads and checks its own keys (matching/<method>.py read_options)
     options: dict[str, Any] = {}
     for m in _matching_methods.METHODS.values():
         options.update(m.read_options(value, OptionInput(features=features, on=tuple(on), chosen=m.name == method)))
-    return Matching(method=method, on=tuple(on), exact=tuple(exact), common_support=support, min_treated=min_treated, **options)
+    return Matching(method=method, on=tuple(on), exact=tuple(exact), common_support=support, min_treated=min_treated, estimand=estimand, **options)
 
 
 def _with_indicators(names: list[str], features: tuple[Feature, ...]) -> list[str]:

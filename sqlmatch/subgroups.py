@@ -19,7 +19,7 @@ from scipy import stats
 
 from sqlmatch import aggregates
 from sqlmatch.engines.base import QueryResult
-from sqlmatch.estimators.att import stratified_att
+from sqlmatch.estimators.att import stratified_att, stratum_weights
 from sqlmatch.estimators.ratio import RatioSums, ratio_effect
 
 RATIO_FIELDS = ("n", "sum_y", "sum_x", "sum_yy", "sum_xx", "sum_xy")
@@ -49,6 +49,7 @@ def cochran_q(estimates, std_errors) -> tuple[float | None, int | None, float | 
 
 def subgroup_effects(spec, outcomes, r) -> list[SubgroupEffects]:
     out = []
+    estimand = spec.matching.estimand
     for g in spec.subgroups:
         result = r[f"subgroup_{g.name}"]
         i = result.columns.index("subgroup_level")
@@ -64,7 +65,7 @@ def subgroup_effects(spec, outcomes, r) -> list[SubgroupEffects]:
                     n_t, n_c = int(t.n.sum()), int(c.n.sum())
                     ok = bool(keep.any())
                     try:
-                        m = ratio_effect(t, c, singleton="pool") if ok else None
+                        m = ratio_effect(t, c, weights=stratum_weights(t.n, c.n, estimand), singleton="pool") if ok else None
                     except ValueError:  # e.g. every cell of a group holds one unit: no variance
                         m = None
                 else:
@@ -72,7 +73,7 @@ def subgroup_effects(spec, outcomes, r) -> list[SubgroupEffects]:
                     keep = (t.n > 0) & (c.n > 0)
                     n_t, n_c = int(t.n[keep].sum()), int(c.n[keep].sum())
                     ok = bool(keep.any())
-                    m = stratified_att(t, c) if ok else None
+                    m = stratified_att(t, c, estimand=estimand) if ok else None
                 small = is_small(n_t, spec.min_cell_size) or is_small(n_c, spec.min_cell_size)
                 if m is None or small:
                     rows.append(SubgroupLevel(str(level), n_t, n_c, Interval(None), withheld=small))

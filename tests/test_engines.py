@@ -184,6 +184,26 @@ def test_postgres_runs_the_demo_study_with_duckdbs_numbers(postgres, duckdb_resu
     assert set(engine.table_names(f"{tag}_work")) >= {"annual_pass_units", "annual_pass_measures", "annual_pass_weighted_units"}
 
 
+def extended_spec(schema: str, work_schema: str):
+    """The demo study with this round's additions that compile to new SQL: an attribute given as
+    an expression, the ATE weights, regression adjustment and two subgroups."""
+    raw = demo_spec(schema, work_schema)._raw
+    raw["features"].append({"name": "young", "aggregate": "attribute", "expression": "age_band IN ('16-24', '25-34')"})
+    raw["matching"]["estimand"] = "ate"
+    raw["effect"] = {"regression_adjustment": True}
+    raw["subgroups"] = [{"feature": "home_district"}, {"name": "frequent", "where": "pre_trips >= 10"}]
+    return parse_spec(raw)
+
+
+def test_postgres_runs_the_extended_study_with_duckdbs_numbers(postgres, demo_db):
+    engine, tag = postgres
+    with DuckDBEngine(demo_db) as duck:
+        want = _comparable(api.run(extended_spec("main", "sqlmatch_extended"), engine=duck))
+    assert want["subgroups"] and want["effects"][0]["estimand"] == "ate" and want["effects"][0]["unadjusted"]
+    got = _comparable(api.run(extended_spec(tag, f"{tag}_work"), engine=engine))
+    assert_same_numbers(got, want)
+
+
 def test_postgres_failed_run_drops_its_tables_and_the_connection_stays_usable(postgres):
     """A statement the engine refuses mid-run: the error is one line, the work tables are dropped
     (the connection must not be left in an aborted transaction for that) and the engine still works."""

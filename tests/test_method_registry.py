@@ -16,7 +16,7 @@ from sqlmatch.spec import Matching, parse_spec
 
 from conftest import DEMO_SPEC
 
-COMMON = {"method", "on", "exact", "common_support", "min_treated"}
+COMMON = {"method", "on", "exact", "common_support", "min_treated", "estimand"}
 ROOT = Path(__file__).resolve().parents[1]
 
 

@@ -79,7 +79,7 @@ class AdjustedEstimate:
     adjusted_for: tuple[str, ...]  # the columns that got a slope
 
 
-def adjusted_att(treated: CellSums, control: CellSums, names, tol: float = 1e-10) -> AdjustedEstimate:
+def adjusted_att(treated: CellSums, control: CellSums, names, tol: float = 1e-10, estimand: str = "att") -> AdjustedEstimate:
     names = tuple(names)
     both = (treated.n > 0) & (control.n > 0)  # the strata the estimate uses
     sub = lambda c: CellSums(*(getattr(c, f)[both] for f in ("n", "sum_x", "sum_xx", "sum_y", "sum_yy", "sum_xy")))  # noqa: E731
@@ -103,5 +103,5 @@ def adjusted_att(treated: CellSums, control: CellSums, names, tol: float = 1e-10
     gamma = np.zeros(len(names))
     if keep:
         gamma[keep] = np.linalg.solve(sxx[np.ix_(keep, keep)], sxy[keep])
-    effect = stratified_att(t.adjusted(gamma), c.adjusted(gamma))
+    effect = stratified_att(t.adjusted(gamma), c.adjusted(gamma), estimand=estimand)
     return AdjustedEstimate(effect=effect, slopes=gamma, adjusted_for=tuple(names[j] for j in keep))

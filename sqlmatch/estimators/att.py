@@ -1,9 +1,11 @@
-"""Effect on the treated from per-stratum outcome aggregates (no row-level data).
+"""Effect from per-stratum outcome aggregates (no row-level data).
 
 Subclassification estimator and its variance (Imbens & Rubin 2015, Causal Inference for
 Statistics, Social, and Biomedical Sciences, ch. 17):
-    tau = sum_s w_s (ybar_1s - ybar_0s),        w_s = n_1s / n_1
+    tau = sum_s w_s (ybar_1s - ybar_0s)
     V   = sum_s w_s^2 (s2_1s / n_1s + s2_0s / n_0s)
+with the stratum weights of the estimand: w_s = n_1s / n_1 for the effect on the treated (ATT),
+n_0s / n_0 on the controls (ATC), n_s / n for everyone in the matched strata (ATE).
 With one stratum it is the difference in means with the unpooled (Welch) variance.
 """
 
@@ -65,13 +67,24 @@ class StratifiedEstimate:
     var_mean_control: float = math.nan  # sum_s w_s^2 s2_0s / n_0s
 
 
-def stratified_att(treated: StratumMoments, control: StratumMoments, level: float = 0.95) -> StratifiedEstimate:
-    """Subclassification ATT (Imbens & Rubin 2015, ch. 17) from aligned per-stratum moments."""
+ESTIMANDS = ("att", "atc", "ate")
+
+
+def stratum_weights(n_treated: np.ndarray, n_control: np.ndarray, estimand: str = "att") -> np.ndarray:
+    """w_s of the estimand over the given strata (Imbens & Rubin 2015, ch. 17), summing to 1."""
+    n1, n0 = np.asarray(n_treated, float), np.asarray(n_control, float)
+    size = {"att": n1, "atc": n0, "ate": n1 + n0}[estimand]
+    return size / size.sum()
+
+
+def stratified_att(treated: StratumMoments, control: StratumMoments, level: float = 0.95, estimand: str = "att") -> StratifiedEstimate:
+    """Subclassification effect (Imbens & Rubin 2015, ch. 17) from aligned per-stratum moments:
+    on the treated by default, or the estimand's stratum weights (att, atc, ate)."""
     if treated.n.shape != control.n.shape:
         raise ValueError("treated and control moments must cover the same strata")
     keep = (treated.n > 0) & (control.n > 0)
     n1 = treated.n[keep].sum()
-    w = treated.n[keep] / n1
+    w = stratum_weights(treated.n[keep], control.n[keep], estimand)
     m1, m0 = treated.mean[keep], control.mean[keep]
     tau = float(np.sum(w * (m1 - m0)))
     v1, v0 = treated.variance()[keep], control.variance()[keep]

@@ -50,3 +50,5 @@ class MatchingMethod:
     # listed once per match), so the outcome_strata sums are the weighted ones and the
     # within-stratum regression adjustment (estimators/adjusted.py) applies
     adjustable: bool = True
+    # the effects it can estimate (spec key matching.estimand): strata can be weighted to any group
+    estimands: tuple[str, ...] = ("att",)

@@ -110,4 +110,5 @@ METHOD = MatchingMethod(
     loosen="coarser cut points (matching.cut_points or matching.coarsen_bins) or fewer features in matching.on",
     option_keys=OPTION_KEYS,
     read_options=read_options,
+    estimands=("att", "atc", "ate"),
 )

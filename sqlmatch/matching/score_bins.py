@@ -66,4 +66,5 @@ METHOD = MatchingMethod(
     loosen="fewer exact features (matching.exact) or fewer matching.bins",
     option_keys=("bins",),
     read_options=read_options,
+    estimands=("att", "atc", "ate"),
 )

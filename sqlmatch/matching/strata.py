@@ -56,6 +56,7 @@ def strata_steps(ctx, axes: list[Axis], source: str, title: str, cell_text: str)
             source_table=ctx.table(source),
             # cells from the measures themselves (cut points known when compiling): no join back
             inline=source == "measures",
+            estimand=ctx.spec.matching.estimand,
             cells_table=ctx.table("cells"),
         ),
         ctx.query_step(

@@ -10,6 +10,7 @@ import math
 
 from sqlmatch.privacy import suppress_histograms, suppress_levels
 from sqlmatch.report import plots
+from sqlmatch.report.markdown import ESTIMAND_HEADINGS
 from sqlmatch.report.words import design_lines, effect_sentence, flow_segments, groups_sentence, provenance_text, sample_rows, window_length
 from sqlmatch.results import StudyResults, warning_kind
 
@@ -91,7 +92,7 @@ def render_html(r: StudyResults) -> str:
         parts += ["</ul></div>"]
     # ---- effects
     parts += [
-        "<h2>Effects on the enrolled</h2>",
+        f"<h2>{_e(ESTIMAND_HEADINGS.get(r.effects[0].estimand if r.effects else 'att', 'Effects on the enrolled'))}</h2>",
         f"<div class='plot'>{plots.effects_plot(r.effects, r.demo_truth)}</div>",
         "<table><tr><th>outcome</th><th>effect</th><th>95% interval</th><th>relative lift</th><th>lift 95% interval</th>"
         "<th>enrolled mean</th><th>comparison mean</th><th>unmatched difference</th></tr>",

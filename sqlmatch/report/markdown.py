@@ -99,6 +99,13 @@ def _sensitivity_section(r: StudyResults) -> list[str]:
     return lines
 
 
+ESTIMAND_HEADINGS = {
+    "att": "Effects on the enrolled",
+    "atc": "Effects on the comparison units, had they enrolled (ATC)",
+    "ate": "Effects on everyone in the matched strata (ATE)",
+}
+
+
 def render_markdown(r: StudyResults, balance_image: str | None = None) -> str:
     """Markdown sized for a pull-request comment; `balance_image` names the balance plot written
     beside the report, if any."""
@@ -137,7 +144,7 @@ def render_markdown(r: StudyResults, balance_image: str | None = None) -> str:
         "",
         groups_sentence(r),
         "",
-        "## Effects on the enrolled",
+        "## " + ESTIMAND_HEADINGS.get(r.effects[0].estimand if r.effects else "att", "Effects on the enrolled"),
         "",
         "| outcome | kind | effect | 95% interval | relative lift | lift 95% interval | enrolled mean | matched comparison mean | unmatched difference |",
         "|---|---|---:|---|---:|---|---:|---:|---:|",

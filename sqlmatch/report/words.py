@@ -57,7 +57,14 @@ def effect_sentence(r: StudyResults, e: Effect) -> str:
         text += "."
     else:
         more = "more" if e.estimate >= 0 else "less"
-        if e.kind == "ratio":
+        estimand = getattr(e, "estimand", "att")
+        if estimand != "att":  # the effect on the comparison units (atc) or on everyone in the strata (ate)
+            whom = "the units that had not enrolled" if estimand == "atc" else "all units in the matched strata"
+            text = (
+                f"For {whom}, enrolment went with {number(abs(e.estimate))} {'higher' if e.estimate >= 0 else 'lower'} "
+                f"{e.outcome} {span}, comparing enrolled and non-enrolled units weighted to stand for them"
+            )
+        elif e.kind == "ratio":
             text = f"For the enrolled units, {e.outcome} {span} was {number(abs(e.estimate))} {'higher' if e.estimate >= 0 else 'lower'} than for comparable units that had not enrolled"
         else:
             text = f"The enrolled units had {number(abs(e.estimate))} {more} {e.outcome} each {span} than comparable units that had not enrolled"
@@ -82,16 +89,17 @@ def _share(p: float | None) -> str:
 
 def headline(e: Effect) -> str:
     """One line per outcome for the end of a run: effect, interval, relative lift."""
-    line = figure_line(e.outcome, e.kind, e.estimate, e.ci_low, e.ci_high)
+    line = figure_line(e.outcome, e.kind, e.estimate, e.ci_low, e.ci_high, getattr(e, "estimand", "att"))
     if e.lift.estimate is not None:
         line += f", {pct(e.lift.estimate)} relative to the matched comparison"
     return line
 
 
-def figure_line(outcome: str, kind: str, estimate, low, high) -> str:
+def figure_line(outcome: str, kind: str, estimate, low, high, estimand: str = "att") -> str:
     """"post_trips: +4.56 per enrolled unit, 95% interval [4.44, 4.68]"; binary outcomes in
     percentage points."""
-    scale, unit = (100.0, " percentage points") if kind == "binary" else (1.0, " per enrolled unit" if kind == "continuous" else "")
+    per = " per enrolled unit" if estimand == "att" else f" per unit ({estimand.upper()})"
+    scale, unit = (100.0, " percentage points") if kind == "binary" else (1.0, per if kind == "continuous" else "")
 
     def scaled(x):
         return None if x is None else scale * x

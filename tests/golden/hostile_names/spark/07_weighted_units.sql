@@ -9,8 +9,8 @@ DROP TABLE IF EXISTS `sqlmatch`.annual_pass_weighted_units__building;
 CREATE TABLE `sqlmatch`.annual_pass_weighted_units__building AS
 /* Coarsened exact matching: weights for the effect on the treated, beside every study
    unit's features and outcomes. Treated units weigh 1; a control unit in stratum s weighs
-   (n_T,s / n_C,s) * (N_C / N_T), N counting matched units, so control weights sum to the number
-   of matched controls. A unit left unmatched keeps its row with stratum and weight NULL (balance
+   (n_T,s / n_C,s) * (N_C / N_T), N counting matched units, so each group's weights sum to
+   its number of matched units. A unit left unmatched keeps its row with stratum and weight NULL (balance
    before matching counts it). The balance, plot and effect steps after this one read this table
    alone. */
 WITH totals AS (
