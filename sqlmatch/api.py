@@ -221,11 +221,14 @@ def _write_all(out_dir: str | Path, files: dict[str, str]) -> list[Path]:
     return [final for _, final in temporary]
 
 
-def write_results(results: StudyResults, out_dir: str | Path) -> list[Path]:
+def write_results(results: StudyResults, out_dir: str | Path, progress: Progress | None = None) -> list[Path]:
     """results.json, report.md, report.html (and balance.svg) in out_dir, all rendered before any is written."""
+    import time
+
     from sqlmatch.report.html import balance_plot, render_html
     from sqlmatch.report.markdown import render_markdown
 
+    start = time.perf_counter()
     svg = balance_plot(results)
     files = {
         "results.json": results.to_json(),
@@ -234,7 +237,10 @@ def write_results(results: StudyResults, out_dir: str | Path) -> list[Path]:
     }
     if svg:
         files["balance.svg"] = svg
-    return _write_all(out_dir, files)
+    written = _write_all(out_dir, files)
+    if progress is not None:
+        progress.note(f"reports rendered and written in {time.perf_counter() - start:.2f}s")
+    return written
 
 
 def run_cohorts(spec: Spec, months: str, **run_options):

@@ -9,7 +9,25 @@ from pathlib import Path
 from sqlmatch import api
 from sqlmatch.dialects import DIALECTS, check_dialect
 from sqlmatch.errors import SqlmatchError
+from sqlmatch.results import WARNING_KINDS, warning_kind
 from sqlmatch.runner import Progress
+
+FAIL_ON_HELP = (
+    "exit with status 1 (after writing the results) when the run raised a warning of one of these kinds, "
+    "comma-separated: " + "; ".join(f"{k} ({v})" for k, v in WARNING_KINDS.items()) + "; or all"
+).replace("%", "%%")  # argparse expands % in help texts
+
+
+def _fail_on(text: str) -> frozenset[str]:
+    kinds = {k.strip() for k in text.split(",") if k.strip()}
+    if "all" in kinds:
+        return frozenset(WARNING_KINDS)
+    unknown = sorted(kinds - set(WARNING_KINDS))
+    if unknown or not kinds:
+        raise argparse.ArgumentTypeError(
+            f"unknown warning kind(s) {', '.join(unknown) or '(none given)'}; the kinds are {', '.join(WARNING_KINDS)}, or all"
+        )
+    return frozenset(kinds)
 
 
 def _parser() -> argparse.ArgumentParser:
@@ -44,6 +62,7 @@ def _parser() -> argparse.ArgumentParser:
     r.add_argument("--quiet", action="store_true", help="no progress lines on stderr")
     r.add_argument("--verbose", action="store_true", help="also say what each step computes and reads")
     r.add_argument("--keep", action="store_true", help="keep the study's work tables after the run (for debugging)")
+    r.add_argument("--fail-on", type=_fail_on, default=frozenset(), metavar="KINDS", help=FAIL_ON_HELP)
 
     d = sub.add_parser("demo", help="build the bike-share demo warehouse and run the demo study end to end")
     d.add_argument("--out", required=True, help="folder for the demo database, compiled SQL, results.json and report.md")
@@ -51,12 +70,14 @@ def _parser() -> argparse.ArgumentParser:
     d.add_argument("--seed", type=int, default=20260301, help="seed of the simulation")
     d.add_argument("--quiet", action="store_true", help="no progress lines on stderr")
     d.add_argument("--verbose", action="store_true", help="also say what each step computes and reads")
+    d.add_argument("--fail-on", type=_fail_on, default=frozenset(), metavar="KINDS", help=FAIL_ON_HELP)
 
     rp = sub.add_parser("report", help="results and reports from the aggregate tables a scheduled plan wrote (see compile --for-scheduler)")
     rp.add_argument("spec", help="study spec (.toml)")
     rp.add_argument("--out", required=True, help="folder for results.json, report.md and report.html")
     rp.add_argument("--database", help="DuckDB file holding the tables (overrides study.database)")
     rp.add_argument("--engine", help="engine URL (overrides --database)")
+    rp.add_argument("--fail-on", type=_fail_on, default=frozenset(), metavar="KINDS", help=FAIL_ON_HELP)
 
     k = sub.add_parser("cleanup", help="drop the study's work tables from the warehouse")
     k.add_argument("spec", help="study spec (.toml)")
@@ -148,13 +169,12 @@ def _dispatch(args) -> int:
             )
             paths = api.write_cohort_results(combined, args.out)
             print(f"sqlmatch: wrote {', '.join(str(p) for p in paths)}")
-            return 0
-        results = api.run(
-            spec, database=args.database, progress=Progress(quiet=args.quiet, verbose=args.verbose), engine_url=args.engine, keep_tables=args.keep
-        )
-        paths = api.write_results(results, args.out)
+            return _summary(combined.cohorts, args.fail_on, pooled=combined.pooled)
+        progress = Progress(quiet=args.quiet, verbose=args.verbose)
+        results = api.run(spec, database=args.database, progress=progress, engine_url=args.engine, keep_tables=args.keep)
+        paths = api.write_results(results, args.out, progress=progress)
         print(f"sqlmatch: wrote {', '.join(str(p) for p in paths)}")
-        return 0
+        return _summary([results], args.fail_on)
     if args.command == "init":
         from sqlmatch.init_spec import starter_spec
 
@@ -182,7 +202,7 @@ def _dispatch(args) -> int:
         results = api.report_from_tables(api.load(args.spec), database=args.database, engine_url=args.engine)
         paths = api.write_results(results, args.out)
         print(f"sqlmatch: wrote {', '.join(str(p) for p in paths)}")
-        return 0
+        return _summary([results], args.fail_on)
     if args.command == "cleanup":
         dropped = api.cleanup(api.load(args.spec), database=args.database, engine_url=args.engine)
         print(f"sqlmatch: dropped {len(dropped)} tables" + (f": {', '.join(dropped)}" if dropped else ""))
@@ -194,8 +214,49 @@ def _dispatch(args) -> int:
             raise SqlmatchError("--riders: the demo needs at least 500 riders to have a cohort worth matching.")
         results, paths = run_demo(Path(args.out), riders=args.riders, seed=args.seed, progress=Progress(quiet=args.quiet, verbose=args.verbose))
         print(f"sqlmatch: wrote {', '.join(str(p) for p in paths)}")
-        return 0
+        return _summary([results], args.fail_on)
     raise AssertionError(args.command)  # argparse guarantees a known command
+
+
+def _summary(runs, fail_on: frozenset[str], pooled=None, stream=None) -> int:
+    """The result and every warning on stderr, where a scheduler's log keeps them: one line per
+    outcome and per warning (its kind in brackets). Returns the exit status: 1 when a warning's
+    kind is in `fail_on`, else 0."""
+    from sqlmatch.report.words import figure_line, headline
+
+    stream = stream or sys.stderr
+    several = len(runs) > 1
+    for r in runs:
+        where = f"cohort {r.cohort}: " if several else ""
+        for e in r.effects:
+            print(f"sqlmatch: result: {where}{headline(e)}", file=stream)
+    for p in pooled or ():
+        kind = runs[0].effect(p.outcome).kind
+        print(f"sqlmatch: result: pooled over {p.cohorts} cohorts: {figure_line(p.outcome, kind, p.estimate, p.ci_low, p.ci_high)}", file=stream)
+    failing, warned = [], False
+    for r in runs:
+        where = f"cohort {r.cohort}: " if several else ""
+        for w in r.warnings:
+            kind = warning_kind(w) or "other"
+            print(f"sqlmatch: warning [{kind}]: {where}{w}", file=stream)
+            warned = True
+            if kind in fail_on:
+                failing.append(kind)
+        if r.placebo is not None:
+            for e, text in zip(r.placebo.results.effects, r.placebo.readings()):
+                missed = e.ci_low is not None and e.ci_high is not None and not e.ci_low <= 0.0 <= e.ci_high
+                print(f"sqlmatch: {'warning [placebo]' if missed else 'placebo'}: {where}{text}", file=stream)
+                if missed:
+                    warned = True
+                    if "placebo" in fail_on:
+                        failing.append("placebo")
+    if not warned:
+        print("sqlmatch: no warnings", file=stream)
+    if failing:
+        counts = ", ".join(f"{failing.count(k)} {k}" for k in sorted(set(failing)))
+        print(f"sqlmatch: failing (--fail-on {','.join(sorted(fail_on))}): {counts} warning(s); the results were written.", file=stream)
+        return 1
+    return 0
 
 
 if __name__ == "__main__":  # pragma: no cover

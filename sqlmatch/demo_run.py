@@ -6,7 +6,9 @@ works after a plain `pip install .` from any directory.
 
 from __future__ import annotations
 
+import re
 import shutil
+import time
 from importlib import resources
 from pathlib import Path
 
@@ -34,14 +36,34 @@ def demo_spec_path() -> Path:
     return Path(__file__).resolve().parents[1] / "demo_warehouse" / DEMO_SPEC
 
 
-def build_demo(out: Path, riders: int, seed: int) -> Path:
-    """A fresh demo database in out/, with the demo spec copied beside it; returns the spec path."""
+_CREATED = re.compile(r"^\s*(CREATE\s+TABLE|INSERT\s+INTO)\s+([A-Za-z_][A-Za-z0-9_]*)(\s*\()?", re.IGNORECASE | re.MULTILINE)
+
+
+def build_demo(out: Path, riders: int, seed: int, progress: Progress | None = None) -> Path:
+    """A fresh demo database in out/, with the demo spec copied beside it; returns the spec path.
+    With `progress`, one line per table the generator writes (its rows and seconds)."""
     out.mkdir(parents=True, exist_ok=True)
     database = out / DEMO_DATABASE
     for stale in (database, database.with_suffix(".duckdb.wal")):
         stale.unlink(missing_ok=True)
+    progress = progress or Progress(quiet=True)
+    start = time.perf_counter()
     with DuckDBEngine(str(database)) as engine:
-        build_demo_warehouse(engine.execute, riders=riders, seed=seed)
+
+        def execute(statement: str):
+            t0 = time.perf_counter()
+            engine.execute(statement)
+            created = _CREATED.search("\n".join(line for line in statement.splitlines() if not line.lstrip().startswith("--")))
+            # a CREATE TABLE with a column list is filled by a later INSERT: reported then
+            if created and not progress.quiet and not (created.group(1).upper().startswith("CREATE") and created.group(3)):
+                name = created.group(2)
+                rows = engine.fetch(exp.select("COUNT(*)").from_(exp.to_identifier(name, quoted=True)).sql("duckdb")).rows[0][0]
+                progress.note(f"demo warehouse: {name:<22} {time.perf_counter() - t0:8.2f}s {rows:>12,} rows written")
+
+        progress.note(f"building the demo warehouse: {riders:,} riders (seed {seed})")
+        build_demo_warehouse(execute, riders=riders, seed=seed)
+    size = database.stat().st_size / 2**20
+    progress.note(f"demo warehouse built in {time.perf_counter() - start:.1f}s: {database} ({size:,.0f} MiB)")
     spec_path = out / DEMO_SPEC
     shutil.copyfile(demo_spec_path(), spec_path)
     return spec_path
@@ -53,7 +75,7 @@ def read_truth(engine) -> dict[str, float]:
 
 
 def run_demo(out: Path, riders: int = 20_000, seed: int = 20260301, progress: Progress | None = None):
-    spec_path = build_demo(out, riders, seed)
+    spec_path = build_demo(out, riders, seed, progress)
     spec = load_spec(spec_path)
     plan = build_plan(spec, "duckdb")
     api.write_plan(plan, out / "sql")
@@ -61,4 +83,4 @@ def run_demo(out: Path, riders: int = 20_000, seed: int = 20260301, progress: Pr
         output = run_plan(plan, spec, engine, progress=progress)
         results = study_results(spec, output.plan, output)
         results.demo_truth = read_truth(engine)
-    return results, api.write_results(results, out)
+    return results, api.write_results(results, out, progress=progress)

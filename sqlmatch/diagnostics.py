@@ -8,13 +8,40 @@ import datetime as dt
 
 from sqlmatch.columns import stat
 from sqlmatch.matching import method_for
-from sqlmatch.privacy import count_text, is_small
+from sqlmatch.privacy import count_text, is_small, suppress_levels
+from sqlmatch.results import Caution
 from sqlmatch.spec import Spec
 
+SMD_BALANCED = 0.1  # |SMD| below 0.1 read as balanced: common practice (Austin 2009)
 
-def run_warnings(spec: Spec, r, balance, fitted_model=None) -> list[str]:
-    """Every warning of one run, in the order reports show them."""
-    return data_warnings(spec, r, balance) + model_warnings(spec, r, fitted_model)
+
+def run_warnings(spec: Spec, r, balance, fitted_model=None, matching=None) -> list[Caution]:
+    """Every warning of one run, in the order reports show them, each tagged with its kind."""
+    out = data_warnings(spec, r, balance)
+    if matching is not None:
+        out += balance_warnings(spec, balance, matching)
+    return out + [Caution(t, "model") for t in model_warnings(spec, r, fitted_model)]
+
+
+def balance_warnings(spec: Spec, balance, matching) -> list[Caution]:
+    """Features whose |SMD| after matching stays above 0.1: the matched groups still differ on them,
+    so part of the effect may be that difference. Levels withheld for small counts are left out."""
+    shown = suppress_levels(balance, matching, spec.min_cell_size)
+    off = [b for b in shown if b.smd_after is not None and abs(b.smd_after) > SMD_BALANCED]
+    if not off:
+        return []
+    listed = ", ".join(f"{b.covariate} {b.smd_after:+.3f}" for b in sorted(off, key=lambda b: -abs(b.smd_after)))
+    if method_for(spec.matching.method).uses_score:
+        fix = "add them to propensity.features, or block on the categorical ones (matching.block_on)"
+    else:
+        fix = "match on them too (matching.on) or on finer cut points (matching.cut_points)"
+    return [
+        Caution(
+            f"Balance not achieved: after matching, {len(off)} feature(s) keep |SMD| above {SMD_BALANCED} ({listed}; "
+            f"below {SMD_BALANCED} is common practice). The effects may partly be these differences: {fix}, and compare again.",
+            "balance",
+        )
+    ]
 
 
 def model_warnings(spec: Spec, r, fitted) -> list[str]:
@@ -66,47 +93,50 @@ def data_warnings(spec: Spec, r, balance) -> list[str]:
         c = r["data_coverage"].one()
         last, first = c["last_event_at"], c["first_event_at"]
         if last is not None and _as_date(last) < w.post_end - dt.timedelta(days=7):
-            out.append(
+            out.append(Caution(
                 f"The events end on {_as_date(last)}, more than a week before the post window ends ({w.post_end}): "
-                "if the data is still arriving, the outcomes are cut short for everyone. Wait for the data or use a shorter post window."
-            )
+                "if the data is still arriving, the outcomes are cut short for everyone. Wait for the data or use a shorter post window.",
+                "coverage",
+            ))
         # a study whose features are all unit attributes reads no pre-window events
         reads_pre = any(f.aggregate != "attribute" and not f.is_missing_indicator for f in spec.features)
         if reads_pre and first is not None and _as_date(first) > w.pre_start + dt.timedelta(days=7):
-            out.append(
+            out.append(Caution(
                 f"The events start on {_as_date(first)}, more than a week after the pre window starts ({w.pre_start}): "
-                "pre-window features may be incomplete."
-            )
+                "pre-window features may be incomplete.",
+                "coverage",
+            ))
         if c["n_units"] and c["n_units_without_events"] / c["n_units"] > 0.5:
-            out.append(f"{c['n_units_without_events'] / c['n_units']:.0%} of the units have no event in either window.")
+            out.append(Caution(f"{c['n_units_without_events'] / c['n_units']:.0%} of the units have no event in either window.", "coverage"))
     if w.post_starts == "cohort":
-        out.append(
+        out.append(Caution(
             f"The post window starts with the cohort month ({w.post_start}; windows.post_starts = \"cohort\"), so the "
             "outcomes include the days of that month before each unit enrolled, when it could not yet benefit. The effect "
-            "is diluted toward zero by about that share of the window; post_starts = \"after_cohort\" avoids it."
-        )
-    out += method_for(spec.matching.method).warnings(spec, r)
-    out += _missing_warnings(spec, r)
+            "is diluted toward zero by about that share of the window; post_starts = \"after_cohort\" avoids it.",
+            "design",
+        ))
+    out += [Caution(t, "method") for t in method_for(spec.matching.method).warnings(spec, r)]
+    out += [Caution(t, "missing") for t in _missing_warnings(spec, r)]
     if "data_coverage" in r and "n_events_unknown" in r["data_coverage"].columns:
         u = r["data_coverage"].one()
         events, units = int(u["n_events_unknown"] or 0), int(u["n_units_unknown"] or 0)
         if events:
             n_units = count_text(units, spec.min_cell_size, words=True)
-            out.append(
+            out.append(Caution(
                 f"{events:,} events in the windows belong to {n_units} units that are not in {spec.units.display!r}: "
                 "they are left out of every feature and outcome. If that is more than a few, check that events.unit_key "
-                "and units.key name the same thing, and that the units table is complete."
-            )
-    out += _unplaced_event_warnings(spec, r)
-    out += _pooled_level_warnings(spec, r)
-    out += _incomplete_ratio_warnings(spec, r)
-    out += imbalance_warnings(spec, balance)
-    out += _kept_warning(spec, r, balance)
+                "and units.key name the same thing, and that the units table is complete.",
+                "coverage",
+            ))
+    out += [Caution(t, "coverage") for t in _unplaced_event_warnings(spec, r)]
+    out += [Caution(t, "features") for t in _pooled_level_warnings(spec, r)]
+    out += [Caution(t, "coverage") for t in _incomplete_ratio_warnings(spec, r)]
+    out += [Caution(t, "kept") for t in _kept_warning(spec, r, balance)]
     for b in balance:
         if b.kind != "level" and b.mean_treated_before is None and b.mean_control_before is None:
-            out.append(f"Feature {b.covariate!r} is NULL for every unit: it carries no information. Fix its definition or drop it.")
+            out.append(Caution(f"Feature {b.covariate!r} is NULL for every unit: it carries no information. Fix its definition or drop it.", "features"))
         elif b.kind != "level" and b.smd_before == 0.0 and b.variance_ratio_before is None:
-            out.append(f"Feature {b.covariate!r} has the same value for every unit: it carries no information and can be dropped.")
+            out.append(Caution(f"Feature {b.covariate!r} has the same value for every unit: it carries no information and can be dropped.", "features"))
     return out
 
 
@@ -187,33 +217,6 @@ def _unplaced_event_warnings(spec: Spec, r) -> list[str]:
             "fix the key in the events table."
         )
     return out
-SMD_WARNING = 0.1  # |SMD| after matching above which a matched feature is called imbalanced: common practice (Austin 2009)
-_FINER = {
-    "coarsened_exact": "give it finer cut points (matching.cut_points)",
-    "score_bins": "add it, or a transform of it, to propensity.features",
-    "nearest_neighbour": "add it, or a transform of it, to propensity.features, or match on it exactly or with a Mahalanobis distance",
-}
-
-
-def imbalance_warnings(spec: Spec, balance) -> list[str]:
-    """A feature the method matched on (matching.on; for score methods the propensity model's
-    features and matching.block_on) still differing after matching: the effect may carry its bias."""
-    method = method_for(spec.matching.method)
-    matched = set(spec.propensity.features) | set(spec.matching.block_on) if method.uses_score else set(spec.matching.on)
-    left = []
-    for b in balance:
-        name = b.covariate.split("=", 1)[0] if b.kind == "level" else b.covariate
-        if name in matched and b.smd_after is not None and abs(b.smd_after) > SMD_WARNING:
-            left.append(f"{b.covariate} ({b.smd_after:+.2f})")
-    if not left:
-        return []
-    hint = _FINER.get(spec.matching.method, "match on it more finely")
-    return [
-        f"After matching, {'a matched feature' if len(left) == 1 else 'matched features'} still "
-        f"differ{'s' if len(left) == 1 else ''} between the groups by more than {SMD_WARNING} SD (SMD after matching, "
-        f"over the pooled SD before; |SMD| > {SMD_WARNING} is common practice's limit): {', '.join(left)}. "
-        f"The effect may carry bias from {'it' if len(left) == 1 else 'them'}; {hint}."
-    ]
 
 
 # Below this share of the cohort matched, say the effect describes the kept units only. Our own

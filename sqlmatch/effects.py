@@ -10,6 +10,7 @@ import numpy as np
 
 from sqlmatch.columns import stat
 from sqlmatch import aggregates
+from sqlmatch.design import provenance, study_design
 from sqlmatch.diagnostics import run_warnings
 from sqlmatch.estimators.adjusted import adjusted_att
 from sqlmatch.matching import method_for
@@ -90,8 +91,10 @@ def study_results(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
         min_cell_size=spec.min_cell_size,
         imbalance=imbalance,
         histograms=aggregates.histograms(r),
-        warnings=run_warnings(spec, r, balance, output.model),
+        warnings=run_warnings(spec, r, balance, output.model, matching),
         timings=output.timings,
+        design=study_design(spec, r, output.model),
+        provenance=provenance(spec, plan.dialect, output.timings),
         subgroups=subgroup_effects(spec, plan.outcomes, r),
     )
 

@@ -35,7 +35,17 @@ def _safe_name(column: str) -> str:
 
 
 def _q(text: str) -> str:
-    return '"' + text.replace("\\", "\\\\").replace('"', '\\"') + '"'
+    """A TOML basic string: backslash, quote and every control character escaped, so a name
+    holding a newline stays inside its string instead of starting a line of its own."""
+    out = []
+    for ch in text:
+        if ch in ('"', "\\"):
+            out.append("\\" + ch)
+        elif ord(ch) < 0x20 or ord(ch) == 0x7F:
+            out.append(f"\\u{ord(ch):04X}")
+        else:
+            out.append(ch)
+    return '"' + "".join(out) + '"'
 
 
 def _table(ref: str) -> TableRef:
@@ -69,7 +79,7 @@ def starter_spec(
     categorical = [c for c, k in kinds_u.items() if k == "text" and c != key]
 
     lines = [
-        f"# Starter study spec written by `sqlmatch init` from the columns of {units} and {events}.",
+        f"# Starter study spec written by `sqlmatch init` from the columns of {_q(units)} and {_q(events)}.",
         "# Every line marked GUESS was inferred from names and types: check it before the first run.",
         "",
         "[study]",

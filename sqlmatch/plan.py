@@ -20,7 +20,7 @@ from sqlmatch.matching import method_for
 from sqlmatch.spec import MISSING_INDICATOR, Spec, is_boolean, last_period_start
 
 MANIFEST_VERSION = 1
-HISTOGRAM_BINS = 20  # bins of the report's distribution plots
+HISTOGRAM_BINS = 60  # bins of the report's distribution plots: fine enough that a plot cut at the 99th percentile keeps a dozen or more
 L1_BINS = 10  # equal-width bins per numeric feature in the fixed histogram of the L1 imbalance
 FINGERPRINT_COLUMN = "plan__fingerprint"  # on every row of a scheduled aggregate table
 # Days are cut in UTC: the runner sets the session's time zone to it for a run (engines'

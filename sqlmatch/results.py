@@ -26,6 +26,41 @@ ASSUMPTIONS = (
 )
 
 
+#: What each kind of warning is about: `sqlmatch run --fail-on KIND,...` exits 1 on those kinds.
+WARNING_KINDS = {
+    "coverage": "the events do not cover the windows, or belong to units missing from the units table",
+    "balance": "a feature still differs between the groups after matching: |SMD| above 0.1",
+    "kept": "matching kept under 90% of the enrolled units, so the effect describes the kept ones only",
+    "design": "a choice of the study's design that changes what the effect means (a post window opening in the cohort month)",
+    "placebo": "the placebo check ([placebo]) found an effect where there can be none",
+    "model": "the stored propensity model no longer fits the units it scores",
+    "method": "a caution of the matching method, such as controls reused by nearest neighbours",
+    "missing": "what a missing-value policy did to units without a value",
+    "features": "a feature that carries no information: NULL or constant for every unit",
+}
+
+
+class Caution(str):
+    """A warning's text (it is a str, so reports and tests read it as one) with its kind, one of
+    WARNING_KINDS."""
+
+    kind: str
+
+    def __new__(cls, text: str, kind: str):
+        if kind not in WARNING_KINDS:
+            raise ValueError(f"unknown warning kind {kind!r}")
+        self = super().__new__(cls, text)
+        self.kind = kind
+        return self
+
+    def __reduce__(self):
+        return (Caution, (str(self), self.kind))
+
+
+def warning_kind(text: str) -> str | None:
+    return getattr(text, "kind", None)
+
+
 def _num(x):
     """JSON-safe number: NaN and infinities become null (inside dicts and lists too)."""
     if x is None:
@@ -228,6 +263,8 @@ class StudyResults:
     run_id: str | None = None  # set when the run was recorded in the results history table
     warnings: list[str] = field(default_factory=list)  # data problems worth a reader's attention
     timings: dict[str, float] = field(default_factory=dict)
+    design: dict | None = None  # what was compared and how (sqlmatch.design.study_design)
+    provenance: dict | None = None  # sqlmatch version, spec hash, plan fingerprint, engine, time
     placebo: PlaceboCheck | None = None  # [placebo]: the same design before anyone enrolled
     subgroups: list[SubgroupEffects] = field(default_factory=list)  # [[subgroups]]
 
@@ -324,10 +361,13 @@ class StudyResults:
             "imbalance": self.imbalance,
             "histograms": suppress_histograms(self.histograms, self.min_cell_size),
             "effects": [self._effect_record(e) for e in self.effects],
-            "warnings": list(self.warnings),
+            "warnings": [str(w) for w in self.warnings],
+            "warning_kinds": [warning_kind(w) for w in self.warnings],
             "rows_fetched": self.rows_fetched,
             "min_cell_size": self.min_cell_size,
             "assumptions": list(self.assumptions),
+            "design": self.design,
+            "provenance": self.provenance,
         }
         if self.demo_truth is not None:
             out["demo_truth"] = self.demo_truth

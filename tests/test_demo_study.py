@@ -88,9 +88,12 @@ def test_rows_fetched_does_not_grow_with_the_data(tmp_path):
         assert results.matching.strata == 6 * 4  # every cell matched at both sizes
         fetched.append(results.rows_fetched)
     assert fetched[0] == fetched[1]
-    # per step: 2 group sizes, 2 balance rows, 2 x 10 categorical levels, 1 L1 row, 5 features x 20 bins
-    # x 2 groups of histograms, 2 x 24 strata, 2 unmatched groups, and a handful of one-row summaries
-    assert fetched[0] < 2 + 2 + 20 + 1 + 200 + 48 + 2 + 10
+    # per step: 2 group sizes, 2 balance rows, 2 x 10 categorical levels, 1 L1 row, 5 features x
+    # HISTOGRAM_BINS bins x 2 groups of histograms, 2 x 24 strata, 2 unmatched groups, and a handful of
+    # one-row summaries
+    from sqlmatch.plan import HISTOGRAM_BINS
+
+    assert fetched[0] < 2 + 2 + 20 + 1 + 5 * HISTOGRAM_BINS * 2 + 48 + 2 + 10
 
 
 def test_progress_lines_name_each_step_with_time_and_rows(tmp_path, capsys):

@@ -55,7 +55,7 @@ def test_report_renders_in_a_headless_browser(report, tmp_path):
             "--disable-component-update",
             "--disable-sync",
             f"--user-data-dir={tmp_path / 'profile'}",
-            "--window-size=1000,1800",
+            "--window-size=1000,7000",
             f"--screenshot={shot}",
             report.as_uri(),
         ],
@@ -68,9 +68,11 @@ def test_report_renders_in_a_headless_browser(report, tmp_path):
     pixels = matplotlib.image.imread(str(shot))[..., :3]
     assert pixels.shape[0] >= 1000 and pixels.shape[1] >= 900
     ink = (pixels.mean(axis=2) < 0.85).mean()  # share of pixels clearly darker than the page
-    colour = (np.abs(pixels[..., 0] - pixels[..., 2]) > 0.25).mean()  # vermillion/blue plot marks
+    r, b = pixels[..., 0], pixels[..., 2]
+    vermillion = ((r > 0.7) & (b < 0.3)).mean()  # the enrolled's outlines and bars
+    blue = ((b > 0.55) & (r < 0.45)).mean()  # the comparison's fills and bars
     assert ink > 0.01, f"the screenshot is (almost) blank: {ink:.4f} of pixels carry ink"
-    assert colour > 0.001, "no coloured plot marks in the screenshot"
+    assert vermillion > 0.0005 and blue > 0.0005, f"plot marks of a group are missing: vermillion {vermillion:.5f}, blue {blue:.5f}"
 
 
 def test_markdown_report_links_the_balance_plot_beside_it(report):

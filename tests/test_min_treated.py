@@ -157,6 +157,7 @@ def test_few_treated_kept_says_the_effect_is_for_them_only(demo_db):
     m = results.matching
     assert m.n_treated_matched < 0.9 * m.n_treated
     (text,) = [w for w in results.warnings if "were matched: every effect" in w]
+    assert text.kind == "kept"  # what `--fail-on kept` acts on
     assert f"Only {m.n_treated_matched:,} of the {m.n_treated:,} enrolled units ({m.n_treated_matched / m.n_treated:.0%})" in text
     rows = {b.covariate: b for b in results.balance}
     named = [part.split(" ")[0] for part in text.split("their means: ")[1].split("; ")]

@@ -50,6 +50,10 @@ def test_scheduled_plan_then_report_equals_run(demo_dir, tmp_path):
     assert main(["run", str(spec), "--out", str(tmp_path / "direct"), "--quiet"]) == 0
     a = json.loads((tmp_path / "from_tables" / "results.json").read_text())
     b = json.loads((tmp_path / "direct" / "results.json").read_text())
+    # provenance says when and how each was made: the same spec and plan, SQL seconds only for the run
+    pa, pb = a.pop("provenance"), b.pop("provenance")
+    assert (pa["spec_sha256"], pa["plan_fingerprint"]) == (pb["spec_sha256"], pb["plan_fingerprint"])
+    assert pa["sql_seconds"] is None and pb["sql_seconds"] > 0
     close(a, b)
     assert (tmp_path / "from_tables" / "report.html").exists()
 

@@ -106,7 +106,7 @@ def test_a_post_window_that_starts_with_the_cohort_month(db):
     w = spec.windows
     assert (w.post_start, w.post_end) == (dt.date(2026, 3, 1), dt.date(2026, 6, 1))
     results = api.run(spec, keep_tables=True)
-    assert any("post window starts with the cohort month" in x for x in results.warnings)
+    assert [x.kind for x in results.warnings if "post window starts with the cohort month" in x] == ["design"]
     with duckdb.connect(str(db), read_only=True) as con:
         got = con.execute("SELECT unit_key, post_trips FROM sqlmatch.annual_pass_measures").df().set_index("unit_key")
         trips = con.execute("SELECT rider_id, started_at FROM trips").df()

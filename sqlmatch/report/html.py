@@ -1,41 +1,20 @@
-"""HTML report: one self-contained file (inline SVG plots, inline CSS, no network), drawn from
-the aggregates in StudyResults only. No statistics are computed here.
-
-Colours: treated vermillion, control blue (Okabe & Ito's colour-blind-safe palette); before
-matching hollow or light, after matching filled or dark.
-"""
+"""HTML report: one self-contained file (inline SVG plots, inline CSS, no network) holding
+everything the Markdown report holds, plus the study's design and a plain-words reading of each
+effect. Drawn from the aggregates in StudyResults only (small counts suppressed through
+privacy.py); no statistics are computed here."""
 
 from __future__ import annotations
 
 import html
-import io
 import math
 
-from sqlmatch.privacy import flow_texts, sample_flow, suppress_histograms, suppress_levels
-from sqlmatch.results import StudyResults
+from sqlmatch.privacy import suppress_histograms, suppress_levels
+from sqlmatch.report import plots
+from sqlmatch.report.markdown import ESTIMAND_HEADINGS
+from sqlmatch.report.words import design_lines, effect_sentence, flow_segments, groups_sentence, provenance_text, sample_rows, window_length
+from sqlmatch.results import StudyResults, warning_kind
 
-TREATED = "#D55E00"
-CONTROL = "#0072B2"
-GREY = "#6b6b6b"
-SMD_REFERENCE = 0.1  # common practice (Austin 2009)
-
-
-def _pyplot():
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
-    plt.rcParams.update({"font.size": 9, "axes.spines.top": False, "axes.spines.right": False, "svg.fonttype": "none"})
-    return plt
-
-
-def _svg(fig) -> str:
-    buf = io.StringIO()
-    fig.savefig(buf, format="svg", bbox_inches="tight")
-    _pyplot().close(fig)
-    text = buf.getvalue()
-    return text[text.index("<svg") :]
+SMD_REFERENCE = plots.SMD_REFERENCE
 
 
 def _e(text) -> str:
@@ -43,189 +22,267 @@ def _e(text) -> str:
 
 
 def _fmt(v, digits=3) -> str:
-    return "–" if v is None or (isinstance(v, float) and not math.isfinite(v)) else f"{v:,.{digits}f}"
+    if v is None or (isinstance(v, float) and not math.isfinite(v)):
+        return "–"
+    text = f"{v:,.{digits}f}"
+    return text[1:] if text.startswith("-") and not text.strip("-0.,") else text  # no "-0.000"
 
 
-# -------------------------------------------------------------------------------------------- plots
+def _ci(lo, hi, digits=3) -> str:
+    return "–" if lo is None or hi is None else f"[{_fmt(lo, digits)}, {_fmt(hi, digits)}]"
+
+
+def _pct(v) -> str:
+    return "–" if v is None or not math.isfinite(v) else f"{100 * v:+.1f}%"
+
+
+def _pct_ci(lo, hi) -> str:
+    return "–" if lo is None or hi is None else f"[{_pct(lo)}, {_pct(hi)}]"
 
 
 def balance_plot(r: StudyResults) -> str:
-    plt = _pyplot()
-    rows = [b for b in suppress_levels(r.balance, r.matching, r.min_cell_size) if b.smd_before is not None]
-    if not rows:
-        return ""
-    rows.sort(key=lambda b: abs(b.smd_before))
-    fig, ax = plt.subplots(figsize=(6.2, 0.28 * len(rows) + 1.0))
-    y = range(len(rows))
-    ax.scatter([abs(b.smd_before) for b in rows], y, facecolors="none", edgecolors=GREY, label="before matching", zorder=3)
-    ax.scatter([abs(b.smd_after) if b.smd_after is not None else math.nan for b in rows], y, color="black", label="after matching", zorder=3)
-    for i, b in enumerate(rows):
-        if b.smd_after is not None:
-            ax.plot([abs(b.smd_before), abs(b.smd_after)], [i, i], color="#c8c8c8", lw=1, zorder=2)
-    ax.axvline(SMD_REFERENCE, color=GREY, ls="--", lw=1)
-    ax.set_yticks(list(y), [b.covariate for b in rows])
-    ax.set_xlabel("|standardized mean difference|  (dashed: 0.1)")
-    ax.legend(loc="lower right", frameon=False)
-    return _svg(fig)
+    """The |SMD| dot plot (also written beside report.md as balance.svg)."""
+    return plots.balance_plot(suppress_levels(r.balance, r.matching, r.min_cell_size))
 
-
-def effects_plot(r: StudyResults) -> str:
-    plt = _pyplot()
-    n = len(r.effects)
-    if n == 0:
-        return ""
-    fig, axes = plt.subplots(n, 1, figsize=(6.2, 0.9 * n + 0.4), squeeze=False)
-    for ax, e in zip(axes[:, 0], r.effects):
-        if e.ci_low is not None:
-            ax.plot([e.ci_low, e.ci_high], [0, 0], color="black", lw=2)
-        ax.scatter([e.estimate], [0], color="black", zorder=3, label="matched estimate, 95% interval")
-        if e.naive.estimate is not None:
-            ax.scatter([e.naive.estimate], [0], facecolors="none", edgecolors=GREY, zorder=3, label="unmatched difference")
-        truth = (r.demo_truth or {}).get(e.outcome)
-        if truth is not None:
-            ax.scatter([truth], [0], marker="x", color=TREATED, zorder=4, label="simulated truth (demo)")
-        ax.axvline(0, color=GREY, lw=0.8)
-        ax.set_yticks([0], [e.outcome])
-        ax.set_ylim(-1, 1)
-    axes[0, 0].legend(loc="upper center", bbox_to_anchor=(0.5, 1.9), ncol=3, frameon=False, fontsize=8)
-    fig.tight_layout()
-    return _svg(fig)
-
-
-def _histogram_panel(ax, bins, weighted: bool, title: str, mirror: bool = False):
-    for group, colour in ((1, TREATED), (0, CONTROL)):
-        rows = sorted((b for b in bins if b["treated"] == group), key=lambda b: b["low"])
-        values = [(b["sum_w"] if weighted else b["n_units"]) for b in rows]
-        total = sum(v for v in values if v) or 1.0
-        shares = [(v or 0.0) / total for v in values]
-        sign = -1 if (mirror and group == 0) else 1
-        ax.bar([b["low"] for b in rows], [sign * s for s in shares], width=[b["high"] - b["low"] for b in rows], align="edge", color=colour, alpha=0.75, label="treated" if group else "control")
-    ax.set_title(title, fontsize=9)
-    ax.axhline(0, color=GREY, lw=0.6)
-
-
-def overlap_plot(bins) -> str:
-    plt = _pyplot()
-    fig, axes = plt.subplots(1, 2, figsize=(6.2, 2.4), sharey=True)
-    _histogram_panel(axes[0], bins, False, "before matching", mirror=True)
-    _histogram_panel(axes[1], bins, True, "after matching (weighted)", mirror=True)
-    axes[0].set_ylabel("share (control below)")
-    for ax in axes:
-        ax.set_xlabel("propensity score, logit scale")
-    axes[1].legend(frameon=False, fontsize=8)
-    fig.tight_layout()
-    return _svg(fig)
-
-
-def distribution_plots(histograms: dict) -> str:
-    plt = _pyplot()
-    names = [n for n in histograms if not n.startswith("propensity score")]
-    if not names:
-        return ""
-    fig, axes = plt.subplots(len(names), 2, figsize=(6.2, 1.7 * len(names)), squeeze=False)
-    for row, name in zip(axes, names):
-        _histogram_panel(row[0], histograms[name], False, f"{name}: before")
-        _histogram_panel(row[1], histograms[name], True, f"{name}: after")
-    axes[0, 1].legend(frameon=False, fontsize=8)
-    fig.tight_layout()
-    return _svg(fig)
-
-
-def flow_plot(r: StudyResults) -> str:
-    plt = _pyplot()
-    m = r.matching
-    flow = sample_flow(m, r.min_cell_size)
-    fig, ax = plt.subplots(figsize=(6.2, 1.5))
-    groups = [("enrolled", "treated", m.n_treated), ("not enrolled", "control", m.n_control)]
-    for i, (label, group, total) in enumerate(groups):
-        rows = flow[group]
-        # withheld counts (small, or revealing a small one) are drawn as one segment of their sum
-        withheld = total - sum(v for k, v in rows.items() if k != "in_study" and v is not None)
-        left = 0
-        for value, colour, text in ((rows["matched"], "#009E73", "matched"), (rows["no_comparable"], "#E69F00", "no comparable unit"), (rows["outside_support"], "#999999", "outside common support"), (withheld if rows["in_study"] is not None else 0, "#DDDDDD", "not shown (small counts)")):
-            share = (value or 0) / total if total else 0
-            ax.barh(i, share, left=left, color=colour, label=text if i == 0 else None)
-            left += share
-    ax.set_yticks([0, 1], [g[0] for g in groups])
-    ax.set_xlim(0, 1)
-    ax.set_xlabel("share of units in the study")
-    ax.legend(loc="upper center", bbox_to_anchor=(0.5, 1.5), ncol=3, frameon=False, fontsize=8)
-    return _svg(fig)
-
-
-# -------------------------------------------------------------------------------------------- page
 
 CSS = """
-body { font-family: system-ui, -apple-system, "Segoe UI", sans-serif; max-width: 52rem; margin: 2rem auto; padding: 0 1rem; color: #1a1a1a; line-height: 1.45; }
-h1 { font-size: 1.5rem; } h2 { font-size: 1.15rem; margin-top: 2rem; border-bottom: 1px solid #ddd; padding-bottom: .2rem; }
-table { border-collapse: collapse; margin: .6rem 0; font-size: .9rem; } th, td { padding: .25rem .6rem; border-bottom: 1px solid #eee; text-align: right; }
-th:first-child, td:first-child { text-align: left; } .note { color: #555; font-size: .88rem; } .caution { background: #fff7e6; border-left: 4px solid #E69F00; padding: .6rem 1rem; }
-svg { max-width: 100%; height: auto; }
+body { font-family: system-ui, -apple-system, "Segoe UI", sans-serif; max-width: 60rem; margin: 2rem auto; padding: 0 1rem; color: #1a1a1a; line-height: 1.45; }
+h1 { font-size: 1.5rem; } h2 { font-size: 1.15rem; margin-top: 2.2rem; border-bottom: 1px solid #ddd; padding-bottom: .2rem; } h3 { font-size: 1rem; margin-bottom: .2rem; }
+table { border-collapse: collapse; margin: .6rem 0; font-size: .88rem; } th, td { padding: .25rem .55rem; border-bottom: 1px solid #eee; text-align: right; vertical-align: top; }
+th { font-weight: 600; } th:first-child, td:first-child { text-align: left; } td.ci, td.num { white-space: nowrap; font-variant-numeric: tabular-nums; }
+table.design td, table.figures td:nth-child(2), table.figures th:nth-child(2) { text-align: left; } table.design td:first-child { white-space: nowrap; color: #444; }
+.note { color: #555; font-size: .88rem; } .caution { background: #fff7e6; border-left: 4px solid #E69F00; padding: .5rem 1rem; margin: .8rem 0; }
+.reading { background: #f3f8fc; border-left: 4px solid #0072B2; padding: .5rem 1rem; margin: .8rem 0; }
+.kind { display: inline-block; font-size: .75rem; background: #E69F00; color: white; border-radius: 3px; padding: 0 .35rem; margin-right: .3rem; }
+.plot { margin: .6rem 0; } svg { width: 100%; max-width: 56rem; height: auto; } p.tail { margin-top: -.4rem; } code { font-size: .9em; }
 """
 
 
 def render_html(r: StudyResults) -> str:
     mc = r.min_cell_size
     m = r.matching
-    flow = flow_texts(m, mc)
     w = r.windows
+    d = r.design or {}
+    treatment = d.get("treatment", "enrolment")
     parts = [
         "<!DOCTYPE html>",
         '<html lang="en"><head><meta charset="utf-8">',
         f"<title>sqlmatch: {_e(r.study)}, cohort {_e(r.cohort)}</title>",
         f"<style>{CSS}</style></head><body>",
-        f"<h1>Did enrolment change outcomes? Study <code>{_e(r.study)}</code>, cohort {_e(r.cohort)}</h1>",
+        f"<h1>Did {_e(treatment)} change outcomes? Study <code>{_e(r.study)}</code>, cohort {_e(r.cohort)}</h1>",
         f"<p>Units that enrolled in {_e(r.cohort)} are compared with units that had not enrolled, matched on how they "
-        f"behaved before ({_e(w['pre'][0])} to {_e(w['pre'][1])}). Outcomes are measured from {_e(w['post'][0])} to "
-        f"{_e(w['post'][1])}; the enrolment month is in neither window. Method: <b>{_e(m.method)}</b>.</p>",
-        "<h2>Effects on the enrolled</h2>",
-        effects_plot(r),
-        "<table><tr><th>outcome</th><th>effect</th><th>95% interval</th><th>enrolled mean</th><th>comparison mean</th><th>unmatched difference</th></tr>",
+        f"behaved before ({_e(w['pre'][0])} to {_e(w['pre'][1])}, exclusive). Outcomes are measured from {_e(w['post'][0])} to "
+        f"{_e(w['post'][1])} (exclusive); the enrolment month is in neither window. Method: <b>{_e(m.method)}</b> "
+        "(the design is listed in full below).</p>",
+    ]
+    # ---- the reading first: what the numbers say, and on what they rest
+    parts += ["<h2>What the result means</h2>", "<div class='reading'><ul>"]
+    parts += [f"<li><b>{_e(e.outcome)}</b>: {_e(effect_sentence(r, e))}</li>" for e in r.effects]
+    parts += [
+        "</ul>",
+        "<p>This reading holds only if the matching removed the differences that matter: <b>no unmeasured confounding</b> "
+        "(nothing outside the listed features drives both enrolment and the outcome), <b>overlap</b> (the enrolled have "
+        "comparable non-enrolled units; those without are dropped, so the effect describes the matched enrolled units) and "
+        "<b>no interference</b> (one unit's enrolment does not change another's outcome). The sensitivity section says how "
+        "strong a hidden factor would have to be; the cautions at the end say more.</p></div>",
+    ]
+    if r.warnings:
+        parts += [f"<h2>Warnings ({len(r.warnings)})</h2>", "<div class='caution'><ul>"]
+        parts += [f"<li><span class='kind'>{_e(warning_kind(t) or 'other')}</span>{_e(t)}</li>" for t in r.warnings]
+        parts += ["</ul></div>"]
+    # ---- effects
+    parts += [
+        f"<h2>{_e(ESTIMAND_HEADINGS.get(r.effects[0].estimand if r.effects else 'att', 'Effects on the enrolled'))}</h2>",
+        f"<div class='plot'>{plots.effects_plot(r.effects, r.demo_truth)}</div>",
+        "<table><tr><th>outcome</th><th>effect</th><th>95% interval</th><th>relative lift</th><th>lift 95% interval</th>"
+        "<th>enrolled mean</th><th>comparison mean</th><th>unmatched difference</th></tr>",
     ]
     for e in r.effects:
         parts.append(
-            f"<tr><td>{_e(e.outcome)} <span class='note'>({_e(e.kind)})</span></td><td>{_fmt(e.estimate)}</td>"
-            f"<td>[{_fmt(e.ci_low)}, {_fmt(e.ci_high)}]</td><td>{_fmt(e.mean_treated)}</td><td>{_fmt(e.mean_control)}</td><td>{_fmt(e.naive.estimate)}</td></tr>"
+            f"<tr><td>{_e(e.outcome)} <span class='note'>({_e(e.kind)})</span></td><td class='num'>{_fmt(e.estimate)}</td>"
+            f"<td class='ci'>{_ci(e.ci_low, e.ci_high)}</td><td class='num'>{_pct(e.lift.estimate)}</td><td class='ci'>{_pct_ci(e.lift.ci_low, e.lift.ci_high)}</td>"
+            f"<td class='num'>{_fmt(e.mean_treated)}</td><td class='num'>{_fmt(e.mean_control)}</td><td class='num'>{_fmt(e.naive.estimate)}</td></tr>"
         )
     parts.append("</table>")
-    sentences = [getattr(e, "sensitivity", None) for e in r.effects]
-    sentences = [(e.outcome, s.get("sentence")) for e, s in zip(r.effects, sentences) if isinstance(s, dict) and s.get("sentence")]
-    if sentences:
-        parts.append("<h2>How strong would hidden confounding have to be?</h2><ul>")
-        parts += [f"<li><b>{_e(o)}</b>: {_e(text)}</li>" for o, text in sentences]
-        parts.append("</ul>")
+    parts.append(
+        "<p class='note'>Effect: the enrolled mean minus the matched comparison mean (binary outcomes: the risk difference). "
+        "Relative lift: the effect as a share of the comparison mean (binary: risk ratio − 1). Unmatched difference: the same "
+        "comparison before matching.</p>"
+    )
+    extra = []
+    for e in r.effects:
+        if e.kind == "binary" and e.risk_ratio is not None:
+            extra.append(f"<tr><td>{_e(e.outcome)}</td><td>risk ratio</td><td class='num'>{_fmt(e.risk_ratio.estimate, 2)}</td><td class='ci'>{_ci(e.risk_ratio.ci_low, e.risk_ratio.ci_high, 2)}</td></tr>")
+        if e.did_twin and e.did is not None:
+            extra.append(
+                f"<tr><td>{_e(e.outcome)} − {_e(e.did_twin)}</td><td>difference-in-differences</td><td class='num'>{_fmt(e.did.estimate)}</td>"
+                f"<td class='ci'>{_ci(e.did.ci_low, e.did.ci_high)}</td></tr>"
+            )
+    if extra:
+        parts += ["<table class='figures'><tr><th>outcome</th><th>figure</th><th>estimate</th><th>95% interval</th></tr>", *extra, "</table>"]
+        if any(e.did_twin for e in r.effects):
+            parts.append(
+                "<p class='note'>Difference-in-differences: the effect on the outcome minus its pre-window twin, on the matched "
+                "sample. The two are compared as they are (pre window "
+                f"{_e(window_length(w['pre'], w['unit']))}, post window {_e(window_length(w['post'], w['unit']))}); no rescaling to a common length.</p>"
+            )
+    if r.demo_truth:
+        parts.append("<p class='note'>Simulated truth (demo only): " + ", ".join(f"{_e(k)} = {v:.3f}" for k, v in sorted(r.demo_truth.items())) + ".</p>")
+    # ---- who was compared
+    segments, totals = flow_segments(r)
+    rows = sample_rows(r)
     parts += [
         "<h2>Who was compared</h2>",
-        flow_plot(r),
+        f"<div class='plot'>{plots.flow_plot(segments, totals)}</div>",
         "<table><tr><th></th><th>enrolled</th><th>not enrolled</th></tr>",
-        *[
-            f"<tr><td>{label}</td><td>{_e(flow['treated'][row])}</td><td>{_e(flow['control'][row])}</td></tr>"
-            for row, label in (("in_study", "in the study"), ("matched", "matched"), ("outside_support", "dropped: outside the common support"), ("no_comparable", "dropped: no comparable unit"))
-        ],
+        *[f"<tr><td>{_e(label)}</td><td class='num'>{_e(t)}</td><td class='num'>{_e(c)}</td></tr>" for label, t, c in rows],
         "</table>",
-        *([f"<p class='note'>Counts under {mc} are not shown, nor (–) a second count from which one could be worked out.</p>"] if any(v == "–" for g in flow.values() for v in g.values()) else []),
-        "<h2>Balance</h2>",
-        "<p class='note'>A standardized mean difference below 0.1 is usually read as balanced (common practice).</p>",
-        balance_plot(r),
+        f"<p>{_e(groups_sentence(r))}</p>",
     ]
+    if any(v == "–" for _, t, c in rows for v in (t, c)):
+        parts.append(f"<p class='note'>Counts under {mc} are not shown, nor (–) a second count from which one could be worked out.</p>")
+    # ---- balance
+    shown = suppress_levels(r.balance, m, mc)
+    parts += [
+        "<h2>Balance</h2>",
+        f"<p class='note'>Standardized mean difference (SMD) of each feature, before and after matching; |SMD| below {SMD_REFERENCE} is "
+        "usually read as balanced (common practice). Variance ratios (enrolled ÷ comparison) near 1 are good. Categorical features "
+        "are compared level by level as 0/1 indicators.</p>",
+        f"<div class='plot'>{balance_plot(r)}</div>",
+        "<table><tr><th>feature</th><th>enrolled mean before</th><th>comparison mean before</th><th>SMD before</th><th>SMD after</th>"
+        "<th>comparison mean after</th><th>variance ratio before</th><th>variance ratio after</th></tr>",
+    ]
+    for b in shown:
+        flag = " ⚠" if b.smd_after is not None and abs(b.smd_after) > SMD_REFERENCE else ""
+        parts.append(
+            f"<tr><td>{_e(b.covariate)}</td><td class='num'>{_fmt(b.mean_treated_before)}</td><td class='num'>{_fmt(b.mean_control_before)}</td>"
+            f"<td class='num'>{_fmt(b.smd_before)}</td><td class='num'>{_fmt(b.smd_after)}{flag}</td><td class='num'>{_fmt(b.mean_control_after)}</td>"
+            f"<td class='num'>{_fmt(b.variance_ratio_before, 2)}</td><td class='num'>{_fmt(b.variance_ratio_after, 2)}</td></tr>"
+        )
+    parts.append("</table>")
+    if any(b.kind == "level" and b.smd_before is None for b in shown):
+        parts.append(f"<p class='note'>Levels held by fewer than {mc} units of a group are withheld (–), with one more level so the shares cannot be worked out.</p>")
     if r.imbalance:
         parts.append(
-            f"<p class='note'>Multivariate L1 imbalance (0 = same distributions, 1 = no overlap): {_fmt(r.imbalance['l1_before'])} before, "
+            f"<p class='note'>Multivariate L1 imbalance (Iacus, King &amp; Porro; 0 = same distributions, 1 = no overlap): {_fmt(r.imbalance['l1_before'])} before, "
             f"{_fmt(r.imbalance['l1_after'])} after, on {_e(r.imbalance['histogram'])}.</p>"
         )
+    # ---- distributions
     hist = suppress_histograms(r.histograms, mc) or {}
+    numeric = [n for n in hist if not n.startswith("propensity score")]
+    levels: dict[str, list] = {}
+    for b in shown:
+        if b.kind == "level":
+            levels.setdefault(b.covariate.split("=", 1)[0], []).append(b)
+    if numeric or levels:
+        parts += [
+            "<h2>Feature distributions</h2>",
+            "<p class='note'>Share of each group in each bin, before matching (unit counts) and after (matching weights). "
+            "Enrolled: vermillion outline; comparison: light blue fill; hatched: withheld (small count).</p>",
+        ]
+        for name in numeric:
+            svg, note = plots.distribution_plot(name, hist[name])
+            parts.append(f"<div class='plot'>{svg}</div>")
+            if note:
+                parts.append(f"<p class='note tail'>{_e(note)}</p>")
+        for feature, rows_ in levels.items():
+            parts.append(f"<div class='plot'>{plots.level_plot(feature, rows_)}</div>")
     score = next((v for k, v in hist.items() if k.startswith("propensity score")), None)
     if score:
-        parts += ["<h2>Overlap of propensity scores</h2>", overlap_plot(score)]
-    if hist:
-        parts += ["<h2>Feature distributions</h2>", distribution_plots(hist)]
-    if r.warnings:
-        parts += ["<h2>Warnings</h2>", "<div class='caution'><ul>"] + [f"<li>{_e(t)}</li>" for t in r.warnings] + ["</ul></div>"]
+        svg, _ = plots.distribution_plot("propensity score (logit)", score, clip=False, what="logit propensity score")
+        parts += ["<h2>Overlap of propensity scores</h2>", f"<div class='plot'>{svg}</div>"]
+    # ---- sensitivity
+    parts += _sensitivity(r)
+    # ---- subgroups (levels as SubgroupEffects.shown gives them: small ones withheld)
+    if r.subgroups:
+        parts += [
+            "<h2>Effects by subgroup</h2>",
+            "<table><tr><th>subgroup</th><th>level</th><th>outcome</th><th>effect</th><th>95% interval</th><th>enrolled</th><th>comparison</th></tr>",
+        ]
+        for sg in r.subgroups:
+            for x in sg.shown(mc):
+                if x["withheld"]:
+                    effect, interval = "withheld (few units)", ""
+                elif x["estimate"] is None:
+                    effect, interval = "no estimate (a group is empty)", ""
+                else:
+                    effect, interval = _fmt(x["estimate"]), _ci(x["ci_low"], x["ci_high"])
+                n_t = f"<{mc}" if x["n_treated"] is None else f"{x['n_treated']:,}"
+                n_c = f"<{mc}" if x["n_control"] is None else f"{x['n_control']:,}"
+                parts.append(
+                    f"<tr><td>{_e(sg.subgroup)}</td><td>{_e(x['level'])}</td><td>{_e(sg.outcome)}</td><td class='num'>{_e(effect)}</td>"
+                    f"<td class='ci'>{interval}</td><td class='num'>{_e(n_t)}</td><td class='num'>{_e(n_c)}</td></tr>"
+                )
+        parts.append("</table><ul>")
+        for sg in r.subgroups:
+            if sg.p_value is not None:
+                verdict = "the effect differs between the levels more than chance would explain" if sg.p_value < 0.05 else "no clear difference between the levels"
+                parts.append(f"<li>{_e(sg.subgroup)}, {_e(sg.outcome)}: Cochran's Q = {sg.q:.2f} on {sg.df} df, p = {sg.p_value:.2g} ({verdict}).</li>")
+        parts.append("<li>With many subgroups and outcomes, some differences are chance; a subgroup chosen after seeing the results proves little.</li></ul>")
+    # ---- placebo check
+    if r.placebo is not None:
+        pw = r.placebo.results.windows
+        parts += [
+            "<h2>Placebo check</h2>",
+            f"<p>The same design placed {r.placebo.months_before} months earlier: the same enrolled units against the same "
+            f"comparison pool, features over {_e(pw['pre'][0])} .. {_e(pw['pre'][1])} and outcomes over {_e(pw['post'][0])} .. "
+            f"{_e(pw['post'][1])}, all before anyone in the cohort enrolled, so every true effect is zero.</p>",
+            f"<div class='plot'>{plots.effects_plot(r.placebo.results.effects)}</div>",
+            "<ul>",
+            *[f"<li>{_e(text)}</li>" for text in r.placebo.readings()],
+            "</ul>",
+        ]
+    # ---- design and provenance
+    parts += ["<h2>Design</h2>", "<table class='design'>"]
+    parts += [f"<tr><td>{_e(k)}</td><td>{_e(v)}</td></tr>" for k, v in design_lines(r)]
+    parts += ["<tr><td>Outcomes</td><td>" + _e(", ".join(f"{e.outcome} ({e.kind}, {e.estimator})" for e in r.effects)) + "</td></tr>", "</table>"]
+    prov = provenance_text(r)
+    if prov:
+        parts.append(f"<p class='note'>Provenance: {_e(prov)}</p>")
+    # ---- cautions
     parts += ["<h2>Assumptions and cautions</h2>", "<div class='caution'><ul>"]
     parts += [f"<li>{_e(a)}</li>" for a in r.assumptions]
     parts += [
         "</ul></div>",
-        f"<p class='note'>Only aggregates left the warehouse ({r.rows_fetched} result rows). Counts under {mc} are not shown.</p>",
+        f"<p class='note'>Only aggregates left the warehouse ({r.rows_fetched} result rows). Counts under {mc} are shown as &lt;{mc}.</p>",
         "</body></html>",
     ]
     return "\n".join(parts)
+
+
+def _sensitivity(r: StudyResults) -> list[str]:
+    if not r.effects:
+        return []
+    out = [
+        "<h2>How strong would hidden confounding have to be?</h2>",
+        "<table><tr><th>outcome</th><th>E-value</th><th>E-value of the interval</th><th>robustness value</th>"
+        "<th>robustness value (95% interval)</th><th>partial R² of enrolment</th></tr>",
+    ]
+    for e in r.effects:
+        s = e.sensitivity or {}
+
+        def share(key):
+            v = s.get(key)
+            return "–" if v is None else f"{100 * v:.1f}%"
+
+        out.append(
+            f"<tr><td>{_e(e.outcome)}</td><td class='num'>{_fmt(s.get('e_value'), 2)}</td><td class='num'>{_fmt(s.get('e_value_ci'), 2)}</td>"
+            f"<td class='num'>{share('robustness_value')}</td><td class='num'>{share('robustness_value_alpha')}</td><td class='num'>{share('partial_r2')}</td></tr>"
+        )
+    out.append("</table><ul>")
+    for e in r.effects:
+        s = e.sensitivity or {}
+        if s.get("sentence"):
+            out.append(f"<li><b>{_e(e.outcome)}</b>: {_e(s['sentence'])}</li>")
+        if s.get("robustness_value") is None and s.get("robustness_reason"):
+            out.append(f"<li><b>{_e(e.outcome)}</b>: no robustness value: {_e(s['robustness_reason'])}</li>")
+    out.append("</ul>")
+    out.append(
+        "<p class='note'>E-values (VanderWeele &amp; Ding 2017) are on the risk-ratio scale: for binary outcomes from the risk ratio; "
+        "for others from the standardized effect d = effect / SD through RR ≈ exp(0.91 d). Robustness values (Cinelli &amp; Hazlett 2020) "
+        "come from a weighted regression of each outcome on enrolment among the matched units, adjusting for the numeric features.</p>"
+    )
+    reasons = sorted({e.sensitivity.get("rosenbaum_reason") for e in r.effects if e.sensitivity and e.sensitivity.get("rosenbaum") is None} - {None})
+    if reasons:
+        out.append("<p class='note'>Rosenbaum bounds: not computed. " + " ".join(_e(x) for x in reasons) + "</p>")
+    return out

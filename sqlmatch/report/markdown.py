@@ -2,10 +2,9 @@
 
 from __future__ import annotations
 
-import datetime as dt
-
 from sqlmatch.privacy import count_text, flow_texts, suppress_levels
-from sqlmatch.results import StudyResults
+from sqlmatch.report.words import design_lines, effect_sentence, groups_sentence, provenance_text, sample_rows, window_length
+from sqlmatch.results import StudyResults, warning_kind
 
 SMD_REFERENCE = 0.1  # |SMD| below 0.1 read as balanced: common practice (Austin 2009)
 
@@ -14,8 +13,8 @@ def _n(value: int | None, min_cell: int) -> str:
     return count_text(value, min_cell)
 
 
-def _withheld(flow: dict) -> bool:
-    return any(v == "–" for rows in flow.values() for v in rows.values())
+def _withheld(rows) -> bool:
+    return any(v == "–" for _, t, c in rows for v in (t, c))
 
 
 def _x(value: float | None, digits: int = 3) -> str:
@@ -34,16 +33,6 @@ def _pct_interval(lo: float | None, hi: float | None) -> str:
     return "–" if lo is None or hi is None else f"[{100.0 * lo:+.1f}%, {100.0 * hi:+.1f}%]"
 
 
-def _length(window: list[str], unit: str) -> str:
-    """Length of a [start, end) window in the study's window unit."""
-    start, end = dt.date.fromisoformat(window[0]), dt.date.fromisoformat(window[1])
-    if unit == "month":
-        n = (end.year - start.year) * 12 + end.month - start.month
-    else:
-        n = (end - start).days
-    return f"{n} {unit}{'s' if n != 1 else ''}"
-
-
 def _effect_notes(r: StudyResults) -> list[str]:
     """Risk ratios of binary outcomes and differences-in-differences, in words."""
     lines = []
@@ -60,8 +49,8 @@ def _effect_notes(r: StudyResults) -> list[str]:
             lines.append(
                 f"- **{e.outcome} − {e.did_twin}** (difference-in-differences on the matched sample): "
                 f"{_x(e.did.estimate)} {_interval(e.did.ci_low, e.did.ci_high)}. The two measures are compared as they "
-                f"are: {e.did_twin} covers the pre window ({_length(w['pre'], w['unit'])}), {e.outcome} the post window "
-                f"({_length(w['post'], w['unit'])}); no rescaling to a common length."
+                f"are: {e.did_twin} covers the pre window ({window_length(w['pre'], w['unit'])}), {e.outcome} the post window "
+                f"({window_length(w['post'], w['unit'])}); no rescaling to a common length."
             )
     if lines:
         lines = ["", *lines]
@@ -133,13 +122,14 @@ def _groups_line(m, flow: dict, estimand: str = "att") -> str:
     return f"Strata used: {m.strata:,}; cells dropped for lacking an enrolled or a non-enrolled unit: {m.strata_dropped:,}."
 
 
+
 def render_markdown(r: StudyResults, balance_image: str | None = None) -> str:
     """Markdown sized for a pull-request comment; `balance_image` names the balance plot written
     beside the report, if any."""
     mc = r.min_cell_size
     m = r.matching
-    flow = flow_texts(m, mc)
     w = r.windows
+    rows = sample_rows(r)
     lines = [
         f"# sqlmatch study `{r.study}`: cohort {r.cohort}",
         "",
@@ -147,19 +137,29 @@ def render_markdown(r: StudyResults, balance_image: str | None = None) -> str:
         f"behaviour before enrolment. Features: {w['pre'][0]} to {w['pre'][1]} (exclusive); outcomes: "
         f"{w['post'][0]} to {w['post'][1]} (exclusive); the enrolment month itself is in neither window.",
         "",
+        "## What the result means",
+        "",
+        *[f"- **{e.outcome}**: {effect_sentence(r, e)}" for e in r.effects],
+        "",
+        "This reading holds only if there is no unmeasured confounding (nothing outside the listed features drives both "
+        "enrolment and the outcome), overlap (enrolled units without comparable non-enrolled ones are dropped, so the effect "
+        "describes the matched enrolled units) and no interference (one unit's enrolment does not change another's outcome); "
+        "see the sensitivity figures and the cautions below.",
+    ]
+    if r.warnings:
+        lines += ["", f"## Warnings ({len(r.warnings)})", ""] + [f"- **{warning_kind(t) or 'other'}**: {t}" for t in r.warnings]
+    lines += [
+        "",
         "## Sample",
         "",
         f"Method: **{m.method}**.",
         "",
         "| | enrolled (treated) | not enrolled (control) |",
         "|---|---:|---:|",
-        f"| in the study | {flow['treated']['in_study']} | {flow['control']['in_study']} |",
-        f"| matched | {flow['treated']['matched']} | {flow['control']['matched']} |",
-        f"| dropped: outside the common support | {flow['treated']['outside_support']} | {flow['control']['outside_support']} |",
-        f"| dropped: no comparable unit in the stratum | {flow['treated']['no_comparable']} | {flow['control']['no_comparable']} |",
-        *(["", f"Counts under {mc} are not shown, nor (–) a second count from which one could be worked out."] if _withheld(flow) else []),
+        *[f"| {label} | {t} | {c} |" for label, t, c in rows],
+        *(["", f"Counts under {mc} are not shown, nor (–) a second count from which one could be worked out."] if _withheld(rows) else []),
         "",
-        _groups_line(m, flow, r.effects[0].estimand if r.effects else "att"),
+        _groups_line(m, flow_texts(m, mc), r.effects[0].estimand if r.effects else "att") if m.effective_controls is not None else groups_sentence(r),
         "",
         "## " + ESTIMAND_HEADINGS.get(r.effects[0].estimand if r.effects else "att", "Effects on the enrolled"),
         "",
@@ -191,7 +191,7 @@ def render_markdown(r: StudyResults, balance_image: str | None = None) -> str:
         "|---|---:|---:|---:|---:|",
     ]
     for b in suppress_levels(r.balance, m, mc):
-        flag = " ⚠" if b.smd_after is not None and abs(b.smd_after) >= SMD_REFERENCE else ""
+        flag = " ⚠" if b.smd_after is not None and abs(b.smd_after) > SMD_REFERENCE else ""
         lines.append(
             f"| {b.covariate} | {_x(b.smd_before)} | {_x(b.smd_after)}{flag} | {_x(b.variance_ratio_before, 2)} | {_x(b.variance_ratio_after, 2)} |"
         )
@@ -231,8 +231,10 @@ def render_markdown(r: StudyResults, balance_image: str | None = None) -> str:
             "all before anyone in the cohort enrolled, so every true effect is zero.",
             "",
         ] + [f"- {text}" for text in r.placebo.readings()]
-    if r.warnings:
-        lines += ["", "## Warnings", ""] + [f"- {text}" for text in r.warnings]
+    lines += ["", "## Design", ""] + [f"- **{k}**: {v}" for k, v in design_lines(r)]
+    prov = provenance_text(r)
+    if prov:
+        lines += ["", f"Provenance: {prov}"]
     lines += ["", "## Assumptions and cautions", ""]
     lines += [f"- {a}" for a in r.assumptions]
     lines += [

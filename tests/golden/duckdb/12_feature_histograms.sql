@@ -3,77 +3,66 @@
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_weighted_units
 
-/* Distribution of each numeric feature, treated vs control, before and after matching: 20
+/* Distribution of each numeric feature, treated vs control, before and after matching: 60
    equal-width bins over the feature's range among study units; per bin and group the unit count
    (before) and the sum of matching weights (after). One scan finds every feature's range and one
    more counts every bin: each unit's row is repeated once per feature and grouped by (feature,
    bin, group). Every bin of the grid is returned, empty or not, so the number of rows is fixed by
-   the spec: features x 20 bins x 2 groups. */
+   the spec: features x 60 bins x 2 groups. */
 WITH grid AS (
   SELECT
-    b.bin,
+    t.k * 10 + o.k AS bin,
     g.treated
   FROM (
     SELECT
-      0 AS bin
+      0 AS k
     UNION ALL
     SELECT
-      1 AS bin
+      1 AS k
     UNION ALL
     SELECT
-      2 AS bin
+      2 AS k
     UNION ALL
     SELECT
-      3 AS bin
+      3 AS k
     UNION ALL
     SELECT
-      4 AS bin
+      4 AS k
     UNION ALL
     SELECT
-      5 AS bin
+      5 AS k
     UNION ALL
     SELECT
-      6 AS bin
+      6 AS k
     UNION ALL
     SELECT
-      7 AS bin
+      7 AS k
     UNION ALL
     SELECT
-      8 AS bin
+      8 AS k
     UNION ALL
     SELECT
-      9 AS bin
+      9 AS k
+  ) AS o
+  CROSS JOIN (
+    SELECT
+      0 AS k
     UNION ALL
     SELECT
-      10 AS bin
+      1 AS k
     UNION ALL
     SELECT
-      11 AS bin
+      2 AS k
     UNION ALL
     SELECT
-      12 AS bin
+      3 AS k
     UNION ALL
     SELECT
-      13 AS bin
+      4 AS k
     UNION ALL
     SELECT
-      14 AS bin
-    UNION ALL
-    SELECT
-      15 AS bin
-    UNION ALL
-    SELECT
-      16 AS bin
-    UNION ALL
-    SELECT
-      17 AS bin
-    UNION ALL
-    SELECT
-      18 AS bin
-    UNION ALL
-    SELECT
-      19 AS bin
-  ) AS b
+      5 AS k
+  ) AS t
   CROSS JOIN (
     SELECT
       0 AS treated
@@ -81,6 +70,8 @@ WITH grid AS (
     SELECT
       1 AS treated
   ) AS g
+  WHERE
+    t.k * 10 + o.k < 60
 ), feature_list AS (
   SELECT
     'pre_trips' AS feature
@@ -101,23 +92,23 @@ WITH grid AS (
     MIN(pre_trips) AS pre_trips__low,
     (
       MAX(pre_trips) - MIN(pre_trips)
-    ) / 20.0 AS pre_trips__width,
+    ) / 60.0 AS pre_trips__width,
     MIN(pre_minutes) AS pre_minutes__low,
     (
       MAX(pre_minutes) - MIN(pre_minutes)
-    ) / 20.0 AS pre_minutes__width,
+    ) / 60.0 AS pre_minutes__width,
     MIN(pre_fare_per_trip) AS pre_fare_per_trip__low,
     (
       MAX(pre_fare_per_trip) - MIN(pre_fare_per_trip)
-    ) / 20.0 AS pre_fare_per_trip__width,
+    ) / 60.0 AS pre_fare_per_trip__width,
     MIN(pre_active_days) AS pre_active_days__low,
     (
       MAX(pre_active_days) - MIN(pre_active_days)
-    ) / 20.0 AS pre_active_days__width,
+    ) / 60.0 AS pre_active_days__width,
     MIN(pre_days_since_last) AS pre_days_since_last__low,
     (
       MAX(pre_days_since_last) - MIN(pre_days_since_last)
-    ) / 20.0 AS pre_days_since_last__width
+    ) / 60.0 AS pre_days_since_last__width
   FROM "sqlmatch".annual_pass_weighted_units
 ), ranges AS (
   SELECT
@@ -174,7 +165,7 @@ WITH grid AS (
     feature,
     COALESCE(LEAST(CAST(FLOOR((
       value - low
-    ) / NULLIF(width, 0)) AS INT), 19), 0) AS bin,
+    ) / NULLIF(width, 0)) AS INT), 59), 0) AS bin,
     treated,
     COUNT(*) AS n_units,
     SUM(weight) AS sum_w
@@ -185,7 +176,7 @@ WITH grid AS (
     feature,
     COALESCE(LEAST(CAST(FLOOR((
       value - low
-    ) / NULLIF(width, 0)) AS INT), 19), 0),
+    ) / NULLIF(width, 0)) AS INT), 59), 0),
     treated
 )
 SELECT

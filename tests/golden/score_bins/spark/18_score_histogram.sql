@@ -4,73 +4,62 @@
 -- reads: sqlmatch.annual_pass_scores, sqlmatch.annual_pass_weighted_units
 
 /* Overlap of the propensity score (logit scale), treated vs control, before and after matching:
-   20 equal-width bins over the range of all scores; per bin and group the unit count and the
-   sum of matching weights. Every bin is returned, empty or not: 20 x 2 rows. */
+   60 equal-width bins over the range of all scores; per bin and group the unit count and the
+   sum of matching weights. Every bin is returned, empty or not: 60 x 2 rows. */
 WITH grid AS (
   SELECT
-    b.bin,
+    t.k * 10 + o.k AS bin,
     g.treated
   FROM (
     SELECT
-      0 AS bin
+      0 AS k
     UNION ALL
     SELECT
-      1 AS bin
+      1 AS k
     UNION ALL
     SELECT
-      2 AS bin
+      2 AS k
     UNION ALL
     SELECT
-      3 AS bin
+      3 AS k
     UNION ALL
     SELECT
-      4 AS bin
+      4 AS k
     UNION ALL
     SELECT
-      5 AS bin
+      5 AS k
     UNION ALL
     SELECT
-      6 AS bin
+      6 AS k
     UNION ALL
     SELECT
-      7 AS bin
+      7 AS k
     UNION ALL
     SELECT
-      8 AS bin
+      8 AS k
     UNION ALL
     SELECT
-      9 AS bin
+      9 AS k
+  ) AS o
+  CROSS JOIN (
+    SELECT
+      0 AS k
     UNION ALL
     SELECT
-      10 AS bin
+      1 AS k
     UNION ALL
     SELECT
-      11 AS bin
+      2 AS k
     UNION ALL
     SELECT
-      12 AS bin
+      3 AS k
     UNION ALL
     SELECT
-      13 AS bin
+      4 AS k
     UNION ALL
     SELECT
-      14 AS bin
-    UNION ALL
-    SELECT
-      15 AS bin
-    UNION ALL
-    SELECT
-      16 AS bin
-    UNION ALL
-    SELECT
-      17 AS bin
-    UNION ALL
-    SELECT
-      18 AS bin
-    UNION ALL
-    SELECT
-      19 AS bin
-  ) AS b
+      5 AS k
+  ) AS t
   CROSS JOIN (
     SELECT
       0 AS treated
@@ -78,18 +67,20 @@ WITH grid AS (
     SELECT
       1 AS treated
   ) AS g
+  WHERE
+    t.k * 10 + o.k < 60
 ), r AS (
   SELECT
     MIN(score) AS low,
     (
       MAX(score) - MIN(score)
-    ) / 20.0 AS width
+    ) / 60.0 AS width
   FROM `sqlmatch`.annual_pass_scores
 ), counts AS (
   SELECT
     COALESCE(LEAST(CAST(FLOOR((
       s.score - r.low
-    ) / NULLIF(r.width, 0)) AS INT), 19), 0) AS bin,
+    ) / NULLIF(r.width, 0)) AS INT), 59), 0) AS bin,
     s.treated,
     COUNT(*) AS n_units,
     SUM(COALESCE(w.match__weight, 0)) AS sum_w
@@ -100,7 +91,7 @@ WITH grid AS (
   GROUP BY
     COALESCE(LEAST(CAST(FLOOR((
       s.score - r.low
-    ) / NULLIF(r.width, 0)) AS INT), 19), 0),
+    ) / NULLIF(r.width, 0)) AS INT), 59), 0),
     s.treated
 )
 SELECT
