@@ -11,9 +11,9 @@
    ones (age_band). 0 = identical distributions, 1 = no overlap. One row. */
 WITH ranges AS (
   SELECT
-    MIN(m.pre_trips) AS pre_trips__low,
+    MIN(CAST(CAST(m.pre_trips AS DECIMAL(38, 10)) AS DOUBLE)) AS pre_trips__low,
     (
-      MAX(m.pre_trips) - MIN(m.pre_trips)
+      MAX(CAST(CAST(m.pre_trips AS DECIMAL(38, 10)) AS DOUBLE)) - MIN(CAST(CAST(m.pre_trips AS DECIMAL(38, 10)) AS DOUBLE))
     ) / 10.0 AS pre_trips__width
   FROM "sqlmatch".annual_pass_weighted_units AS m
 ), cells AS (
@@ -21,9 +21,11 @@ WITH ranges AS (
     m.treated,
     COALESCE(
       LEAST(
-        CAST(FLOOR((
-          m.pre_trips - r.pre_trips__low
-        ) / NULLIF(r.pre_trips__width, 0)) AS INT),
+        CAST(FLOOR(
+          (
+            CAST(CAST(m.pre_trips AS DECIMAL(38, 10)) AS DOUBLE) - r.pre_trips__low
+          ) / NULLIF(r.pre_trips__width, 0)
+        ) AS INT),
         9
       ),
       -1

@@ -11,9 +11,9 @@
    ones (age_band). 0 = identical distributions, 1 = no overlap. One row. */
 WITH ranges AS (
   SELECT
-    MIN(m.pre_trips) AS pre_trips__low,
+    MIN(CAST(CAST(m.pre_trips AS DECIMAL(38, 10)) AS DOUBLE PRECISION)) AS pre_trips__low,
     CAST((
-      MAX(m.pre_trips) - MIN(m.pre_trips)
+      MAX(CAST(CAST(m.pre_trips AS DECIMAL(38, 10)) AS DOUBLE PRECISION)) - MIN(CAST(CAST(m.pre_trips AS DECIMAL(38, 10)) AS DOUBLE PRECISION))
     ) AS DOUBLE PRECISION) / 10.0 AS pre_trips__width
   FROM "sqlmatch".annual_pass_weighted_units AS m
 ), cells AS (
@@ -23,7 +23,7 @@ WITH ranges AS (
       LEAST(
         CAST(FLOOR(
           CAST((
-            m.pre_trips - r.pre_trips__low
+            CAST(CAST(m.pre_trips AS DECIMAL(38, 10)) AS DOUBLE PRECISION) - r.pre_trips__low
           ) AS DOUBLE PRECISION) / NULLIF(r.pre_trips__width, 0)
         ) AS INT),
         9

@@ -89,25 +89,25 @@ WITH grid AS (
     'pre_days_since_last' AS feature
 ), ranges_wide AS (
   SELECT
-    MIN(pre_trips) AS pre_trips__low,
+    MIN(CAST(CAST(pre_trips AS DECIMAL(38, 10)) AS DOUBLE)) AS pre_trips__low,
     (
-      MAX(pre_trips) - MIN(pre_trips)
+      MAX(CAST(CAST(pre_trips AS DECIMAL(38, 10)) AS DOUBLE)) - MIN(CAST(CAST(pre_trips AS DECIMAL(38, 10)) AS DOUBLE))
     ) / 60.0 AS pre_trips__width,
-    MIN(pre_minutes) AS pre_minutes__low,
+    MIN(CAST(CAST(pre_minutes AS DECIMAL(38, 10)) AS DOUBLE)) AS pre_minutes__low,
     (
-      MAX(pre_minutes) - MIN(pre_minutes)
+      MAX(CAST(CAST(pre_minutes AS DECIMAL(38, 10)) AS DOUBLE)) - MIN(CAST(CAST(pre_minutes AS DECIMAL(38, 10)) AS DOUBLE))
     ) / 60.0 AS pre_minutes__width,
-    MIN(pre_fare_per_trip) AS pre_fare_per_trip__low,
+    MIN(CAST(CAST(pre_fare_per_trip AS DECIMAL(38, 10)) AS DOUBLE)) AS pre_fare_per_trip__low,
     (
-      MAX(pre_fare_per_trip) - MIN(pre_fare_per_trip)
+      MAX(CAST(CAST(pre_fare_per_trip AS DECIMAL(38, 10)) AS DOUBLE)) - MIN(CAST(CAST(pre_fare_per_trip AS DECIMAL(38, 10)) AS DOUBLE))
     ) / 60.0 AS pre_fare_per_trip__width,
-    MIN(pre_active_days) AS pre_active_days__low,
+    MIN(CAST(CAST(pre_active_days AS DECIMAL(38, 10)) AS DOUBLE)) AS pre_active_days__low,
     (
-      MAX(pre_active_days) - MIN(pre_active_days)
+      MAX(CAST(CAST(pre_active_days AS DECIMAL(38, 10)) AS DOUBLE)) - MIN(CAST(CAST(pre_active_days AS DECIMAL(38, 10)) AS DOUBLE))
     ) / 60.0 AS pre_active_days__width,
-    MIN(pre_days_since_last) AS pre_days_since_last__low,
+    MIN(CAST(CAST(pre_days_since_last AS DECIMAL(38, 10)) AS DOUBLE)) AS pre_days_since_last__low,
     (
-      MAX(pre_days_since_last) - MIN(pre_days_since_last)
+      MAX(CAST(CAST(pre_days_since_last AS DECIMAL(38, 10)) AS DOUBLE)) - MIN(CAST(CAST(pre_days_since_last AS DECIMAL(38, 10)) AS DOUBLE))
     ) / 60.0 AS pre_days_since_last__width
   FROM `sqlmatch`.annual_pass_weighted_units
 ), ranges AS (
@@ -147,15 +147,15 @@ WITH grid AS (
     m.treated,
     CASE r.feature
       WHEN 'pre_trips'
-      THEN m.pre_trips
+      THEN CAST(CAST(m.pre_trips AS DECIMAL(38, 10)) AS DOUBLE)
       WHEN 'pre_minutes'
-      THEN m.pre_minutes
+      THEN CAST(CAST(m.pre_minutes AS DECIMAL(38, 10)) AS DOUBLE)
       WHEN 'pre_fare_per_trip'
-      THEN m.pre_fare_per_trip
+      THEN CAST(CAST(m.pre_fare_per_trip AS DECIMAL(38, 10)) AS DOUBLE)
       WHEN 'pre_active_days'
-      THEN m.pre_active_days
+      THEN CAST(CAST(m.pre_active_days AS DECIMAL(38, 10)) AS DOUBLE)
       WHEN 'pre_days_since_last'
-      THEN m.pre_days_since_last
+      THEN CAST(CAST(m.pre_days_since_last AS DECIMAL(38, 10)) AS DOUBLE)
     END AS value,
     COALESCE(m.match__weight, 0) AS weight
   FROM `sqlmatch`.annual_pass_weighted_units AS m

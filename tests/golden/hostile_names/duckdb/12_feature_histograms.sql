@@ -80,13 +80,13 @@ WITH grid AS (
     'pre_fare' AS feature
 ), ranges_wide AS (
   SELECT
-    MIN(pre_trips) AS pre_trips__low,
+    MIN(CAST(CAST(pre_trips AS DECIMAL(38, 10)) AS DOUBLE)) AS pre_trips__low,
     (
-      MAX(pre_trips) - MIN(pre_trips)
+      MAX(CAST(CAST(pre_trips AS DECIMAL(38, 10)) AS DOUBLE)) - MIN(CAST(CAST(pre_trips AS DECIMAL(38, 10)) AS DOUBLE))
     ) / 60.0 AS pre_trips__width,
-    MIN(pre_fare) AS pre_fare__low,
+    MIN(CAST(CAST(pre_fare AS DECIMAL(38, 10)) AS DOUBLE)) AS pre_fare__low,
     (
-      MAX(pre_fare) - MIN(pre_fare)
+      MAX(CAST(CAST(pre_fare AS DECIMAL(38, 10)) AS DOUBLE)) - MIN(CAST(CAST(pre_fare AS DECIMAL(38, 10)) AS DOUBLE))
     ) / 60.0 AS pre_fare__width
   FROM "sqlmatch".annual_pass_weighted_units
 ), ranges AS (
@@ -112,7 +112,12 @@ WITH grid AS (
     r.low,
     r.width,
     m.treated,
-    CASE r.feature WHEN 'pre_trips' THEN m.pre_trips WHEN 'pre_fare' THEN m.pre_fare END AS value,
+    CASE r.feature
+      WHEN 'pre_trips'
+      THEN CAST(CAST(m.pre_trips AS DECIMAL(38, 10)) AS DOUBLE)
+      WHEN 'pre_fare'
+      THEN CAST(CAST(m.pre_fare AS DECIMAL(38, 10)) AS DOUBLE)
+    END AS value,
     COALESCE(m.match__weight, 0) AS weight
   FROM "sqlmatch".annual_pass_weighted_units AS m
   CROSS JOIN ranges AS r

@@ -11,25 +11,25 @@
    ones (age_band, home_district). 0 = identical distributions, 1 = no overlap. One row. */
 WITH ranges AS (
   SELECT
-    MIN(m.pre_trips) AS pre_trips__low,
+    MIN(CAST(CAST(m.pre_trips AS DECIMAL(38, 10)) AS DOUBLE)) AS pre_trips__low,
     (
-      MAX(m.pre_trips) - MIN(m.pre_trips)
+      MAX(CAST(CAST(m.pre_trips AS DECIMAL(38, 10)) AS DOUBLE)) - MIN(CAST(CAST(m.pre_trips AS DECIMAL(38, 10)) AS DOUBLE))
     ) / 10.0 AS pre_trips__width,
-    MIN(m.pre_minutes) AS pre_minutes__low,
+    MIN(CAST(CAST(m.pre_minutes AS DECIMAL(38, 10)) AS DOUBLE)) AS pre_minutes__low,
     (
-      MAX(m.pre_minutes) - MIN(m.pre_minutes)
+      MAX(CAST(CAST(m.pre_minutes AS DECIMAL(38, 10)) AS DOUBLE)) - MIN(CAST(CAST(m.pre_minutes AS DECIMAL(38, 10)) AS DOUBLE))
     ) / 10.0 AS pre_minutes__width,
-    MIN(m.pre_fare_per_trip) AS pre_fare_per_trip__low,
+    MIN(CAST(CAST(m.pre_fare_per_trip AS DECIMAL(38, 10)) AS DOUBLE)) AS pre_fare_per_trip__low,
     (
-      MAX(m.pre_fare_per_trip) - MIN(m.pre_fare_per_trip)
+      MAX(CAST(CAST(m.pre_fare_per_trip AS DECIMAL(38, 10)) AS DOUBLE)) - MIN(CAST(CAST(m.pre_fare_per_trip AS DECIMAL(38, 10)) AS DOUBLE))
     ) / 10.0 AS pre_fare_per_trip__width,
-    MIN(m.pre_active_days) AS pre_active_days__low,
+    MIN(CAST(CAST(m.pre_active_days AS DECIMAL(38, 10)) AS DOUBLE)) AS pre_active_days__low,
     (
-      MAX(m.pre_active_days) - MIN(m.pre_active_days)
+      MAX(CAST(CAST(m.pre_active_days AS DECIMAL(38, 10)) AS DOUBLE)) - MIN(CAST(CAST(m.pre_active_days AS DECIMAL(38, 10)) AS DOUBLE))
     ) / 10.0 AS pre_active_days__width,
-    MIN(m.pre_days_since_last) AS pre_days_since_last__low,
+    MIN(CAST(CAST(m.pre_days_since_last AS DECIMAL(38, 10)) AS DOUBLE)) AS pre_days_since_last__low,
     (
-      MAX(m.pre_days_since_last) - MIN(m.pre_days_since_last)
+      MAX(CAST(CAST(m.pre_days_since_last AS DECIMAL(38, 10)) AS DOUBLE)) - MIN(CAST(CAST(m.pre_days_since_last AS DECIMAL(38, 10)) AS DOUBLE))
     ) / 10.0 AS pre_days_since_last__width
   FROM "sqlmatch".annual_pass_weighted_units AS m
 ), cells AS (
@@ -37,18 +37,22 @@ WITH ranges AS (
     m.treated,
     COALESCE(
       LEAST(
-        CAST(FLOOR((
-          m.pre_trips - r.pre_trips__low
-        ) / NULLIF(r.pre_trips__width, 0)) AS INT),
+        CAST(FLOOR(
+          (
+            CAST(CAST(m.pre_trips AS DECIMAL(38, 10)) AS DOUBLE) - r.pre_trips__low
+          ) / NULLIF(r.pre_trips__width, 0)
+        ) AS INT),
         9
       ),
       -1
     ) AS pre_trips__h,
     COALESCE(
       LEAST(
-        CAST(FLOOR((
-          m.pre_minutes - r.pre_minutes__low
-        ) / NULLIF(r.pre_minutes__width, 0)) AS INT),
+        CAST(FLOOR(
+          (
+            CAST(CAST(m.pre_minutes AS DECIMAL(38, 10)) AS DOUBLE) - r.pre_minutes__low
+          ) / NULLIF(r.pre_minutes__width, 0)
+        ) AS INT),
         9
       ),
       -1
@@ -57,7 +61,7 @@ WITH ranges AS (
       LEAST(
         CAST(FLOOR(
           (
-            m.pre_fare_per_trip - r.pre_fare_per_trip__low
+            CAST(CAST(m.pre_fare_per_trip AS DECIMAL(38, 10)) AS DOUBLE) - r.pre_fare_per_trip__low
           ) / NULLIF(r.pre_fare_per_trip__width, 0)
         ) AS INT),
         9
@@ -68,7 +72,7 @@ WITH ranges AS (
       LEAST(
         CAST(FLOOR(
           (
-            m.pre_active_days - r.pre_active_days__low
+            CAST(CAST(m.pre_active_days AS DECIMAL(38, 10)) AS DOUBLE) - r.pre_active_days__low
           ) / NULLIF(r.pre_active_days__width, 0)
         ) AS INT),
         9
@@ -79,7 +83,7 @@ WITH ranges AS (
       LEAST(
         CAST(FLOOR(
           (
-            m.pre_days_since_last - r.pre_days_since_last__low
+            CAST(CAST(m.pre_days_since_last AS DECIMAL(38, 10)) AS DOUBLE) - r.pre_days_since_last__low
           ) / NULLIF(r.pre_days_since_last__width, 0)
         ) AS INT),
         9

@@ -11,25 +11,25 @@
    ones (age_band, home_district). 0 = identical distributions, 1 = no overlap. One row. */
 WITH ranges AS (
   SELECT
-    MIN(m.pre_trips) AS pre_trips__low,
+    MIN(CAST(CAST(m.pre_trips AS DECIMAL(38, 10)) AS DOUBLE PRECISION)) AS pre_trips__low,
     CAST((
-      MAX(m.pre_trips) - MIN(m.pre_trips)
+      MAX(CAST(CAST(m.pre_trips AS DECIMAL(38, 10)) AS DOUBLE PRECISION)) - MIN(CAST(CAST(m.pre_trips AS DECIMAL(38, 10)) AS DOUBLE PRECISION))
     ) AS DOUBLE PRECISION) / 10.0 AS pre_trips__width,
-    MIN(m.pre_minutes) AS pre_minutes__low,
+    MIN(CAST(CAST(m.pre_minutes AS DECIMAL(38, 10)) AS DOUBLE PRECISION)) AS pre_minutes__low,
     CAST((
-      MAX(m.pre_minutes) - MIN(m.pre_minutes)
+      MAX(CAST(CAST(m.pre_minutes AS DECIMAL(38, 10)) AS DOUBLE PRECISION)) - MIN(CAST(CAST(m.pre_minutes AS DECIMAL(38, 10)) AS DOUBLE PRECISION))
     ) AS DOUBLE PRECISION) / 10.0 AS pre_minutes__width,
-    MIN(m.pre_fare_per_trip) AS pre_fare_per_trip__low,
+    MIN(CAST(CAST(m.pre_fare_per_trip AS DECIMAL(38, 10)) AS DOUBLE PRECISION)) AS pre_fare_per_trip__low,
     CAST((
-      MAX(m.pre_fare_per_trip) - MIN(m.pre_fare_per_trip)
+      MAX(CAST(CAST(m.pre_fare_per_trip AS DECIMAL(38, 10)) AS DOUBLE PRECISION)) - MIN(CAST(CAST(m.pre_fare_per_trip AS DECIMAL(38, 10)) AS DOUBLE PRECISION))
     ) AS DOUBLE PRECISION) / 10.0 AS pre_fare_per_trip__width,
-    MIN(m.pre_active_days) AS pre_active_days__low,
+    MIN(CAST(CAST(m.pre_active_days AS DECIMAL(38, 10)) AS DOUBLE PRECISION)) AS pre_active_days__low,
     CAST((
-      MAX(m.pre_active_days) - MIN(m.pre_active_days)
+      MAX(CAST(CAST(m.pre_active_days AS DECIMAL(38, 10)) AS DOUBLE PRECISION)) - MIN(CAST(CAST(m.pre_active_days AS DECIMAL(38, 10)) AS DOUBLE PRECISION))
     ) AS DOUBLE PRECISION) / 10.0 AS pre_active_days__width,
-    MIN(m.pre_days_since_last) AS pre_days_since_last__low,
+    MIN(CAST(CAST(m.pre_days_since_last AS DECIMAL(38, 10)) AS DOUBLE PRECISION)) AS pre_days_since_last__low,
     CAST((
-      MAX(m.pre_days_since_last) - MIN(m.pre_days_since_last)
+      MAX(CAST(CAST(m.pre_days_since_last AS DECIMAL(38, 10)) AS DOUBLE PRECISION)) - MIN(CAST(CAST(m.pre_days_since_last AS DECIMAL(38, 10)) AS DOUBLE PRECISION))
     ) AS DOUBLE PRECISION) / 10.0 AS pre_days_since_last__width
   FROM "sqlmatch".annual_pass_weighted_units AS m
 ), cells AS (
@@ -39,7 +39,7 @@ WITH ranges AS (
       LEAST(
         CAST(FLOOR(
           CAST((
-            m.pre_trips - r.pre_trips__low
+            CAST(CAST(m.pre_trips AS DECIMAL(38, 10)) AS DOUBLE PRECISION) - r.pre_trips__low
           ) AS DOUBLE PRECISION) / NULLIF(r.pre_trips__width, 0)
         ) AS INT),
         9
@@ -50,7 +50,7 @@ WITH ranges AS (
       LEAST(
         CAST(FLOOR(
           CAST((
-            m.pre_minutes - r.pre_minutes__low
+            CAST(CAST(m.pre_minutes AS DECIMAL(38, 10)) AS DOUBLE PRECISION) - r.pre_minutes__low
           ) AS DOUBLE PRECISION) / NULLIF(r.pre_minutes__width, 0)
         ) AS INT),
         9
@@ -61,7 +61,7 @@ WITH ranges AS (
       LEAST(
         CAST(FLOOR(
           CAST((
-            m.pre_fare_per_trip - r.pre_fare_per_trip__low
+            CAST(CAST(m.pre_fare_per_trip AS DECIMAL(38, 10)) AS DOUBLE PRECISION) - r.pre_fare_per_trip__low
           ) AS DOUBLE PRECISION) / NULLIF(r.pre_fare_per_trip__width, 0)
         ) AS INT),
         9
@@ -72,7 +72,7 @@ WITH ranges AS (
       LEAST(
         CAST(FLOOR(
           CAST((
-            m.pre_active_days - r.pre_active_days__low
+            CAST(CAST(m.pre_active_days AS DECIMAL(38, 10)) AS DOUBLE PRECISION) - r.pre_active_days__low
           ) AS DOUBLE PRECISION) / NULLIF(r.pre_active_days__width, 0)
         ) AS INT),
         9
@@ -83,7 +83,7 @@ WITH ranges AS (
       LEAST(
         CAST(FLOOR(
           CAST((
-            m.pre_days_since_last - r.pre_days_since_last__low
+            CAST(CAST(m.pre_days_since_last AS DECIMAL(38, 10)) AS DOUBLE PRECISION) - r.pre_days_since_last__low
           ) AS DOUBLE PRECISION) / NULLIF(r.pre_days_since_last__width, 0)
         ) AS INT),
         9

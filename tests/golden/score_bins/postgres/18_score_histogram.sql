@@ -71,18 +71,20 @@ WITH grid AS (
     t.k * 10 + o.k < 60
 ), r AS (
   SELECT
-    MIN(score) AS low,
+    MIN(CAST(CAST(score AS DECIMAL(38, 10)) AS DOUBLE PRECISION)) AS low,
     CAST((
-      MAX(score) - MIN(score)
+      MAX(CAST(CAST(score AS DECIMAL(38, 10)) AS DOUBLE PRECISION)) - MIN(CAST(CAST(score AS DECIMAL(38, 10)) AS DOUBLE PRECISION))
     ) AS DOUBLE PRECISION) / 60.0 AS width
   FROM "sqlmatch".annual_pass_scores
 ), counts AS (
   SELECT
     COALESCE(
       LEAST(
-        CAST(FLOOR(CAST((
-          s.score - r.low
-        ) AS DOUBLE PRECISION) / NULLIF(r.width, 0)) AS INT),
+        CAST(FLOOR(
+          CAST((
+            CAST(CAST(s.score AS DECIMAL(38, 10)) AS DOUBLE PRECISION) - r.low
+          ) AS DOUBLE PRECISION) / NULLIF(r.width, 0)
+        ) AS INT),
         59
       ),
       0
@@ -97,9 +99,11 @@ WITH grid AS (
   GROUP BY
     COALESCE(
       LEAST(
-        CAST(FLOOR(CAST((
-          s.score - r.low
-        ) AS DOUBLE PRECISION) / NULLIF(r.width, 0)) AS INT),
+        CAST(FLOOR(
+          CAST((
+            CAST(CAST(s.score AS DECIMAL(38, 10)) AS DOUBLE PRECISION) - r.low
+          ) AS DOUBLE PRECISION) / NULLIF(r.width, 0)
+        ) AS INT),
         59
       ),
       0

@@ -71,16 +71,24 @@ WITH grid AS (
     t.k * 10 + o.k < 60
 ), r AS (
   SELECT
-    MIN(score) AS low,
+    MIN(CAST(CAST(score AS DECIMAL(38, 10)) AS DOUBLE)) AS low,
     (
-      MAX(score) - MIN(score)
+      MAX(CAST(CAST(score AS DECIMAL(38, 10)) AS DOUBLE)) - MIN(CAST(CAST(score AS DECIMAL(38, 10)) AS DOUBLE))
     ) / 60.0 AS width
   FROM `sqlmatch`.annual_pass_scores
 ), counts AS (
   SELECT
-    COALESCE(LEAST(CAST(FLOOR((
-      s.score - r.low
-    ) / NULLIF(r.width, 0)) AS INT), 59), 0) AS bin,
+    COALESCE(
+      LEAST(
+        CAST(FLOOR(
+          (
+            CAST(CAST(s.score AS DECIMAL(38, 10)) AS DOUBLE) - r.low
+          ) / NULLIF(r.width, 0)
+        ) AS INT),
+        59
+      ),
+      0
+    ) AS bin,
     s.treated,
     COUNT(*) AS n_units,
     SUM(COALESCE(w.match__weight, 0)) AS sum_w
@@ -89,9 +97,17 @@ WITH grid AS (
     ON w.unit_key = s.unit_key
   CROSS JOIN r
   GROUP BY
-    COALESCE(LEAST(CAST(FLOOR((
-      s.score - r.low
-    ) / NULLIF(r.width, 0)) AS INT), 59), 0),
+    COALESCE(
+      LEAST(
+        CAST(FLOOR(
+          (
+            CAST(CAST(s.score AS DECIMAL(38, 10)) AS DOUBLE) - r.low
+          ) / NULLIF(r.width, 0)
+        ) AS INT),
+        59
+      ),
+      0
+    ),
     s.treated
 )
 SELECT
