@@ -335,15 +335,13 @@ class AttributeColumn:
     name: str
     categorical: bool
     value: str
+    condition: bool = False  # a boolean expression: the template makes it 1 / 0 (NULL stays NULL)
 
 
 def attribute_column(f) -> AttributeColumn:
     if f.expression is None:
         return AttributeColumn(f.name, f.categorical, exp.column(exp.to_identifier(f.attribute, quoted=True), table=exp.to_identifier("u")).sql(render.SOURCE_DIALECT))
-    value = render.expression_sql(f.expression, alias="u")
-    if is_boolean(f.expression):
-        value = f"CASE WHEN {value} THEN 1 WHEN NOT ({value}) THEN 0 END"
-    return AttributeColumn(f.name, f.categorical, value)
+    return AttributeColumn(f.name, f.categorical, render.expression_sql(f.expression, alias="u"), condition=is_boolean(f.expression))
 
 
 def source_steps(ctx: PlanContext, outcomes, columns) -> list[Step]:
@@ -527,12 +525,17 @@ def subgroup_text(g) -> str:
     return f"the levels of {g.feature}" if g.feature else f"{g.where_text}: yes / no"
 
 
-def subgroup_level_sql(g) -> str:
-    """The subgroup level of a unit (alias m), as SQL built from quoted pieces: a categorical
-    feature's level (NULL as '(missing)'), or 'yes' / 'no' for a condition (NULL counts as no)."""
-    if g.feature:
-        return f"COALESCE(m.{render.quote_name(g.feature)}, {render.literal('(missing)')})"
-    return f"CASE WHEN {render.expression_sql(g.where, alias='m')} THEN {render.literal('yes')} ELSE {render.literal('no')} END"
+@dataclass(frozen=True)
+class SubgroupLevel:
+    """What outcome_strata groups a subgroup by: a categorical feature, or a condition (its SQL
+    re-printed by sqlglot from the parsed spec, columns qualified with the alias m)."""
+
+    feature: str | None = None
+    condition: str | None = None
+
+
+def subgroup_level(g) -> SubgroupLevel:
+    return SubgroupLevel(feature=g.feature) if g.feature else SubgroupLevel(condition=render.expression_sql(g.where, alias="m"))
 
 
 def outcome_steps(ctx: PlanContext, outcomes, per_match: bool) -> list[Step]:
@@ -578,7 +581,7 @@ def outcome_steps(ctx: PlanContext, outcomes, per_match: bool) -> list[Step]:
                 adjust_features=[],
                 adjust_pairs=[],
                 adjust_outcomes=[],
-                level=subgroup_level_sql(g),
+                level=subgroup_level(g),
                 measures_table=ctx.table("measures"),
                 weights_table=ctx.table("match_weights"),
                 weighted_table=ctx.table("weighted_units"),

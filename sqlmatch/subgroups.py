@@ -4,7 +4,7 @@ effect differs between levels. Pure: no database.
 Each level's effect is the study's own estimator (att.py, ratio.py) on the strata restricted to the
 level. Heterogeneity: Cochran's Q over the levels with an estimate (Cochran 1954, Biometrics 10:101),
 Q = sum_l (tau_l - tau_bar)^2 / v_l with tau_bar the inverse-variance weighted mean, referred to a
-chi-square on L - 1 degrees of freedom. The levels are independent samples (a unit is in one level),
+chi-square on L - 1 degrees of freedom: the same computation as for pooled cohorts (pooling.py). The levels are independent samples (a unit is in one level),
 so the test is valid; with few units per level it has little power, and a small p-value among many
 subgroups and outcomes can be chance. A level with fewer than report.min_cell_size enrolled or
 comparison units gets no estimate (and stays out of Q): it could single out a few people.
@@ -14,11 +14,9 @@ from __future__ import annotations
 
 import math
 
-import numpy as np
-from scipy import stats
-
 from sqlmatch import aggregates
 from sqlmatch.engines.base import QueryResult
+from sqlmatch.estimators.pooling import pool
 from sqlmatch.estimators.att import stratified_att, stratum_weights
 from sqlmatch.estimators.ratio import RatioSums, ratio_effect
 
@@ -34,17 +32,6 @@ def _level_result(result: QueryResult, level) -> QueryResult:
 
 def _finite(x):
     return None if x is None or not math.isfinite(x) else float(x)
-
-
-def cochran_q(estimates, std_errors) -> tuple[float | None, int | None, float | None]:
-    est, se = np.asarray(estimates, float), np.asarray(std_errors, float)
-    if len(est) < 2 or np.any(~np.isfinite(se)) or np.any(se <= 0):
-        return None, None, None
-    w = 1.0 / se**2
-    mean = float(np.sum(w * est) / np.sum(w))
-    q = float(np.sum(w * (est - mean) ** 2))
-    df = len(est) - 1
-    return q, df, float(stats.chi2.sf(q, df))
 
 
 def subgroup_effects(spec, outcomes, r) -> list[SubgroupEffects]:
@@ -82,7 +69,10 @@ def subgroup_effects(spec, outcomes, r) -> list[SubgroupEffects]:
                 rows.append(SubgroupLevel(str(level), n_t, n_c, iv))
                 if iv.estimate is not None and iv.std_error is not None:
                     shown.append(iv)
-            q, df, p = cochran_q([x.estimate for x in shown], [x.std_error for x in shown])
+            q = df = p = None
+            if len(shown) >= 2:  # Cochran's Q as for pooled cohorts (estimators/pooling.py)
+                pooled = pool([x.estimate for x in shown], [x.std_error for x in shown])
+                q, df, p = pooled.q, pooled.cohorts - 1, pooled.q_p_value
             describes = f"levels of {g.feature}" if g.feature else f"{g.where_text} (yes / no)"
             out.append(SubgroupEffects(subgroup=g.name, describes=describes, outcome=o.name, levels=tuple(rows), q=q, df=df, p_value=p))
     return out
