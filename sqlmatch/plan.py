@@ -543,6 +543,8 @@ def outcome_steps(ctx: PlanContext, outcomes, per_match: bool) -> list[Step]:
     spec = ctx.spec
     weighted = [ctx.display("weighted_units")]
     numeric = [f.name for f in spec.numeric_features]
+    # the regression adjustment's sums, for methods whose strata weigh a group's units alike
+    adjust = method_for(spec.matching.method).adjustable
     steps: list[Step] = []
     for matched in (True, False):
         steps.append(
@@ -559,9 +561,9 @@ def outcome_steps(ctx: PlanContext, outcomes, per_match: bool) -> list[Step]:
                 per_match=per_match,
                 outcomes=outcomes,
                 # sums for regression adjustment within strata (estimators/adjusted.py)
-                adjust_features=numeric if matched else [],
-                adjust_pairs=[(numeric[i], numeric[j]) for i, j in upper_pairs(len(numeric))] if matched else [],
-                adjust_outcomes=[o.name for o in outcomes if o.kind != "ratio"] if matched else [],
+                adjust_features=numeric if matched and adjust else [],
+                adjust_pairs=[(numeric[i], numeric[j]) for i, j in upper_pairs(len(numeric))] if matched and adjust else [],
+                adjust_outcomes=[o.name for o in outcomes if o.kind != "ratio"] if matched and adjust else [],
                 level=None,
                 measures_table=ctx.table("measures"),
                 weights_table=ctx.table("match_weights"),
