@@ -186,21 +186,20 @@ class RegressionSums:
 
 
 def regression_sums(result: QueryResult, outcome: str, kind: str, features: list[str]) -> RegressionSums:
-    """Unpack one outcome from the one-row regression query. Ratio outcomes carry their own
-    weight set (matching weight x denominator): its columns are prefixed with the outcome name."""
+    """Unpack one outcome from the one-row regression query (a ratio outcome as its linearised
+    value, with the same weights and design sums as every other outcome)."""
     row = result.one()
     design = columns.regression_design(features)
     names = ("intercept", "treated", *features)
     p = len(design)
-    own = outcome if kind == "ratio" else None  # ratio outcomes carry their own weight set
     xtx = np.empty((p, p))
     for i, j in columns.upper_pairs(p):
-        xtx[i, j] = xtx[j, i] = _f(row[columns.xtx(i, j, own)])
+        xtx[i, j] = xtx[j, i] = _f(row[columns.xtx(i, j)])
     xty = np.array([_f(row[columns.xty(outcome, i)]) for i in range(p)])
     yty = _f(row[stat(outcome, "yty")])
-    n = int(row[columns.weight_total("n_units", own)] or 0)
+    n = int(row[columns.weight_total("n_units")] or 0)
     sum_w, sum_w_t = xtx[0, 0], xtx[0, 1]  # treated is 0/1, so sum w t is the treated weight
-    sum_w2, sum_w2_t = _f(row[columns.weight_total("sum_w2", own)]), _f(row[columns.weight_total("sum_w2_t", own)])
+    sum_w2, sum_w2_t = _f(row[columns.weight_total("sum_w2")]), _f(row[columns.weight_total("sum_w2_t")])
     sum_y, sum_ty = xty[0], xty[1]
     sum_yy, sum_tyy = yty, _f(row[stat(outcome, "tyy")])
     return RegressionSums(

@@ -52,18 +52,18 @@ def cross(a: str, b: str) -> str:
     return f"{a}__x__{b}"
 
 
-def xtx(i: int, j: int, outcome: str | None = None) -> str:
-    """Entry (i, j), i <= j, of X'WX in outcome_regression; ratio outcomes have their own."""
-    return f"{outcome}__xtx_{i}_{j}" if outcome else f"xtx_{i}_{j}"
+def xtx(i: int, j: int) -> str:
+    """Entry (i, j), i <= j, of X'WX in outcome_regression (shared by every outcome)."""
+    return f"xtx_{i}_{j}"
 
 
 def xty(outcome: str, i: int) -> str:
     return f"{outcome}__xty_{i}"
 
 
-def weight_total(what: str, outcome: str | None = None) -> str:
-    """n_units, sum_w2, sum_w2_t of outcome_regression: overall, or a ratio outcome's own weights."""
-    return f"{outcome}__{what}" if outcome else what
+def weight_total(what: str) -> str:
+    """n_units, sum_w2, sum_w2_t of outcome_regression."""
+    return what
 
 
 def gradient(i: int) -> str:

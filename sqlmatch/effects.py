@@ -325,7 +325,7 @@ def outcome_sensitivity(outcome, fields: dict, rr, regression, features: list[st
     # Continuous and ratio outcomes: RR ~= exp(0.91 d), d = effect / SD, where SD is the pooled
     # SD sqrt((s2_1 + s2_0) / 2) of the outcome among the matched units, each group's variance
     # weighted by the matching weights (reliability-weight form, as in the balance table; ratio
-    # outcomes: each unit's own ratio, weighted by matching weight x denominator).
+    # outcomes: the linearised value z of outcome_regression, whose group means are the ratios).
     ev = None
     sd = None
     if outcome.kind == "binary":
@@ -348,7 +348,9 @@ def outcome_sensitivity(outcome, fields: dict, rr, regression, features: list[st
 
     # Robustness value (Cinelli & Hazlett 2020) of the treatment coefficient of the weighted
     # regression of the outcome on treatment and the numeric features (matched units, matching
-    # weights as analytic weights); categorical features are not in that regression.
+    # weights as analytic weights); categorical features are not in that regression. A ratio
+    # outcome enters linearised (z = R_g + (y - R_g x) / xbar_g; Cochran 1977 §6.3, Woodruff 1971,
+    # recalled), so its coefficient is about the headline R_1 - R_0, not the effect on units' own ratios.
     rv = None
     if fit is not None and "treated" in fit.names and math.isfinite(fit.t("treated")) and fit.df > 1:
         rv = robustness_value(fit.t("treated"), fit.df)

@@ -41,8 +41,7 @@ def test_regression_columns_are_the_contract():
         for d in design:
             assert columns.xty(o.name, d.index) in names
         assert {columns.stat(o.name, "yty"), columns.stat(o.name, "tyy"), columns.stat(o.name, "centre")} <= names
-        if o.kind == "ratio":
-            assert columns.xtx(0, 0, o.name) in names and columns.weight_total("n_units", o.name) in names
+    assert {columns.weight_total(w) for w in ("n_units", "sum_w2", "sum_w2_t")} <= names
 
 
 def test_upper_pairs_cover_a_symmetric_matrix_once():

@@ -91,7 +91,8 @@ def _sensitivity_section(r: StudyResults) -> list[str]:
         "regression of each outcome on enrolment among the matched units, with the matching weights as analytic weights, "
         + (f"adjusting for the numeric features ({', '.join(adjusted)})" if adjusted else "adjusting for the numeric features")
         + "; the categorical features are not in that regression, and its enrolment coefficient can differ a little "
-        "from the stratified effect above. Ratio outcomes enter it as each unit's own ratio, weighted by its denominator.",
+        "from the stratified effect above. A ratio outcome enters it linearised, as R + (numerator - R x denominator) / mean denominator "
+        "with R and the mean denominator of the unit's group, so that its enrolment coefficient is about the ratio effect above.",
     ]
     reasons = sorted({e.sensitivity.get("rosenbaum_reason") for e in r.effects if e.sensitivity and e.sensitivity.get("rosenbaum") is None} - {None})
     if reasons:

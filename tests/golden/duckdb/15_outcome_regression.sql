@@ -9,9 +9,11 @@
    Design columns: x0 = 1; x1 = treated; x2 = pre_trips; x3 = pre_minutes; x4 = pre_fare_per_trip; x5 = pre_active_days; x6 = pre_days_since_last.
    Features and outcomes are centred at their weighted means first (this only moves the
    intercept, and keeps the sums well conditioned); the centres are returned too. Units missing a
-   numeric feature are left out. Ratio outcomes use each unit's own ratio, weighted by matching
-   weight x denominator (units with a zero denominator weigh nothing), so the treatment
-   coefficient of the plain regression is the difference of the ratios of weighted sums.
+   numeric feature are left out. A ratio outcome (sum y / sum x) enters as its linearised value
+   z = R_g + (y - R_g x) / xbar_g, with R_g the group's ratio of weighted sums and xbar_g its weighted
+   mean denominator: the group means of z are R_1 and R_0, so the treatment coefficient is about
+   the headline ratio effect. A unit's own ratio y / x would be a different quantity: treatment
+   moves the denominators, and adjusting it for the features removes that shift from the effect.
    Also per weight set: sum of squared weights (overall and treated), for the outcomes' SDs. */
 WITH matched AS (
   SELECT
@@ -44,9 +46,33 @@ WITH matched AS (
     SUM(w * v4) / NULLIF(SUM(w), 0) AS cv4,
     SUM(w * y0) / NULLIF(SUM(w), 0) AS cy0,
     SUM(w * y1) / NULLIF(SUM(w), 0) AS cy1,
-    SUM(CASE WHEN den2 > 0 THEN w * num2 END) / NULLIF(SUM(CASE WHEN den2 > 0 THEN w * den2 END), 0) AS cy2,
-    SUM(w * y3) / NULLIF(SUM(w), 0) AS cy3
+    SUM(t * w * num2) AS num_t2,
+    SUM((
+      1 - t
+    ) * w * num2) AS num_c2,
+    SUM(t * w * den2) AS den_t2,
+    SUM((
+      1 - t
+    ) * w * den2) AS den_c2,
+    SUM(w * y3) / NULLIF(SUM(w), 0) AS cy3,
+    SUM(t * w) AS w_t,
+    SUM((
+      1 - t
+    ) * w) AS w_c
   FROM matched
+), ratio_parts AS (
+  /* per ratio outcome and group: R_g = sum w y / sum w x and xbar_g = sum w x / sum w; cy, the
+     weighted mean of z over both groups, is its centre */
+  SELECT
+    c.num_t2 / NULLIF(c.den_t2, 0) AS r_t2,
+    c.num_c2 / NULLIF(c.den_c2, 0) AS r_c2,
+    c.den_t2 / NULLIF(c.w_t, 0) AS xbar_t2,
+    c.den_c2 / NULLIF(c.w_c, 0) AS xbar_c2,
+    (
+      c.w_t * c.num_t2 / NULLIF(c.den_t2, 0) + c.w_c * c.num_c2 / NULLIF(c.den_c2, 0)
+    ) / NULLIF(c.w_t + c.w_c, 0) AS cy2,
+    c.*
+  FROM centre AS c
 ), design AS (
   SELECT
     m.w,
@@ -66,13 +92,20 @@ WITH matched AS (
     c.cy0,
     m.y1 - c.cy1 AS y1,
     c.cy1,
-    CASE WHEN m.den2 > 0 THEN m.w * m.den2 ELSE CAST(0.0 AS DOUBLE) END AS wr2,
-    CASE WHEN m.den2 > 0 THEN m.num2 / NULLIF(m.den2, 0) - c.cy2 END AS y2,
+    CASE
+      WHEN m.t = 1
+      THEN c.r_t2 + (
+        m.num2 - c.r_t2 * m.den2
+      ) / NULLIF(c.xbar_t2, 0)
+      ELSE c.r_c2 + (
+        m.num2 - c.r_c2 * m.den2
+      ) / NULLIF(c.xbar_c2, 0)
+    END - c.cy2 AS y2,
     c.cy2,
     m.y3 - c.cy3 AS y3,
     c.cy3
   FROM matched AS m
-  CROSS JOIN centre AS c
+  CROSS JOIN ratio_parts AS c
 )
 SELECT
   COUNT(*) AS n_units,
@@ -131,46 +164,15 @@ SELECT
   SUM(w * y1 * y1) AS post_minutes__yty,
   SUM(w * x1 * y1 * y1) AS post_minutes__tyy,
   MAX(cy1) AS post_minutes__centre,
-  COUNT(y2) AS fare_per_trip__n_units,
-  SUM(wr2 * wr2) AS fare_per_trip__sum_w2,
-  SUM(wr2 * wr2 * x1) AS fare_per_trip__sum_w2_t,
-  SUM(wr2 * x0 * x0) AS fare_per_trip__xtx_0_0,
-  SUM(wr2 * x0 * x1) AS fare_per_trip__xtx_0_1,
-  SUM(wr2 * x0 * x2) AS fare_per_trip__xtx_0_2,
-  SUM(wr2 * x0 * x3) AS fare_per_trip__xtx_0_3,
-  SUM(wr2 * x0 * x4) AS fare_per_trip__xtx_0_4,
-  SUM(wr2 * x0 * x5) AS fare_per_trip__xtx_0_5,
-  SUM(wr2 * x0 * x6) AS fare_per_trip__xtx_0_6,
-  SUM(wr2 * x1 * x1) AS fare_per_trip__xtx_1_1,
-  SUM(wr2 * x1 * x2) AS fare_per_trip__xtx_1_2,
-  SUM(wr2 * x1 * x3) AS fare_per_trip__xtx_1_3,
-  SUM(wr2 * x1 * x4) AS fare_per_trip__xtx_1_4,
-  SUM(wr2 * x1 * x5) AS fare_per_trip__xtx_1_5,
-  SUM(wr2 * x1 * x6) AS fare_per_trip__xtx_1_6,
-  SUM(wr2 * x2 * x2) AS fare_per_trip__xtx_2_2,
-  SUM(wr2 * x2 * x3) AS fare_per_trip__xtx_2_3,
-  SUM(wr2 * x2 * x4) AS fare_per_trip__xtx_2_4,
-  SUM(wr2 * x2 * x5) AS fare_per_trip__xtx_2_5,
-  SUM(wr2 * x2 * x6) AS fare_per_trip__xtx_2_6,
-  SUM(wr2 * x3 * x3) AS fare_per_trip__xtx_3_3,
-  SUM(wr2 * x3 * x4) AS fare_per_trip__xtx_3_4,
-  SUM(wr2 * x3 * x5) AS fare_per_trip__xtx_3_5,
-  SUM(wr2 * x3 * x6) AS fare_per_trip__xtx_3_6,
-  SUM(wr2 * x4 * x4) AS fare_per_trip__xtx_4_4,
-  SUM(wr2 * x4 * x5) AS fare_per_trip__xtx_4_5,
-  SUM(wr2 * x4 * x6) AS fare_per_trip__xtx_4_6,
-  SUM(wr2 * x5 * x5) AS fare_per_trip__xtx_5_5,
-  SUM(wr2 * x5 * x6) AS fare_per_trip__xtx_5_6,
-  SUM(wr2 * x6 * x6) AS fare_per_trip__xtx_6_6,
-  SUM(wr2 * x0 * y2) AS fare_per_trip__xty_0,
-  SUM(wr2 * x1 * y2) AS fare_per_trip__xty_1,
-  SUM(wr2 * x2 * y2) AS fare_per_trip__xty_2,
-  SUM(wr2 * x3 * y2) AS fare_per_trip__xty_3,
-  SUM(wr2 * x4 * y2) AS fare_per_trip__xty_4,
-  SUM(wr2 * x5 * y2) AS fare_per_trip__xty_5,
-  SUM(wr2 * x6 * y2) AS fare_per_trip__xty_6,
-  SUM(wr2 * y2 * y2) AS fare_per_trip__yty,
-  SUM(wr2 * x1 * y2 * y2) AS fare_per_trip__tyy,
+  SUM(w * x0 * y2) AS fare_per_trip__xty_0,
+  SUM(w * x1 * y2) AS fare_per_trip__xty_1,
+  SUM(w * x2 * y2) AS fare_per_trip__xty_2,
+  SUM(w * x3 * y2) AS fare_per_trip__xty_3,
+  SUM(w * x4 * y2) AS fare_per_trip__xty_4,
+  SUM(w * x5 * y2) AS fare_per_trip__xty_5,
+  SUM(w * x6 * y2) AS fare_per_trip__xty_6,
+  SUM(w * y2 * y2) AS fare_per_trip__yty,
+  SUM(w * x1 * y2 * y2) AS fare_per_trip__tyy,
   MAX(cy2) AS fare_per_trip__centre,
   SUM(w * x0 * y3) AS active_last_month__xty_0,
   SUM(w * x1 * y3) AS active_last_month__xty_1,

@@ -9,9 +9,11 @@
    Design columns: x0 = 1; x1 = treated; x2 = pre_trips; x3 = pre_fare.
    Features and outcomes are centred at their weighted means first (this only moves the
    intercept, and keeps the sums well conditioned); the centres are returned too. Units missing a
-   numeric feature are left out. Ratio outcomes use each unit's own ratio, weighted by matching
-   weight x denominator (units with a zero denominator weigh nothing), so the treatment
-   coefficient of the plain regression is the difference of the ratios of weighted sums.
+   numeric feature are left out. A ratio outcome (sum y / sum x) enters as its linearised value
+   z = R_g + (y - R_g x) / xbar_g, with R_g the group's ratio of weighted sums and xbar_g its weighted
+   mean denominator: the group means of z are R_1 and R_0, so the treatment coefficient is about
+   the headline ratio effect. A unit's own ratio y / x would be a different quantity: treatment
+   moves the denominators, and adjusting it for the features removes that shift from the effect.
    Also per weight set: sum of squared weights (overall and treated), for the outcomes' SDs. */
 WITH matched AS (
   SELECT
@@ -27,7 +29,11 @@ WITH matched AS (
   SELECT
     SUM(w * v0) / NULLIF(SUM(w), 0) AS cv0,
     SUM(w * v1) / NULLIF(SUM(w), 0) AS cv1,
-    SUM(w * y0) / NULLIF(SUM(w), 0) AS cy0
+    SUM(w * y0) / NULLIF(SUM(w), 0) AS cy0,
+    SUM(t * w) AS w_t,
+    SUM((
+      1 - t
+    ) * w) AS w_c
   FROM matched
 ), design AS (
   SELECT
