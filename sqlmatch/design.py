@@ -101,6 +101,8 @@ def _feature(f) -> dict:
         out["measure"] = f.measure
     if f.attribute:
         out["attribute"] = f.attribute
+    if f.expression_text:
+        out["expression"] = f.expression_text
     if f.missing:
         out["missing"] = f.missing
     return out

@@ -99,7 +99,7 @@ def data_warnings(spec: Spec, r, balance) -> list[str]:
                 "coverage",
             ))
         # a study whose features are all unit attributes reads no pre-window events
-        reads_pre = any(f.aggregate != "attribute" and not f.is_missing_indicator for f in spec.features)
+        reads_pre = bool(spec.event_features)
         if reads_pre and first is not None and _as_date(first) > w.pre_start + dt.timedelta(days=7):
             out.append(Caution(
                 f"The events start on {_as_date(first)}, more than a week after the pre window starts ({w.pre_start}): "

@@ -17,7 +17,7 @@ from sqlglot import exp
 from sqlmatch import dialects, render
 from sqlmatch.columns import regression_design, stat, upper_pairs
 from sqlmatch.matching import method_for
-from sqlmatch.spec import MISSING_INDICATOR, Spec, is_boolean, last_period_start
+from sqlmatch.spec import DERIVED, MISSING_INDICATOR, Spec, is_boolean, last_period_start
 
 MANIFEST_VERSION = 1
 HISTOGRAM_BINS = 60  # bins of the report's distribution plots: fine enough that a plot cut at the 99th percentile keeps a dozen or more
@@ -149,7 +149,7 @@ class PlanContext:
     def weighted_columns(self) -> list[str]:
         """The measures carried into <study>_weighted_units: every feature and outcome column."""
         columns, _ = measure_columns(self.spec)
-        attributes = [f.name for f in self.spec.features if f.aggregate in ("attribute", MISSING_INDICATOR)]
+        attributes = [f.name for f in self.spec.features if f.aggregate in ("attribute", MISSING_INDICATOR, DERIVED)]
         return [c.name for c in columns if c.carried] + attributes
 
     def table_node(self, logical: str) -> exp.Table:
@@ -344,6 +344,50 @@ def attribute_column(f) -> AttributeColumn:
     return AttributeColumn(f.name, f.categorical, render.expression_sql(f.expression, alias="u"), condition=is_boolean(f.expression))
 
 
+@dataclass(frozen=True)
+class DerivedColumn:
+    """A derived feature as unit_measures computes it over the unit's row `r`: `value` is SQL built
+    by sqlglot from the spec's expression, with the guards below."""
+
+    name: str
+    key: str
+    value: str
+    condition: bool = False  # a boolean expression: the template makes it 1 / 0 (NULL stays NULL)
+    fill: float | None = None
+
+
+def derived_column(f, spec: Spec) -> DerivedColumn:
+    """The expression over earlier features, rewritten so every engine gives the same value:
+    numeric features read as DOUBLE (no integer division on PostgreSQL), x / y as x / NULLIF(y, 0),
+    LN and SQRT of an argument outside their domain as NULL (LN(0): an error on PostgreSQL, -inf on
+    DuckDB, NULL on Spark), ROUND through DECIMAL (half away from zero everywhere: PostgreSQL
+    rounds a double half to even and has no ROUND(double, digits)). NULL then takes the feature's fill."""
+    categorical = {g.name for g in spec.categorical_features}
+    tree = f.expression.copy()
+
+    def read(node):
+        if isinstance(node, exp.Column):
+            col = exp.column(exp.to_identifier(node.name, quoted=True), table=exp.to_identifier("r"))
+            return col if node.name in categorical else exp.cast(col, exp.DataType.build("DOUBLE"))
+        return node
+
+    def rewrite(node):
+        if isinstance(node, exp.Div):
+            node.set("expression", exp.Nullif(this=node.expression, expression=exp.Literal.number(0)))
+        elif isinstance(node, (exp.Ln, exp.Sqrt)):
+            low = exp.GT if isinstance(node, exp.Ln) else exp.GTE
+            arg = node.this
+            node.set("this", exp.Case(ifs=[exp.If(this=low(this=arg.copy(), expression=exp.Literal.number(0)), true=arg)]))
+        elif isinstance(node, exp.Round):
+            digits = node.args.get("decimals") or exp.Literal.number(0)
+            decimal = exp.DataType.build("DECIMAL(38, 10)")
+            return exp.cast(exp.Round(this=exp.cast(node.this, decimal), decimals=digits), exp.DataType.build("DOUBLE"))
+        return node
+
+    tree = tree.transform(read, copy=False).transform(rewrite, copy=False)
+    return DerivedColumn(f.name, f.key, tree.sql(render.SOURCE_DIALECT), condition=is_boolean(f.expression), fill=f.fill)
+
+
 def source_steps(ctx: PlanContext, outcomes, columns) -> list[Step]:
     """The study's units, the checks on them, and one pass over the events for every feature and outcome."""
     spec = ctx.spec
@@ -406,6 +450,7 @@ def source_steps(ctx: PlanContext, outcomes, columns) -> list[Step]:
             windows=w,
             columns=columns,
             attributes=spec.attribute_features,
+            derived=[derived_column(f, spec) for f in spec.derived_features],
             units_table=ctx.table("units"),
             check_unknown=spec.check_unknown_units,
             units_source=spec.units,
@@ -423,7 +468,9 @@ def source_steps(ctx: PlanContext, outcomes, columns) -> list[Step]:
             purpose="First and last event within the windows, units without events (warn on gaps), events of unknown units, sums of the measures (refuse NaN).",
             windows=w,
             totals=[c.name for c in columns if c.agg in ("sum", "mean", "count_missing")]
-            + [f.name for f in spec.attribute_features if not f.categorical],
+            + [f.name for f in spec.attribute_features if not f.categorical]
+            + [f.name for f in spec.derived_features],
+            derived=[f.name for f in spec.derived_features],
             check_unknown=spec.check_unknown_units,
             measures_table=ctx.table("measures"),
         )

@@ -90,7 +90,7 @@ def preflight(spec: Spec, engine: Engine) -> None:
         if f.attribute:
             kinds = None if f.categorical else NUMERIC_TYPE_WORDS
             need(units, spec.units.display, f"features[{i}] ({f.name}).attribute", f.attribute, kinds, "numeric")
-        elif f.expression is not None and not f.is_missing_indicator:
+        elif f.expression is not None and f.aggregate == "attribute":  # a derived one reads features, checked in the spec
             for col in filter_columns(f.expression):
                 need(units, spec.units.display, f"{f.key}.expression", col)
     for i, tree in enumerate(spec.filters):
@@ -259,6 +259,23 @@ def _check_coverage(spec: Spec, result: QueryResult) -> None:
             "so every outcome would be 0.",
             "pick an earlier treatment.cohort (the post window follows it), or wait until the post window's events have arrived.",
         )
+    for f in spec.derived_features:
+        nulls = int(row.get(stat(f.name, "null")) or 0)
+        if nulls:
+            raise DataError(
+                f"{f.key}.expression",
+                f"{f.expression_text!r} gives no value (NULL) for {nulls:,} units of the study (a division by zero, "
+                "ln or sqrt outside their domain, or a NULL feature it reads).",
+                "guard it (e.g. CASE WHEN pre_trips > 0 THEN pre_fare / pre_trips ELSE 0 END), or set fill = <number> for those units.",
+            )
+        total = row.get(stat(f.name, "total"))
+        if total is not None and not math.isfinite(float(total)):
+            raise DataError(
+                f"{f.key}.expression",
+                f"{f.expression_text!r} gives NaN or infinite values (its total over the study's units is {float(total)}), "
+                "e.g. exp() of a large number, or a feature it reads holds them.",
+                "keep its values finite: transform the features (ln(1 + x) rather than exp(x)) or cap them (least(x, <number>)).",
+            )
     for column, (key, source, table) in _measure_sources(spec).items():
         total = row.get(stat(column, "total"))
         if total is not None and not math.isfinite(float(total)):

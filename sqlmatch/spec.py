@@ -34,7 +34,10 @@ from sqlmatch.spec_values import read_str as _str
 _NAME_RE = re.compile(r"^[a-z](?!.*__)[a-z0-9_]{0,47}$")
 _COHORT_RE = re.compile(r"^(\d{4})-(\d{2})$")
 
-FEATURE_AGGREGATES = ("count", "sum", "mean", "active_days", "days_since_last", "attribute")
+FEATURE_AGGREGATES = ("count", "sum", "mean", "active_days", "days_since_last", "attribute", "derived")
+# "derived": an expression over features defined before it (pre_trips * pre_trips, ln(1 + pre_trips),
+# pre_trips = 0, ...), computed per unit after the measures, in the same step
+DERIVED = "derived"
 # "missing_indicator" features are not written in specs: a numeric attribute with missing = "fill"
 # adds one (1 where the attribute was NULL, else 0), so matching and balance see who was filled.
 MISSING_INDICATOR = "missing_indicator"
@@ -72,6 +75,11 @@ _FILTER_FUNCTIONS = {
     exp.Greatest: "greatest", exp.Substring: "substr/substring", exp.Concat: "concat",
 }
 FILTER_FUNCTIONS_TEXT = ", ".join(sorted(_FILTER_FUNCTIONS.values()))
+# Derived features also take these numeric functions; plan.derived_column guards their arguments so
+# every engine gives the same value (LN(0) is an error on PostgreSQL, -inf on DuckDB, NULL on Spark).
+# LOG is left out: log(x) is base 10 on DuckDB and PostgreSQL, base e on Spark.
+_DERIVED_FUNCTIONS = {**_FILTER_FUNCTIONS, exp.Ln: "ln", exp.Exp: "exp", exp.Sqrt: "sqrt", exp.Pow: "power"}
+DERIVED_FUNCTIONS_TEXT = ", ".join(sorted(set(_DERIVED_FUNCTIONS.values())))
 _FILTER_MAX_DEPTH = 64  # nesting of parentheses; deeper is refused before parsing
 
 
@@ -120,8 +128,9 @@ class Feature:
     # the study, "level" (categorical) makes it a level of its own. Event features are never NULL.
     missing: str | None = None
     key: str = field(default="", compare=False)  # the spec key naming this feature, for messages
-    # attribute features: a SQL expression over unit columns instead of one column (parsed and
-    # allowlisted as filters are; a condition counts as 1 when true, 0 when false)
+    # attribute features: a SQL expression over unit columns instead of one column; derived
+    # features: one over earlier features (parsed and allowlisted as filters are; a condition
+    # counts as 1 when true, 0 when false)
     expression: exp.Expression | None = field(default=None, compare=False)
     expression_text: str | None = None
 
@@ -245,7 +254,11 @@ class Spec:
 
     @property
     def event_features(self) -> tuple[Feature, ...]:
-        return tuple(f for f in self.features if f.aggregate not in ("attribute", MISSING_INDICATOR))
+        return tuple(f for f in self.features if f.aggregate not in ("attribute", MISSING_INDICATOR, DERIVED))
+
+    @property
+    def derived_features(self) -> tuple[Feature, ...]:
+        return tuple(f for f in self.features if f.aggregate == DERIVED)
 
     @property
     def missing_indicators(self) -> tuple[Feature, ...]:
@@ -510,7 +523,28 @@ def is_boolean(tree: exp.Expression) -> bool:
     )
 
 
-def _parse_unit_expression(text: Any, key: str, what_kind: str, wanted: str) -> exp.Expression:
+def parse_derived_expression(text: Any, key: str, name: str, earlier: list[str], later: list[str]) -> exp.Expression:
+    """One SQL expression over the features defined before this one (pre_trips * pre_trips,
+    ln(1 + pre_trips), pre_trips = 0, ...): the parse and allowlist of filters plus a few numeric
+    functions; a column must name an earlier feature."""
+    tree = _parse_unit_expression(text, key, "derived feature expression", "a SQL expression", functions=_DERIVED_FUNCTIONS, over="earlier features")
+    for node in tree.find_all(exp.Mod, exp.IntDiv):
+        # on doubles, % does not exist on PostgreSQL and // divides on DuckDB but truncates elsewhere
+        raise SpecError(key, f"{node.sql(dialect='duckdb')[:40]!r} uses {'%' if isinstance(node, exp.Mod) else '//'}, which engines compute differently.",
+                        "write floor(x / y) for a whole quotient, or x - y * floor(x / y) for a remainder.")
+    for col in filter_columns(tree):
+        if col in earlier:
+            continue
+        if col == name:
+            raise SpecError(key, f"refers to {col!r}, the feature it defines.", f"build it from features defined before it: {', '.join(earlier) or '(none)'}.")
+        if col in later:
+            raise SpecError(key, f"refers to {col!r}, which is defined after this feature.", f"move [[features]] {col!r} above this one, or use features defined before it: {', '.join(earlier) or '(none)'}.")
+        raise SpecError(key, f"refers to {col!r}, which is not a feature.", f"a derived feature reads features defined before it: {', '.join(earlier) or '(none)'}.")
+    return tree
+
+
+def _parse_unit_expression(text: Any, key: str, what_kind: str, wanted: str, functions: dict | None = None, over: str = "unit columns") -> exp.Expression:
+    functions = _FILTER_FUNCTIONS if functions is None else functions
     if not isinstance(text, str) or not text.strip():
         raise SpecError(key, f"must be {wanted} as a string, got {text!r}.")
     depth = deepest = 0
@@ -524,7 +558,7 @@ def _parse_unit_expression(text: Any, key: str, what_kind: str, wanted: str) -> 
         statements = sqlglot.parse(text, read="duckdb")
     except sqlglot.errors.SqlglotError as err:
         first = str(err).splitlines()[0]
-        raise SpecError(key, f"could not be parsed as SQL: {first}", f"write one {wanted[2:]} over unit columns.") from None
+        raise SpecError(key, f"could not be parsed as SQL: {first}", f"write one {wanted[2:]} over {over}.") from None
     except RecursionError:
         raise SpecError(key, "is nested too deeply to parse.", "write a flatter expression.") from None
     statements = [s for s in statements if s is not None]
@@ -535,9 +569,10 @@ def _parse_unit_expression(text: Any, key: str, what_kind: str, wanted: str) -> 
             f"write exactly one {wanted[2:]}, with no semicolon, e.g. signup_date < DATE '2025-09-01'.",
         )
     tree = statements[0]
-    allowed_fix = f"{what_kind}s may use unit columns, literals, comparisons, AND/OR/NOT, arithmetic, CASE, IN (...), BETWEEN, IS NULL, LIKE, CAST and the functions {FILTER_FUNCTIONS_TEXT}."
+    names = ", ".join(sorted(set(functions.values())))
+    allowed_fix = f"{what_kind}s may use {over}, literals, comparisons, AND/OR/NOT, arithmetic, CASE, IN (...), BETWEEN, IS NULL, LIKE, CAST and the functions {names}."
     for node in tree.walk():
-        if isinstance(node, tuple(_FILTER_FUNCTIONS)) or isinstance(node, _FILTER_NODES):
+        if isinstance(node, tuple(functions)) or isinstance(node, _FILTER_NODES):
             if isinstance(node, exp.In) and (node.args.get("query") or node.args.get("field") or node.args.get("unnest")):
                 raise SpecError(key, "uses IN with something other than a list of values.", "remove the statement or subquery; " + allowed_fix)
             if isinstance(node, exp.Column) and not isinstance(node.this, exp.Identifier):
@@ -550,11 +585,11 @@ def _parse_unit_expression(text: Any, key: str, what_kind: str, wanted: str) -> 
             what = f"{type(node).__name__.upper()} ({node.sql(dialect='duckdb')[:40]!r})"
         statement = isinstance(node, (exp.Query, exp.Subquery, exp.DML, exp.DDL, exp.Command))
         fix = ("remove the statement or subquery; " if statement else "") + allowed_fix
-        raise SpecError(key, f"{what} is not allowed in a {what_kind}; only {wanted} over unit columns is.", fix)
+        raise SpecError(key, f"{what} is not allowed in a {what_kind}; only {wanted} over {over} is.", fix)
     for node in tree.walk():
         node.comments = None
         if isinstance(node, exp.Column) and node.table:
-            raise SpecError(key, f"refers to {node.sql()!r} with a table prefix.", "name unit columns without a prefix.")
+            raise SpecError(key, f"refers to {node.sql()!r} with a table prefix.", f"name {over} without a prefix.")
     return tree
 
 
@@ -724,7 +759,8 @@ def _list_of_tables(value: Any, key: str) -> list[dict]:
 
 def _features(value: Any, windows: Windows) -> list[Feature]:
     out = []
-    for i, item in enumerate(_list_of_tables(value, "features")):
+    items = _list_of_tables(value, "features")
+    for i, item in enumerate(items):
         key = f"features[{i}]"
         _check_keys(item, key, {"name", "aggregate", "measure", "attribute", "expression", "type", "fill", "missing"})
         name = _name(_str(item, key, "name"), f"{key}.name")
@@ -734,8 +770,15 @@ def _features(value: Any, windows: Windows) -> list[Feature]:
         if measure and agg not in ("sum", "mean"):
             raise SpecError(f"{key}.measure", f"is only used with aggregate sum or mean, not {agg}.", "remove it.")
         expression_text = item.get("expression")
+        if agg == DERIVED:
+            out.append(_derived(item, key, name, out, [x.get("name") for x in items[i + 1:]]))
+            continue
         if expression_text is not None and agg != "attribute":
-            raise SpecError(f"{key}.expression", "is only used with aggregate = \"attribute\" (an expression over unit columns).", "remove it, or make the feature an attribute.")
+            raise SpecError(
+                f"{key}.expression",
+                "is only used with aggregate = \"attribute\" (an expression over unit columns) or \"derived\" (one over earlier features).",
+                "remove it, or make the feature an attribute or derived.",
+            )
         if expression_text is not None and "attribute" in item:
             raise SpecError(f"{key}.expression", "is given with attribute: a feature is one column or one expression.", "remove one of them.")
         expression = parse_attribute_expression(expression_text, f"{key}.expression") if expression_text is not None else None
@@ -778,6 +821,24 @@ def _features(value: Any, windows: Windows) -> list[Feature]:
     return out
 
 
+def _derived(item: dict, key: str, name: str, earlier: list[Feature], later: list) -> Feature:
+    """A derived feature: expression over the features before it, numeric; `fill` stands in
+    where the expression gives no value (NULL, e.g. a division by zero), else such a unit refuses the run."""
+    for other in ("measure", "attribute", "missing"):
+        if other in item:
+            raise SpecError(f"{key}.{other}", 'is not used by a derived feature (aggregate = "derived"), which is computed from other features.', "remove it.")
+    if item.get("type", "numeric") != "numeric":
+        raise SpecError(f"{key}.type", "a derived feature is numeric.", 'remove type; to group values into levels, use an attribute expression (aggregate = "attribute") over unit columns.')
+    if "expression" not in item:
+        raise SpecError(f"{key}.expression", "is missing.", 'write the feature as an expression over features defined before it, e.g. expression = "pre_trips * pre_trips".')
+    fill = item.get("fill")
+    if fill is not None and (isinstance(fill, bool) or not isinstance(fill, (int, float))):
+        raise SpecError(f"{key}.fill", f"must be a number, got {fill!r}.")
+    text = item["expression"]
+    tree = parse_derived_expression(text, f"{key}.expression", name, [f.name for f in earlier], [n for n in later if isinstance(n, str)])
+    return Feature(name=name, aggregate=DERIVED, fill=None if fill is None else float(fill), key=key, expression=tree, expression_text=text)
+
+
 def _missing_policy(item: dict, key: str, kind: str, fill: Any) -> str:
     """The NULL policy of an attribute feature: explicit, with a default that never guesses for a
     number (refuse the run if any value is NULL) and keeps NULL as a level of a category."""
@@ -815,7 +876,7 @@ def _outcomes(value: Any, windows: Windows, features: tuple[Feature, ...] = ()) 
             # compared between groups (difference-in-differences on the matched sample).
             if agg not in ("count", "sum", "active_days"):
                 raise SpecError(f"{key}.twin", f"is only used with count, sum or active_days outcomes, not {agg}.", "remove it.")
-            event_numeric = [f.name for f in features if f.aggregate != "attribute" and not f.categorical]
+            event_numeric = [f.name for f in features if f.aggregate not in ("attribute", DERIVED) and not f.categorical]
             twin_feature = next((f for f in features if f.name == twin), None)
             if twin_feature is None or twin not in event_numeric:
                 what = "is not a feature" if twin_feature is None else "is not a numeric pre-window event feature"
