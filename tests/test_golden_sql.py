@@ -156,6 +156,47 @@ def test_events_are_scanned_once(spec):
     assert scans(api.compile_plan(parse_spec(raw), "duckdb")) == {"unit_measures": 1}
 
 
+def derived_spec():
+    from derived import with_derived
+
+    return parse_spec(with_derived(tomllib.loads(DEMO_SPEC.read_text())))
+
+
+DERIVED_STEPS = ("unit_measures", "data_coverage")
+
+
+@pytest.mark.parametrize("dialect", SNAPSHOT_DIALECTS)
+def test_derived_features_compile_to_golden_sql(dialect, update_golden, tmp_path):
+    """The steps that compute (unit_measures) and check (data_coverage) derived features; the other
+    steps only gain their columns by name."""
+    plan = api.compile_plan(derived_spec(), dialect)
+    files = {name: text for (name, text), step in zip(plan.files().items(), plan.steps) if step.name in DERIVED_STEPS}
+    assert len(files) == len(DERIVED_STEPS)
+    folder = GOLDEN / "derived" / dialect
+    if update_golden:
+        shutil.rmtree(folder, ignore_errors=True)
+        folder.mkdir(parents=True)
+        for name, text in files.items():
+            (folder / name).write_text(text, encoding="utf-8")
+    assert sorted(files) == sorted(p.name for p in folder.iterdir()), "step files differ from the golden set; rerun with --update-golden if intended"
+    for name, text in files.items():
+        assert text == (folder / name).read_text(), f"derived/{dialect}/{name} differs from golden"
+
+
+@pytest.mark.parametrize("dialect", DIALECTS)
+def test_derived_features_parse_back_and_scan_the_events_once(dialect):
+    plan = api.compile_plan(derived_spec(), dialect)
+    scans = {}
+    for step in plan.steps:
+        for statement in step.statements:
+            trees = [t for t in sqlglot.parse(statement, read=dialect) if t is not None]
+            assert len(trees) == 1, step.name
+            n = sum(1 for t in trees[0].find_all(sqlglot.exp.Table) if t.name == "trips")
+            if n:
+                scans[step.name] = n
+    assert scans == {"unit_measures": 1}
+
+
 HOSTILE = GOLDEN / "hostile_names"
 
 
