@@ -523,11 +523,22 @@ def is_boolean(tree: exp.Expression) -> bool:
     )
 
 
-def parse_derived_expression(text: Any, key: str, name: str, earlier: list[str], later: list[str]) -> exp.Expression:
+# where a categorical feature may appear in a derived feature: compared with its levels
+_LEVEL_TESTS = (exp.EQ, exp.NEQ, exp.NullSafeEQ, exp.NullSafeNEQ, exp.In, exp.Like, exp.ILike, exp.Is)
+
+
+def parse_derived_expression(text: Any, key: str, name: str, earlier: list[str], later: list[str], categorical=()) -> exp.Expression:
     """One SQL expression over the features defined before this one (pre_trips * pre_trips,
     ln(1 + pre_trips), pre_trips = 0, ...): the parse and allowlist of filters plus a few numeric
     functions; a column must name an earlier feature."""
     tree = _parse_unit_expression(text, key, "derived feature expression", "a SQL expression", functions=_DERIVED_FUNCTIONS, over="earlier features")
+    categorical = set(categorical)
+    for col in tree.find_all(exp.Column):
+        parent = col.parent
+        while isinstance(parent, exp.Paren):
+            parent = parent.parent
+        if col.name in categorical and not isinstance(parent, _LEVEL_TESTS):
+            raise SpecError(key, f"uses the categorical feature {col.name!r} as a number.", f"compare it with a level, e.g. CASE WHEN {col.name} = '<level>' THEN 1 ELSE 0 END.")
     for node in tree.find_all(exp.Mod, exp.IntDiv):
         # on doubles, % does not exist on PostgreSQL and // divides on DuckDB but truncates elsewhere
         raise SpecError(key, f"{node.sql(dialect='duckdb')[:40]!r} uses {'%' if isinstance(node, exp.Mod) else '//'}, which engines compute differently.",
@@ -835,7 +846,9 @@ def _derived(item: dict, key: str, name: str, earlier: list[Feature], later: lis
     if fill is not None and (isinstance(fill, bool) or not isinstance(fill, (int, float))):
         raise SpecError(f"{key}.fill", f"must be a number, got {fill!r}.")
     text = item["expression"]
-    tree = parse_derived_expression(text, f"{key}.expression", name, [f.name for f in earlier], [n for n in later if isinstance(n, str)])
+    tree = parse_derived_expression(
+        text, f"{key}.expression", name, [f.name for f in earlier], [n for n in later if isinstance(n, str)], [f.name for f in earlier if f.categorical]
+    )
     return Feature(name=name, aggregate=DERIVED, fill=None if fill is None else float(fill), key=key, expression=tree, expression_text=text)
 
 

@@ -133,6 +133,7 @@ def _with(expression: str, fill=None, at: int | None = None) -> dict:
         ("pre_trips % 2", None, "engines compute differently"),
         ("row_number() OVER (ORDER BY pre_trips)", None, "not allowed"),
         ("u.pre_trips", None, "table prefix"),
+        ("home_district * pre_trips", None, "categorical feature 'home_district' as a number"),
     ],
 )
 def test_derived_expressions_are_allowlisted(expression, at, words):

@@ -398,6 +398,22 @@ def test_spark_runs_nearest_neighbours_with_duckdbs_numbers(spark, duckdb_neares
     assert_same_numbers(_comparable(results), duckdb_nearest_results)
 
 
+def test_spark_computes_derived_features_as_duckdb_does(spark, demo_db):
+    """As on PostgreSQL: every unit's derived values and the study's results equal DuckDB's."""
+    from derived import DERIVED
+
+    engine, tag = spark
+    names = ", ".join(["unit_key"] + [d["name"] for d in DERIVED])
+    with DuckDBEngine(demo_db) as duck:
+        want = _comparable(api.run(derived_spec("main", "sqlmatch_derived_spark"), engine=duck))
+        want_rows = duck.con.execute(f"SELECT {names} FROM sqlmatch_derived_spark.annual_pass_measures ORDER BY unit_key").fetchall()
+    got = _comparable(api.run(derived_spec(tag, f"{tag}_work"), engine=engine))
+    got_rows = [tuple(r) for r in engine.spark.sql(f"SELECT {names} FROM `{tag}_work`.annual_pass_measures ORDER BY unit_key").collect()]
+    assert len(got_rows) == len(want_rows) > 1000
+    assert_same_numbers([list(r) for r in got_rows], [list(r) for r in want_rows])
+    assert_same_numbers(got, want)
+
+
 def test_spark_failed_run_drops_its_tables(spark):
     engine, tag = spark
     raw_spec = demo_spec(tag, f"{tag}_fail")._raw
