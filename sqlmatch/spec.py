@@ -79,7 +79,6 @@ FILTER_FUNCTIONS_TEXT = ", ".join(sorted(_FILTER_FUNCTIONS.values()))
 # every engine gives the same value (LN(0) is an error on PostgreSQL, -inf on DuckDB, NULL on Spark).
 # LOG is left out: log(x) is base 10 on DuckDB and PostgreSQL, base e on Spark.
 _DERIVED_FUNCTIONS = {**_FILTER_FUNCTIONS, exp.Ln: "ln", exp.Exp: "exp", exp.Sqrt: "sqrt", exp.Pow: "power"}
-DERIVED_FUNCTIONS_TEXT = ", ".join(sorted(set(_DERIVED_FUNCTIONS.values())))
 _FILTER_MAX_DEPTH = 64  # nesting of parentheses; deeper is refused before parsing
 
 
