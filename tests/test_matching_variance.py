@@ -31,7 +31,7 @@ import statsmodels.api as sm
 from sqlmatch import api
 from sqlmatch.spec import parse_spec
 
-from test_neighbours import demo_raw
+from test_neighbours import demo_raw, match_shares
 
 CONFIGS = {"k1": {}, "k2_blocks": {"controls_per_treated": 2, "block_on": ["age_band"]}, "k1_uncorrected": {"bias_correction": False}}
 
@@ -47,7 +47,9 @@ def runs(demo_dir, tmp_path_factory):
         results = api.run(spec)
         with duckdb.connect(database, read_only=True) as con:
             read = lambda t: con.execute(f"SELECT * FROM sqlmatch.{spec.name}_{t}").df()  # noqa: E731
-            tables = {t: read(t) for t in ("scores", "match_weights", "measures", "nearest_neighbour_matches")}
+            tables = {t: read(t) for t in ("scores", "match_weights", "measures", "nearest_neighbour_matches", "nearest_neighbour_units")}
+        shares = match_shares(tables["nearest_neighbour_matches"], tables["nearest_neighbour_units"])
+        tables["matches"] = pd.DataFrame([(a, b, w) for (a, b), w in shares.items()], columns=["treated_key", "control_key", "share"])
         out[name] = (spec, results, tables)
     return out
 
@@ -147,8 +149,8 @@ def test_a_unit_without_a_neighbour_borrows_its_groups_mean_sigma2():
 def test_without_the_correction_the_estimate_is_the_matching_estimator(runs):
     spec, results, tables = runs["k1_uncorrected"]
     x = tables["measures"].set_index("unit_key").post_trips
-    m = tables["nearest_neighbour_matches"]
-    per = m.assign(yc=x.loc[m.control_key].to_numpy(float)).groupby("treated_key").yc.mean()
+    m = tables["matches"]
+    per = m.assign(yc=x.loc[m.control_key].to_numpy(float) * m.share).groupby("treated_key").yc.sum()
     effect = results.effect("post_trips")
     assert effect.estimate == pytest.approx(float(np.mean(x.loc[per.index].to_numpy(float) - per.to_numpy())), rel=1e-9)
     assert "bias-corrected" not in effect.estimator and "Abadie-Imbens" in effect.estimator
@@ -157,7 +159,7 @@ def test_without_the_correction_the_estimate_is_the_matching_estimator(runs):
 @pytest.mark.parametrize("name", ["k1", "k2_blocks"])
 @pytest.mark.parametrize("outcome", ["post_trips", "active_last_month"])
 def test_bias_corrected_estimate_equals_the_per_unit_form(runs, name, outcome):
-    """(1 / N_1) sum_i [(Y_i - mean Y of i's matches) - (mu0(X_i) - mean mu0 of i's matches)], mu0 the
+    """(1 / N_1) sum_i [(Y_i - share-weighted mean Y of i's matches) - (mu0(X_i) - the same mean of mu0)], mu0 the
     controls' linear regression on the study's numeric features, fitted on the matched
     controls weighted by K_M / M (statsmodels WLS)."""
     spec, results, tables = runs[name]
@@ -167,9 +169,9 @@ def test_bias_corrected_estimate_equals_the_per_unit_form(runs, name, outcome):
     controls = w[w.treated == 0]
     fit = sm.WLS(x.loc[controls.unit_key, outcome].to_numpy(float), sm.add_constant(x.loc[controls.unit_key, features].to_numpy(float)), weights=controls.weight.to_numpy()).fit()
     mu0 = pd.Series(fit.predict(sm.add_constant(x[features].to_numpy(float))), index=x.index)
-    m = tables["nearest_neighbour_matches"]
-    m = m.assign(yc=x.loc[m.control_key, outcome].to_numpy(float), muc=mu0.loc[m.control_key].to_numpy())
-    per = m.groupby("treated_key")[["yc", "muc"]].mean()
+    m = tables["matches"]
+    m = m.assign(yc=x.loc[m.control_key, outcome].to_numpy(float) * m.share, muc=mu0.loc[m.control_key].to_numpy() * m.share)
+    per = m.groupby("treated_key")[["yc", "muc"]].sum()
     yt, mut = x.loc[per.index, outcome].to_numpy(float), mu0.loc[per.index].to_numpy()
     expected = float(np.mean((yt - per.yc.to_numpy()) - (mut - per.muc.to_numpy())))
     effect = results.effect(outcome)

@@ -124,6 +124,50 @@ def position_tiebreak(t: pd.DataFrame, c: pd.DataFrame, exact: list[str]) -> np.
     return np.abs(tp[:, None] - cp[None, :])
 
 
+def match_shares(matches: pd.DataFrame, units: pd.DataFrame | None = None) -> dict[tuple[int, int], float]:
+    """{(treated key, control key): the control's share of the treated unit's match} from the matches
+    table: one row per control (share), or one row per group of controls tied in score
+    (control_group, expanded here with the units table's controls)."""
+    if "control_group" in matches.columns:
+        blocks = [c for c in matches.columns if c not in ("treated_key", "control_group", "n_controls", "distance", "slots", "share")]
+        controls = units[units.treated == 0][["unit_key", "control_group", *blocks]]
+        rows = matches.merge(controls, on=["control_group", *blocks])
+        assert len(rows) == matches.n_controls.sum()  # every group holds the controls it counts
+        return {(int(a), int(b)): float(w) for a, b, w in zip(rows.treated_key, rows.unit_key, rows.share)}
+    return {(int(a), int(b)): float(w) for a, b, w in zip(matches.treated_key, matches.control_key, matches.share)}
+
+
+def reference_shares(t: pd.DataFrame, c: pd.DataFrame, width: float, exact: list[str], k: int) -> tuple[dict[tuple[int, int], float], int]:
+    """Brute force over every pair in numpy: each treated unit's match set J(i) is every control of its
+    exact block within the caliper at most as far (score gap at 10 decimal places) as its k-th
+    nearest, all ties included (Abadie & Imbens 2006, Econometrica 74(1):235, the definition of
+    J_M(i), recalled); with slots = min(k, controls within the caliper), a control strictly nearer
+    than the last distance taken weighs 1 / slots and the controls at that distance share the
+    slots left over equally. Returns the shares and the number of treated units with a tie at the
+    last distance taken that crosses the slots (where a tiebreak would have decided)."""
+    tq = np.rint(t.score.to_numpy(float) * 1e10).astype(np.int64)
+    cq = np.rint(c.score.to_numpy(float) * 1e10).astype(np.int64)
+    gap = np.abs(tq[:, None] - cq[None, :])
+    ok = in_block(t, c, exact) & (gap <= width * 1e10)
+    shares: dict[tuple[int, int], float] = {}
+    n_split = 0
+    for i in range(len(t)):
+        idx = np.flatnonzero(ok[i])
+        if not len(idx):
+            continue
+        g = gap[i, idx]
+        slots = min(k, len(idx))
+        last = np.sort(g)[slots - 1]
+        nearer, tied = g < last, g == last
+        n_split += int(tied.sum() > slots - nearer.sum())
+        for j, near, tie in zip(idx, nearer, tied):
+            if near:
+                shares[int(t.unit_key[i]), int(c.unit_key[j])] = 1.0 / slots
+            elif tie:
+                shares[int(t.unit_key[i]), int(c.unit_key[j])] = (slots - nearer.sum()) / (slots * tied.sum())
+    return shares, n_split
+
+
 def in_block(t: pd.DataFrame, c: pd.DataFrame, exact: list[str]) -> np.ndarray:
     ok = np.ones((len(t), len(c)), dtype=bool)
     for f in exact:
@@ -137,53 +181,51 @@ def in_block(t: pd.DataFrame, c: pd.DataFrame, exact: list[str]) -> np.ndarray:
 
 @pytest.mark.parametrize("name", ["logit", "logit_blocks_k3"])
 def test_logit_matches_equal_brute_force_nearest_neighbours(runs, name):
-    """Each treated unit's k matches are its k nearest controls on the logit score (gaps compared at
-    10 decimal places; ties: the control nearer in the block's score order, then the lower key)
-    among controls of its exact block within the caliper, found by brute force in numpy over every
-    pair: the sorted search (k controls each side in score order) never misses one. The demo's
-    scores have many ties (riders with the same counts), so the tie rule is exercised. Weights: treated 1, a control the sum over the
-    treated units it serves of 1/k_i (the usual weights of k:1 matching with replacement for the
-    effect on the treated, e.g. Stuart 2010, Statistical Science 25:1, recalled)."""
+    """Each treated unit's match set is its k nearest controls on the logit score among controls of
+    its exact block within the caliper, with every control tied with the k-th (gaps compared at 10
+    decimal places) sharing the slots left over, found by brute force in numpy over every pair
+    (reference_shares): the sorted search (k groups of tied controls each side in score order) never
+    misses one. The demo's scores have ties (riders with the same counts). Weights: treated 1, a
+    control the sum of its shares over the treated units it serves (1/k_i without ties: the usual
+    weights of k:1 matching with replacement for the effect on the treated, e.g. Stuart 2010,
+    Statistical Science 25:1, recalled; with ties the K_M(i) / M of Abadie & Imbens 2006)."""
     spec, out, tables = runs[name]
     t, c, width = brute_force_candidates(tables, spec)
     assert tables["nearest_neighbour_caliper"].width[0] == pytest.approx(width, rel=1e-12)
     k = spec.matching.controls_per_treated
-    gap = np.abs(t.score.to_numpy()[:, None] - c.score.to_numpy()[None, :])
-    ok = in_block(t, c, list(spec.matching.block_on)) & (gap <= width)
-    expected = {}
-    tie = position_tiebreak(t, c, list(spec.matching.block_on))
-    assert (np.round(gap, 10)[:, :, None] == np.round(gap, 10)[:, None, :]).any()  # ties exist
-    for i in range(len(t)):
-        idx = np.flatnonzero(ok[i])
-        order = np.lexsort((c.unit_key.to_numpy()[idx], tie[i, idx], np.round(gap[i, idx], 10)))
-        chosen = c.unit_key.to_numpy()[idx[order[:k]]]
-        if len(chosen):
-            expected[int(t.unit_key[i])] = sorted(int(x) for x in chosen)
-    m = tables["found_matches"]
-    got = {int(key): sorted(int(x) for x in g.control_key) for key, g in m.groupby("treated_key")}
-    assert got == expected
-    assert len(expected) > 300  # a real matching, not an empty one
+    expected, n_split = reference_shares(t, c, width, list(spec.matching.block_on), k)
+    assert n_split > 0  # ties across the last slot exist, so the tie rule is exercised
+    got = match_shares(tables["found_matches"], tables["nearest_neighbour_units"])
+    assert set(got) == set(expected)
+    np.testing.assert_allclose([got[p] for p in expected], list(expected.values()), rtol=1e-12)
+    treated = {a for a, _ in expected}
+    assert len(treated) > 300  # a real matching, not an empty one
     # the guard's count of candidate pairs: same block and score bins at most one apart (numpy)
     bins = np.floor((np.r_[t.score, c.score] - tables["nearest_neighbour_caliper"].score_min[0]) / tables["nearest_neighbour_caliper"].width[0])
     tb, cb = bins[: len(t)], bins[len(t) :]
     pairs = (in_block(t, c, list(spec.matching.block_on)) & (np.abs(tb[:, None] - cb[None, :]) <= 1)).sum()
     assert out.results["candidate_pairs"].one()["n_candidate_pairs"] == pairs
-    # weights
-    # one weights row per (treated unit, control) match: a unit's weight is the sum of its rows
+    # weights: a unit's weight is the sum of its rows (one per stratum)
     w = tables["match_weights"].groupby(["unit_key", "treated"], as_index=False).weight.sum().set_index("unit_key")
-    assert (w[w.treated == 1].weight == 1.0).all() and set(w[w.treated == 1].index) == set(expected)
+    assert (w[w.treated == 1].weight == 1.0).all() and set(w[w.treated == 1].index) == treated
     control_w: dict[int, float] = {}
-    for controls in expected.values():
-        for key in controls:
-            control_w[key] = control_w.get(key, 0.0) + 1.0 / len(controls)
+    for (_, key), share in expected.items():
+        control_w[key] = control_w.get(key, 0.0) + share
     got_w = w[w.treated == 0].weight
     assert set(got_w.index) == set(control_w)
     np.testing.assert_allclose([got_w[key] for key in control_w], list(control_w.values()), rtol=1e-12)
     summary = out.results["matching_summary"].one()
-    assert summary["n_treated_matched"] == len(expected)
-    # strata: treated units grouped by their number of matches (1..k)
-    assert summary["n_strata"] == len({len(v) for v in expected.values()})
-    assert summary["n_cells_dropped"] == summary["n_treated"] - len(expected)
+    assert summary["n_treated_matched"] == len(treated)
+    assert summary["n_matches"] == len(expected)
+    assert summary["n_control_matched"] == len(control_w)
+    # strata: treated units grouped by their number of slots, min(k, controls within the caliper)
+    slots = {}
+    for a, _ in expected:
+        slots[a] = slots.get(a, 0) + 1
+    t_ok = in_block(t, c, list(spec.matching.block_on)) & (np.abs(np.rint(t.score.to_numpy()[:, None] * 1e10) - np.rint(c.score.to_numpy()[None, :] * 1e10)) <= width * 1e10)
+    n_slots = {int(t.unit_key[i]): min(k, int(t_ok[i].sum())) for i in range(len(t)) if t_ok[i].any()}
+    assert summary["n_strata"] == len(set(n_slots.values()))
+    assert summary["n_cells_dropped"] == summary["n_treated"] - len(treated)
 
 
 def test_greedy_without_replacement_equals_greedy_by_distance(runs):
@@ -238,7 +280,8 @@ def test_mahalanobis_distances_equal_scipy(runs):
     m = tables["found_matches"]
     xs = x[MODEL_FEATURES]
     expected = [mahalanobis(xs.loc[a].to_numpy(float), xs.loc[b].to_numpy(float), vi) for a, b in zip(m.treated_key, m.control_key)]
-    np.testing.assert_allclose(m.distance, expected, rtol=1e-9, atol=1e-12)
+    # stored at 10 decimal places, the precision ties are compared at
+    np.testing.assert_allclose(m.distance.astype(float), expected, rtol=1e-9, atol=1e-10)
     sd = np.sqrt(np.diag(cov))
     w_numpy = np.linalg.inv(np.linalg.cholesky(cov / np.outer(sd, sd)))
     w_row = tables["nearest_neighbour_whitening"].iloc[0]
@@ -250,10 +293,10 @@ def test_mahalanobis_distances_equal_scipy(runs):
     gap = np.abs(t.score.to_numpy()[:, None] - c.score.to_numpy()[None, :])
     d = cdist(xs.loc[t.unit_key].to_numpy(float), xs.loc[c.unit_key].to_numpy(float), "mahalanobis", VI=vi)
     best = np.where(gap <= width, d, np.inf).min(axis=1)
-    got = m.set_index("treated_key").distance
+    got = m.astype({"distance": float}).groupby("treated_key").distance.max()  # several rows: controls tied at one distance
     for i, key in enumerate(t.unit_key):
         if np.isfinite(best[i]):
-            assert got[key] <= best[i] * (1 + 1e-9) + 1e-12
+            assert got[key] <= best[i] * (1 + 1e-9) + 1e-10
         else:
             assert key not in got.index
 
@@ -285,7 +328,7 @@ def test_rank_mahalanobis_distance_follows_rosenbaum(runs):
     ranks = pd.DataFrame(r, index=x.index)
     m = tables["found_matches"]
     expected = [mahalanobis(ranks.loc[a].to_numpy(), ranks.loc[b].to_numpy(), vi) for a, b in zip(m.treated_key, m.control_key)]
-    np.testing.assert_allclose(m.distance, expected, rtol=1e-9, atol=1e-12)
+    np.testing.assert_allclose(m.distance.astype(float), expected, rtol=1e-9, atol=1e-10)
     # exact blocks hold: every match is within one home district
     measures = tables["measures"].set_index("unit_key")
     assert (measures.loc[m.treated_key, "home_district"].to_numpy() == measures.loc[m.control_key, "home_district"].to_numpy()).all()
@@ -325,10 +368,12 @@ def test_score_distance_needs_no_candidate_join(demo_db):
     whose candidate join the guard would refuse (more than 1,000 pairs) runs, and never writes more
     than 2k candidate rows per treated unit."""
     raw = demo_raw(demo_db, "nearest_neighbour_noguard", max_candidate_pairs=1000)
-    _, out, tables = run(raw, ("nearest_neighbour_matches",))
+    _, out, tables = run(raw, ("nearest_neighbour_matches", "nearest_neighbour_units"))
     assert out.results["candidate_pairs"].one()["n_candidate_pairs"] > 1000
     summary = out.results["matching_summary"].one()
-    assert summary["n_treated_matched"] == len(tables["nearest_neighbour_matches"]) > 300
+    m = tables["nearest_neighbour_matches"]
+    assert summary["n_treated_matched"] == m.treated_key.nunique() > 300
+    assert summary["n_matches"] == len(match_shares(m, tables["nearest_neighbour_units"]))
 
 
 @pytest.fixture(scope="module")
@@ -457,12 +502,15 @@ def test_nsw_att_inside_the_experimental_interval(nsw_db, replacement):
     assert low <= effect.estimate <= high, (effect.estimate, DW_MATCHING)
     assert effect.naive.estimate == pytest.approx(-8498, abs=1)
     assert not low <= effect.naive.estimate <= high
-    table = "nearest_neighbour_matches" if replacement else "pairs"
     with duckdb.connect(nsw_db, read_only=True) as con:
-        m = con.execute(f"SELECT treated_key, control_key FROM sqlmatch.nsw_{table}").df()
+        if replacement:
+            shares = match_shares(con.execute("SELECT * FROM sqlmatch.nsw_nearest_neighbour_matches").df(), con.execute("SELECT * FROM sqlmatch.nsw_nearest_neighbour_units").df())
+            m = pd.DataFrame([(a, b, w) for (a, b), w in shares.items()], columns=["treated_key", "control_key", "share"])
+        else:
+            m = con.execute("SELECT treated_key, control_key, 1.0 AS share FROM sqlmatch.nsw_pairs").df()
         y = con.execute("SELECT unit_key, earnings_after FROM sqlmatch.nsw_measures").df().set_index("unit_key").earnings_after
-    m["yc"] = y.loc[m.control_key].to_numpy()
-    per_treated = m.groupby("treated_key").yc.mean()
+    m["yc"] = y.loc[m.control_key].to_numpy() * m.share.to_numpy()
+    per_treated = m.groupby("treated_key").yc.sum()
     matching_estimate = float(np.mean(y.loc[per_treated.index].to_numpy() - per_treated.to_numpy()))
     assert low <= matching_estimate <= high, matching_estimate
     assert results.matching.n_treated_matched == len(per_treated)

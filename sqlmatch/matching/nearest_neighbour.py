@@ -35,15 +35,26 @@ Distance (`matching.distance`):
   unit's block in the same or an adjacent bin of the logit score one caliper wide, bin =
   CAST(FLOOR((score - lowest score) / width) AS INTEGER) (a control within the caliper is always
   there), a join whose size the guard checks first.
-  Distances (and, for ranks, feature values) are compared at 10 decimal places, so values equal in
-  exact arithmetic tie on every engine whatever order it added them in. Ties in distance: the score
-  distance takes the control nearer in the block's score order (so treated units tied in score
-  spread over the controls tied with them), the Mahalanobis distances a multiplicative hash of the
-  two units' numbers; then the control key.
+  Distances (and, for ranks, feature values) are compared at 10 decimal places (the score gap is
+  taken between scores at 10 decimal places), so values equal in exact arithmetic tie on every
+  engine whatever order it added them in.
 
-Matching. With reuse_controls = true (default), each treated unit takes its k =
-`matching.controls_per_treated` nearest candidates: ROW_NUMBER() OVER (PARTITION BY treated unit
-ORDER BY distance, tiebreak, control key) <= k. Without (k = 1 only), greedy rounds in SQL: in
+Matching. With reuse_controls = true (default), each treated unit's match set is its k =
+`matching.controls_per_treated` nearest candidates and every control as near as the k-th: the
+J_M(i) of Abadie & Imbens (2006, Econometrica 74(1):235, recalled), ties included. With slots =
+min(k, candidates), a control nearer than the last distance taken weighs 1 / slots and the controls
+at that distance share the slots left over equally (for k = 1: 1 / #J(i), the paper's weights; for
+k > 1 the paper weighs every member of J(i) 1 / #J(i), recalled, while here a tie at the k-th
+distance does not dilute the nearer matches). No key, hash or row order decides which tied
+control counts. On the score distance the candidates are the k groups of controls with one score
+just below and the k just above the treated unit (`sorted_groups` in nearest_neighbour_macros):
+each group holds at least one control, so the k nearest and all controls tied with the k-th are
+among them, and a score shared by thousands of controls is one row. Without (k = 1 only),
+a control serves one treated unit, so a tie cannot be shared; ties in distance go to the control
+nearer in the block's score order (score distance; treated units tied in score then spread over the
+controls tied with them) or to a multiplicative hash of the two units' numbers (Mahalanobis), then
+the control key: the pairs do not depend on the order rows were inserted in, but may on the keys.
+Greedy rounds in SQL: in
 each round every treated unit and control unit both still free that are each other's nearest free
 candidate are paired; each round pairs at least the closest free pair, and run to the end the
 rounds give the greedy matching that takes pairs in increasing order of (distance, tiebreak,
@@ -57,11 +68,11 @@ Treated units still free when the rounds stop stay unmatched and are counted
 (n_treated_still_open). The pairs are written to <study>_pairs(pair_id, treated_key, control_key,
 distance) for paired analyses.
 
-Weights (effect on the treated): treated 1; a control, 1 / (number of controls matched to that
-treated unit) in each match, one row per (treated unit, control) match, so a control serving
-several treated units has several rows and the stratified estimator equals the matching
-estimator. Strata group the treated units by their number of controls (1..k); the plan's
-weighted_units step sums each unit's weights for balance and plots.
+Weights (effect on the treated): treated 1; a control, the sum of its shares over the treated
+units it serves (K_M(i) / M with ties), one row per unit and stratum. Strata group the treated
+units by their number of slots (1..k); within a stratum the controls' weights may differ (ties),
+so the per-stratum outcome sums are weighted (outcome_strata) and the stratified estimator equals
+the matching estimator. The plan's weighted_units step sums each unit's weights for balance and plots.
 
 Variance and bias correction (with replacement; nn_variance.py, run after <study>_weighted_units
 exists): the Abadie & Imbens (2006) variance, which counts how often each control is used, and
@@ -173,6 +184,9 @@ def steps(ctx, model):
                 features_table=ctx.table("nearest_neighbour_features"),
             ),
         ]
+    search = search_route(m)
+    # with replacement on the score, controls tied in score are found (and weighted) as one group
+    grouped = m.reuse_controls and search == "sorted"
     unit_reads = [ctx.display("scores"), ctx.display("nearest_neighbour_caliper")] + ([ctx.display("nearest_neighbour_features"), ctx.display("nearest_neighbour_whitening")] if dims else [])
     out += [
         ctx.table_step(
@@ -184,6 +198,7 @@ def steps(ctx, model):
             exact=exact,
             dims=dims,
             ranks=ranks,
+            groups=grouped,
             features=features,
             features_table=ctx.table("nearest_neighbour_features") if dims else None,
             whitening_table=ctx.table("nearest_neighbour_whitening") if dims else None,
@@ -201,7 +216,6 @@ def steps(ctx, model):
             **{k: tables[k] for k in ("units_table", "caliper_table")},
         ),
     ]
-    search = search_route(m)
     common = dict(exact=exact, dims=dims, distance_text=text, search=search, units_table=tables["units_table"], caliper_table=tables["caliper_table"])
     join_reads = [ctx.display("nearest_neighbour_units"), ctx.display("nearest_neighbour_caliper")]
     looked_at = (
@@ -279,10 +293,13 @@ def steps(ctx, model):
             "match_weights",
             "nearest_neighbour_weights",
             writes="match_weights",
-            reads=[ctx.display(matches)],
-            purpose="Matching weights for the effect on the treated (matched units only).",
+            reads=[ctx.display(matches)] + ([ctx.display("nearest_neighbour_units")] if grouped else []),
+            purpose="Matching weights for the effect on the treated (matched units only; tied controls share).",
             ratio=m.controls_per_treated,
+            mode="groups" if grouped else ("controls" if m.reuse_controls else "pairs"),
+            exact=exact,
             matches_table=ctx.table(matches),
+            units_table=tables["units_table"],
         ),
         ctx.query_step(
             "matching_summary",
@@ -290,6 +307,7 @@ def steps(ctx, model):
             reads=[ctx.display("nearest_neighbour_units"), ctx.display(matches), ctx.display("match_weights")] + ([ctx.display(rounds_table)] if rounds_table else []),
             purpose="Units considered and matched by nearest-neighbour matching.",
             replacement=m.reuse_controls,
+            grouped=grouped,
             rounds_table=ctx.table(rounds_table) if rounds_table else None,
             weights_table=ctx.table("match_weights"),
             units_table=tables["units_table"],

@@ -1,25 +1,24 @@
 -- sqlmatch study 'annual_pass', step 13: match_weights (duckdb)
--- Matching weights for the effect on the treated (matched units only).
+-- Matching weights for the effect on the treated (matched units only; tied controls share).
 -- kind: writes a table
--- reads: sqlmatch.annual_pass_nearest_neighbour_matches
+-- reads: sqlmatch.annual_pass_nearest_neighbour_matches, sqlmatch.annual_pass_nearest_neighbour_units
 -- writes: sqlmatch.annual_pass_match_weights
 
 DROP TABLE IF EXISTS "sqlmatch".annual_pass_match_weights__building;
 
 CREATE TABLE "sqlmatch".annual_pass_match_weights__building AS
 /* Nearest-neighbour matching, weights for the effect on the treated (matched units only): a
-   treated unit weighs 1; a control unit weighs the sum, over the treated units it serves, of
-   1 / (number of controls matched to that treated unit), so control weights add up to the number
-   of matched treated units. Stratum: the number of controls matched to the treated unit (1 to 1),
-   so within a stratum every (treated unit, control) row carries the same weight. A control serving
-   several treated units has one row per treated unit it serves, weighing 1 / (number of controls
-   of that treated unit) there: one row per match makes the stratified estimator equal the
-   matching estimator. */
+   treated unit weighs 1; a control unit weighs the sum, over the treated units it serves, of its
+   share of that treated unit's match (1 / slots, or its part of the slots left over when it is tied
+   with others at the last distance taken), so control weights add up to the number of matched
+   treated units (the K_M(i) / M of Abadie & Imbens 2006, with ties). Stratum: the treated unit's number of
+   slots (1 to 1: fewer when fewer controls lie within the caliper). One row per unit and
+   stratum: a control serving treated units of two strata has a row in each; within a stratum
+   the rows' weights may differ (tied controls), so the outcome sums per stratum are weighted. */
 WITH per_treated AS (
   SELECT
     m.treated_key,
-    COUNT(*) AS n_matches,
-    COUNT(*) AS stratum
+    MAX(m.slots) AS stratum
   FROM "sqlmatch".annual_pass_nearest_neighbour_matches AS m
   GROUP BY
     m.treated_key
@@ -32,13 +31,24 @@ SELECT
 FROM per_treated AS p
 UNION ALL
 SELECT
-  m.control_key AS unit_key,
+  u.unit_key,
   0 AS treated,
-  p.stratum,
-  CAST(1.0 AS DOUBLE) / NULLIF(p.n_matches, 0) AS weight
-FROM "sqlmatch".annual_pass_nearest_neighbour_matches AS m
-INNER JOIN per_treated AS p
-  ON p.treated_key = m.treated_key;
+  g.stratum,
+  g.weight
+FROM (
+  SELECT
+    m.age_band,
+    m.control_group,
+    m.slots AS stratum,
+    SUM(m.share) AS weight
+  FROM "sqlmatch".annual_pass_nearest_neighbour_matches AS m
+  GROUP BY
+    m.age_band,
+    m.control_group,
+    m.slots
+) AS g
+INNER JOIN "sqlmatch".annual_pass_nearest_neighbour_units AS u
+  ON u.treated = 0 AND u.control_group = g.control_group AND u.age_band = g.age_band;
 
 DROP TABLE IF EXISTS "sqlmatch".annual_pass_match_weights;
 

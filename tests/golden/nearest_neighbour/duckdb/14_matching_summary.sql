@@ -4,8 +4,8 @@
 -- reads: sqlmatch.annual_pass_nearest_neighbour_units, sqlmatch.annual_pass_nearest_neighbour_matches, sqlmatch.annual_pass_match_weights
 
 /* Nearest-neighbour matching, what was kept. Units considered: those with a propensity score.
-   Strata group the matched treated units by their number of controls, so n_cells = n_strata =
-   the number of such groups.
+   Strata group the matched treated units by their number of control slots, so n_cells = n_strata =
+   the number of such groups. n_matches: (treated unit, control unit) matches, every control of a tie counted.
    n_cells_dropped = treated units left without a control within the caliper. One row. */
 WITH considered AS (
   SELECT
@@ -14,9 +14,12 @@ WITH considered AS (
   FROM "sqlmatch".annual_pass_nearest_neighbour_units AS u
 ), matched AS (
   SELECT
-    COUNT(DISTINCT m.treated_key) AS n_treated_matched,
-    COUNT(DISTINCT m.control_key) AS n_control_matched,
-    COUNT(*) AS n_matches
+    COUNT(DISTINCT CASE WHEN w.treated = 1 THEN w.unit_key END) AS n_treated_matched,
+    COUNT(DISTINCT CASE WHEN w.treated = 0 THEN w.unit_key END) AS n_control_matched
+  FROM "sqlmatch".annual_pass_match_weights AS w
+), match_rows AS (
+  SELECT
+    SUM(m.n_controls) AS n_matches
   FROM "sqlmatch".annual_pass_nearest_neighbour_matches AS m
 ), strata AS (
   SELECT
@@ -31,9 +34,10 @@ SELECT
   m.n_treated_matched,
   COALESCE(c.n_control, 0) AS n_control,
   m.n_control_matched,
-  m.n_matches,
+  r.n_matches,
   0 AS n_treated_still_open,
   0 AS n_treated_cut_short
 FROM considered AS c
 CROSS JOIN matched AS m
+CROSS JOIN match_rows AS r
 CROSS JOIN strata AS s;

@@ -20,31 +20,54 @@ CREATE TABLE "sqlmatch".annual_pass_nearest_neighbour_units__building AS
    the control's index in the block's score order; for a treated unit the number of controls below
    it, so its neighbouring controls in score order have the indices just below and just above it
    (the score distance finds them by an equality join on that index, never a join of all pairs).
+   score_compared: the score at 10 decimal places, in which score distances are taken, so that
+   distances equal in exact arithmetic are equal on every engine (ties).
+   control_group (matching with replacement on the score): for a control, the index of its score
+   (score_compared) among the distinct scores of its block's controls, so controls tied in score share it;
+   for a treated unit, the number of distinct control scores at or below its own. The k nearest controls
+   of a treated unit and every control tied with the k-th lie in the k groups just below and the k just
+   above it (an equality join on the group index, as for controls_through).
 */
+WITH placed AS (
+  SELECT
+    s.unit_key,
+    s.treated,
+    COALESCE(s.age_band, '(missing)') AS age_band,
+    s.score,
+    CAST(s.score AS DECIMAL(24, 10)) AS score_compared,
+    CASE
+      WHEN s.treated = 0
+      AND ROW_NUMBER() OVER (
+        PARTITION BY COALESCE(s.age_band, '(missing)'), s.treated, CAST(s.score AS DECIMAL(24, 10))
+        ORDER BY s.unit_key
+      ) = 1
+      THEN 1
+      ELSE 0
+    END AS opens_group,
+    CAST(FLOOR(CAST((
+      s.score - k.score_min
+    ) AS DOUBLE PRECISION) / NULLIF(k.width, 0.0)) AS INT) AS score_bin,
+    ROW_NUMBER() OVER (PARTITION BY COALESCE(s.age_band, '(missing)') ORDER BY s.score, s.unit_key) AS score_position,
+    CASE
+      WHEN s.treated = 1
+      THEN ROW_NUMBER() OVER (PARTITION BY COALESCE(s.age_band, '(missing)') ORDER BY s.score, s.unit_key) - ROW_NUMBER() OVER (
+        PARTITION BY COALESCE(s.age_band, '(missing)'), s.treated
+        ORDER BY s.score, s.unit_key
+      )
+      ELSE ROW_NUMBER() OVER (
+        PARTITION BY COALESCE(s.age_band, '(missing)'), s.treated
+        ORDER BY s.score, s.unit_key
+      )
+    END AS controls_through
+  FROM "sqlmatch".annual_pass_scores AS s
+  CROSS JOIN "sqlmatch".annual_pass_nearest_neighbour_caliper AS k
+  WHERE
+    NOT s.score IS NULL AND k.width > 0.0
+)
 SELECT
-  s.unit_key,
-  s.treated,
-  COALESCE(s.age_band, '(missing)') AS age_band,
-  s.score,
-  CAST(FLOOR(CAST((
-    s.score - k.score_min
-  ) AS DOUBLE PRECISION) / NULLIF(k.width, 0.0)) AS INT) AS score_bin,
-  ROW_NUMBER() OVER (PARTITION BY COALESCE(s.age_band, '(missing)') ORDER BY s.score, s.unit_key) AS score_position,
-  CASE
-    WHEN s.treated = 1
-    THEN ROW_NUMBER() OVER (PARTITION BY COALESCE(s.age_band, '(missing)') ORDER BY s.score, s.unit_key) - ROW_NUMBER() OVER (
-      PARTITION BY COALESCE(s.age_band, '(missing)'), s.treated
-      ORDER BY s.score, s.unit_key
-    )
-    ELSE ROW_NUMBER() OVER (
-      PARTITION BY COALESCE(s.age_band, '(missing)'), s.treated
-      ORDER BY s.score, s.unit_key
-    )
-  END AS controls_through
-FROM "sqlmatch".annual_pass_scores AS s
-CROSS JOIN "sqlmatch".annual_pass_nearest_neighbour_caliper AS k
-WHERE
-  NOT s.score IS NULL AND k.width > 0.0;
+  p.*,
+  SUM(p.opens_group) OVER (PARTITION BY p.age_band ORDER BY p.score_compared, p.treated, p.unit_key) AS control_group
+FROM placed AS p;
 
 DROP TABLE IF EXISTS "sqlmatch".annual_pass_nearest_neighbour_units;
 

@@ -15,58 +15,156 @@ SELECT
   m.treated,
   COUNT(*) AS n_units,
   SUM(w.weight) AS sum_w,
-  SUM(m.pre_trips) AS pre_trips__xsum,
-  SUM(m.pre_minutes) AS pre_minutes__xsum,
-  SUM(m.pre_fare_per_trip) AS pre_fare_per_trip__xsum,
-  SUM(m.pre_active_days) AS pre_active_days__xsum,
-  SUM(m.pre_days_since_last) AS pre_days_since_last__xsum,
-  SUM(m.pre_trips * m.pre_trips) AS pre_trips__x__pre_trips,
-  SUM(m.pre_trips * m.pre_minutes) AS pre_trips__x__pre_minutes,
-  SUM(m.pre_trips * m.pre_fare_per_trip) AS pre_trips__x__pre_fare_per_trip,
-  SUM(m.pre_trips * m.pre_active_days) AS pre_trips__x__pre_active_days,
-  SUM(m.pre_trips * m.pre_days_since_last) AS pre_trips__x__pre_days_since_last,
-  SUM(m.pre_minutes * m.pre_minutes) AS pre_minutes__x__pre_minutes,
-  SUM(m.pre_minutes * m.pre_fare_per_trip) AS pre_minutes__x__pre_fare_per_trip,
-  SUM(m.pre_minutes * m.pre_active_days) AS pre_minutes__x__pre_active_days,
-  SUM(m.pre_minutes * m.pre_days_since_last) AS pre_minutes__x__pre_days_since_last,
-  SUM(m.pre_fare_per_trip * m.pre_fare_per_trip) AS pre_fare_per_trip__x__pre_fare_per_trip,
-  SUM(m.pre_fare_per_trip * m.pre_active_days) AS pre_fare_per_trip__x__pre_active_days,
-  SUM(m.pre_fare_per_trip * m.pre_days_since_last) AS pre_fare_per_trip__x__pre_days_since_last,
-  SUM(m.pre_active_days * m.pre_active_days) AS pre_active_days__x__pre_active_days,
-  SUM(m.pre_active_days * m.pre_days_since_last) AS pre_active_days__x__pre_days_since_last,
-  SUM(m.pre_days_since_last * m.pre_days_since_last) AS pre_days_since_last__x__pre_days_since_last,
-  SUM(m.pre_trips * m.post_trips) AS pre_trips__x__post_trips,
-  SUM(m.pre_minutes * m.post_trips) AS pre_minutes__x__post_trips,
-  SUM(m.pre_fare_per_trip * m.post_trips) AS pre_fare_per_trip__x__post_trips,
-  SUM(m.pre_active_days * m.post_trips) AS pre_active_days__x__post_trips,
-  SUM(m.pre_days_since_last * m.post_trips) AS pre_days_since_last__x__post_trips,
-  SUM(m.pre_trips * m.post_minutes) AS pre_trips__x__post_minutes,
-  SUM(m.pre_minutes * m.post_minutes) AS pre_minutes__x__post_minutes,
-  SUM(m.pre_fare_per_trip * m.post_minutes) AS pre_fare_per_trip__x__post_minutes,
-  SUM(m.pre_active_days * m.post_minutes) AS pre_active_days__x__post_minutes,
-  SUM(m.pre_days_since_last * m.post_minutes) AS pre_days_since_last__x__post_minutes,
-  SUM(m.pre_trips * m.active_last_month) AS pre_trips__x__active_last_month,
-  SUM(m.pre_minutes * m.active_last_month) AS pre_minutes__x__active_last_month,
-  SUM(m.pre_fare_per_trip * m.active_last_month) AS pre_fare_per_trip__x__active_last_month,
-  SUM(m.pre_active_days * m.active_last_month) AS pre_active_days__x__active_last_month,
-  SUM(m.pre_days_since_last * m.active_last_month) AS pre_days_since_last__x__active_last_month,
-  SUM(m.post_trips) AS post_trips__sum,
-  SUM(m.post_trips * m.post_trips) AS post_trips__sumsq,
-  SUM(m.post_trips - m.pre_trips) AS post_trips__did_sum,
-  SUM((
+  CAST(SUM(w.weight * (
+    m.pre_trips
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_trips__xsum,
+  CAST(SUM(w.weight * (
+    m.pre_minutes
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_minutes__xsum,
+  CAST(SUM(w.weight * (
+    m.pre_fare_per_trip
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_fare_per_trip__xsum,
+  CAST(SUM(w.weight * (
+    m.pre_active_days
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_active_days__xsum,
+  CAST(SUM(w.weight * (
+    m.pre_days_since_last
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_days_since_last__xsum,
+  CAST(SUM(w.weight * (
+    m.pre_trips * m.pre_trips
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_trips__x__pre_trips,
+  CAST(SUM(w.weight * (
+    m.pre_trips * m.pre_minutes
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_trips__x__pre_minutes,
+  CAST(SUM(w.weight * (
+    m.pre_trips * m.pre_fare_per_trip
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_trips__x__pre_fare_per_trip,
+  CAST(SUM(w.weight * (
+    m.pre_trips * m.pre_active_days
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_trips__x__pre_active_days,
+  CAST(SUM(w.weight * (
+    m.pre_trips * m.pre_days_since_last
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_trips__x__pre_days_since_last,
+  CAST(SUM(w.weight * (
+    m.pre_minutes * m.pre_minutes
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_minutes__x__pre_minutes,
+  CAST(SUM(w.weight * (
+    m.pre_minutes * m.pre_fare_per_trip
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_minutes__x__pre_fare_per_trip,
+  CAST(SUM(w.weight * (
+    m.pre_minutes * m.pre_active_days
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_minutes__x__pre_active_days,
+  CAST(SUM(w.weight * (
+    m.pre_minutes * m.pre_days_since_last
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_minutes__x__pre_days_since_last,
+  CAST(SUM(w.weight * (
+    m.pre_fare_per_trip * m.pre_fare_per_trip
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_fare_per_trip__x__pre_fare_per_trip,
+  CAST(SUM(w.weight * (
+    m.pre_fare_per_trip * m.pre_active_days
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_fare_per_trip__x__pre_active_days,
+  CAST(SUM(w.weight * (
+    m.pre_fare_per_trip * m.pre_days_since_last
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_fare_per_trip__x__pre_days_since_last,
+  CAST(SUM(w.weight * (
+    m.pre_active_days * m.pre_active_days
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_active_days__x__pre_active_days,
+  CAST(SUM(w.weight * (
+    m.pre_active_days * m.pre_days_since_last
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_active_days__x__pre_days_since_last,
+  CAST(SUM(w.weight * (
+    m.pre_days_since_last * m.pre_days_since_last
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_days_since_last__x__pre_days_since_last,
+  CAST(SUM(w.weight * (
+    m.pre_trips * m.post_trips
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_trips__x__post_trips,
+  CAST(SUM(w.weight * (
+    m.pre_minutes * m.post_trips
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_minutes__x__post_trips,
+  CAST(SUM(w.weight * (
+    m.pre_fare_per_trip * m.post_trips
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_fare_per_trip__x__post_trips,
+  CAST(SUM(w.weight * (
+    m.pre_active_days * m.post_trips
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_active_days__x__post_trips,
+  CAST(SUM(w.weight * (
+    m.pre_days_since_last * m.post_trips
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_days_since_last__x__post_trips,
+  CAST(SUM(w.weight * (
+    m.pre_trips * m.post_minutes
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_trips__x__post_minutes,
+  CAST(SUM(w.weight * (
+    m.pre_minutes * m.post_minutes
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_minutes__x__post_minutes,
+  CAST(SUM(w.weight * (
+    m.pre_fare_per_trip * m.post_minutes
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_fare_per_trip__x__post_minutes,
+  CAST(SUM(w.weight * (
+    m.pre_active_days * m.post_minutes
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_active_days__x__post_minutes,
+  CAST(SUM(w.weight * (
+    m.pre_days_since_last * m.post_minutes
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_days_since_last__x__post_minutes,
+  CAST(SUM(w.weight * (
+    m.pre_trips * m.active_last_month
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_trips__x__active_last_month,
+  CAST(SUM(w.weight * (
+    m.pre_minutes * m.active_last_month
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_minutes__x__active_last_month,
+  CAST(SUM(w.weight * (
+    m.pre_fare_per_trip * m.active_last_month
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_fare_per_trip__x__active_last_month,
+  CAST(SUM(w.weight * (
+    m.pre_active_days * m.active_last_month
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_active_days__x__active_last_month,
+  CAST(SUM(w.weight * (
+    m.pre_days_since_last * m.active_last_month
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_days_since_last__x__active_last_month,
+  CAST(SUM(w.weight * (
+    m.post_trips
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS post_trips__sum,
+  CAST(SUM(w.weight * (
+    m.post_trips * m.post_trips
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS post_trips__sumsq,
+  CAST(SUM(w.weight * (
     m.post_trips - m.pre_trips
-  ) * (
-    m.post_trips - m.pre_trips
-  )) AS post_trips__did_sumsq,
-  SUM(m.post_minutes) AS post_minutes__sum,
-  SUM(m.post_minutes * m.post_minutes) AS post_minutes__sumsq,
-  SUM(m.fare_per_trip__num) AS fare_per_trip__sum_y,
-  SUM(m.fare_per_trip__den) AS fare_per_trip__sum_x,
-  SUM(m.fare_per_trip__num * m.fare_per_trip__num) AS fare_per_trip__sumsq_y,
-  SUM(m.fare_per_trip__den * m.fare_per_trip__den) AS fare_per_trip__sumsq_x,
-  SUM(m.fare_per_trip__num * m.fare_per_trip__den) AS fare_per_trip__sum_xy,
-  SUM(m.active_last_month) AS active_last_month__sum,
-  SUM(m.active_last_month * m.active_last_month) AS active_last_month__sumsq
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS post_trips__did_sum,
+  CAST(SUM(
+    w.weight * (
+      (
+        m.post_trips - m.pre_trips
+      ) * (
+        m.post_trips - m.pre_trips
+      )
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS post_trips__did_sumsq,
+  CAST(SUM(w.weight * (
+    m.post_minutes
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS post_minutes__sum,
+  CAST(SUM(w.weight * (
+    m.post_minutes * m.post_minutes
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS post_minutes__sumsq,
+  CAST(SUM(w.weight * (
+    m.fare_per_trip__num
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS fare_per_trip__sum_y,
+  CAST(SUM(w.weight * (
+    m.fare_per_trip__den
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS fare_per_trip__sum_x,
+  CAST(SUM(w.weight * (
+    m.fare_per_trip__num * m.fare_per_trip__num
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS fare_per_trip__sumsq_y,
+  CAST(SUM(w.weight * (
+    m.fare_per_trip__den * m.fare_per_trip__den
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS fare_per_trip__sumsq_x,
+  CAST(SUM(w.weight * (
+    m.fare_per_trip__num * m.fare_per_trip__den
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS fare_per_trip__sum_xy,
+  CAST(SUM(w.weight * (
+    m.active_last_month
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS active_last_month__sum,
+  CAST(SUM(w.weight * (
+    m.active_last_month * m.active_last_month
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS active_last_month__sumsq
 FROM "sqlmatch".annual_pass_measures AS m
 INNER JOIN "sqlmatch".annual_pass_match_weights AS w
   ON w.unit_key = m.unit_key

@@ -8,20 +8,24 @@ DROP TABLE IF EXISTS `sqlmatch`.annual_pass_nearest_neighbour_matches__building;
 
 CREATE TABLE `sqlmatch`.annual_pass_nearest_neighbour_matches__building AS
 /* Nearest-neighbour matching with replacement, 1:1: for each treated unit, its 1 nearest
-   control unit within the caliper on the logit score, in its exact block, by the gap in the logit propensity score.
-   Candidates: the 1 control just below and the 1 just above each treated unit in
-   its block's score order (the nearest 1 are always among them; no join of all pairs).
-   Ties in distance (compared at 10 decimal places) go to the control nearer in score order,
-   then to the lower control key.
-   A control unit may serve several treated units. One row per (treated unit, control unit) match. */
+   control unit within the caliper on the logit score, in its exact block, by the gap in the logit propensity score,
+   and every control as near as the last of them (distances compared at 10 decimal places): the match set
+   includes all ties (Abadie & Imbens 2006, J_M(i)). Weights: with slots = 1 (fewer when fewer controls
+   lie within the caliper), a control nearer than the last distance taken weighs 1 / slots, and the
+   controls at that last distance share the slots left over equally, so each treated unit's weights
+   add up to 1 and no tiebreak (key, hash, order) decides which tied control counts.
+   Candidates: the 1 group of controls with one score just below and the 1 just above each
+   treated unit in its block's score order (nearest_neighbour_units.control_group; no join of all
+   pairs). One row per (treated unit, group of tied controls) in the match set, with share = the weight
+   of each control of the group.
+   A control unit may serve several treated units. */
 WITH candidates AS (
   SELECT
     t.unit_key AS treated_key,
-    c.unit_key AS control_key,
-    ABS(t.score - c.score) AS distance,
-    ABS(t.score_position - c.score_position) AS tiebreak,
-    CASE WHEN o.step <= 0 THEN -1 ELSE 1 END AS side,
-    CASE WHEN o.step = 0 OR o.step = 1 THEN 1 ELSE 0 END AS at_edge
+    g.age_band,
+    g.control_group,
+    g.n_controls,
+    ABS(t.score_compared - g.score_compared) AS distance
   FROM `sqlmatch`.annual_pass_nearest_neighbour_units AS t
   CROSS JOIN (
     SELECT
@@ -30,32 +34,62 @@ WITH candidates AS (
     SELECT
       1 AS step
   ) AS o
-  INNER JOIN `sqlmatch`.annual_pass_nearest_neighbour_units AS c
-    ON c.treated = 0
-    AND c.controls_through = t.controls_through + o.step
-    AND c.age_band = t.age_band
+  INNER JOIN (
+    SELECT
+      u.age_band,
+      u.control_group,
+      MIN(u.score_compared) AS score_compared,
+      COUNT(*) AS n_controls
+    FROM `sqlmatch`.annual_pass_nearest_neighbour_units AS u
+    WHERE
+      u.treated = 0
+    GROUP BY
+      u.age_band,
+      u.control_group
+  ) AS g
+    ON g.control_group = t.control_group + o.step AND g.age_band = t.age_band
   CROSS JOIN `sqlmatch`.annual_pass_nearest_neighbour_caliper AS k
   WHERE
-    t.treated = 1 AND ABS(t.score - c.score) <= k.width
-), ranked AS (
+    t.treated = 1 AND ABS(t.score_compared - g.score_compared) <= k.width
+), levels AS (
   SELECT
     c.treated_key,
-    c.control_key,
     c.distance,
-    ROW_NUMBER() OVER (
-      PARTITION BY c.treated_key
-      ORDER BY CAST(c.distance AS DECIMAL(38, 10)) NULLS LAST, c.tiebreak NULLS LAST, c.control_key NULLS LAST
-    ) AS match_rank
+    SUM(c.n_controls) AS n_at
   FROM candidates AS c
+  GROUP BY
+    c.treated_key,
+    c.distance
+), counted AS (
+  SELECT
+    l.treated_key,
+    l.distance,
+    l.n_at,
+    SUM(l.n_at) OVER (PARTITION BY l.treated_key ORDER BY l.distance NULLS LAST) AS n_within,
+    SUM(l.n_at) OVER (PARTITION BY l.treated_key) AS n_candidates
+  FROM levels AS l
+), kept AS (
+  SELECT
+    n.treated_key,
+    n.distance,
+    n.n_at,
+    n.n_within - n.n_at AS n_nearer,
+    CASE WHEN n.n_candidates < 1 THEN n.n_candidates ELSE 1 END AS slots
+  FROM counted AS n
 )
 SELECT
-  r.treated_key,
-  r.control_key,
-  r.distance,
-  r.match_rank
-FROM ranked AS r
+  c.treated_key,
+  c.age_band,
+  c.control_group,
+  c.n_controls,
+  c.distance,
+  k.slots,
+  CAST(CASE WHEN k.n_nearer + k.n_at <= k.slots THEN k.n_at ELSE k.slots - k.n_nearer END AS DOUBLE) / NULLIF(k.slots * k.n_at, 0) AS share
+FROM candidates AS c
+INNER JOIN kept AS k
+  ON k.treated_key = c.treated_key AND k.distance = c.distance
 WHERE
-  r.match_rank <= 1;
+  k.n_nearer < k.slots;
 
 DROP TABLE IF EXISTS `sqlmatch`.annual_pass_nearest_neighbour_matches;
 
