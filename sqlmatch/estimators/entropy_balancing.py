@@ -39,7 +39,8 @@ from sqlmatch.estimators.intervals import normal_interval
 from sqlmatch.estimators.weighting import WeightedEffect
 
 ARMIJO = 1e-4  # sufficient decrease of the line search (Nocedal & Wright 2006, ch. 3; common practice)
-MAX_HALVINGS = 40
+MAX_HALVINGS = 20
+ROUNDING = 1e-12  # relative: far above a double's rounding in a sum of a few million terms
 
 
 @dataclass(frozen=True)
@@ -103,7 +104,13 @@ def solve(evaluate, p: int, max_steps: int = 50, tolerance: float = 1e-10) -> So
         for _ in range(MAX_HALVINGS):
             trial = evaluate(lam + t * d)
             evaluations += 1
-            if math.isfinite(trial.value) and trial.value <= cur.value + ARMIJO * t * slope:
+            if not math.isfinite(trial.value):
+                pass
+            elif trial.value <= cur.value + ARMIJO * t * slope:
+                break
+            # near the optimum the decrease is below the rounding of f (sums over many units): take
+            # the step when f stays within that rounding and the gradient shrinks
+            elif trial.value <= cur.value + ROUNDING * max(1.0, abs(cur.value)) and np.max(np.abs(trial.gradient)) < np.max(np.abs(g)):
                 break
             t /= 2
         else:

@@ -438,3 +438,36 @@ METHOD = MatchingMethod(
     fit=fit,
     fit_steps=fit_steps,
 )
+
+
+def design_entry(spec, r: dict, fitted) -> dict:
+    """What the reports and results.json say of the balancing: each feature's constraint, and the
+    balance and weight dispersion reached (from the stored weights, matching_summary)."""
+    from sqlmatch.estimators.weighting import kish_effective_size
+
+    out: dict = {
+        "matched_on": [
+            {
+                "feature": n,
+                "how": "weighted non-enrolled share of each level equal to the enrolled share"
+                if spec.feature(n).categorical
+                else "weighted non-enrolled mean equal to the enrolled mean" + (" and variance" if spec.matching.balance_variances else ""),
+            }
+            for n in spec.matching.on
+        ]
+    }
+    if fitted is None or "matching_summary" not in r:
+        return out
+    row = r["matching_summary"].one()
+    reached = balance_reached(row, fitted.moments)
+    total, top = row.get("control_weight_sum"), row.get("control_weight_max")
+    out["balancing"] = {
+        "moments": reached,
+        "max_gap": max((abs(m["gap"]) for m in reached), default=0.0),
+        "max_weight_share": float(top) / float(total) if total else None,
+        "effective_controls": kish_effective_size(total, row.get("control_weight_sumsq")),
+        "newton_steps": fitted.steps,
+        "dual_queries": fitted.evaluations,
+        "constant_left_out": list(fitted.constant),
+    }
+    return out
