@@ -257,19 +257,56 @@ def test_a_target_outside_the_controls_range_is_refused(tmp_path):
 
 
 def test_targets_outside_the_convex_hull_are_refused(tmp_path):
-    """Each mean within the controls' range, jointly unreachable: the comparison men are either
-    young or well educated, never both, and every treated man is young and well educated. The
-    Newton steps run off; the refusal names matching.on and the features."""
+    """Each mean within the controls' range, jointly unreachable: the comparison men sit at three
+    points (age, education) = (18, 8), (40, 18), (40, 8), and every treated man at (20, 16),
+    above the triangle's edge from (18, 8) to (40, 18). The Newton steps run off; the refusal
+    names matching.on and the features."""
     import duckdb
 
     db = str(tmp_path / "nsw.duckdb")
     load_nsw(db)
     with duckdb.connect(db) as con:
         con.execute("UPDATE men SET age = 20, educ = 16 WHERE enrolled_on IS NOT NULL")
-        con.execute("UPDATE men SET age = CASE WHEN person_id % 2 = 0 THEN 18 ELSE 40 END, educ = CASE WHEN person_id % 2 = 0 THEN 8 ELSE 18 END WHERE enrolled_on IS NULL")
+        con.execute(
+            "UPDATE men SET age = CASE WHEN person_id % 3 = 0 THEN 18 ELSE 40 END, "
+            "educ = CASE WHEN person_id % 3 = 1 THEN 18 ELSE 8 END WHERE enrolled_on IS NULL"
+        )
     err = _refused(db, parse_spec(nsw_spec(db, "entropy_balancing", on=["age", "educ"], balancing_max_steps=30)))
     assert isinstance(err, DataError) and err.key == "matching.on"
     assert "did not reach balance" in str(err) and ("age" in str(err) or "educ" in str(err))
+
+
+def test_collinear_features_are_refused(tmp_path):
+    """A feature that is another one doubled: the moments are collinear, the dual's Hessian
+    singular; refused naming both."""
+    import duckdb
+
+    db = str(tmp_path / "nsw.duckdb")
+    load_nsw(db)
+    with duckdb.connect(db) as con:
+        con.execute("ALTER TABLE men ADD COLUMN age_twice DOUBLE")
+        con.execute("UPDATE men SET age_twice = 2 * age")
+    raw = nsw_spec(db, "entropy_balancing", on=["age", "educ", "age_twice"])
+    raw["features"].append({"name": "age_twice", "aggregate": "attribute", "attribute": "age_twice"})
+    err = _refused(db, parse_spec(raw))
+    assert err.key == "matching.on" and "collinear" in str(err) and "age_twice" in str(err) and "age," in str(err)
+
+
+def test_the_variance_of_a_two_valued_feature_is_left_out(nsw_db):
+    """(x - a)^2 of a 0/1 feature is linear in x, so balancing its mean balances its variance; the
+    moment would make the dual singular and is left out, and the design says so."""
+    spec = parse_spec(nsw_spec(nsw_db, "entropy_balancing", on=["age", "black", "re75"], balance_variances=True))
+    out, results, rows = run_study(nsw_db, spec)
+    labels = [m.label for m in out.model.moments]
+    assert labels == ["age", "black", "re75", "the variance of age", "the variance of re75"]
+    assert results.design["balancing"]["left_out"] == ["the variance of black (two values only: its mean fixes it)"]
+    t = rows.treated.to_numpy() == 1
+    w = rows.match__weight.to_numpy(float)
+    for name in ("age", "black", "re75"):
+        x = rows[name].to_numpy(float)
+        mean_c = np.average(x[~t], weights=w[~t])
+        assert mean_c == pytest.approx(x[t].mean(), rel=1e-9)
+        assert np.average((x[~t] - mean_c) ** 2, weights=w[~t]) == pytest.approx(x[t].var(), rel=1e-8)
 
 
 @pytest.mark.parametrize("key, value", [("balance_variances", "yes"), ("balancing_max_steps", 0), ("balancing_max_steps", 2.5)])
@@ -338,3 +375,57 @@ def test_newton_reaches_balance_when_the_dual_stops_changing_in_floating_point()
 
     sol = solve(evaluate, 3, max_steps=50, tolerance=1e-12)
     assert np.max(np.abs(sol.dual.gradient)) <= 1e-12 and sol.steps < 15
+
+
+def test_postgres_gives_duckdbs_numbers(nsw_db):
+    """The fit's queries (targets, Newton steps) and the weights, summary and sandwich mean the
+    same on PostgreSQL: every number of results.json equal (test_engines' tolerances), the balance
+    gaps (about 1e-12, rounding) compared in absolute terms."""
+    import os
+    import secrets
+
+    import duckdb
+
+    url = os.environ.get("SQLMATCH_TEST_POSTGRES_URL")
+    if not url:
+        pytest.skip("SQLMATCH_TEST_POSTGRES_URL is not set: no PostgreSQL server to run on")
+    from sqlmatch.engines.postgres import PostgresEngine
+    from test_engines import PG_TYPES, assert_same_numbers
+
+    def spec_for(schema, work):
+        raw = nsw_spec(":memory:", "entropy_balancing", on=["age", "educ", "black", "hisp", "marr", "re74", "re75"], balance_variances=True)
+        raw["study"].update(work_schema=work)
+        raw["units"]["table"] = {"schema": schema, "name": "men"}
+        raw["events"]["table"] = {"schema": schema, "name": "earnings"}
+        return parse_spec(raw)
+
+    def gaps(d):
+        b = d["design"]["balancing"]
+        b.pop("max_gap")
+        return [m.pop("gap") / max(1.0, abs(m["target"])) for m in b["moments"]]
+
+    with DuckDBEngine(nsw_db) as engine:
+        want = api.run(spec_for("main", "sqlmatch_pg_reference"), engine=engine, keep_tables=False).to_dict()
+    tag = f"sqlmatch_entropy_{os.getpid()}_{secrets.token_hex(3)}"
+    engine = PostgresEngine(url)
+    try:
+        engine.execute(f'CREATE SCHEMA "{tag}"')
+        con = duckdb.connect(nsw_db, read_only=True)
+        for name in ("men", "earnings"):
+            cols = [(r[0], r[1]) for r in con.execute(f"DESCRIBE {name}").fetchall()]
+            engine.execute(f'CREATE TABLE "{tag}"."{name}" (' + ", ".join(f'"{c}" {PG_TYPES[t]}' for c, t in cols) + ")")
+            with engine.con.cursor() as cur:
+                with cur.copy(f'COPY "{tag}"."{name}" FROM STDIN') as copy:
+                    for row in con.execute(f"SELECT * FROM {name}").fetchall():
+                        copy.write_row(row)
+        con.close()
+        got = api.run(spec_for(tag, f"{tag}_work"), engine=engine, keep_tables=False).to_dict()
+    finally:
+        for s in (tag, f"{tag}_work"):
+            engine.execute(f'DROP SCHEMA IF EXISTS "{s}" CASCADE')
+        engine.close()
+    assert got.pop("dialect") == "postgres" and want.pop("dialect") == "duckdb"
+    got.pop("provenance"), want.pop("provenance")
+    assert max(abs(x) for x in gaps(got) + gaps(want)) < 1e-12  # relative to the target (re74's variance is about 1e8)
+    assert got["effects"][0]["estimator"].startswith("entropy-balancing")
+    assert_same_numbers(got, want)

@@ -40,6 +40,7 @@ from sqlmatch.estimators.weighting import WeightedEffect
 
 ARMIJO = 1e-4  # sufficient decrease of the line search (Nocedal & Wright 2006, ch. 3; common practice)
 MAX_HALVINGS = 20
+MAX_CONDITION = 1e10  # of H, moments scaled to SD 1: beyond it the step is mostly rounding (ours)
 ROUNDING = 1e-12  # relative: far above a double's rounding in a sum of a few million terms
 
 
@@ -71,7 +72,8 @@ class Solution:
 
 
 class BalanceFailed(Exception):
-    """The dual did not reach balance: `reason` ("singular", "diverged"), the last gradient."""
+    """The dual did not reach balance: `reason` ("singular": collinear moments; "diverged": the
+    targets out of reach), where it stopped."""
 
     def __init__(self, reason: str, lam: np.ndarray, dual: DualValue, steps: int):
         self.reason, self.lam, self.dual, self.steps = reason, lam, dual, steps
@@ -93,6 +95,11 @@ def solve(evaluate, p: int, max_steps: int = 50, tolerance: float = 1e-10) -> So
             return Solution(lam=lam, dual=cur, steps=step, evaluations=evaluations)
         if step == max_steps:
             break
+        # H singular: at lam = 0 (uniform weights) the moments are collinear among the controls;
+        # later, the weights have collapsed onto a face of the controls' convex hull, which
+        # happens when the targets lie outside it. A solve would still return a step from rounding.
+        if np.linalg.cond(cur.hessian) > MAX_CONDITION:
+            raise BalanceFailed("singular" if step == 0 else "diverged", lam, cur, step)
         try:
             d = -np.linalg.solve(cur.hessian, g)
         except np.linalg.LinAlgError:

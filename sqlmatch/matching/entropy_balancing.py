@@ -80,7 +80,7 @@ class BalancingFit:
     effective_controls: float  # Kish's effective number of controls
     n_treated: int
     n_control: int
-    constant: tuple[str, ...] = ()  # moments equal and constant in both groups: nothing to balance
+    left_out: tuple[str, ...] = ()  # moments with nothing to balance (constant and equal; a 0/1 feature's variance), and why
 
 
 # ---------------------------------------------------------------- options
@@ -141,9 +141,9 @@ def _fix(feature: str) -> str:
 def standardised(spec, moments: list[Moment], row: dict) -> tuple[list[Moment], list[str], int, int]:
     """The moments centred at the enrolled means and scaled by the controls' SD, with the variance
     moments added (balance_variances); refuses a target outside the controls' range. Returns
-    (moments, the labels of constant moments left out, n_treated, n_control)."""
+    (moments, the moments left out and why, n_treated, n_control)."""
     n_t, n_c = int(row[col.balancing("n_treated")] or 0), int(row[col.balancing("n_control")] or 0)
-    out, constant, variances = [], [], []
+    out, left_out, variances = [], [], []
     for k, c in enumerate(moments):
         present = int(row[col.balancing("present", k)] or 0)
         if present < n_t + n_c:
@@ -161,7 +161,7 @@ def standardised(spec, moments: list[Moment], row: dict) -> tuple[list[Moment], 
         spread = max(abs(lo), abs(hi), 1.0) * 1e-12
         if hi - lo <= spread:  # controls constant in this moment
             if f("t_max") - f("t_min") <= spread and abs(target - lo) <= spread:
-                constant.append(c.label)
+                left_out.append(f"{c.label} (constant, equal in both groups)")
                 continue
         if not lo + spread < target < hi - spread:
             where = "equals the edge of" if lo - spread <= target <= hi + spread else "lies outside"
@@ -172,7 +172,10 @@ def standardised(spec, moments: list[Moment], row: dict) -> tuple[list[Moment], 
                 _fix(c.feature),
             )
         out.append(replace(c, centre=target, scale=c_sd))
-        if c.kind == "numeric" and spec.matching.balance_variances:
+        if c.kind == "numeric" and spec.matching.balance_variances and _two_valued(row, k, n_t + n_c):
+            # (x - a)^2 of a two-valued x is linear in x: its mean fixes its variance
+            left_out.append(f"the variance of {c.feature} (two values only: its mean fixes it)")
+        elif c.kind == "numeric" and spec.matching.balance_variances:
             # (x - a)^2 around the enrolled mean a: its enrolled mean is their variance (divisor n)
             reach = max((hi - target) ** 2, (lo - target) ** 2)
             if not 0 < t_var < reach:
@@ -183,7 +186,16 @@ def standardised(spec, moments: list[Moment], row: dict) -> tuple[list[Moment], 
                     f"set balance_variances = false, or {_fix(c.feature)}",
                 )
             variances.append(Moment(feature=c.feature, kind="square", mean=target, centre=t_var, scale=c_sd**2 + (c_mean - target) ** 2))
-    return out + variances, constant, n_t, n_c
+    return out + variances, left_out, n_t, n_c
+
+
+def _two_valued(row: dict, k: int, n: int) -> bool:
+    """Every value of moment k is its minimum or its maximum: sum (x - lo)(hi - x) = 0."""
+    f = lambda what: float(row[col.balancing(what, k)] or 0.0)  # noqa: E731
+    lo, hi = min(f("t_min"), f("c_min")), max(f("t_max"), f("c_max"))
+    total, squares = f("t_sum") + f("c_sum"), f("t_sumsq") + f("c_sumsq")
+    inside = -squares + (lo + hi) * total - n * lo * hi
+    return abs(inside) <= 1e-9 * max(1.0, squares, n * abs(lo * hi))
 
 
 def dual_value(row: dict, p: int):
@@ -231,7 +243,7 @@ def fit(spec, engine, out, progress) -> BalancingFit:
     levels = {k: sorted(v) for k, v in levels.items()}
     first = first_moments(spec, levels)
     row = engine.fetch(targets_statement(spec, engine.dialect, first)).one()
-    moments, constant, n_t, n_c = standardised(spec, first, row)
+    moments, left_out, n_t, n_c = standardised(spec, first, row)
     if not moments:
         raise DataError("matching.on", "every matching feature is constant and equal in both groups: there is nothing to balance.", "match on features that vary.")
     p = len(moments)
@@ -252,7 +264,7 @@ def fit(spec, engine, out, progress) -> BalancingFit:
         effective_controls=sol.dual.effective,
         n_treated=n_t,
         n_control=n_c,
-        constant=tuple(constant),
+        left_out=tuple(left_out),
     )
     out.timings["balancing_fit"] = time.perf_counter() - t0
     progress.note(f"entropy balancing: {sol.steps} Newton steps ({sol.evaluations} queries), {out.timings['balancing_fit']:.2f}s")
@@ -273,11 +285,12 @@ def _failed(spec, moments, err) -> DataError:
             "remove one of those features from matching.on.",
         )
     names = ", ".join(f"{moments[i].label} (off by {gap[i]:.2g} SD)" for i in order) or "(none left)"
+    limit = f" = matching.balancing_max_steps" if err.steps >= spec.matching.balancing_max_steps else ""
     return DataError(
         "matching.on",
-        f"entropy balancing did not reach balance in {err.steps} Newton steps (matching.balancing_max_steps = "
-        f"{spec.matching.balancing_max_steps}): the enrolled units' means of {names} lie outside (or at the edge of) what "
-        "weighting the non-enrolled units can reach together, so the weights run off to a few units.",
+        f"entropy balancing did not reach balance (stopped after {err.steps} Newton steps{limit}): the enrolled units' "
+        f"means of {names} lie outside (or at the edge of) what weighting the non-enrolled units can reach together, "
+        "so the weights collapse onto a few units.",
         "remove or coarsen those features in matching.on, restrict eligibility.filters so both groups overlap, or use another matching.method.",
     )
 
@@ -468,6 +481,6 @@ def design_entry(spec, r: dict, fitted) -> dict:
         "effective_controls": kish_effective_size(total, row.get("control_weight_sumsq")),
         "newton_steps": fitted.steps,
         "dual_queries": fitted.evaluations,
-        "constant_left_out": list(fitted.constant),
+        "left_out": list(fitted.left_out),
     }
     return out
