@@ -429,3 +429,18 @@ def test_postgres_gives_duckdbs_numbers(nsw_db):
     assert max(abs(x) for x in gaps(got) + gaps(want)) < 1e-12  # relative to the target (re74's variance is about 1e8)
     assert got["effects"][0]["estimator"].startswith("entropy-balancing")
     assert_same_numbers(got, want)
+
+
+def test_reports_speak_of_weighted_controls(demo_balanced):
+    """Both reports say what the weights did: a weighted comparison (no strata), the balance
+    reached, Kish's effective number of controls and the largest weight's share."""
+    from sqlmatch.report.html import render_html
+    from sqlmatch.report.markdown import render_markdown
+
+    spec, variances, out, results, rows = demo_balanced
+    ess = f"about {results.matching.effective_controls:,.0f} unweighted ones"
+    for text in (render_markdown(results), render_html(results)):
+        assert "Strata used" not in text and "entropy balancing; one group, no strata" in text
+        assert ess in text and "Kish" in text and "largest weight is" in text
+        assert "Balance reached" in text and f"{results.design['balancing']['newton_steps']} Newton steps" in text
+    assert "weighted comparison mean" in render_markdown(results)
