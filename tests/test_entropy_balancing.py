@@ -444,3 +444,18 @@ def test_reports_speak_of_weighted_controls(demo_balanced):
         assert ess in text and "Kish" in text and "largest weight is" in text
         assert "Balance reached" in text and f"{results.design['balancing']['newton_steps']} Newton steps" in text
     assert "weighted comparison mean" in render_markdown(results)
+
+
+@pytest.mark.parametrize("scheduler", [False, True], ids=["direct", "for_scheduler"])
+def test_compile_says_the_method_runs_with_sqlmatch_run(tmp_path, capsys, scheduler):
+    """The compiled plan would stop before the Newton steps: one line naming matching.method and
+    `sqlmatch run` (it spoke of a propensity model file before), nothing written."""
+    from sqlmatch.cli import main
+
+    spec = tmp_path / "annual_pass.toml"
+    spec.write_text(DEMO_SPEC.read_text().replace('method = "coarsened_exact"', 'method = "entropy_balancing"'))
+    sql = tmp_path / "sql"
+    assert main(["compile", str(spec), "--out", str(sql)] + (["--for-scheduler"] if scheduler else [])) == 2
+    err = capsys.readouterr().err
+    assert len(err.splitlines()) == 1 and "matching.method" in err and "sqlmatch run" in err and "model.json" not in err
+    assert not sql.exists()
