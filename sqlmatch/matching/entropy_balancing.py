@@ -357,13 +357,17 @@ def steps(ctx, fitted):
 
 
 def balance_reached(row: dict, moments) -> list[dict]:
-    """Per moment: the target, the weighted control mean from the stored weights, and the gap."""
+    """Per moment the gap left, weighted control mean - enrolled mean from the stored weights, in
+    the moment's units and in SDs of the controls' values. The means themselves are not kept: a
+    level's enrolled share times the enrolled count is a count, perhaps under min_cell_size (the
+    balance table withholds those levels)."""
     out = []
     for k, c in enumerate(moments):
         target, reached = row.get(col.balancing("target", k)), row.get(col.balancing("reached", k))
         if target is None or reached is None:
             continue
-        out.append({"moment": c.label, "target": float(target), "weighted_control_mean": float(reached), "gap": float(reached) - float(target)})
+        gap = float(reached) - float(target)
+        out.append({"moment": c.label, "gap": gap, "gap_sd": gap / c.scale})
     return out
 
 
@@ -477,6 +481,7 @@ def design_entry(spec, r: dict, fitted) -> dict:
     out["balancing"] = {
         "moments": reached,
         "max_gap": max((abs(m["gap"]) for m in reached), default=0.0),
+        "max_gap_sd": max((abs(m["gap_sd"]) for m in reached), default=0.0),
         "max_weight_share": float(top) / float(total) if total else None,
         "effective_controls": kish_effective_size(total, row.get("control_weight_sumsq")),
         "newton_steps": fitted.steps,

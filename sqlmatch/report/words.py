@@ -205,7 +205,7 @@ def balancing_sentence(r: StudyResults) -> str:
     share = f"{100 * b['max_weight_share']:.2g}%" if b.get("max_weight_share") is not None else "–"
     return (
         f"Weighted comparison (entropy balancing; one group, no strata): the {f['control']['matched']} weighted non-enrolled "
-        f"units have the enrolled units' means of the matching features (largest gap left {b['max_gap']:.1g}, after "
+        f"units have the enrolled units' means of the matching features (largest gap left {b['max_gap_sd']:.1g} SD, after "
         f"{b['newton_steps']} Newton steps); the weighted controls count as {ess} unweighted ones (Kish's effective sample "
         f"size, (sum w)² / sum w²), and the largest weight is {share} of their total."
     )
