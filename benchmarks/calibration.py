@@ -50,6 +50,7 @@ import duckdb  # noqa: E402
 from commuter_sim import build_commuter  # noqa: E402
 
 Z95 = 1.959963984540054
+BALANCE_VARIANCES = False  # --balance-variances: entropy_balancing balances the variances too (set before the workers fork)
 
 
 def _machine() -> str:
@@ -114,6 +115,8 @@ def replicate(task) -> tuple[list[dict], list[dict]]:
                     # the propensity model on log(1 + x) of these features (where the model has them)
                     chosen = tuple(f for f in log1p if f in spec.propensity.features)
                     spec = dataclasses.replace(spec, propensity=dataclasses.replace(spec.propensity, log1p=chosen))
+                if BALANCE_VARIANCES:
+                    spec = dataclasses.replace(spec, matching=dataclasses.replace(spec.matching, balance_variances=True))
                 results = api.run(spec, engine=DuckDBEngine(str(database), connection=con))
             except Exception as err:  # a failing method is counted, not fatal
                 failures.append(dict(process=process, seed=seed, method=method, error=f"{type(err).__name__}: {str(err).splitlines()[0] if str(err) else ''}"))
@@ -234,7 +237,8 @@ def render(summary, failures, args, seconds: float, command: str) -> str:
         "- Methods at their default settings: coarsened_exact with each spec's cut points; score_bins with subclasses "
         "chosen from the data (split until the score and the model's numeric features are balanced, |t| <= 1.96), common "
         "support, propensity on `matching.on`; nearest_neighbour 1:1 with replacement, logit distance, caliper 0.2 SD, "
-        "Abadie-Imbens (2006) variance and (2011) bias correction. score_weighting with odds weights, common support, no trimming or truncation."
+        "Abadie-Imbens (2006) variance and (2011) bias correction. score_weighting with odds weights, common support, no trimming or truncation. "
+        "entropy_balancing on the means of `matching.on`" + (" and the variances of its numeric features (--balance-variances)" if args.balance_variances else "") + "."
         + (f" Propensity model on log(1 + x) of {', '.join(args.log1p)} (--log1p)." if args.log1p else ""),
         "- Truths. `expected`: the effect on the cohort given its units' latent values, averaged over the post-window "
         "randomness (the demo's `true_att`; what the per-stratum variance formula targets). `sample`: the realised mean of "
@@ -298,12 +302,15 @@ def main(argv=None) -> int:
     parser.add_argument("--methods", nargs="*", default=None, help="methods to run (default: every method in sqlmatch.matching.METHODS)")
     parser.add_argument("--processes", nargs="*", default=list(PROCESSES), choices=PROCESSES)
     parser.add_argument("--log1p", nargs="*", default=[], help="fit the propensity model on log(1 + x) of these features (default: the specs' own model)")
+    parser.add_argument("--balance-variances", action="store_true", help="entropy_balancing: balance the numeric features' variances too")
     parser.add_argument("--workers", type=int, default=2, help="worker processes (default 2; the machine is shared)")
     parser.add_argument("--out", type=Path, default=REPO / "benchmarks" / "RESULTS_calibration.md")
     parser.add_argument("--raw", type=Path, default=REPO / "benchmarks" / "calibration_raw.json")
     parser.add_argument("--checkpoint", type=Path, default=Path(tempfile.gettempdir()) / "sqlmatch_calibration.jsonl", help="JSON lines, one per finished replicate")
     parser.add_argument("--from-checkpoint", action="store_true", help="summarise the checkpoint of an interrupted run instead of running (--replicates: the count it was started with)")
     args = parser.parse_args(argv)
+    global BALANCE_VARIANCES
+    BALANCE_VARIANCES = args.balance_variances
     methods = args.methods or list(METHODS)
     command = "python3 benchmarks/calibration.py " + " ".join(argv if argv is not None else sys.argv[1:])
     t0 = time.perf_counter()

@@ -148,6 +148,8 @@ def run(
 
     The study's work tables stay for inspection unless keep_tables is False (the command line
     drops them unless --keep); `cleanup` drops them later."""
+    from sqlmatch.matching import method_for
+
     own = engine is None
     engine = engine or open_engine(spec, database, engine_url)
     try:
@@ -165,7 +167,7 @@ def run(
     finally:
         if own:
             engine.close()
-    if output.model is not None and spec.source_path is not None:
+    if output.model is not None and spec.source_path is not None and method_for(spec.matching.method).uses_score:
         from sqlmatch.propensity import model_path
 
         output.model.save(model_path(spec))
@@ -271,6 +273,12 @@ def plan_model(spec: Spec):
     from sqlmatch.matching import method_for
     from sqlmatch.propensity import load_model
 
+    if method_for(spec.matching.method).fit is not None:
+        raise SqlmatchError(
+            f"matching.method: {spec.matching.method} fits its weights by Newton steps that sqlmatch runs and reads between "
+            "the steps, so a scheduler cannot run its plan alone yet. Fix: run it with `sqlmatch run`, or use another "
+            "matching.method for a scheduled plan."
+        )
     if not method_for(spec.matching.method).uses_score:
         return None
     model = load_model(spec)

@@ -9,6 +9,7 @@ from pathlib import Path
 from sqlmatch import api
 from sqlmatch.dialects import DIALECTS, check_dialect
 from sqlmatch.errors import SqlmatchError
+from sqlmatch.matching import method_for
 from sqlmatch.results import WARNING_KINDS, warning_kind
 from sqlmatch.runner import Progress
 
@@ -136,6 +137,12 @@ def _dispatch(args) -> int:
                 dialect = dialect or compiled["dialect"]
         dialect = check_dialect(dialect or "duckdb")
         plan = api.compile_for_scheduler(spec, dialect) if for_scheduler else api.compile_plan(spec, dialect)
+        if not plan.complete and method_for(spec.matching.method).fit is not None:
+            raise SqlmatchError(
+                f"matching.method: {spec.matching.method} fits its weights by Newton steps that `sqlmatch run` runs and reads "
+                "between the steps, so a compiled plan would stop before them. Fix: use `sqlmatch run` (--keep leaves the "
+                "tables for inspection; --verbose prints each step's purpose), or another matching.method to compile."
+            )
         if not plan.complete:
             # A partial plan would stop before matching: nothing to review or schedule.
             raise SqlmatchError(

@@ -90,3 +90,14 @@ def weighting(key: str, group: str, what: str, j: int | None = None) -> str:
     """A sum of score_weighting_sandwich for one outcome (or `<outcome>__did`) and group (t, c):
     u, v, uu, uv, vv, and per design column j: ru, rv (times the score residual), du, dv."""
     return f"{key}__w{group}_{what}" + ("" if j is None else f"_{j}")
+
+
+def balancing(what: str, i: int | None = None, j: int | None = None) -> str:
+    """A sum of the entropy-balancing queries (targets, Newton step, summary, sandwich): `eb_<what>`,
+    per moment function i (and pair i <= j)."""
+    return f"eb_{what}" + ("" if i is None else f"_{i}") + ("" if j is None else f"_{j}")
+
+
+def balancing_term(key: str, group: str, what: str, j: int | None = None) -> str:
+    """A sum of entropy_balancing_sandwich for one outcome (or `<outcome>__did`) and group (t, c)."""
+    return f"{key}__e{group}_{what}" + ("" if j is None else f"_{j}")

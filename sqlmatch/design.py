@@ -52,6 +52,10 @@ def study_design(spec: Spec, r: dict, model=None) -> dict:
         design["controls_per_treated"] = m.controls_per_treated
         design["reuse_controls"] = m.reuse_controls
         design["bias_correction"] = m.bias_correction and m.reuse_controls
+    elif m.method == "entropy_balancing":
+        from sqlmatch.matching.entropy_balancing import design_entry
+
+        design.update(design_entry(spec, r, model))
     if method.uses_score:
         if model is None:  # a scheduled run: the SQL applied the model kept beside the spec
             from sqlmatch.propensity import load_model

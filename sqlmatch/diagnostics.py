@@ -33,6 +33,8 @@ def balance_warnings(spec: Spec, balance, matching) -> list[Caution]:
     listed = ", ".join(f"{b.covariate} {b.smd_after:+.3f}" for b in sorted(off, key=lambda b: -abs(b.smd_after)))
     if method_for(spec.matching.method).uses_score:
         fix = "add them to propensity.features, or block on the categorical ones (matching.block_on)"
+    elif spec.matching.method == "entropy_balancing":
+        fix = "add them to matching.on (the weights then balance their means too)"
     else:
         fix = "match on them too (matching.on) or on finer cut points (matching.cut_points)"
     return [

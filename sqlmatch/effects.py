@@ -60,6 +60,8 @@ def study_results(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
         nn = MatchingInference(r[MATCHING_VARIANCE], r[BIAS_STEP] if with_bias else None, variable_numbers(plan.outcomes), len(bias_features(spec)) if with_bias else 0)
     # score_weighting: the weighted effect and its sandwich variance replace the per-stratum one
     weighting = (r["weighting_sandwich"].one(), spec.propensity.ridge) if "weighting_sandwich" in r else None
+    if "balancing_sandwich" in r:  # entropy balancing: its own stacked equations, the same fields (ridge None)
+        weighting = (r["balancing_sandwich"].one(), None)
     effects = [
         outcome_effect(
             o, r["outcome_strata"], r["outcome_unmatched"], r.get("outcome_regression"), numeric, spec.matching.method,
@@ -270,11 +272,19 @@ def _weighted_fields(outcome, fields: dict, extra: dict, row: dict, ridge: float
 
     from sqlmatch.estimators.weighting import sums_from_row, weighted_effect
 
-    w = weighted_effect(sums_from_row(row, outcome.name), ridge)
     what = "ratios" if outcome.kind == "ratio" else "means"
+    if ridge is None:  # entropy balancing (matching/entropy_balancing.py)
+        from sqlmatch.matching.entropy_balancing import effect_of
+
+        effect = effect_of(row)
+        words = f"entropy-balancing weighted difference in {what}, sandwich variance counting the estimated weights and targets"
+    else:
+        effect = lambda key: weighted_effect(sums_from_row(row, key), ridge)  # noqa: E731
+        words = f"propensity-weighted difference in {what}, sandwich variance counting the estimated score"
+    w = effect(outcome.name)
     fields = dict(
         fields,
-        estimator=f"propensity-weighted difference in {what}, sandwich variance counting the estimated score" + (" (risk difference)" if outcome.kind == "binary" else ""),
+        estimator=words + (" (risk difference)" if outcome.kind == "binary" else ""),
         estimate=w.estimate,
         std_error=w.std_error,
         ci_low=w.ci_low,
@@ -290,7 +300,7 @@ def _weighted_fields(outcome, fields: dict, extra: dict, row: dict, ridge: float
         rr = SimpleNamespace(estimate=ratio, std_error=ratio_se, ci_low=lo, ci_high=hi)
         extra["risk_ratio"] = _interval(ratio, ratio_se, lo, hi)
     if extra.get("did_twin"):
-        did = weighted_effect(sums_from_row(row, f"{outcome.name}__did"), ridge)
+        did = effect(f"{outcome.name}__did")
         extra["did"] = _interval(did.estimate, did.std_error, did.ci_low, did.ci_high)
     return fields, extra, rr
 

@@ -678,6 +678,12 @@ def build_plan(spec: Spec, dialect: str = "duckdb", model=None, materialize: boo
             work_tables = tuple(t for s in steps for t in s.writes)
             check_work_tables(spec, work_tables)
             return Plan(study=spec.name, dialect=dialect, steps=tuple(steps), work_tables=work_tables, outcomes=tuple(outcomes), complete=False)
+    elif method.fit is not None:  # fitted in the warehouse by the runner (method.fit), then the full plan
+        steps += method.fit_steps(ctx, model)
+        if model is None and not names_only:
+            work_tables = tuple(t for s in steps for t in s.writes)
+            check_work_tables(spec, work_tables)
+            return Plan(study=spec.name, dialect=dialect, steps=tuple(steps), work_tables=work_tables, outcomes=tuple(outcomes), complete=False)
     matched = matching_steps(ctx, model)
     # per-match methods are read from <study>_match_weights by the per-stratum outcome query
     per_match = any(s.name == "weighted_units" and ctx.display("match_weights") in s.reads for s in matched)

@@ -429,7 +429,7 @@ def run_plan(plan: Plan, spec: Spec, engine: Engine, progress: Progress | None =
         try:
             _run_steps(plan, spec, engine, out, progress)
             if not plan.complete:
-                out.model = fit_propensity(spec, engine, out, progress)
+                out.model = (method_for(spec.matching.method).fit or fit_propensity)(spec, engine, out, progress)
                 out.plan = build_plan(spec, plan.dialect, model=out.model)
                 _run_steps(out.plan, spec, engine, out, progress)
         except BaseException:

@@ -203,6 +203,9 @@ class Matching:
     # score_weighting
     score_margin: float = 0.0  # leave out units whose score is outside [a, 1 - a]; 0: none
     weight_cap_quantile: float | None = None  # truncate control weights at this quantile of theirs
+    # entropy_balancing
+    balance_variances: bool = False  # also balance the numeric features' variances
+    balancing_max_steps: int = 50  # Newton steps of the dual before the targets count as unreachable
 
 
 @dataclass(frozen=True)

@@ -276,6 +276,35 @@ def test_postgres_runs_score_subclasses_chosen_from_the_data_with_duckdbs_number
     assert_same_numbers(_comparable(got), want)
 
 
+# Entropy balancing: the targets and Newton queries the runner issues between the steps, the
+# weights' exp(), the summary and the one-row sandwich, on every engine. The balance gaps left
+# (about 1e-13, rounding) are compared in SDs, not relatively.
+ENTROPY = {"method": "entropy_balancing", "on": ["pre_trips", "pre_minutes", "age_band"], "balance_variances": True}
+
+
+def _without_gaps(results) -> dict:
+    out = _comparable(results)
+    b = out["design"]["balancing"]
+    for key in ("max_gap", "max_gap_sd"):
+        b.pop(key)
+    for m in b["moments"]:
+        m.pop("gap")
+        assert abs(m.pop("gap_sd")) < 1e-9, m
+    return out
+
+
+@pytest.fixture(scope="session")
+def duckdb_entropy_results(demo_db):
+    with DuckDBEngine(demo_db) as engine:
+        return _without_gaps(api.run(demo_spec("main", "sqlmatch_duckdb_eb", ENTROPY), engine=engine, keep_tables=False))
+
+
+def test_postgres_runs_entropy_balancing_with_duckdbs_numbers(postgres, duckdb_entropy_results):
+    engine, tag = postgres
+    got = api.run(demo_spec(tag, f"{tag}_work", ENTROPY), engine=engine, keep_tables=False)
+    assert_same_numbers(_without_gaps(got), duckdb_entropy_results)
+
+
 def test_postgres_failed_run_drops_its_tables_and_the_connection_stays_usable(postgres):
     """A statement the engine refuses mid-run: the error is one line, the work tables are dropped
     (the connection must not be left in an aborted transaction for that) and the engine still works."""
@@ -412,6 +441,13 @@ def test_spark_computes_derived_features_as_duckdb_does(spark, demo_db):
     assert len(got_rows) == len(want_rows) > 1000
     assert_same_numbers([list(r) for r in got_rows], [list(r) for r in want_rows])
     assert_same_numbers(got, want)
+
+
+def test_spark_runs_entropy_balancing_with_duckdbs_numbers(spark, duckdb_entropy_results):
+    engine, tag = spark
+    results = api.run(demo_spec(tag, f"{tag}_work", ENTROPY), engine=engine, keep_tables=False)
+    assert results.effects[0].estimator.startswith("entropy-balancing")
+    assert_same_numbers(_without_gaps(results), duckdb_entropy_results)
 
 
 def test_spark_failed_run_drops_its_tables(spark):

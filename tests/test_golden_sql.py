@@ -96,6 +96,62 @@ def test_score_method_plan_matches_golden(spec, method, dialect, update_golden, 
         assert text == (folder / name).read_text(), f"{method}/{dialect}/{name} differs from golden"
 
 
+def entropy_plan(dialect: str):
+    """The demo study with entropy balancing on means and variances, compiled with a fixed fit
+    (coefficients made up for the golden files), and the statements of its fit: the targets and
+    one Newton step of the dual."""
+    from sqlmatch.matching.entropy_balancing import BalancingFit, Moment, newton_statement, targets_statement
+    from sqlmatch.plan import build_plan
+
+    raw = tomllib.loads(DEMO_SPEC.read_text())
+    raw["matching"] = {"method": "entropy_balancing", "on": ["pre_trips", "pre_minutes", "age_band"], "balance_variances": True}
+    spec = parse_spec(raw, source_path=DEMO_SPEC)
+    moments = (
+        Moment("pre_trips", "numeric", centre=7.25, scale=6.5),
+        Moment("pre_minutes", "numeric", centre=105.0, scale=96.5),
+        Moment("age_band", "level", level="25-34", centre=0.375, scale=0.5),
+        Moment("pre_trips", "square", mean=7.25, centre=52.0, scale=60.0),
+    )
+    fit = BalancingFit(moments=moments, lam=(0.5, -0.125, 0.25, -0.0625), log_normaliser=2.5, steps=6, evaluations=7, max_gap=1e-12,
+                       max_share=0.01, effective_controls=2500.0, n_treated=426, n_control=4680)
+    extra = {
+        "fit_targets.sql": targets_statement(spec, dialect, [Moment("pre_trips", "numeric"), Moment("pre_minutes", "numeric"), Moment("age_band", "level", level="25-34")]) + ";\n",
+        "fit_newton_step.sql": newton_statement(spec, dialect, moments, fit.lam) + ";\n",
+    }
+    return build_plan(spec, dialect, model=fit), extra
+
+
+@pytest.mark.parametrize("dialect", SNAPSHOT_DIALECTS)
+def test_entropy_balancing_plan_matches_golden(spec, dialect, update_golden):
+    """The method's snapshot: its manifest, the steps the demo snapshot does not hold with the same
+    SQL, and the two statements its fit runs (the targets, a Newton step of the dual)."""
+    plan, extra = entropy_plan(dialect)
+    shared = {s.name: {s.statements} for s in api.compile_plan(spec, dialect).steps}
+    files = {
+        name: text
+        for (name, text), step in zip(plan.files().items(), list(plan.steps) + [None])
+        if step is None or step.statements not in shared.get(step.name, set())
+    } | extra
+    folder = GOLDEN / "entropy_balancing" / dialect
+    if update_golden:
+        shutil.rmtree(folder, ignore_errors=True)
+        folder.mkdir(parents=True)
+        for name, text in files.items():
+            (folder / name).write_text(text, encoding="utf-8")
+    assert sorted(files) == sorted(p.name for p in folder.iterdir()), "step files differ from the golden set; rerun with --update-golden if intended"
+    for name, text in files.items():
+        assert text == (folder / name).read_text(), f"entropy_balancing/{dialect}/{name} differs from golden"
+
+
+@pytest.mark.parametrize("dialect", DIALECTS)
+def test_entropy_balancing_statements_parse_back(dialect):
+    plan, extra = entropy_plan(dialect)
+    statements = [s for step in plan.steps for s in step.statements] + [t.rstrip().rstrip(";") for t in extra.values()]
+    for statement in statements:
+        trees = [t for t in sqlglot.parse(statement, read=dialect) if t is not None]
+        assert len(trees) == 1, statement[:200]
+
+
 @pytest.mark.parametrize("dialect", DIALECTS)
 def test_compiling_twice_gives_identical_bytes(spec, dialect, tmp_path):
     first, second = tmp_path / "a", tmp_path / "b"

@@ -18,10 +18,10 @@ shapes, so they need no method-specific code.
 from __future__ import annotations
 
 from sqlmatch.errors import SqlmatchError
-from sqlmatch.matching import coarsened_exact, nearest_neighbour, score_bins, score_weighting
+from sqlmatch.matching import coarsened_exact, entropy_balancing, nearest_neighbour, score_bins, score_weighting
 from sqlmatch.matching.base import MatchingMethod
 
-METHODS: dict[str, MatchingMethod] = {m.name: m for m in (coarsened_exact.METHOD, score_bins.METHOD, nearest_neighbour.METHOD, score_weighting.METHOD)}
+METHODS: dict[str, MatchingMethod] = {m.name: m for m in (coarsened_exact.METHOD, score_bins.METHOD, nearest_neighbour.METHOD, score_weighting.METHOD, entropy_balancing.METHOD)}
 
 
 def method_for(name: str) -> MatchingMethod:

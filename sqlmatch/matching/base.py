@@ -56,3 +56,8 @@ class MatchingMethod:
     adjustable: bool = True
     # the effects it can estimate (spec key matching.estimand): strata can be weighted to any group
     estimands: tuple[str, ...] = ("att",)
+    # a method fitted in the warehouse before its steps (not the propensity model): the plan stops
+    # after the source steps and fit_steps(ctx, fitted); the runner calls fit(spec, engine, out,
+    # progress) -> fitted and builds the full plan with it (entropy balancing's Newton steps)
+    fit: Callable | None = None
+    fit_steps: Callable | None = None

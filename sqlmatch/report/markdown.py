@@ -160,11 +160,11 @@ def render_markdown(r: StudyResults, balance_image: str | None = None) -> str:
         *[f"| {label} | {t} | {c} |" for label, t, c in rows],
         *(["", f"Counts under {mc} are not shown, nor (–) a second count from which one could be worked out."] if _withheld(rows) else []),
         "",
-        _groups_line(m, flow_texts(m, mc), r.effects[0].estimand if r.effects else "att") if m.effective_controls is not None else groups_sentence(r),
+        _groups_line(m, flow_texts(m, mc), r.effects[0].estimand if r.effects else "att") if m.effective_controls is not None and "balancing" not in (r.design or {}) else groups_sentence(r),
         "",
         "## " + ESTIMAND_HEADINGS.get(r.effects[0].estimand if r.effects else "att", "Effects on the enrolled"),
         "",
-        "| outcome | kind | effect | 95% interval | relative lift | lift 95% interval | enrolled mean | matched comparison mean | unmatched difference |",
+        f"| outcome | kind | effect | 95% interval | relative lift | lift 95% interval | enrolled mean | {'weighted' if 'balancing' in (r.design or {}) else 'matched'} comparison mean | unmatched difference |",
         "|---|---|---:|---|---:|---|---:|---:|---:|",
     ]
     for e in r.effects:

@@ -179,6 +179,8 @@ def groups_sentence(r: StudyResults) -> str:
     from sqlmatch.privacy import flow_texts
 
     m, d = r.matching, r.design or {}
+    if d.get("balancing"):
+        return balancing_sentence(r)
     if _is_nearest(r):
         f = flow_texts(m, r.min_cell_size)
         k = d.get("controls_per_treated", 1)
@@ -191,6 +193,22 @@ def groups_sentence(r: StudyResults) -> str:
             f"units serve {f['treated']['matched']} matched enrolled units."
         )
     return f"Strata used: {m.strata:,}; cells dropped for lacking an enrolled or a non-enrolled unit: {m.strata_dropped:,}."
+
+
+def balancing_sentence(r: StudyResults) -> str:
+    """Entropy balancing: whom the weights cover, the balance they reached and how spread they are."""
+    from sqlmatch.privacy import flow_texts
+
+    b, m = r.design["balancing"], r.matching
+    f = flow_texts(m, r.min_cell_size)
+    ess = f"about {m.effective_controls:,.0f}" if m.effective_controls is not None else "–"
+    share = f"{100 * b['max_weight_share']:.2g}%" if b.get("max_weight_share") is not None else "–"
+    return (
+        f"Weighted comparison (entropy balancing; one group, no strata): the {f['control']['matched']} weighted non-enrolled "
+        f"units have the enrolled units' means of the matching features (largest gap left {b['max_gap_sd']:.1g} SD, after "
+        f"{b['newton_steps']} Newton steps); the weighted controls count as {ess} unweighted ones (Kish's effective sample "
+        f"size, (sum w)² / sum w²), and the largest weight is {share} of their total."
+    )
 
 
 def design_lines(r: StudyResults) -> list[tuple[str, str]]:
@@ -232,6 +250,13 @@ def design_lines(r: StudyResults) -> list[tuple[str, str]]:
             text += "; coefficients: " + ", ".join(f"{c['term']} {c['coefficient']:+.3g}" for c in p["coefficients"])
             text += f" (fitted {p.get('fitted_on', '?')}, {p.get('iterations', '?')} Newton steps)"
         out.append(("Propensity model", text))
+    b = d.get("balancing")
+    if b:
+        gaps = ", ".join(f"{x['moment']} {x['gap']:+.1g}" for x in b["moments"])
+        text = f"weighted non-enrolled mean − enrolled mean: {gaps}; {b['newton_steps']} Newton steps ({b['dual_queries']} aggregate queries of the dual)"
+        if b.get("left_out"):
+            text += "; not balanced (nothing to balance): " + "; ".join(b["left_out"])
+        out.append(("Balance reached", text))
     return out
 
 
