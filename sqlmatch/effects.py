@@ -63,7 +63,7 @@ def study_results(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
     effects = [
         outcome_effect(
             o, r["outcome_strata"], r["outcome_unmatched"], r.get("outcome_regression"), numeric, spec.matching.method,
-            r.get("pair_signed_rank"), spec.treatment_words, adjust=spec.regression_adjustment, nn=nn, estimand=spec.matching.estimand, weighting=weighting,
+            r.get("pair_signed_rank"), spec.treatment_words, adjust=spec.regression_adjustment is not False, nn=nn, estimand=spec.matching.estimand, weighting=weighting,
         )
         for o in plan.outcomes
     ]
