@@ -106,7 +106,8 @@ def render_html(r: StudyResults) -> str:
     parts.append("</table>")
     parts.append(
         "<p class='note'>Effect: the enrolled mean minus the matched comparison mean (binary outcomes: the risk difference). "
-        "Relative lift: the effect as a share of the comparison mean (binary: risk ratio − 1). Unmatched difference: the same "
+        "Relative lift: the effect as a share of the comparison mean (binary: risk ratio − 1; from the plain comparison also when the "
+        "effect is regression-adjusted). Unmatched difference: the same "
         "comparison before matching.</p>"
     )
     extra = []

@@ -182,7 +182,7 @@ def render_markdown(r: StudyResults, balance_image: str | None = None) -> str:
     lines += [
         "",
         "Relative lift: the effect as a share of the matched comparison mean (enrolled mean ÷ comparison mean − 1; "
-        "for binary outcomes the risk ratio − 1).",
+        "for binary outcomes the risk ratio − 1), from the plain comparison also when the effect is regression-adjusted.",
     ]
     lines += _effect_notes(r)
     if r.demo_truth:
