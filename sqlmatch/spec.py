@@ -236,7 +236,7 @@ class Spec:
     treatment_words: str = "enrolment"  # [treatment] described_as: how sentences name the treatment
     # [effect] regression_adjustment: the headline effect of count, sum and 0/1 outcomes is adjusted
     # by a within-stratum regression on the numeric features (estimators/adjusted.py); both are reported.
-    # None (not given): on for the methods that can adjust (MatchingMethod.adjustable), measured to
+    # None (not given): on for coarsened_exact and score_bins (effects.ADJUSTED_BY_DEFAULT), measured to
     # cover at least as well as the plain comparison (benchmarks/RESULTS_calibration_stratum.md)
     regression_adjustment: bool | None = None
     source_path: Path | None = None
