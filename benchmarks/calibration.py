@@ -128,7 +128,11 @@ def replicate(task) -> tuple[list[dict], list[dict]]:
                 base = dict(process=process, seed=seed, method=method, kind=e.kind, seconds=seconds, n_treated=e.n_treated, n_control=e.n_control, **t)
                 records.append(dict(base, row=e.outcome, estimate=e.estimate, se=e.std_error, lo=e.ci_low, hi=e.ci_high))
                 records.append(dict(base, row=f"{e.outcome} (unmatched)", estimate=e.naive.estimate, se=e.naive.std_error, lo=e.naive.ci_low, hi=e.naive.ci_high))
-                if e.adjusted is not None:
+                if e.unadjusted is not None:
+                    # the headline is the regression-adjusted effect: keep the plain one beside it
+                    a = e.unadjusted
+                    records.append(dict(base, row=f"{e.outcome} (unadjusted)", estimate=a.estimate, se=a.std_error, lo=a.ci_low, hi=a.ci_high))
+                elif e.adjusted is not None:
                     a = e.adjusted
                     records.append(dict(base, row=f"{e.outcome} (regression-adjusted)", estimate=a.estimate, se=a.std_error, lo=a.ci_low, hi=a.ci_high))
                 if e.did is not None:
@@ -235,10 +239,12 @@ def render(summary, failures, args, seconds: float, command: str) -> str:
         f"demo {args.riders:,} riders, commuter {args.units:,} riders; wall time {seconds / 60:.1f} min"
         + (" (summarised from the checkpoint of an interrupted run: see the `ok` column for the replicates per cell)" if args.from_checkpoint else ""),
         "- Methods at their default settings: coarsened_exact with each spec's cut points; score_bins with subclasses "
-        "chosen from the data (split until the score and the model's numeric features are balanced, |t| <= 1.96), common "
+        "chosen from the data (split until the score and the model's numeric features are balanced, |t| <= 1.96 per subclass and pooled), common "
         "support, propensity on `matching.on`; nearest_neighbour 1:1 with replacement, logit distance, caliper 0.2 SD, "
         "Abadie-Imbens (2006) variance and (2011) bias correction. score_weighting with odds weights, common support, no trimming or truncation. "
-        "entropy_balancing on the means of `matching.on`" + (" and the variances of its numeric features (--balance-variances)" if args.balance_variances else "") + "."
+        "entropy_balancing on the means of `matching.on`" + (" and the variances of its numeric features (--balance-variances)" if args.balance_variances else "") + ". "
+        "Count, sum and 0/1 outcomes of coarsened_exact and score_bins: the headline row is regression-adjusted within strata "
+        "(the default since this run's commit; `(unadjusted)` rows hold the plain stratified comparison), ratio outcomes are not adjusted."
         + (f" Propensity model on log(1 + x) of {', '.join(args.log1p)} (--log1p)." if args.log1p else ""),
         "- Truths. `expected`: the effect on the cohort given its units' latent values, averaged over the post-window "
         "randomness (the demo's `true_att`; what the per-stratum variance formula targets). `sample`: the realised mean of "

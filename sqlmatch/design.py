@@ -26,9 +26,10 @@ def study_design(spec: Spec, r: dict, model=None) -> dict:
         "groups_word": method.groups_word,
     }
     if m.method == "coarsened_exact":
-        from sqlmatch.matching.coarsened_exact import coarsenings
+        from sqlmatch.matching.coarsened_exact import CUTS_STEP, SMD_LIMIT, coarsenings
 
-        design["matched_on"] = [_coarsening(c) for c in coarsenings(spec)]
+        used = r[CUTS_STEP].one() if CUTS_STEP in r else {}
+        design["matched_on"] = [_coarsening(c, used.get(f"{c.feature}__bins"), SMD_LIMIT) for c in coarsenings(spec)]
     elif m.method == "score_bins":
         how = (
             "subclasses chosen from the data: split at the median until the score and the model's numeric features are balanced (computed in the warehouse)"
@@ -112,11 +113,15 @@ def _feature(f) -> dict:
     return out
 
 
-def _coarsening(c) -> dict:
+def _coarsening(c, bins_used=None, smd_limit=0.1) -> dict:
     if c.kind == "exact":
         return {"feature": c.feature, "how": "exact levels"}
     if c.kind == "cuts":
         return {"feature": c.feature, "how": "cut points", "cut_points": list(c.cuts)}
     if c.kind == "quantiles":
-        return {"feature": c.feature, "how": f"{c.bins} equal-count bins (cut points computed in the warehouse)"}
+        used = int(bins_used) if bins_used is not None else c.bins
+        if used != c.bins:
+            # refined in the warehouse (coarsened_exact_refine): say so, and why
+            return {"feature": c.feature, "how": f"{used} equal-count bins (cut points computed in the warehouse; {c.bins} left |SMD| > {smd_limit:g} after matching)", "bins": used}
+        return {"feature": c.feature, "how": f"{c.bins} equal-count bins (cut points computed in the warehouse)", "bins": used}
     return {"feature": c.feature, "how": "equal-width bins, Sturges' number (computed in the warehouse)"}

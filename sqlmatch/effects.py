@@ -65,7 +65,7 @@ def study_results(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
     effects = [
         outcome_effect(
             o, r["outcome_strata"], r["outcome_unmatched"], r.get("outcome_regression"), numeric, spec.matching.method,
-            r.get("pair_signed_rank"), spec.treatment_words, adjust=spec.regression_adjustment, nn=nn, estimand=spec.matching.estimand, weighting=weighting,
+            r.get("pair_signed_rank"), spec.treatment_words, adjust=_adjust(spec), nn=nn, estimand=spec.matching.estimand, weighting=weighting,
         )
         for o in plan.outcomes
     ]
@@ -102,6 +102,17 @@ def study_results(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
 
 
 AI_TEXT = ", Abadie-Imbens variance (counts control reuse)"
+# Regression adjustment by default only where its coverage was measured (the stratum methods,
+# benchmarks/RESULTS_calibration_stratum.md); elsewhere only when [effect] asks for it.
+ADJUSTED_BY_DEFAULT = ("coarsened_exact", "score_bins")
+
+
+def _adjust(spec) -> bool:
+    if spec.regression_adjustment is None:
+        return spec.matching.method in ADJUSTED_BY_DEFAULT
+    return spec.regression_adjustment
+
+
 BIAS_TEXT = ", bias-corrected by the controls' regression on the features (Abadie-Imbens 2011)"
 
 

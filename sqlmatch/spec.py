@@ -246,8 +246,10 @@ class Spec:
     check_unknown_units: bool = True
     treatment_words: str = "enrolment"  # [treatment] described_as: how sentences name the treatment
     # [effect] regression_adjustment: the headline effect of count, sum and 0/1 outcomes is adjusted
-    # by a within-stratum regression on the numeric features (estimators/adjusted.py); both are reported
-    regression_adjustment: bool = False
+    # by a within-stratum regression on the numeric features (estimators/adjusted.py); both are reported.
+    # None (not given): on for coarsened_exact and score_bins (effects.ADJUSTED_BY_DEFAULT), measured to
+    # cover at least as well as the plain comparison (benchmarks/RESULTS_calibration_stratum.md)
+    regression_adjustment: bool | None = None
     source_path: Path | None = None
 
     @property
@@ -722,7 +724,7 @@ def parse_spec(raw: dict, source_path: Path | None = None) -> Spec:
     if not isinstance(effect, dict):
         raise SpecError("effect", "must be a table.", "write it as [effect] with regression_adjustment = true or false.")
     _check_keys(effect, "effect", {"regression_adjustment"})
-    regression_adjustment = read_bool(effect, "effect", "regression_adjustment", default=False)
+    regression_adjustment = read_bool(effect, "effect", "regression_adjustment", default=False) if "regression_adjustment" in effect else None
     placebo_months = _placebo(raw.get("placebo"), windows)
     subgroups = _subgroups(raw.get("subgroups"), features)
 

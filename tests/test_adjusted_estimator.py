@@ -86,7 +86,8 @@ def test_a_column_constant_within_cells_gets_no_slope(men):
 def test_the_run_adjusts_as_statsmodels_does_on_the_matched_units(demo_db):
     """End to end on the demo: the adjusted effect from the warehouse's sums equals statsmodels'
     cell-intercept contrast fitted on the matched units' rows (read here only to check); with
-    [effect] regression_adjustment = true it becomes the headline and the plain one is kept."""
+    [effect] regression_adjustment = false it stays beside the plain headline; by default (and with
+    true) it is the headline and the plain one is kept as `unadjusted`."""
     import tomllib
 
     import duckdb
@@ -99,8 +100,10 @@ def test_the_run_adjusts_as_statsmodels_does_on_the_matched_units(demo_db):
     db = demo_db
     raw = tomllib.loads(DEMO_SPEC.read_text())
     raw["study"]["database"] = str(db)
+    raw["effect"] = {"regression_adjustment": False}
     spec = parse_spec(raw)
     plain = api.run(spec, keep_tables=True)
+    assert all(e.unadjusted is None and "within-stratum regression" not in e.estimator for e in plain.effects)
     features = [f.name for f in spec.numeric_features]
     with duckdb.connect(str(db), read_only=True) as con:
         rows = con.execute("SELECT * FROM sqlmatch.annual_pass_weighted_units WHERE match__weight IS NOT NULL").df()
@@ -117,8 +120,11 @@ def test_the_run_adjusts_as_statsmodels_does_on_the_matched_units(demo_db):
         tau = sum(w[s] * (fit.params[f"{s}_1"] - fit.params[f"{s}_0"]) for s in w.index)
         assert e.adjusted.estimate == pytest.approx(tau, rel=1e-6, abs=1e-9)
         assert set(e.adjusted_for) == set(x.columns)
+    del raw["effect"]
+    default = api.run(parse_spec(raw))
     raw["effect"] = {"regression_adjustment": True}
     adjusted = api.run(parse_spec(raw))
+    assert [e.estimate for e in default.effects] == pytest.approx([e.estimate for e in adjusted.effects], rel=1e-9)
     for e0, e1 in zip(plain.effects, adjusted.effects):
         if e0.kind == "ratio":
             assert e1.adjusted is None and e1.estimate == pytest.approx(e0.estimate, rel=1e-12)

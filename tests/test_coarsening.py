@@ -17,7 +17,7 @@ from conftest import DEMO_SPEC
 from nsw import EXPERIMENTAL_INTERVAL, load_nsw, nsw_spec
 
 
-def run_demo_with(demo_dir, folder, matching):
+def run_demo_with(demo_dir, folder, matching, table="annual_pass_coarsened"):
     shutil.copyfile(demo_dir / "bikeshare.duckdb", folder / "bikeshare.duckdb")
     raw = tomllib.loads(DEMO_SPEC.read_text())
     raw["study"]["database"] = str(folder / "bikeshare.duckdb")
@@ -26,7 +26,7 @@ def run_demo_with(demo_dir, folder, matching):
     with duckdb.connect(str(folder / "bikeshare.duckdb"), read_only=True) as con:
         rows = con.execute(
             "SELECT m.unit_key, m.pre_minutes, c.pre_minutes__bin AS bin FROM sqlmatch.annual_pass_measures m "
-            "JOIN sqlmatch.annual_pass_coarsened c USING (unit_key)"
+            f"JOIN sqlmatch.{table} c USING (unit_key)"
         ).df()
     return results, rows
 
@@ -35,7 +35,8 @@ def test_quantile_bins_follow_numpy_order_statistics(demo_dir, tmp_path):
     """Cut k = the order statistic at position floor((n-1) k / K) (numpy.sort); bin = number of cuts <= x
     (both at 10 decimal places)."""
     K = 6
-    results, rows = run_demo_with(demo_dir, tmp_path, {"on": ["pre_minutes", "age_band"], "coarsen": "quantiles", "coarsen_bins": K})
+    # the bins before any refinement (coarsened_r0; test_unbalanced_quantile_bins_are_refined)
+    results, rows = run_demo_with(demo_dir, tmp_path, {"on": ["pre_minutes", "age_band"], "coarsen": "quantiles", "coarsen_bins": K}, table="annual_pass_coarsened_r0")
     values = np.sort(rows.pre_minutes.to_numpy())
     n = len(values)
     cuts = [values[int(math.floor((n - 1) * k / K))] for k in range(1, K)]
@@ -154,3 +155,39 @@ def test_automatic_coarsening_matches_0_1_features_exactly(tmp_path):
             "GROUP BY match__stratum HAVING COUNT(DISTINCT black) > 1 OR COUNT(DISTINCT hisp) > 1) AS s"
         ).fetchone()[0]
     assert mixed == 0
+
+
+def _smd_after(rows, feature):
+    """ATT-weighted difference of the matched groups' means over the before-matching pooled SD
+    (Stuart 2010), from the rows with numpy: treated weight 1, control n_T,s / n_C,s per cell."""
+    x, t = rows[feature].to_numpy(float), rows.treated.to_numpy()
+    cell = rows.bin.astype(str) + "|" + rows.age_band.astype(str)
+    n_t = cell.map(rows[t == 1].groupby(cell[t == 1]).size()).fillna(0).to_numpy()
+    n_c = cell.map(rows[t == 0].groupby(cell[t == 0]).size()).fillna(0).to_numpy()
+    both = (n_t > 0) & (n_c > 0)
+    wt, wc = (t == 1) & both, (t == 0) & both
+    w = np.where(wc, n_t / np.where(n_c > 0, n_c, 1), 1.0)
+    diff = x[wt].mean() - np.average(x[wc], weights=w[wc])
+    return diff / math.sqrt((x[t == 1].var(ddof=1) + x[t == 0].var(ddof=1)) / 2), wt.sum() / (t == 1).sum()
+
+
+def test_unbalanced_quantile_bins_are_refined(demo_dir, tmp_path):
+    """Three computed equal-count bins of pre_minutes leave |SMD| > 0.1 after matching on the demo
+    (checked from the rows); the run doubles them while 90% of the enrolled stay matched, bins by
+    rank (floor(rank * 6 / n), rank = units with a smaller value), and the design says so."""
+    results, _ = run_demo_with(demo_dir, tmp_path, {"on": ["pre_minutes", "age_band"], "coarsen": "quantiles", "coarsen_bins": 3})
+    with duckdb.connect(str(tmp_path / "bikeshare.duckdb"), read_only=True) as con:
+        sql = ("SELECT m.unit_key, m.treated, m.pre_minutes, m.age_band, c.pre_minutes__bin AS bin FROM sqlmatch.annual_pass_measures m "
+               "JOIN sqlmatch.annual_pass_{} c USING (unit_key)")
+        before, after = con.execute(sql.format("coarsened_r0")).df(), con.execute(sql.format("coarsened")).df()
+    smd0, _ = _smd_after(before, "pre_minutes")
+    assert abs(smd0) > 0.1  # the case the refinement is for
+    smd1, kept = _smd_after(after, "pre_minutes")
+    assert abs(smd1) <= 0.1 and kept >= 0.9
+    x = np.round(after.pre_minutes.to_numpy(float), 10)
+    rank = np.searchsorted(np.sort(x), x, side="left")
+    np.testing.assert_array_equal(after.bin.to_numpy(), np.floor(rank * 6 / len(x)).astype(int))
+    row = next(b for b in results.balance if b.covariate == "pre_minutes")
+    assert row.smd_after == pytest.approx(smd1, abs=1e-9)
+    matched_on = {m["feature"]: m for m in results.design["matched_on"]}
+    assert matched_on["pre_minutes"]["bins"] == 6 and "3 left |SMD| > 0.1" in matched_on["pre_minutes"]["how"]

@@ -606,3 +606,15 @@ def test_duckdb_engine_draws_no_progress_bar_of_its_own():
     )
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True, cwd=REPO_ROOT, env={**os.environ, "PYTHONPATH": str(REPO_ROOT)})
     assert out.stdout.split() == ["True", "False"]
+
+
+def test_postgres_refines_computed_quantile_bins_with_duckdbs_numbers(postgres, demo_db):
+    """coarsened_exact with cut points computed in the warehouse and refined where |SMD| > 0.1
+    stays (coarsened_exact_refine: windowed ranks and cell counts): the same numbers on PostgreSQL."""
+    engine, tag = postgres
+    matching = {"method": "coarsened_exact", "on": ["pre_minutes", "age_band"], "coarsen": "quantiles", "coarsen_bins": 3}
+    with DuckDBEngine(demo_db) as duck:
+        want = _comparable(api.run(demo_spec("main", "sqlmatch_duckdb_refine", matching), engine=duck))
+    assert any(m.get("bins") == 6 for m in want["design"]["matched_on"])
+    got = _comparable(api.run(demo_spec(tag, f"{tag}_work", matching), engine=engine))
+    assert_same_numbers(got, want)

@@ -29,7 +29,9 @@ def raw_spec(db, **matching) -> dict:
 
 @pytest.mark.parametrize("estimand", ["att", "atc", "ate"])
 def test_estimand_matches_the_subclassification_formula(demo_db, estimand):
-    results = api.run(parse_spec(raw_spec(demo_db, estimand=estimand)), keep_tables=True)
+    raw = raw_spec(demo_db, estimand=estimand)
+    raw["effect"] = {"regression_adjustment": False}  # the plain formula (the adjusted default is checked in test_adjusted_estimator.py)
+    results = api.run(parse_spec(raw), keep_tables=True)
     with duckdb.connect(str(demo_db), read_only=True) as con:
         rows = con.execute("SELECT * FROM sqlmatch.annual_pass_weighted_units WHERE match__weight IS NOT NULL").df()
     g = rows.groupby(["match__stratum", "treated"]).post_trips.agg(["count", "mean", "var"]).unstack("treated")

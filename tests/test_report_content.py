@@ -62,6 +62,9 @@ def test_the_html_holds_every_figure_the_markdown_holds(runs):
             wanted += [f"{e['risk_ratio']['estimate']:,.2f}", f"[{e['risk_ratio']['ci_low']:,.2f}, {e['risk_ratio']['ci_high']:,.2f}]"]
         if e["did"]:
             wanted += [f"{e['did']['estimate']:,.3f}", f"[{e['did']['ci_low']:,.3f}, {e['did']['ci_high']:,.3f}]"]
+        if e["unadjusted"]:
+            # the headline is regression-adjusted by default: the plain comparison stays in both reports
+            wanted += [f"{e['unadjusted']['estimate']:,.3f}", f"[{e['unadjusted']['ci_low']:,.3f}, {e['unadjusted']['ci_high']:,.3f}]"]
         s = e["sensitivity"]
         wanted += [f"{s['e_value']:,.2f}", f"{s['e_value_ci']:,.2f}", f"{100 * s['robustness_value']:.1f}%"]
     for b in body["balance"]:
@@ -69,6 +72,7 @@ def test_the_html_holds_every_figure_the_markdown_holds(runs):
             if b[key] is not None:
                 wanted.append(f"{b[key]:,.{digits}f}")
     assert body["effects"] and any(e["risk_ratio"] for e in body["effects"]) and any(e["did"] for e in body["effects"])
+    assert any(e["unadjusted"] for e in body["effects"])
     for text in wanted:
         assert text in md, text
         assert text in page, text

@@ -71,3 +71,34 @@ def test_common_support_drops_units_outside_the_overlap(blocked):
     high = min(s[s.treated == 1].score.max(), s[s.treated == 0].score.max())
     inside = s[(s.score >= low) & (s.score <= high)]
     assert sorted(strata.unit_key) == sorted(inside.unit_key)
+
+
+def pooled_t(strata, v) -> float:
+    """The pooled difference of the subclasses holding both groups, ATT weights n_T,s / n_T, over
+    its standard error (the stratified difference in means and its variance, Imbens & Rubin 2015,
+    ch. 17, recalled), from the rows with numpy."""
+    d, var, n1 = 0.0, 0.0, 0
+    for _, block in strata.groupby("score_bin"):
+        t, c = block[block.treated == 1][v].to_numpy(float), block[block.treated == 0][v].to_numpy(float)
+        if len(t) and len(c):
+            n1 += len(t)
+            d += len(t) * (t.mean() - c.mean())
+            var += len(t) ** 2 * ((t.var(ddof=1) if len(t) > 1 else 0.0) / len(t) + (c.var(ddof=1) if len(c) > 1 else 0.0) / len(c))
+    return d / np.sqrt(var)
+
+
+def test_pooled_imbalance_is_split_away_where_the_sizes_allow(blocked):
+    # Differences below 1.96 in every subclass can share a sign and add up: while the pooled
+    # difference on a variable exceeds 1.96 of its SE, every subclass pushing it that way is split
+    # too, until no such subclass can be split.
+    spec, results, strata, scores = blocked
+    features = [n for n in spec.propensity.features if not spec.feature(n).categorical]
+    min_units = len(spec.propensity.features) + 2
+    for v in ["score", *features]:
+        z = pooled_t(strata, v)
+        if abs(z) <= score_bins.T_MAX:
+            continue
+        for _, block in strata.groupby("score_bin"):
+            t, c = block[block.treated == 1], block[block.treated == 0]
+            if len(t) >= 2 and len(c) >= 2 and (t[v].mean() - c[v].mean()) * z > 0:
+                assert not splittable(block, features, min_units), (v, z, block.score_bin.iloc[0])

@@ -6,7 +6,10 @@ numeric feature without them, are computed in the warehouse by `matching.coarsen
 (the default: `coarsen_bins` equal-count bins, 10 by default, where Cochran's 1968 table, recalled,
 puts the bias removed near 96% against 90% for 5) or "sturges" (equal-width bins,
 ceil(log2 n + 1) of them; Sturges 1926, JASA 21:65). A feature with no more distinct values than
-bins (a 0/1 feature above all) is matched exactly by either rule.
+bins (a 0/1 feature above all) is matched exactly by either rule. A quantile-cut feature that
+keeps |SMD| > 0.1 after matching gets twice its bins (equal-count by rank), up to REFINE_ROUNDS
+times, as long as the finer cells still match KEEP_SHARE of the treated; the report's design says
+how many bins each feature ended with.
 """
 
 from __future__ import annotations
@@ -20,6 +23,10 @@ from sqlmatch.matching.strata import Axis, strata_steps
 
 COARSEN_RULES = ("quantiles", "sturges")
 DEFAULT_BINS = 10  # equal-count bins per numeric feature without cut points
+REFINE_ROUNDS = 2  # a quantile-cut feature left at |SMD| > SMD_LIMIT gets 2x, then 4x its bins at most
+SMD_LIMIT = 0.1  # |SMD| after matching read as balanced (common practice; Stuart 2010)
+KEEP_SHARE = 0.9  # finer cells must still match this share of the treated (the report's "kept" line)
+CUTS_STEP = "coarsened_exact_cuts"
 OPTION_KEYS = ("cut_points", "coarsen", "coarsen_bins")
 
 DESCRIPTION = "coarsened exact matching: strata from cut points (given, or quantile/Sturges bins computed in SQL) and exact categorical levels"
@@ -58,17 +65,65 @@ def steps(ctx, model=None):
         # every cut point is known when compiling: coarsen inline, no extra table
         axes = [Axis(c.feature, "cuts", c.cuts) if c.kind == "cuts" else Axis(c.feature, "exact") for c in plan]
         return strata_steps(ctx, axes, source="measures", title="Coarsened exact matching", cell_text=f"its coarsened features ({on})")
+    quantiles = [c for c in plan if c.kind == "quantiles"]
     coarsen = ctx.table_step(
         "coarsened_exact_bins",
         "coarsened_exact_bins",
-        writes="coarsened",
+        writes="coarsened_r0" if quantiles and REFINE_ROUNDS else "coarsened",
         reads=[ctx.display("measures")],
         purpose="Coarsened exact matching: each unit's bin on every matching feature (cut points computed in SQL).",
         axes=plan,
         measures_table=ctx.table("measures"),
     )
+    # computed quantile bins can leave a matched feature unbalanced: refine_steps doubles its bins
+    refine = refine_steps(ctx, plan, quantiles) if quantiles and REFINE_ROUNDS else []
     axes = [Axis(c.column, "given") for c in plan]
-    return [coarsen] + strata_steps(ctx, axes, source="coarsened", title="Coarsened exact matching", cell_text=f"its coarsened features ({on})")
+    return [coarsen, *refine] + strata_steps(ctx, axes, source="coarsened", title="Coarsened exact matching", cell_text=f"its coarsened features ({on})") + (
+        [cuts_step(ctx, quantiles)] if quantiles else []
+    )
+
+
+def refine_steps(ctx, plan: list[Coarsening], quantiles: list[Coarsening]) -> list:
+    """REFINE_ROUNDS steps: in each, a quantile-cut feature with |SMD| > SMD_LIMIT after matching
+    gets twice its bins, if the finer cells still match KEEP_SHARE of the treated units; the last
+    writes <study>_coarsened."""
+    out = []
+    previous = "coarsened_r0"
+    for r in range(1, REFINE_ROUNDS + 1):
+        current = "coarsened" if r == REFINE_ROUNDS else f"coarsened_r{r}"
+        out.append(
+            ctx.table_step(
+                f"coarsened_exact_refine_{r}",
+                "coarsened_exact_refine",
+                writes=current,
+                reads=[ctx.display(previous), ctx.display("measures")],
+                purpose=f"Coarsened exact matching, refinement {r} of {REFINE_ROUNDS}: twice the bins of a quantile-cut feature still at |SMD| > {SMD_LIMIT} after matching.",
+                round=r,
+                rounds=REFINE_ROUNDS,
+                features=[c.feature for c in quantiles],
+                columns=[c.column for c in plan],
+                refinable={c.column: c.feature for c in quantiles},
+                smd_limit=SMD_LIMIT,
+                keep_share=KEEP_SHARE,
+                estimand=ctx.spec.matching.estimand,
+                previous_table=ctx.table(previous),
+                measures_table=ctx.table("measures"),
+            )
+        )
+        previous = current
+    return out
+
+
+def cuts_step(ctx, quantiles: list[Coarsening]):
+    """One row: the number of bins each quantile-cut feature ended with (for the report)."""
+    return ctx.query_step(
+        CUTS_STEP,
+        "coarsened_exact_cuts",
+        reads=[ctx.display("coarsened")],
+        purpose="Coarsened exact matching: the number of equal-count bins each feature without cut points ended with.",
+        features=[c.feature for c in quantiles],
+        coarsened_table=ctx.table("coarsened"),
+    )
 
 
 def read_options(table: dict, given: OptionInput) -> dict:

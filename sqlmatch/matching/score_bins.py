@@ -6,7 +6,11 @@ Scores are on the logit scale. The number of subclasses is chosen from the data 
 control units still differ on the score or on a numeric feature of the propensity model
 (|t| > 1.96) is split at its median while each half keeps
 3 treated, 3 control units and (features + 2) units (Imbens & Rubin 2015, Causal Inference for
-Statistics, Social, and Biomedical Sciences, ch. 17, recalled), for at most BLOCK_ROUNDS rounds;
+Statistics, Social, and Biomedical Sciences, ch. 17, recalled), for at most BLOCK_ROUNDS rounds.
+Differences under 1.96 per subclass can share a sign and add up (measured on the commuter
+simulation: pooled t of pre_trips +1.3 to +2.8 with every subclass at |t| <= 1.96), so while the
+pooled ATT-weighted difference on a variable exceeds 1.96 of its SE, every subclass whose
+difference has the same sign is split too;
 a fixed `matching.bins` puts boundaries at quantiles of the treated units' scores (Cochran's five
 leave about 10% of a covariate's bias). Optionally the subclasses are crossed with exact levels of
 categorical features, and units outside the common support are dropped first. Strata and

@@ -106,11 +106,18 @@ def render_html(r: StudyResults) -> str:
     parts.append("</table>")
     parts.append(
         "<p class='note'>Effect: the enrolled mean minus the matched comparison mean (binary outcomes: the risk difference). "
-        "Relative lift: the effect as a share of the comparison mean (binary: risk ratio − 1). Unmatched difference: the same "
+        "Relative lift: the effect as a share of the comparison mean (binary: risk ratio − 1; from the plain comparison also when the "
+        "effect is regression-adjusted). Unmatched difference: the same "
         "comparison before matching.</p>"
     )
     extra = []
     for e in r.effects:
+        if e.unadjusted is not None:
+            extra.append(
+                f"<tr><td>{_e(e.outcome)}</td><td>unadjusted (the effect above is adjusted by a within-stratum regression on "
+                f"{_e(', '.join(e.adjusted_for) or 'no feature')})</td><td class='num'>{_fmt(e.unadjusted.estimate)}</td>"
+                f"<td class='ci'>{_ci(e.unadjusted.ci_low, e.unadjusted.ci_high)}</td></tr>"
+            )
         if e.kind == "binary" and e.risk_ratio is not None:
             extra.append(f"<tr><td>{_e(e.outcome)}</td><td>risk ratio</td><td class='num'>{_fmt(e.risk_ratio.estimate, 2)}</td><td class='ci'>{_ci(e.risk_ratio.ci_low, e.risk_ratio.ci_high, 2)}</td></tr>")
         if e.did_twin and e.did is not None:

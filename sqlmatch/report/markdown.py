@@ -34,8 +34,16 @@ def _pct_interval(lo: float | None, hi: float | None) -> str:
 
 
 def _effect_notes(r: StudyResults) -> list[str]:
-    """Risk ratios of binary outcomes and differences-in-differences, in words."""
+    """Unadjusted effects beside adjusted ones, risk ratios of binary outcomes and
+    differences-in-differences, in words."""
     lines = []
+    for e in r.effects:
+        if e.unadjusted is not None:
+            lines.append(
+                f"- **{e.outcome}**: the effect above is adjusted by a within-stratum regression on "
+                f"{', '.join(e.adjusted_for) or 'no feature'}; without the adjustment (the plain matched comparison) it is "
+                f"{_x(e.unadjusted.estimate)} {_interval(e.unadjusted.ci_low, e.unadjusted.ci_high)}."
+            )
     for e in r.effects:
         if e.kind == "binary" and e.risk_ratio is not None:
             lines.append(
@@ -175,7 +183,7 @@ def render_markdown(r: StudyResults, balance_image: str | None = None) -> str:
     lines += [
         "",
         "Relative lift: the effect as a share of the matched comparison mean (enrolled mean ÷ comparison mean − 1; "
-        "for binary outcomes the risk ratio − 1).",
+        "for binary outcomes the risk ratio − 1), from the plain comparison also when the effect is regression-adjusted.",
     ]
     lines += _effect_notes(r)
     if r.demo_truth:
