@@ -3,6 +3,10 @@
 -- kind: writes a table
 -- reads: sqlmatch.annual_pass_nearest_neighbour_matches
 -- writes: sqlmatch.annual_pass_match_weights
+-- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
+-- swap: the DROP of the old table and the RENAME of the new one run in one transaction: a failure before COMMIT leaves the old table as it was
+
+SET TimeZone = 'UTC';
 
 DROP TABLE IF EXISTS "sqlmatch".annual_pass_match_weights__building;
 
@@ -40,7 +44,11 @@ FROM "sqlmatch".annual_pass_nearest_neighbour_matches AS m
 INNER JOIN per_treated AS p
   ON p.treated_key = m.treated_key;
 
+BEGIN TRANSACTION;
+
 DROP TABLE IF EXISTS "sqlmatch".annual_pass_match_weights;
 
 ALTER TABLE "sqlmatch".annual_pass_match_weights__building
 RENAME TO annual_pass_match_weights;
+
+COMMIT;

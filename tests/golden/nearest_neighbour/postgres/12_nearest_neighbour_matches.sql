@@ -3,6 +3,10 @@
 -- kind: writes a table
 -- reads: sqlmatch.annual_pass_nearest_neighbour_units, sqlmatch.annual_pass_nearest_neighbour_caliper
 -- writes: sqlmatch.annual_pass_nearest_neighbour_matches
+-- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
+-- swap: the DROP of the old table and the RENAME of the new one run in one transaction: a failure before COMMIT leaves the old table as it was
+
+SET TimeZone = 'UTC';
 
 DROP TABLE IF EXISTS "sqlmatch".annual_pass_nearest_neighbour_matches__building;
 
@@ -57,7 +61,11 @@ FROM ranked AS r
 WHERE
   r.match_rank <= 1;
 
+BEGIN TRANSACTION;
+
 DROP TABLE IF EXISTS "sqlmatch".annual_pass_nearest_neighbour_matches;
 
 ALTER TABLE "sqlmatch".annual_pass_nearest_neighbour_matches__building
 RENAME TO annual_pass_nearest_neighbour_matches;
+
+COMMIT;
