@@ -44,8 +44,12 @@ def test_cohorts_run_each_month_and_pool(demo_dir, tmp_path, capsys):
     assert [c["cohort"] for c in body["cohorts"]] == ["2026-02", "2026-03", "2026-04"]
     trips = next(p for p in body["pooled"] if p["outcome"] == "post_trips")
     est = [next(e for e in c["effects"] if e["outcome"] == "post_trips") for c in body["cohorts"]]
-    expected = pool([e["estimate"] for e in est], [e["std_error"] for e in est])
-    assert trips["estimate"] == pytest.approx(expected.estimate, rel=1e-12)
+    # fixed weights: each month's count of matched enrolled units (the ATT over every month's enrolled)
+    n = np.array([e["n_treated"] for e in est], dtype=float)
+    assert trips["estimate"] == pytest.approx(float(n @ np.array([e["estimate"] for e in est]) / n.sum()), rel=1e-12)
+    assert trips["weights"] == pytest.approx(list(n / n.sum()), rel=1e-12)
+    # never-enrolled controls serve in every month: the months' effects covary positively here
+    assert trips["std_error"] > trips["std_error_if_independent"]
     assert "pooled effect" in (tmp_path / "out" / "report.md").read_text()
     assert (tmp_path / "out" / "report-2026-03.html").read_text().startswith("<!DOCTYPE html>")
     assert main(["run", str(tmp_path / "annual_pass.toml"), "--out", str(tmp_path / "x"), "--cohorts", "2026-05:2026-01"]) == 2
