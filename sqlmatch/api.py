@@ -185,6 +185,11 @@ def cleanup(spec: Spec, engine: Engine | None = None, database: str | None = Non
         with engine.study_lock(spec.work_schema, spec.name):
             dropped = [f"{spec.work_schema}.{n}" for n in drop_stray_tables(spec, engine)]
             dropped += drop_work_tables(writable_tables(spec, engine.dialect), engine)
+            # a killed `--cohorts` run's influence tables (run_cohorts drops them when it ends)
+            from sqlmatch.cohorts import leftover_influence_tables
+
+            leftovers = leftover_influence_tables(spec, engine.table_names(spec.work_schema))
+            dropped += drop_work_tables([f"{spec.work_schema}.{n}" for n in leftovers], engine)
     finally:
         if own:
             engine.close()

@@ -166,6 +166,15 @@ def influence_step(spec, dialect: str, month: str):
     return step
 
 
+def leftover_influence_tables(spec, present: list[str]) -> list[str]:
+    """Influence tables of this study a killed `--cohorts` run left in the work schema (only the
+    names influence_step writes: <study>_influence_YYYY_MM, or its __building table)."""
+    from sqlmatch.dialects import BUILDING_SUFFIX
+
+    pattern = re.compile(re.escape(f"{spec.name}_influence_") + r"\d{4}_\d{2}(" + re.escape(BUILDING_SUFFIX) + ")?", re.IGNORECASE)
+    return sorted(n for n in present if pattern.fullmatch(n))
+
+
 def covariance_step(spec, dialect: str, tables: list[str]):
     """The one-row query of the months' covariances, per outcome, from their influence tables."""
     from sqlglot import exp

@@ -25,6 +25,7 @@ from sqlmatch.estimators.pooling import pool, pool_covarying
 from sqlmatch.plan import measure_columns
 
 from conftest import DEMO_SPEC
+from test_engines import demo_db, demo_spec, demo_tables, postgres, postgres_url  # noqa: F401 (fixtures, shared)
 
 MONTHS = ["2026-02", "2026-03", "2026-04"]
 
@@ -182,3 +183,20 @@ def test_no_pooled_interval_where_the_months_covariances_are_not_computed(overri
     raw["matching"].pop("cut_points", None) if "method" in override.get("matching", {}) else None
     refusal = pooled_interval_refusal(parse_spec(raw))
     assert refusal is not None and words in refusal and "covary" in refusal
+
+
+def test_postgres_gives_duckdbs_covariances(postgres, demo_db):  # noqa: F811
+    """The two templates on PostgreSQL: the same covariances and pooled figures as on DuckDB."""
+    from sqlmatch.engines.duckdb import DuckDBEngine
+
+    engine, tag = postgres
+    months = "2026-02:2026-03"
+    with DuckDBEngine(demo_db) as duck:
+        want = api.run_cohorts(demo_spec("main", "sqlmatch_duckdb_cohorts"), months, engine=duck, keep_tables=False)
+    got = api.run_cohorts(demo_spec(tag, f"{tag}_work"), months, engine=engine, keep_tables=False)
+    assert sorted(got.covariances) == sorted(want.covariances)
+    for outcome, matrix in want.covariances.items():
+        assert np.asarray(got.covariances[outcome]) == pytest.approx(np.asarray(matrix), rel=1e-9), outcome
+    for a, b in zip(got.pooled, want.pooled):
+        assert (a.estimate, a.std_error) == pytest.approx((b.estimate, b.std_error), rel=1e-9), a.outcome
+    assert not [t for t in engine.table_names(f"{tag}_work") if "influence" in t]
