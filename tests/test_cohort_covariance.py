@@ -25,7 +25,7 @@ from sqlmatch.estimators.pooling import pool, pool_covarying
 from sqlmatch.plan import measure_columns
 
 from conftest import DEMO_SPEC
-from test_engines import demo_db, demo_spec, demo_tables, postgres, postgres_url  # noqa: F401 (fixtures, shared)
+from test_engines import demo_db, demo_spec, demo_tables, postgres, postgres_url, spark, spark_engine  # noqa: F401 (fixtures, shared)
 
 MONTHS = ["2026-02", "2026-03", "2026-04"]
 
@@ -200,3 +200,19 @@ def test_postgres_gives_duckdbs_covariances(postgres, demo_db):  # noqa: F811
     for a, b in zip(got.pooled, want.pooled):
         assert (a.estimate, a.std_error) == pytest.approx((b.estimate, b.std_error), rel=1e-9), a.outcome
     assert not [t for t in engine.table_names(f"{tag}_work") if "influence" in t]
+
+
+@pytest.mark.slow
+def test_spark_gives_duckdbs_covariances(spark, demo_db):  # noqa: F811
+    """The two templates on Spark (slow: two studies on a local Spark session)."""
+    from sqlmatch.engines.duckdb import DuckDBEngine
+
+    engine, tag = spark
+    months = "2026-02:2026-03"
+    with DuckDBEngine(demo_db) as duck:
+        want = api.run_cohorts(demo_spec("main", "sqlmatch_duckdb_cohorts"), months, engine=duck, keep_tables=False)
+    got = api.run_cohorts(demo_spec(tag, f"{tag}_work"), months, engine=engine, keep_tables=False)
+    for outcome, matrix in want.covariances.items():
+        assert np.asarray(got.covariances[outcome]) == pytest.approx(np.asarray(matrix), rel=1e-9), outcome
+    for a, b in zip(got.pooled, want.pooled):
+        assert (a.estimate, a.std_error) == pytest.approx((b.estimate, b.std_error), rel=1e-9), a.outcome
