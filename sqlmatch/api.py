@@ -187,6 +187,11 @@ def cleanup(spec: Spec, engine: Engine | None = None, database: str | None = Non
         with engine.study_lock(spec.work_schema, spec.name):
             dropped = [f"{spec.work_schema}.{n}" for n in drop_stray_tables(spec, engine)]
             dropped += drop_work_tables(writable_tables(spec, engine.dialect), engine)
+            # a killed `--cohorts` run's influence tables (run_cohorts drops them when it ends)
+            from sqlmatch.cohorts import leftover_influence_tables
+
+            leftovers = leftover_influence_tables(spec, engine.table_names(spec.work_schema))
+            dropped += drop_work_tables([f"{spec.work_schema}.{n}" for n in leftovers], engine)
     finally:
         if own:
             engine.close()
@@ -245,17 +250,51 @@ def write_results(results: StudyResults, out_dir: str | Path, progress: Progress
     return written
 
 
-def run_cohorts(spec: Spec, months: str, **run_options):
-    """Run the study for every month of `months` ("FIRST:LAST") and pool each outcome's effect."""
-    from sqlmatch.cohorts import CohortResults, month_range
+def run_cohorts(
+    spec: Spec,
+    months: str,
+    engine: Engine | None = None,
+    database: str | None = None,
+    progress: Progress | None = None,
+    engine_url: str | None = None,
+    keep_tables: bool = True,
+):
+    """Run the study for every month of `months` ("FIRST:LAST") and pool each outcome's effect.
+    After each month's run its units' influence terms are written to a table of the work
+    schema; one aggregate query over them gives the months' covariances (sqlmatch/cohorts.py).
+    Those tables are dropped at the end (they are only read by that query)."""
+    from sqlmatch.cohorts import CohortResults, covariance_matrices, covariance_step, influence_step, month_range, pooled_interval_refusal
+    from sqlmatch.plan import measure_columns, writable_tables
+    from sqlmatch.runner import drop_work_tables
 
-    results = []
-    for month in month_range(months):
-        progress = run_options.get("progress")
-        if progress is not None:
-            progress.note(f"cohort {month}")
-        results.append(run(spec.with_overrides(cohort=month), **run_options))
-    return CohortResults.combine(results)
+    months_list = month_range(months)
+    refusal = pooled_interval_refusal(spec)
+    own = engine is None
+    engine = engine or open_engine(spec, database, engine_url)
+    results, influence, covariances = [], [], None
+    try:
+        for month in months_list:
+            if progress is not None:
+                progress.note(f"cohort {month}")
+            cohort = spec.with_overrides(cohort=month)
+            results.append(run(cohort, engine=engine, progress=progress, keep_tables=True))
+            if refusal is None:
+                step = influence_step(cohort, engine.dialect, month)
+                influence.append(step.writes[0])
+                engine.execute(step.statements[0])
+                engine.execute(step.statements[1])
+                engine.execute_atomic(list(step.statements[2:]))
+            if not keep_tables:
+                drop_work_tables(writable_tables(cohort, engine.dialect), engine)
+        if refusal is None:
+            (statement,) = covariance_step(spec, engine.dialect, influence).statements
+            row = engine.fetch(statement).one()
+            covariances = covariance_matrices(row, measure_columns(spec)[1], len(influence))
+    finally:
+        drop_work_tables(influence, engine)
+        if own:
+            engine.close()
+    return CohortResults.combine(results, covariances=covariances, refusal=refusal, estimand=spec.matching.estimand)
 
 
 def write_cohort_results(combined, out_dir: str | Path) -> list[Path]:

@@ -240,6 +240,8 @@ def _summary(runs, fail_on: frozenset[str], pooled=None, stream=None) -> int:
     for p in pooled or ():
         kind = runs[0].effect(p.outcome).kind
         print(f"sqlmatch: result: pooled over {p.cohorts} cohorts: {figure_line(p.outcome, kind, p.estimate, p.ci_low, p.ci_high)}", file=stream)
+        if p.note:
+            print(f"sqlmatch: note: pooled {p.outcome}: {p.note}", file=stream)
     failing, warned = [], False
     for r in runs:
         where = f"cohort {r.cohort}: " if several else ""

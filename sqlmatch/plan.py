@@ -28,7 +28,14 @@ FINGERPRINT_COLUMN = "plan__fingerprint"  # on every row of a scheduled aggregat
 # engine, whatever the machine's or the session's own zone. Compiled files say so in the steps
 # that read times; a scheduler runs them in a session set to it.
 TIME_ZONE = "UTC"
-_UTC_NOTE = f"Days are cut in {TIME_ZONE}: run it in a session whose time zone is {TIME_ZONE}, or times with a time zone fall on the session's days."
+_UTC_NOTE = f"Days are cut in {TIME_ZONE}: the session's time zone must be {TIME_ZONE} (a compiled file sets it where its dialect has the statement), or times with a time zone fall on the session's days."
+# What a compiled file adds around its step's own statements, per dialect, each run on the engine
+# (tests/test_scheduler_files.py): the session's time zone, so a scheduler's session cuts days as
+# the runner's does, and a transaction around the swap (DROP old, RENAME new) where DDL is
+# transactional, so a failure mid-swap leaves the old table. Spark's DDL is not transactional:
+# there a failure between the two statements leaves only the __building table.
+FILE_TIME_ZONE = {"duckdb": f"SET TimeZone = '{TIME_ZONE}'", "postgres": f"SET TimeZone = '{TIME_ZONE}'", "spark": f"SET spark.sql.session.timeZone = {TIME_ZONE}"}
+FILE_TRANSACTIONS = ("duckdb", "postgres")
 # The level that categorical levels held by fewer than report.min_cell_size units of the study are
 # pooled into, in unit_measures: every later step (balance, propensity levels, exact matching,
 # L1 cells) sees it, so the rows fetched stay fixed by the spec and no small level is named.
@@ -259,12 +266,43 @@ class Plan:
                     f"-- repeat: run this file again until the query below returns n_open = 0 (at most {step.max_repeats} "
                     "times; once it does, another run changes nothing): " + step.repeat_check.replace("\n", " ")
                 )
+            header += self._session_lines(step)
             # names come from the spec: a line break in one would end the comment line
             header = [render.comment_text(line) for line in header]
-            body = "\n\n".join(s + ";" for s in step.statements)
+            body = "\n\n".join(s + ";" for s in self.file_statements(step))
             out[self.file_name(i)] = "\n".join(header) + "\n\n" + body + "\n"
         out["manifest.json"] = json.dumps(self.manifest(), indent=2, sort_keys=False) + "\n"
         return out
+
+    def file_statements(self, step: Step) -> list[str]:
+        """The statements of a step's compiled file: its own, after the session's time zone and
+        with the swap in a transaction where the dialect allows (FILE_TIME_ZONE, FILE_TRANSACTIONS).
+        The runner runs a step's own statements and does both itself."""
+        statements = list(step.statements)
+        if step.kind == "table" and self.dialect in FILE_TRANSACTIONS:
+            statements = statements[:2] + ["BEGIN TRANSACTION"] + statements[2:] + ["COMMIT"]
+        if step.kind != "setup" and self.dialect in FILE_TIME_ZONE:
+            statements = [FILE_TIME_ZONE[self.dialect]] + statements
+        return statements
+
+    def _session_lines(self, step: Step) -> list[str]:
+        if step.kind == "setup":
+            return [
+                "-- skip this file when the schema exists: PostgreSQL refuses CREATE SCHEMA, even with IF NOT EXISTS, "
+                "to a role without CREATE on the database (`sqlmatch run` skips it the same way)"
+            ]
+        if self.dialect in FILE_TIME_ZONE:
+            lines = [f"-- time zone: the first statement sets this session's time zone to {TIME_ZONE} (it stays so for the rest of the session)"]
+        else:
+            lines = [f"-- time zone: run it in a session whose time zone is {TIME_ZONE} (no statement for it is written for {self.dialect})"]
+        if step.kind == "table" and self.dialect in FILE_TRANSACTIONS:
+            lines.append("-- swap: the DROP of the old table and the RENAME of the new one run in one transaction: a failure before COMMIT leaves the old table as it was")
+        elif step.kind == "table":
+            lines.append(
+                f"-- swap: {self.dialect} DDL is not written in a transaction here, so between the DROP of the old table and the RENAME "
+                "the table is absent; a failure there leaves only the __building table: run this file again"
+            )
+        return lines
 
     def manifest(self) -> dict:
         return {
@@ -281,10 +319,13 @@ class Plan:
                     "writes": list(s.writes),
                     "purpose": s.purpose,
                     **({"repeat": {"until": "n_open = 0", "check": s.repeat_check, "max": s.max_repeats}} if s.repeat_check else {}),
+                    **({"skip_when_schema_exists": True} if s.kind == "setup" else {}),
                 }
                 for i, s in enumerate(self.steps)
             ],
             "work_tables": list(self.work_tables),
+            "session_time_zone": {"zone": TIME_ZONE, "set_by_each_file": self.dialect in FILE_TIME_ZONE},
+            "swap": "one transaction per file" if self.dialect in FILE_TRANSACTIONS else "separate statements (a failure mid-swap leaves only the __building table)",
             "complete": self.complete,
             **(
                 {}

@@ -14,6 +14,8 @@ from sqlglot import exp
 from sqlmatch.dialects import DIALECTS
 from sqlmatch.errors import SpecError
 from sqlmatch.plan import build_plan
+
+from test_safety import expected_kinds
 from sqlmatch.spec import parse_spec
 
 from conftest import DEMO_SPEC
@@ -65,11 +67,10 @@ def test_compiled_sql_touches_only_the_intended_tables(dialect, units, events, s
     for i, step in enumerate(plan.steps):
         # the file as written (header comment included), not only the statements
         trees = [t for t in sqlglot.parse(files[plan.file_name(i)], read=dialect) if t is not None]
-        assert len(trees) == len(step.statements), f"{step.name}: a name split a statement"
+        # the file's own statements: the step's, the session's time zone and the swap's BEGIN/COMMIT
+        assert len(trees) == len(plan.file_statements(step)), f"{step.name}: a name split a statement"
         kinds = [type(t) for t in trees]
-        expected = {"setup": [exp.Create], "table": [exp.Drop, exp.Create, exp.Drop, exp.Alter], "query": [exp.Select]}[step.kind]
-        if step.kind == "query" and kinds and kinds[0] is exp.Union:
-            expected = [exp.Union]
+        expected = expected_kinds(step.kind, dialect, [exp.Union] if step.kind == "query" and exp.Union in kinds else None)
         assert kinds == expected, (step.name, kinds)
         ctes = {c.alias for t in trees for c in t.find_all(exp.CTE)}
         for t in trees:

@@ -3,6 +3,10 @@
 -- kind: writes a table
 -- reads: sqlmatch.annual_pass_measures, sqlmatch.annual_pass_cells
 -- writes: sqlmatch.annual_pass_weighted_units
+-- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
+-- swap: the DROP of the old table and the RENAME of the new one run in one transaction: a failure before COMMIT leaves the old table as it was
+
+SET TimeZone = 'UTC';
 
 DROP TABLE IF EXISTS "sqlmatch".annual_pass_weighted_units__building;
 
@@ -94,7 +98,11 @@ LEFT JOIN "sqlmatch".annual_pass_cells AS s
   END
   AND s.age_band__bin = COALESCE(m.age_band, '(missing)');
 
+BEGIN TRANSACTION;
+
 DROP TABLE IF EXISTS "sqlmatch".annual_pass_weighted_units;
 
 ALTER TABLE "sqlmatch".annual_pass_weighted_units__building
 RENAME TO annual_pass_weighted_units;
+
+COMMIT;

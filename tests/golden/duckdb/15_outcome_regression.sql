@@ -2,6 +2,9 @@
 -- Weighted regression of each outcome on treatment and the numeric features among matched units, as sums (X'WX, X'Wy, y'Wy) for the sensitivity analysis.
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_weighted_units
+-- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
+
+SET TimeZone = 'UTC';
 
 /* Weighted regression of each outcome on treatment and the numeric features, among matched units
    with the matching weights (the input of the robustness value). Returns one row of sums only:

@@ -2,6 +2,9 @@
 -- Units and strata kept and dropped by coarsened exact matching.
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_cells
+-- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
+
+SET spark.sql.session.timeZone = UTC;
 
 /* Coarsened exact matching, what was kept: cells, strata, and units dropped with the cells
    that lacked a treated or a control unit. One row. */

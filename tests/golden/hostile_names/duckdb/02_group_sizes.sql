@@ -2,6 +2,9 @@
 -- Count treated and control units (refuse an empty cohort or control pool), and NULL attributes.
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_units
+-- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
+
+SET TimeZone = 'UTC';
 
 /* Units per group in the study: checks the cohort and the control pool are not empty.
    Also, per attribute feature, the units whose value is NULL (reported, refused, filled or

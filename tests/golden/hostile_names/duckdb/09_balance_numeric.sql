@@ -2,6 +2,9 @@
 -- Per-group counts, sums and sums of squares of numeric features, before and after matching.
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_weighted_units
+-- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
+
+SET TimeZone = 'UTC';
 
 /* Balance of the numeric features, per group: before matching every unit in the study counts
    once; after matching each matched unit counts with its weight (unmatched units weigh 0).

@@ -1,8 +1,12 @@
 -- sqlmatch study 'annual_pass', step 01: study_units (postgres)
--- Treated cohort (2026-03) and control pool, after eligibility filters. Days are cut in UTC: run it in a session whose time zone is UTC, or times with a time zone fall on the session's days.
+-- Treated cohort (2026-03) and control pool, after eligibility filters. Days are cut in UTC: the session's time zone must be UTC (a compiled file sets it where its dialect has the statement), or times with a time zone fall on the session's days.
 -- kind: writes a table
 -- reads: bike "share".riders; DROP TABLE riders
 -- writes: sqlmatch.annual_pass_units
+-- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
+-- swap: the DROP of the old table and the RENAME of the new one run in one transaction: a failure before COMMIT leaves the old table as it was
+
+SET TimeZone = 'UTC';
 
 DROP TABLE IF EXISTS "sqlmatch".annual_pass_units__building;
 
@@ -33,7 +37,11 @@ WHERE
     u."Age Band" <> '50+'
   );
 
+BEGIN TRANSACTION;
+
 DROP TABLE IF EXISTS "sqlmatch".annual_pass_units;
 
 ALTER TABLE "sqlmatch".annual_pass_units__building
 RENAME TO annual_pass_units;
+
+COMMIT;

@@ -2,6 +2,9 @@
 -- Binned distribution of each numeric feature by group, before and after matching (for plots).
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_weighted_units
+-- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
+
+SET TimeZone = 'UTC';
 
 /* Distribution of each numeric feature, treated vs control, before and after matching: 60
    equal-width bins over the feature's range among study units; per bin and group the unit count

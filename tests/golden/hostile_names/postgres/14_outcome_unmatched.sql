@@ -2,6 +2,9 @@
 -- Outcome sums per group before matching (the naive comparison).
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_measures
+-- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
+
+SET TimeZone = 'UTC';
 
 /* Outcomes per group, before matching (one stratum: every unit in the study):
    counts, sums, sums of squares (and, for ratio outcomes, the cross-product) from which the

@@ -2,6 +2,9 @@
 -- Rows and distinct keys among the study's units (refuse duplicate keys).
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_units
+-- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
+
+SET spark.sql.session.timeZone = UTC;
 
 /* Is "select" a key of "bike ""share"""."riders; DROP TABLE riders"? Rows and distinct keys among the units in the study;
    they must be equal, or units would be counted twice. One row. */

@@ -2,6 +2,9 @@
 -- Per-level counts of categorical features, before and after matching.
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_weighted_units
+-- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
+
+SET spark.sql.session.timeZone = UTC;
 
 /* Balance of the categorical features: units per level and group, before matching (count)
    and after matching (sum of weights). One row per feature, level and group. */

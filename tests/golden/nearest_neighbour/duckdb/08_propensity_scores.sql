@@ -3,6 +3,10 @@
 -- kind: writes a table
 -- reads: sqlmatch.annual_pass_measures
 -- writes: sqlmatch.annual_pass_scores
+-- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
+-- swap: the DROP of the old table and the RENAME of the new one run in one transaction: a failure before COMMIT leaves the old table as it was
+
+SET TimeZone = 'UTC';
 
 DROP TABLE IF EXISTS "sqlmatch".annual_pass_scores__building;
 
@@ -31,7 +35,11 @@ SELECT
   -2.5 * x0 + 0.125 * x1 + 0.0625 * x2 + 0.25 * x3 + -0.25 * x4 + 0.5 * x5 AS score
 FROM design AS d;
 
+BEGIN TRANSACTION;
+
 DROP TABLE IF EXISTS "sqlmatch".annual_pass_scores;
 
 ALTER TABLE "sqlmatch".annual_pass_scores__building
 RENAME TO annual_pass_scores;
+
+COMMIT;

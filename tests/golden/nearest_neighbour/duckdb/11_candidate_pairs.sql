@@ -2,6 +2,9 @@
 -- Size of the candidate join (from block counts) and treated units with a control within the caliper.
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_nearest_neighbour_units, sqlmatch.annual_pass_nearest_neighbour_caliper
+-- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
+
+SET TimeZone = 'UTC';
 
 /* Nearest-neighbour matching, before the candidate join: how many (treated, control) pairs it
    will compare, from counts per block (exact levels x score bin) only:

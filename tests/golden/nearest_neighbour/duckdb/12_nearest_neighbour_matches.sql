@@ -3,6 +3,10 @@
 -- kind: writes a table
 -- reads: sqlmatch.annual_pass_nearest_neighbour_units, sqlmatch.annual_pass_nearest_neighbour_caliper
 -- writes: sqlmatch.annual_pass_nearest_neighbour_matches
+-- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
+-- swap: the DROP of the old table and the RENAME of the new one run in one transaction: a failure before COMMIT leaves the old table as it was
+
+SET TimeZone = 'UTC';
 
 DROP TABLE IF EXISTS "sqlmatch".annual_pass_nearest_neighbour_matches__building;
 
@@ -91,7 +95,11 @@ INNER JOIN kept AS k
 WHERE
   k.n_nearer < k.slots;
 
+BEGIN TRANSACTION;
+
 DROP TABLE IF EXISTS "sqlmatch".annual_pass_nearest_neighbour_matches;
 
 ALTER TABLE "sqlmatch".annual_pass_nearest_neighbour_matches__building
 RENAME TO annual_pass_nearest_neighbour_matches;
+
+COMMIT;

@@ -3,6 +3,10 @@
 -- kind: writes a table
 -- reads: sqlmatch.annual_pass_scores
 -- writes: sqlmatch.annual_pass_nearest_neighbour_caliper
+-- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
+-- swap: the DROP of the old table and the RENAME of the new one run in one transaction: a failure before COMMIT leaves the old table as it was
+
+SET TimeZone = 'UTC';
 
 DROP TABLE IF EXISTS "sqlmatch".annual_pass_nearest_neighbour_caliper__building;
 
@@ -42,7 +46,11 @@ SELECT
   0.2 * p.score_sd AS width
 FROM pooled AS p;
 
+BEGIN TRANSACTION;
+
 DROP TABLE IF EXISTS "sqlmatch".annual_pass_nearest_neighbour_caliper;
 
 ALTER TABLE "sqlmatch".annual_pass_nearest_neighbour_caliper__building
 RENAME TO annual_pass_nearest_neighbour_caliper;
+
+COMMIT;

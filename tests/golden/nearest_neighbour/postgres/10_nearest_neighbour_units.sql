@@ -3,6 +3,10 @@
 -- kind: writes a table
 -- reads: sqlmatch.annual_pass_scores, sqlmatch.annual_pass_nearest_neighbour_caliper
 -- writes: sqlmatch.annual_pass_nearest_neighbour_units
+-- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
+-- swap: the DROP of the old table and the RENAME of the new one run in one transaction: a failure before COMMIT leaves the old table as it was
+
+SET TimeZone = 'UTC';
 
 DROP TABLE IF EXISTS "sqlmatch".annual_pass_nearest_neighbour_units__building;
 
@@ -69,7 +73,11 @@ SELECT
   SUM(p.opens_group) OVER (PARTITION BY p.age_band ORDER BY p.score_compared, p.treated, p.unit_key) AS control_group
 FROM placed AS p;
 
+BEGIN TRANSACTION;
+
 DROP TABLE IF EXISTS "sqlmatch".annual_pass_nearest_neighbour_units;
 
 ALTER TABLE "sqlmatch".annual_pass_nearest_neighbour_units__building
 RENAME TO annual_pass_nearest_neighbour_units;
+
+COMMIT;

@@ -3,6 +3,10 @@
 -- kind: writes a table
 -- reads: sqlmatch.annual_pass_nearest_neighbour_matches, sqlmatch.annual_pass_nearest_neighbour_units
 -- writes: sqlmatch.annual_pass_match_weights
+-- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
+-- swap: the DROP of the old table and the RENAME of the new one run in one transaction: a failure before COMMIT leaves the old table as it was
+
+SET TimeZone = 'UTC';
 
 DROP TABLE IF EXISTS "sqlmatch".annual_pass_match_weights__building;
 
@@ -50,7 +54,11 @@ FROM (
 INNER JOIN "sqlmatch".annual_pass_nearest_neighbour_units AS u
   ON u.treated = 0 AND u.control_group = g.control_group AND u.age_band = g.age_band;
 
+BEGIN TRANSACTION;
+
 DROP TABLE IF EXISTS "sqlmatch".annual_pass_match_weights;
 
 ALTER TABLE "sqlmatch".annual_pass_match_weights__building
 RENAME TO annual_pass_match_weights;
+
+COMMIT;

@@ -3,6 +3,10 @@
 -- kind: writes a table
 -- reads: sqlmatch.annual_pass_measures, sqlmatch.annual_pass_match_weights
 -- writes: sqlmatch.annual_pass_weighted_units
+-- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
+-- swap: the DROP of the old table and the RENAME of the new one run in one transaction: a failure before COMMIT leaves the old table as it was
+
+SET TimeZone = 'UTC';
 
 DROP TABLE IF EXISTS "sqlmatch".annual_pass_weighted_units__building;
 
@@ -38,7 +42,11 @@ LEFT JOIN (
 ) AS w
   ON w.unit_key = m.unit_key;
 
+BEGIN TRANSACTION;
+
 DROP TABLE IF EXISTS "sqlmatch".annual_pass_weighted_units;
 
 ALTER TABLE "sqlmatch".annual_pass_weighted_units__building
 RENAME TO annual_pass_weighted_units;
+
+COMMIT;

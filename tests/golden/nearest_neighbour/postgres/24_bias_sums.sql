@@ -2,6 +2,9 @@
 -- Abadie-Imbens bias correction: weighted sums and cross-products of the features and outcomes per group among matched units.
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_weighted_units
+-- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
+
+SET TimeZone = 'UTC';
 
 /* Nearest-neighbour matching: sums for the Abadie & Imbens (2011) bias correction, per group over the
    matched units weighted by their matching weights (a control's is K_M / M, the times it is used

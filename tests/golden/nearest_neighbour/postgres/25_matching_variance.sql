@@ -2,6 +2,9 @@
 -- Abadie-Imbens variance sums: squared matching weights (times each control is used) times conditional variances estimated by matching each unit to its nearest unit of the same group.
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_scores, sqlmatch.annual_pass_weighted_units
+-- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
+
+SET TimeZone = 'UTC';
 
 /* Nearest-neighbour matching with replacement: the sums of the Abadie & Imbens (2006) variance of
    the effect on the treated, which counts how often each control is used.

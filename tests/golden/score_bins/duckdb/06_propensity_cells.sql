@@ -3,6 +3,10 @@
 -- kind: writes a table
 -- reads: sqlmatch.annual_pass_measures
 -- writes: sqlmatch.annual_pass_score_cells
+-- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
+-- swap: the DROP of the old table and the RENAME of the new one run in one transaction: a failure before COMMIT leaves the old table as it was
+
+SET TimeZone = 'UTC';
 
 DROP TABLE IF EXISTS "sqlmatch".annual_pass_score_cells__building;
 
@@ -34,7 +38,11 @@ GROUP BY
   m.pre_minutes,
   m.age_band;
 
+BEGIN TRANSACTION;
+
 DROP TABLE IF EXISTS "sqlmatch".annual_pass_score_cells;
 
 ALTER TABLE "sqlmatch".annual_pass_score_cells__building
 RENAME TO annual_pass_score_cells;
+
+COMMIT;

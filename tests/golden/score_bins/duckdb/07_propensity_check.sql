@@ -2,6 +2,9 @@
 -- Propensity model: score vector, information matrix and log-likelihood at the coefficients shown.
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_score_cells
+-- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
+
+SET TimeZone = 'UTC';
 
 /* Propensity model, one Newton-Raphson step as aggregates. At the coefficients b below, with
    p = 1 / (1 + exp(-b'x)), returns the score vector g_i = sum (t - p) x_i, the information matrix

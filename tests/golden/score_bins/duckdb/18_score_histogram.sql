@@ -2,6 +2,9 @@
 -- Binned propensity scores by group, before and after matching (overlap plot).
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_scores, sqlmatch.annual_pass_weighted_units
+-- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
+
+SET TimeZone = 'UTC';
 
 /* Overlap of the propensity score (logit scale), treated vs control, before and after matching:
    60 equal-width bins over the range of all scores; per bin and group the unit count and the

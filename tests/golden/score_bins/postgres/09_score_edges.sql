@@ -3,6 +3,10 @@
 -- kind: writes a table
 -- reads: sqlmatch.annual_pass_scores
 -- writes: sqlmatch.annual_pass_score_edges
+-- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
+-- swap: the DROP of the old table and the RENAME of the new one run in one transaction: a failure before COMMIT leaves the old table as it was
+
+SET TimeZone = 'UTC';
 
 DROP TABLE IF EXISTS "sqlmatch".annual_pass_score_edges__building;
 
@@ -55,7 +59,11 @@ INNER JOIN treated AS low
 LEFT JOIN treated AS high
   ON high.pos = p.lo + 1;
 
+BEGIN TRANSACTION;
+
 DROP TABLE IF EXISTS "sqlmatch".annual_pass_score_edges;
 
 ALTER TABLE "sqlmatch".annual_pass_score_edges__building
 RENAME TO annual_pass_score_edges;
+
+COMMIT;

@@ -3,6 +3,10 @@
 -- kind: writes a table
 -- reads: sqlmatch.annual_pass_scores, sqlmatch.annual_pass_score_edges
 -- writes: sqlmatch.annual_pass_score_strata
+-- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
+-- swap: the DROP of the old table and the RENAME of the new one run in one transaction: a failure before COMMIT leaves the old table as it was
+
+SET TimeZone = 'UTC';
 
 DROP TABLE IF EXISTS "sqlmatch".annual_pass_score_strata__building;
 
@@ -49,7 +53,11 @@ CROSS JOIN support AS r
 WHERE
   s.score >= r.low AND s.score <= r.high;
 
+BEGIN TRANSACTION;
+
 DROP TABLE IF EXISTS "sqlmatch".annual_pass_score_strata;
 
 ALTER TABLE "sqlmatch".annual_pass_score_strata__building
 RENAME TO annual_pass_score_strata;
+
+COMMIT;
