@@ -1,8 +1,12 @@
 -- sqlmatch study 'annual_pass', step 04: unit_measures (duckdb)
--- Per-unit pre-window features and post-window outcomes, one pass over the events (which also counts events of unknown units). Days are cut in UTC: run it in a session whose time zone is UTC, or times with a time zone fall on the session's days.
+-- Per-unit pre-window features and post-window outcomes, one pass over the events (which also counts events of unknown units). Days are cut in UTC: the session's time zone must be UTC (a compiled file sets it where its dialect has the statement), or times with a time zone fall on the session's days.
 -- kind: writes a table
 -- reads: trips, sqlmatch.annual_pass_units, riders
 -- writes: sqlmatch.annual_pass_measures
+-- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
+-- swap: the DROP of the old table and the RENAME of the new one run in one transaction: a failure before COMMIT leaves the old table as it was
+
+SET TimeZone = 'UTC';
 
 DROP TABLE IF EXISTS "sqlmatch".annual_pass_measures__building;
 
@@ -324,7 +328,11 @@ SELECT
   ) AS DOUBLE) AS DOUBLE) AS sq_if_riding
 FROM derived_4 AS r;
 
+BEGIN TRANSACTION;
+
 DROP TABLE IF EXISTS "sqlmatch".annual_pass_measures;
 
 ALTER TABLE "sqlmatch".annual_pass_measures__building
 RENAME TO annual_pass_measures;
+
+COMMIT;

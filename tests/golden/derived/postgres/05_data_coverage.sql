@@ -2,6 +2,9 @@
 -- First and last event within the windows, units without events (warn on gaps), events of unknown units, sums of the measures (refuse NaN).
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_measures
+-- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
+
+SET TimeZone = 'UTC';
 
 /* Do the events cover both windows? The first and last event of the study's units within
    [2025-09-01, 2026-07-01), and how many units have none. One row.

@@ -1,8 +1,12 @@
 -- sqlmatch study 'annual_pass', step 04: unit_measures (spark)
--- Per-unit pre-window features and post-window outcomes, one pass over the events (which also counts events of unknown units). Days are cut in UTC: run it in a session whose time zone is UTC, or times with a time zone fall on the session's days.
+-- Per-unit pre-window features and post-window outcomes, one pass over the events (which also counts events of unknown units). Days are cut in UTC: the session's time zone must be UTC (a compiled file sets it where its dialect has the statement), or times with a time zone fall on the session's days.
 -- kind: writes a table
 -- reads: trips, sqlmatch.annual_pass_units, riders
 -- writes: sqlmatch.annual_pass_measures
+-- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
+-- swap: spark DDL is not written in a transaction here, so between the DROP of the old table and the RENAME the table is absent; a failure there leaves only the __building table: run this file again
+
+SET spark.sql.session.timeZone = UTC;
 
 DROP TABLE IF EXISTS `sqlmatch`.annual_pass_measures__building;
 

@@ -2,6 +2,9 @@
 -- Units weighted per group, each group's weights' sum, sum of squares and range, and the weighted means the balance reached.
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_weighted_units
+-- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
+
+SET TimeZone = 'UTC';
 
 /* Entropy balancing, what was weighted (one row): units per group, each group's weights' sum,
    sum of squares and range (Kish's effective number of units, (sum w)^2 / sum w^2, Kish 1965,

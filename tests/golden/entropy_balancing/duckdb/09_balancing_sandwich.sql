@@ -2,6 +2,9 @@
 -- Sums for the weighted effect on the treated and its sandwich variance, which counts the estimated weights and targets (one row).
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_weighted_units
+-- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
+
+SET TimeZone = 'UTC';
 
 /* Entropy balancing: the sums behind the weighted effect on the treated and its variance (one
    row). The estimate solves stacked estimating equations (M-estimation; Zhao & Percival 2017,

@@ -2,6 +2,9 @@
 -- Levels of the categorical matching features (each level but the first is a balanced share).
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_measures
+-- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
+
+SET TimeZone = 'UTC';
 
 /* Levels of the categorical features in the propensity model: each level but the first becomes
    an indicator column. One row per feature and level. */

@@ -3,6 +3,10 @@
 -- kind: writes a table
 -- reads: sqlmatch.annual_pass_measures
 -- writes: sqlmatch.annual_pass_weighted_units
+-- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
+-- swap: the DROP of the old table and the RENAME of the new one run in one transaction: a failure before COMMIT leaves the old table as it was
+
+SET TimeZone = 'UTC';
 
 DROP TABLE IF EXISTS "sqlmatch".annual_pass_weighted_units__building;
 
@@ -61,7 +65,11 @@ SELECT
   END AS match__weight
 FROM design AS d;
 
+BEGIN TRANSACTION;
+
 DROP TABLE IF EXISTS "sqlmatch".annual_pass_weighted_units;
 
 ALTER TABLE "sqlmatch".annual_pass_weighted_units__building
 RENAME TO annual_pass_weighted_units;
+
+COMMIT;

@@ -3,6 +3,10 @@
 -- kind: writes a table
 -- reads: sqlmatch.annual_pass_measures
 -- writes: sqlmatch.annual_pass_weighted_units
+-- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
+-- swap: spark DDL is not written in a transaction here, so between the DROP of the old table and the RENAME the table is absent; a failure there leaves only the __building table: run this file again
+
+SET spark.sql.session.timeZone = UTC;
 
 DROP TABLE IF EXISTS `sqlmatch`.annual_pass_weighted_units__building;
 

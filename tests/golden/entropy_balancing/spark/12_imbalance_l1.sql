@@ -2,6 +2,9 @@
 -- Multivariate L1 imbalance on a fixed histogram, before and after matching.
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_weighted_units
+-- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
+
+SET spark.sql.session.timeZone = UTC;
 
 /* Multivariate imbalance L1 = 1/2 * sum over cells |f_cell - g_cell|, f and g the shares of
    treated and control units in each cell of one fixed histogram (Iacus, King & Porro 2011, JASA

@@ -2,6 +2,9 @@
 -- Outcome sums per stratum and group among matched units, with the feature sums and cross-products that adjust them by regression.
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_weighted_units
+-- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
+
+SET spark.sql.session.timeZone = UTC;
 
 /* Outcomes per stratum and group among matched units:
    counts, sums, sums of squares (and, for ratio outcomes, the cross-product) from which the
