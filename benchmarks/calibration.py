@@ -94,7 +94,7 @@ def _matched_truth(con, spec) -> dict[str, float]:
 
 def replicate(task) -> tuple[list[dict], list[dict]]:
     """One process at one seed, every method: (records, failures)."""
-    process, seed, size, methods, work, log1p = task
+    process, seed, size, methods, work, log1p, doubly_robust = task
     folder = Path(work) / f"{process}_{seed}"
     if process == "demo":
         spec_path = build_demo(folder, riders=size, seed=seed)
@@ -114,6 +114,9 @@ def replicate(task) -> tuple[list[dict], list[dict]]:
                     # the propensity model on log(1 + x) of these features (where the model has them)
                     chosen = tuple(f for f in log1p if f in spec.propensity.features)
                     spec = dataclasses.replace(spec, propensity=dataclasses.replace(spec.propensity, log1p=chosen))
+                if doubly_robust and method == "score_weighting":
+                    # one run gives both: the doubly robust headline, the plain weighted difference as `unadjusted`
+                    spec = dataclasses.replace(spec, regression_adjustment=True)
                 results = api.run(spec, engine=DuckDBEngine(str(database), connection=con))
             except Exception as err:  # a failing method is counted, not fatal
                 failures.append(dict(process=process, seed=seed, method=method, error=f"{type(err).__name__}: {str(err).splitlines()[0] if str(err) else ''}"))
@@ -123,11 +126,13 @@ def replicate(task) -> tuple[list[dict], list[dict]]:
             for e in results.effects:
                 t = dict(truth[e.outcome], matched_att=matched.get(e.outcome))
                 base = dict(process=process, seed=seed, method=method, kind=e.kind, seconds=seconds, n_treated=e.n_treated, n_control=e.n_control, **t)
-                records.append(dict(base, row=e.outcome, estimate=e.estimate, se=e.std_error, lo=e.ci_low, hi=e.ci_high))
+                plain = e.unadjusted if method == "score_weighting" and e.unadjusted is not None else e
+                records.append(dict(base, row=e.outcome, estimate=plain.estimate, se=plain.std_error, lo=plain.ci_low, hi=plain.ci_high))
                 records.append(dict(base, row=f"{e.outcome} (unmatched)", estimate=e.naive.estimate, se=e.naive.std_error, lo=e.naive.ci_low, hi=e.naive.ci_high))
                 if e.adjusted is not None:
                     a = e.adjusted
-                    records.append(dict(base, row=f"{e.outcome} (regression-adjusted)", estimate=a.estimate, se=a.std_error, lo=a.ci_low, hi=a.ci_high))
+                    label = "doubly robust" if method == "score_weighting" else "regression-adjusted"
+                    records.append(dict(base, row=f"{e.outcome} ({label})", estimate=a.estimate, se=a.std_error, lo=a.ci_low, hi=a.ci_high))
                 if e.did is not None:
                     records.append(dict(base, row=f"{e.outcome} − {e.did_twin} (DiD)", estimate=e.did.estimate, se=e.did.std_error, lo=e.did.ci_low, hi=e.did.ci_high))
     finally:
@@ -136,10 +141,10 @@ def replicate(task) -> tuple[list[dict], list[dict]]:
     return records, failures
 
 
-def run(replicates: int, sizes: dict, first_seed: int, methods: list[str], processes: list[str], workers: int, work: Path, log=sys.stderr, checkpoint: Path | None = None, log1p: tuple = ()):
+def run(replicates: int, sizes: dict, first_seed: int, methods: list[str], processes: list[str], workers: int, work: Path, log=sys.stderr, checkpoint: Path | None = None, log1p: tuple = (), doubly_robust: bool = True):
     """Every (process, seed) in `workers` processes; each finished replicate is appended to
     `checkpoint` (JSON lines) so an interrupted run can still be summarised (--from-checkpoint)."""
-    tasks = [(p, first_seed + k, sizes[p], methods, str(work), tuple(log1p)) for k in range(replicates) for p in processes]
+    tasks = [(p, first_seed + k, sizes[p], methods, str(work), tuple(log1p), doubly_robust) for k in range(replicates) for p in processes]
     records: list[dict] = []
     failures: list[dict] = []
     sink = checkpoint.open("w", encoding="utf-8") if checkpoint else None
@@ -235,7 +240,14 @@ def render(summary, failures, args, seconds: float, command: str) -> str:
         "chosen from the data (split until the score and the model's numeric features are balanced, |t| <= 1.96), common "
         "support, propensity on `matching.on`; nearest_neighbour 1:1 with replacement, logit distance, caliper 0.2 SD, "
         "Abadie-Imbens (2006) variance and (2011) bias correction. score_weighting with odds weights, common support, no trimming or truncation."
-        + (f" Propensity model on log(1 + x) of {', '.join(args.log1p)} (--log1p)." if args.log1p else ""),
+        + (f" Propensity model on log(1 + x) of {', '.join(args.log1p)} (--log1p)." if args.log1p else "")
+        + (
+            " score_weighting run with effect.regression_adjustment = true: its `(doubly robust)` rows are the weighted regression "
+            "adjustment (the outcome regressed on the score model's columns in each group with the weights, predictions averaged "
+            "over the target units), the plain rows the weighted difference of the same run."
+            if args.doubly_robust and "score_weighting" in (args.methods or list(METHODS))
+            else ""
+        ),
         "- Truths. `expected`: the effect on the cohort given its units' latent values, averaged over the post-window "
         "randomness (the demo's `true_att`; what the per-stratum variance formula targets). `sample`: the realised mean of "
         "Y(1) − Y(0) over the cohort from both simulated potential outcomes. `population`: the ATT over a 1,000,000-rider "
@@ -298,6 +310,7 @@ def main(argv=None) -> int:
     parser.add_argument("--methods", nargs="*", default=None, help="methods to run (default: every method in sqlmatch.matching.METHODS)")
     parser.add_argument("--processes", nargs="*", default=list(PROCESSES), choices=PROCESSES)
     parser.add_argument("--log1p", nargs="*", default=[], help="fit the propensity model on log(1 + x) of these features (default: the specs' own model)")
+    parser.add_argument("--no-doubly-robust", dest="doubly_robust", action="store_false", help="score_weighting without its doubly robust rows (they are on by default)")
     parser.add_argument("--workers", type=int, default=2, help="worker processes (default 2; the machine is shared)")
     parser.add_argument("--out", type=Path, default=REPO / "benchmarks" / "RESULTS_calibration.md")
     parser.add_argument("--raw", type=Path, default=REPO / "benchmarks" / "calibration_raw.json")
@@ -316,7 +329,7 @@ def main(argv=None) -> int:
         seconds = math.nan
     else:
         with tempfile.TemporaryDirectory(prefix="sqlmatch_calibration_") as work:
-            records, failures = run(args.replicates, {"demo": args.riders, "commuter": args.units}, args.first_seed, methods, args.processes, args.workers, Path(work), checkpoint=args.checkpoint, log1p=args.log1p)
+            records, failures = run(args.replicates, {"demo": args.riders, "commuter": args.units}, args.first_seed, methods, args.processes, args.workers, Path(work), checkpoint=args.checkpoint, log1p=args.log1p, doubly_robust=args.doubly_robust)
         seconds = time.perf_counter() - t0
     summary = summarise(records, failures)
     text = render(summary, failures, args, seconds, command.strip())

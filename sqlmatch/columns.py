@@ -90,3 +90,10 @@ def weighting(key: str, group: str, what: str, j: int | None = None) -> str:
     """A sum of score_weighting_sandwich for one outcome (or `<outcome>__did`) and group (t, c):
     u, v, uu, uv, vv, and per design column j: ru, rv (times the score residual), du, dv."""
     return f"{key}__w{group}_{what}" + ("" if j is None else f"_{j}")
+
+
+def weighting_cross(what: str, i: int, j: int) -> str:
+    """Entry (i, j), i <= j, of a matrix of sums over design columns for the doubly robust effect of
+    score_weighting_sandwich: per group (t, c) a = sum a x x', aa = sum a^2 x x', ar = sum a (t - e) x x',
+    g = sum g x x'; over the target units s = sum x x', sr = sum (t - e) x x'."""
+    return f"dr_{what}_{i}_{j}"

@@ -261,7 +261,6 @@ def test_bad_options_name_their_key(nsw_db, key, value):
     "section, value, key",
     [
         ("propensity", {"sample_controls": 0.5}, "propensity.sample_controls"),
-        ("effect", {"regression_adjustment": True}, "effect.regression_adjustment"),
         ("subgroups", [{"name": "frequent", "where": "re75 > 0"}], "subgroups"),
     ],
 )

@@ -121,6 +121,7 @@ def steps(ctx, model):
             purpose="Sums for the weighted effect on the treated and its sandwich variance, which counts the estimated propensity score (one row).",
             columns=[] if model is None else model.columns,
             terms=terms(spec),
+            adjust=spec.regression_adjustment and model is not None,
             weighted_table=ctx.table("weighted_units"),
             scores_table=ctx.table("scores"),
             limits_table=ctx.table("weighting_limits"),
@@ -132,15 +133,9 @@ def steps(ctx, model):
 
 def check_full_fit(spec, result=None) -> None:
     """Refuse what weighting does not support: a fit on sampled controls (the sandwich counts the
-    uncertainty of a fit on every unit), the within-stratum regression adjustment and subgroup
-    effects (both read unweighted per-stratum sums). Also run on the first aggregate step
-    (group_sizes), so a run stops before the pass over the events."""
-    if spec.regression_adjustment:
-        raise SpecError(
-            "effect.regression_adjustment",
-            "score_weighting has no regression-adjusted effect: the adjustment works within strata where every unit of a group weighs the same.",
-            "set regression_adjustment = false, or use coarsened_exact or score_bins.",
-        )
+    uncertainty of a fit on every unit) and subgroup effects (they read unweighted per-stratum
+    sums). Also run on the first aggregate step (group_sizes), so a run stops before the pass over
+    the events."""
     if spec.subgroups:
         raise SpecError(
             "subgroups",
