@@ -49,6 +49,7 @@ def study_results(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
         n_control_outside_support=sizes.get(0, 0) - in_cells_c,
         effective_controls=_kish(summary, "control"),
         effective_treated=_kish(summary, "treated"),
+        **_weight_range(summary, spec.matching.stabilised_weights),
     )
     balance = aggregates.numeric_balance(r["balance_numeric"], [f.name for f in spec.numeric_features])
     if "balance_levels" in r:
@@ -260,6 +261,23 @@ def _kish(summary: dict, group: str) -> float | None:
     from sqlmatch.estimators.weighting import kish_effective_size
 
     return kish_effective_size(summary.get(f"{group}_weight_sum"), summary.get(f"{group}_weight_sumsq"))
+
+
+def _weight_range(summary: dict, stabilised: bool) -> dict:
+    """The weights' mean and range over every weighted unit, from a summary that returns each
+    group's weights' sum, minimum and maximum (score_weighting's); empty for other methods."""
+    if summary.get("treated_weight_sum") is None or summary.get("control_weight_sum") is None:
+        return {}
+    n = int(summary["n_treated_matched"] or 0) + int(summary["n_control_matched"] or 0)
+    if n == 0:
+        return {}
+    total = float(summary["treated_weight_sum"]) + float(summary["control_weight_sum"])
+    return dict(
+        weight_mean=total / n,
+        weight_min=min(float(summary["treated_weight_min"]), float(summary["control_weight_min"])),
+        weight_max=max(float(summary["treated_weight_max"]), float(summary["control_weight_max"])),
+        stabilised_weights=stabilised,
+    )
 
 
 def _weighted_fields(outcome, fields: dict, extra: dict, row: dict, ridge: float, adjust: bool = False, model=None, estimand: str = "att"):

@@ -159,6 +159,11 @@ class MatchingSummary:
     # weighting methods: Kish's effective numbers of weighted units, (sum w)^2 / sum w^2, per group
     effective_controls: float | None = None
     effective_treated: float | None = None
+    # weighting methods: the weights' mean and range over every weighted unit (both groups)
+    weight_mean: float | None = None
+    weight_min: float | None = None
+    weight_max: float | None = None
+    stabilised_weights: bool = False
 
 
 @dataclass(frozen=True)

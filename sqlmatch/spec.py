@@ -195,6 +195,7 @@ class Matching:
     # score_weighting
     score_margin: float = 0.0  # leave out units whose score is outside [a, 1 - a]; 0: none
     weight_cap_quantile: float | None = None  # truncate control weights at this quantile of theirs
+    stabilised_weights: bool = False  # weights times the group's marginal share (Robins, Hernan & Brumback 2000)
 
 
 @dataclass(frozen=True)

@@ -33,7 +33,7 @@ from sqlmatch.errors import SpecError
 from sqlmatch.matching.base import MatchingMethod, OptionInput
 
 DESCRIPTION = "propensity-score weighting (odds weights for the effect on the treated; or on the controls, or everyone), sandwich variance"
-OPTION_KEYS = ("score_margin", "weight_cap_quantile")
+OPTION_KEYS = ("score_margin", "weight_cap_quantile", "stabilised_weights")
 TARGETS = {"att": "enrolled", "atc": "not_enrolled", "ate": "everyone"}  # matching.estimand -> the templates' words
 
 
@@ -70,7 +70,8 @@ def steps(ctx, model):
     margin_logit = None if m.score_margin == 0 else math.log((1.0 - m.score_margin) / m.score_margin)
     effect_for = TARGETS[m.estimand]
     limits = dict(
-        common_support=m.common_support, margin_logit=margin_logit, margin=m.score_margin, cap_quantile=m.weight_cap_quantile, effect_for=effect_for, clamp=ETA_CLAMP
+        common_support=m.common_support, margin_logit=margin_logit, margin=m.score_margin, cap_quantile=m.weight_cap_quantile, effect_for=effect_for, clamp=ETA_CLAMP,
+        stabilised=m.stabilised_weights,
     )
     cap_text = f", weights truncated at their group's {m.weight_cap_quantile} quantile" if m.weight_cap_quantile is not None else ""
     weights_text = {
@@ -79,6 +80,8 @@ def steps(ctx, model):
         "everyone": "for the average effect (treated 1 / e, control 1 / (1 - e))",
     }[effect_for]
     margin_text = f", units with a score outside [{m.score_margin}, {1 - m.score_margin}] left out" if margin_logit is not None else ""
+    if m.stabilised_weights:
+        margin_text += ", stabilised (each group's weights times its marginal share, so they average about 1)"
     out = [
         ctx.score_step(model, []),
         ctx.table_step(
@@ -86,7 +89,7 @@ def steps(ctx, model):
             "score_weighting_limits",
             writes="weighting_limits",
             reads=[ctx.display("scores")],
-            purpose="Common support of the logit scores" + (" and the caps on the weights." if cap_text else "."),
+            purpose="Common support of the logit scores" + (" and the caps on the weights" if cap_text else "") + (" and the stabilised weights' factors." if m.stabilised_weights else "."),
             scores_table=ctx.table("scores"),
             **limits,
         ),
@@ -161,10 +164,13 @@ def _read_share(table: dict, name: str, low: float, high: float, hint: str):
 
 
 def read_options(table: dict, given: OptionInput) -> dict:
-    """matching.score_margin / weight_cap_quantile."""
+    """matching.score_margin / weight_cap_quantile / stabilised_weights."""
+    from sqlmatch.spec_values import read_bool
+
     margin = _read_share(table, "score_margin", 0.0, 0.5, "e.g. score_margin = 0.05 leaves out units with a score below 0.05 or above 0.95.")
     cap = _read_share(table, "weight_cap_quantile", 0.5, 1.0, "e.g. weight_cap_quantile = 0.99 truncates the largest 1% of control weights.")
-    return {"score_margin": margin or 0.0, "weight_cap_quantile": cap}
+    stabilised = read_bool(table, "matching", "stabilised_weights", default=False)
+    return {"score_margin": margin or 0.0, "weight_cap_quantile": cap, "stabilised_weights": stabilised}
 
 
 def warnings(spec, results) -> list[str]:

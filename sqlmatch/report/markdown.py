@@ -106,6 +106,14 @@ ESTIMAND_HEADINGS = {
 }
 
 
+def _weights_words(m) -> str:
+    """The weights' mean and range (weighting methods), as Cole & Hernan 2008 advise reporting them."""
+    if m.weight_mean is None:
+        return ""
+    kind = "stabilised weights" if m.stabilised_weights else "Weights"
+    return f" {kind[0].upper() + kind[1:]}: mean {m.weight_mean:.3g}, from {m.weight_min:.3g} to {m.weight_max:.3g} over the weighted units."
+
+
 def _groups_line(m, flow: dict, estimand: str = "att") -> str:
     """What the method built: strata (or matched sets), or for weighting the controls' effective number."""
     if m.effective_controls is not None:
@@ -118,6 +126,7 @@ def _groups_line(m, flow: dict, estimand: str = "att") -> str:
         return (
             f"Weighted comparison (one group, no strata): the {flow['control']['matched']} weighted non-enrolled units count as "
             f"about {m.effective_controls:,.0f} unweighted ones{treated} (Kish's effective sample size, (sum w)² / sum w²)."
+            + _weights_words(m)
         )
     return f"Strata used: {m.strata:,}; cells dropped for lacking an enrolled or a non-enrolled unit: {m.strata_dropped:,}."
 
