@@ -177,7 +177,7 @@ class SubgroupLevel:
 
 @dataclass(frozen=True)
 class SubgroupEffects:
-    """One outcome's effect in each level of one subgroup, and Cochran's Q across the levels."""
+    """One outcome's effect in each level of one subgroup, and a test of equal effects across the levels."""
 
     subgroup: str
     describes: str
@@ -186,6 +186,8 @@ class SubgroupEffects:
     q: float | None = None
     df: int | None = None
     p_value: float | None = None
+    # Cochran's Q (independent levels); weighting: the Wald statistic with the levels' shared-score covariance
+    test: str = "Cochran's Q"
 
     def shown(self, min_cell: int) -> list[dict]:
         """The levels as outputs show them: a level's counts and effect withheld when either group
@@ -211,7 +213,7 @@ class SubgroupEffects:
     def to_dict(self, min_cell: int) -> dict:
         levels = self.shown(min_cell)
         return {"subgroup": self.subgroup, "describes": self.describes, "outcome": self.outcome, "levels": levels,
-                "heterogeneity": {"q": _num(self.q), "df": self.df, "p_value": _num(self.p_value)}}
+                "heterogeneity": {"test": self.test, "q": _num(self.q), "df": self.df, "p_value": _num(self.p_value)}}
 
 
 @dataclass(frozen=True)

@@ -261,7 +261,6 @@ def test_bad_options_name_their_key(nsw_db, key, value):
     "section, value, key",
     [
         ("propensity", {"sample_controls": 0.5}, "propensity.sample_controls"),
-        ("subgroups", [{"name": "frequent", "where": "re75 > 0"}], "subgroups"),
     ],
 )
 def test_what_weighting_does_not_support_is_refused_before_the_pass_over_the_events(tmp_path, section, value, key):

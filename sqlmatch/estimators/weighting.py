@@ -302,3 +302,58 @@ def doubly_robust_effect(s: WeightingSums, adj: AdjustmentSums, estimand: str = 
     se = math.sqrt(var) if math.isfinite(var) and var >= 0 else None
     lo, hi = normal_interval(tau, se, level)
     return DoublyRobustEffect(tau, se, lo, hi, mu1, mu0, gamma)
+
+
+@dataclass(frozen=True)
+class LevelEffects:
+    """The weighted effect in each of L levels (disjoint sets of units) and their joint covariance."""
+
+    estimates: np.ndarray  # L
+    covariance: np.ndarray  # L x L: the levels share the fitted score, so they are correlated through it
+
+
+def level_effects(levels: list[WeightingSums], information: np.ndarray, score_products: np.ndarray, ridge: float = 0.0) -> LevelEffects:
+    """Per level l the weighted difference mu1_l - mu0_l (each group's weights normalised within the
+    level), and the sandwich covariance of all of them with the score fitted on every unit: the
+    stacked equations of weighted_effect with a pair (psi_1, psi_0) per level, which is zero outside
+    the level, and one logit score (information and score products of the whole study). Covariance
+    between levels arises only through the score."""
+    L, p = len(levels), len(information)
+    k = 2 * L + p
+    jac, meat = np.zeros((k, k)), np.zeros((k, k))
+    est = np.full(L, math.nan)
+    grad = np.zeros((L, k))
+    for i, s in enumerate(levels):
+        for row, gs in ((2 * i, s.treated), (2 * i + 1, s.control)):
+            if gs.sum_av <= 0:
+                return LevelEffects(est, np.full((L, L), math.nan))
+            mu = gs.sum_au / gs.sum_av
+            jac[row, row] = -gs.sum_av
+            jac[row, 2 * L :] = gs.du - mu * gs.dv
+            meat[row, row] = gs.sum_aauu - 2 * mu * gs.sum_aauv + mu**2 * gs.sum_aavv
+            meat[row, 2 * L :] = meat[2 * L :, row] = gs.ru - mu * gs.rv
+        est[i] = s.treated.sum_au / s.treated.sum_av - s.control.sum_au / s.control.sum_av
+        grad[i, 2 * i], grad[i, 2 * i + 1] = 1.0, -1.0
+    penalty = np.eye(p) * ridge
+    if p:
+        penalty[0, 0] = 0.0
+    jac[2 * L :, 2 * L :] = -(information + penalty)
+    meat[2 * L :, 2 * L :] = score_products
+    try:
+        bread = np.linalg.inv(jac)
+    except np.linalg.LinAlgError:
+        return LevelEffects(est, np.full((L, L), math.nan))
+    return LevelEffects(est, grad @ bread @ meat @ bread.T @ grad.T)
+
+
+def equal_effects_test(estimates: np.ndarray, covariance: np.ndarray) -> tuple[float, int, float]:
+    """Wald test that every level's effect is the same: (Cc)' (C V C')^-1 (C tau) with the
+    contrasts tau_l - tau_1, chi-square on L - 1 degrees of freedom. With a diagonal V it equals
+    Cochran's Q (Cochran 1954, Biometrics 10:101); here V has the levels' shared-score terms."""
+    from scipy.stats import chi2
+
+    L = len(estimates)
+    c = np.hstack([-np.ones((L - 1, 1)), np.eye(L - 1)])
+    d = c @ estimates
+    stat = float(d @ np.linalg.solve(c @ covariance @ c.T, d))
+    return stat, L - 1, float(chi2.sf(stat, L - 1))

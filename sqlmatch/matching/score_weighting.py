@@ -128,23 +128,37 @@ def steps(ctx, model):
             weighted_table=ctx.table("weighted_units"),
             scores_table=ctx.table("scores"),
             limits_table=ctx.table("weighting_limits"),
+            level=None,
             **limits,
         )
     )
+    from sqlmatch.plan import subgroup_level, subgroup_text
+
+    for g in spec.subgroups:
+        # each level's weighted means and their sandwich sums (the plain weighted effect per level)
+        out.append(
+            ctx.query_step(
+                f"weighting_subgroup_{g.name}",
+                "score_weighting_sandwich",
+                reads=[ctx.display("weighted_units"), ctx.display("scores")],
+                purpose=f"Sums for the weighted effect and its sandwich variance per level of subgroup {g.name!r} ({subgroup_text(g)}).",
+                columns=[] if model is None else model.columns,
+                terms=terms(spec),
+                adjust=False,
+                weighted_table=ctx.table("weighted_units"),
+                scores_table=ctx.table("scores"),
+                limits_table=ctx.table("weighting_limits"),
+                level=subgroup_level(g),
+                **limits,
+            )
+        )
     return out
 
 
 def check_full_fit(spec, result=None) -> None:
     """Refuse what weighting does not support: a fit on sampled controls (the sandwich counts the
-    uncertainty of a fit on every unit) and subgroup effects (they read unweighted per-stratum
-    sums). Also run on the first aggregate step (group_sizes), so a run stops before the pass over
-    the events."""
-    if spec.subgroups:
-        raise SpecError(
-            "subgroups",
-            "score_weighting does not estimate effects per subgroup yet (the per-level sums are unweighted).",
-            "remove [[subgroups]] for this method, or use coarsened_exact or score_bins.",
-        )
+    uncertainty of a fit on every unit). Also run on the first aggregate step (group_sizes), so a
+    run stops before the pass over the events."""
     if spec.propensity.sample_controls < 1.0:
         raise SpecError(
             "propensity.sample_controls",

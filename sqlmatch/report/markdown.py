@@ -225,7 +225,7 @@ def render_markdown(r: StudyResults, balance_image: str | None = None) -> str:
         for sg in r.subgroups:
             if sg.p_value is not None:
                 lines.append(
-                    f"- {sg.subgroup}, {sg.outcome}: Cochran's Q = {sg.q:.2f} on {sg.df} df, p = {sg.p_value:.2g} "
+                    f"- {sg.subgroup}, {sg.outcome}: {sg.test} = {sg.q:.2f} on {sg.df} df, p = {sg.p_value:.2g} "
                     + ("(the effect differs between the levels more than chance would explain)." if sg.p_value < 0.05 else "(no clear difference between the levels).")
                 )
         lines.append("- With many subgroups and outcomes, some differences are chance; a subgroup chosen after seeing the results proves little.")
