@@ -60,7 +60,12 @@ def study_results(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
         with_bias = BIAS_STEP in r
         nn = MatchingInference(r[MATCHING_VARIANCE], r[BIAS_STEP] if with_bias else None, variable_numbers(plan.outcomes), len(bias_features(spec)) if with_bias else 0)
     # score_weighting: the weighted effect and its sandwich variance replace the per-stratum one
-    weighting = (r["weighting_sandwich"].one(), spec.propensity.ridge, spec.regression_adjustment, output.model) if "weighting_sandwich" in r else None
+    weighting = None
+    if "weighting_sandwich" in r:
+        row = dict(r["weighting_sandwich"].one())
+        for name in sorted(k for k in r if k.startswith("weighting_adjustment_")):  # the doubly robust sums, in parts
+            row.update(r[name].one())
+        weighting = (row, spec.propensity.ridge, spec.regression_adjustment, output.model)
     effects = [
         outcome_effect(
             o, r["outcome_strata"], r["outcome_unmatched"], r.get("outcome_regression"), numeric, spec.matching.method,

@@ -124,7 +124,7 @@ def steps(ctx, model):
             purpose="Sums for the weighted effect on the treated and its sandwich variance, which counts the estimated propensity score (one row).",
             columns=[] if model is None else model.columns,
             terms=terms(spec),
-            adjust=spec.regression_adjustment and model is not None,
+            adjust=False,
             weighted_table=ctx.table("weighted_units"),
             scores_table=ctx.table("scores"),
             limits_table=ctx.table("weighting_limits"),
@@ -132,6 +132,26 @@ def steps(ctx, model):
             **limits,
         )
     )
+    if spec.regression_adjustment and model is not None:
+        chunks = adjustment_sums(model.columns, terms(spec))
+        for k, chunk in enumerate(chunks, 1):
+            out.append(
+                ctx.query_step(
+                    f"weighting_adjustment_{k}",
+                    "score_weighting_adjustment",
+                    reads=[ctx.display("weighted_units"), ctx.display("scores")],
+                    purpose=f"Sums for the doubly robust effect (weighted regression adjustment) and its sandwich variance, part {k} of {len(chunks)} (one row).",
+                    columns=model.columns,
+                    terms=terms(spec),
+                    sums=chunk,
+                    part=k,
+                    parts=len(chunks),
+                    weighted_table=ctx.table("weighted_units"),
+                    scores_table=ctx.table("scores"),
+                    limits_table=ctx.table("weighting_limits"),
+                    **limits,
+                )
+            )
     from sqlmatch.plan import subgroup_level, subgroup_text
 
     for g in spec.subgroups:
@@ -153,6 +173,43 @@ def steps(ctx, model):
             )
         )
     return out
+
+
+# PostgreSQL refuses a SELECT list longer than 1,664 entries; a margin below it
+MAX_SUMS_PER_QUERY = 1500
+
+
+@dataclass(frozen=True)
+class AdjustmentSum:
+    """One sum of score_weighting_adjustment: SUM(share * weight * left * x_j)."""
+
+    column: str
+    share: str  # t | c | "" (every unit)
+    weight: str  # a | aa | ar | g | s | sr
+    left: str  # x<i> or u<k>
+    j: int
+
+
+def adjustment_sums(columns, study_terms) -> list[list[AdjustmentSum]]:
+    """The doubly robust effect's sums (estimators/weighting.AdjustmentSums), in chunks of at most
+    MAX_SUMS_PER_QUERY: per group the four weighted x x' matrices, over the target units two, and per
+    mean outcome a u x and a^2 u x per group (ratio outcomes and the difference-in-differences keep
+    the plain weighted effect)."""
+    from sqlmatch import columns as col
+
+    p = len(columns)
+    out = []
+    for i, j in col.upper_pairs(p):
+        for g in ("t", "c"):
+            out += [AdjustmentSum(col.weighting_cross(g + w, i, j), g, w, f"x{i}", j) for w in ("a", "aa", "ar", "g")]
+        out += [AdjustmentSum(col.weighting_cross(w, i, j), "", w, f"x{i}", j) for w in ("s", "sr")]
+    for k, o in enumerate(study_terms):
+        if o.v or o.minus:
+            continue
+        for g in ("t", "c"):
+            for w, what in (("a", "au"), ("aa", "aau")):
+                out += [AdjustmentSum(col.weighting(o.key, g, what, j), g, w, f"u{k}", j) for j in range(p)]
+    return [out[i : i + MAX_SUMS_PER_QUERY] for i in range(0, len(out), MAX_SUMS_PER_QUERY)]
 
 
 def check_full_fit(spec, result=None) -> None:
