@@ -103,6 +103,12 @@ def test_stabilised_weights_mean_and_range_equal_numpy_and_the_book(nhefs):
     assert b.estimate == pytest.approx(a.estimate, rel=1e-9) and b.std_error == pytest.approx(a.std_error, rel=1e-9)
     assert plain.matching.weight_mean == pytest.approx(np.where(t == 1, 1 / e, 1 / (1 - e)).mean(), rel=1e-9)
     assert not plain.matching.stabilised_weights
+    # both reports state the mean and range
+    from sqlmatch.report.html import render_html
+    from sqlmatch.report.markdown import render_markdown
+
+    words = f"Stabilised weights: mean {m.weight_mean:.3g}, from {m.weight_min:.3g} to {m.weight_max:.3g}"
+    assert words in render_markdown(results) and words in render_html(results)
 
 
 def test_doubly_robust_effect_equals_statsmodels_and_is_near_the_books_standardisation(nhefs):

@@ -249,7 +249,7 @@ def test_balance_after_weighting_uses_the_weights(demo_weighted):
 
 @pytest.mark.parametrize(
     "key, value",
-    [("score_margin", 0.5), ("score_margin", -0.1), ("weight_cap_quantile", 1.0), ("weight_cap_quantile", 0.2), ("weight_cap_quantile", "0.99"), ("estimand", "everyone")],
+    [("score_margin", 0.5), ("score_margin", -0.1), ("weight_cap_quantile", 1.0), ("weight_cap_quantile", 0.2), ("weight_cap_quantile", "0.99"), ("estimand", "everyone"), ("stabilised_weights", "yes")],
 )
 def test_bad_options_name_their_key(nsw_db, key, value):
     with pytest.raises(SpecError) as err:
