@@ -15,6 +15,14 @@ weighted mean is normalised by its weights' sum. All units form one stratum. Opt
     the two groups' scores, as for score_bins.
   * matching.weight_cap_quantile = q: weights above their q-quantile among the weighted units of
     their group are set to it (truncation; off by default; under ATT only the controls' vary).
+  * matching.stabilised_weights = true: each group's weights times its share p of the weighted
+    units (ATE: treated p / e, control (1 - p) / (1 - e); Robins, Hernan & Brumback 2000,
+    Epidemiology 11:550), so they average about 1; a constant per group, so the normalised means,
+    the effect and its variance do not change. The summary reports the weights' mean and range.
+
+With effect.regression_adjustment = true the headline of a count, sum or 0/1 outcome is the doubly
+robust effect (estimators/weighting.doubly_robust_effect), from the weighting_adjustment_<k> sums.
+[[subgroups]] add one weighting_subgroup_<name> query: the sandwich sums per level.
 
 The effect and its variance come from one aggregate query (score_weighting_sandwich): the
 sandwich variance of the stacked estimating equations of the logit model and the weighted means
