@@ -95,7 +95,7 @@ def _matched_truth(con, spec) -> dict[str, float]:
 
 def replicate(task) -> tuple[list[dict], list[dict]]:
     """One process at one seed, every method: (records, failures)."""
-    process, seed, size, methods, work, log1p = task
+    process, seed, size, methods, work, log1p, doubly_robust = task
     folder = Path(work) / f"{process}_{seed}"
     if process == "demo":
         spec_path = build_demo(folder, riders=size, seed=seed)
@@ -117,6 +117,9 @@ def replicate(task) -> tuple[list[dict], list[dict]]:
                     spec = dataclasses.replace(spec, propensity=dataclasses.replace(spec.propensity, log1p=chosen))
                 if BALANCE_VARIANCES:
                     spec = dataclasses.replace(spec, matching=dataclasses.replace(spec.matching, balance_variances=True))
+                if doubly_robust and method == "score_weighting":
+                    # one run gives both: the doubly robust headline, the plain weighted difference as `unadjusted`
+                    spec = dataclasses.replace(spec, regression_adjustment=True)
                 results = api.run(spec, engine=DuckDBEngine(str(database), connection=con))
             except Exception as err:  # a failing method is counted, not fatal
                 failures.append(dict(process=process, seed=seed, method=method, error=f"{type(err).__name__}: {str(err).splitlines()[0] if str(err) else ''}"))
@@ -126,15 +129,20 @@ def replicate(task) -> tuple[list[dict], list[dict]]:
             for e in results.effects:
                 t = dict(truth[e.outcome], matched_att=matched.get(e.outcome))
                 base = dict(process=process, seed=seed, method=method, kind=e.kind, seconds=seconds, n_treated=e.n_treated, n_control=e.n_control, **t)
-                records.append(dict(base, row=e.outcome, estimate=e.estimate, se=e.std_error, lo=e.ci_low, hi=e.ci_high))
+                plain = e.unadjusted if method == "score_weighting" and e.unadjusted is not None else e
+                records.append(dict(base, row=e.outcome, estimate=plain.estimate, se=plain.std_error, lo=plain.ci_low, hi=plain.ci_high))
                 records.append(dict(base, row=f"{e.outcome} (unmatched)", estimate=e.naive.estimate, se=e.naive.std_error, lo=e.naive.ci_low, hi=e.naive.ci_high))
-                if e.unadjusted is not None:
+                if method == "score_weighting" and e.unadjusted is not None:
+                    # doubly robust run: the plain weighted difference is the row above, the headline goes beside it
+                    records.append(dict(base, row=f"{e.outcome} (doubly robust)", estimate=e.estimate, se=e.std_error, lo=e.ci_low, hi=e.ci_high))
+                elif e.unadjusted is not None:
                     # the headline is the regression-adjusted effect: keep the plain one beside it
                     a = e.unadjusted
                     records.append(dict(base, row=f"{e.outcome} (unadjusted)", estimate=a.estimate, se=a.std_error, lo=a.ci_low, hi=a.ci_high))
                 elif e.adjusted is not None:
                     a = e.adjusted
-                    records.append(dict(base, row=f"{e.outcome} (regression-adjusted)", estimate=a.estimate, se=a.std_error, lo=a.ci_low, hi=a.ci_high))
+                    label = "doubly robust" if method == "score_weighting" else "regression-adjusted"
+                    records.append(dict(base, row=f"{e.outcome} ({label})", estimate=a.estimate, se=a.std_error, lo=a.ci_low, hi=a.ci_high))
                 if e.did is not None:
                     records.append(dict(base, row=f"{e.outcome} − {e.did_twin} (DiD)", estimate=e.did.estimate, se=e.did.std_error, lo=e.did.ci_low, hi=e.did.ci_high))
     finally:
@@ -143,10 +151,10 @@ def replicate(task) -> tuple[list[dict], list[dict]]:
     return records, failures
 
 
-def run(replicates: int, sizes: dict, first_seed: int, methods: list[str], processes: list[str], workers: int, work: Path, log=sys.stderr, checkpoint: Path | None = None, log1p: tuple = ()):
+def run(replicates: int, sizes: dict, first_seed: int, methods: list[str], processes: list[str], workers: int, work: Path, log=sys.stderr, checkpoint: Path | None = None, log1p: tuple = (), doubly_robust: bool = True):
     """Every (process, seed) in `workers` processes; each finished replicate is appended to
     `checkpoint` (JSON lines) so an interrupted run can still be summarised (--from-checkpoint)."""
-    tasks = [(p, first_seed + k, sizes[p], methods, str(work), tuple(log1p)) for k in range(replicates) for p in processes]
+    tasks = [(p, first_seed + k, sizes[p], methods, str(work), tuple(log1p), doubly_robust) for k in range(replicates) for p in processes]
     records: list[dict] = []
     failures: list[dict] = []
     sink = checkpoint.open("w", encoding="utf-8") if checkpoint else None
@@ -245,7 +253,14 @@ def render(summary, failures, args, seconds: float, command: str) -> str:
         "entropy_balancing on the means of `matching.on`" + (" and the variances of its numeric features (--balance-variances)" if args.balance_variances else "") + ". "
         "Count, sum and 0/1 outcomes of coarsened_exact and score_bins: the headline row is regression-adjusted within strata "
         "(the default since this run's commit; `(unadjusted)` rows hold the plain stratified comparison), ratio outcomes are not adjusted."
-        + (f" Propensity model on log(1 + x) of {', '.join(args.log1p)} (--log1p)." if args.log1p else ""),
+        + (f" Propensity model on log(1 + x) of {', '.join(args.log1p)} (--log1p)." if args.log1p else "")
+        + (
+            " score_weighting run with effect.regression_adjustment = true: its `(doubly robust)` rows are the weighted regression "
+            "adjustment (the outcome regressed on the score model's columns in each group with the weights, predictions averaged "
+            "over the target units), the plain rows the weighted difference of the same run."
+            if args.doubly_robust and "score_weighting" in (args.methods or list(METHODS))
+            else ""
+        ),
         "- Truths. `expected`: the effect on the cohort given its units' latent values, averaged over the post-window "
         "randomness (the demo's `true_att`; what the per-stratum variance formula targets). `sample`: the realised mean of "
         "Y(1) − Y(0) over the cohort from both simulated potential outcomes. `population`: the ATT over a 1,000,000-rider "
@@ -309,6 +324,7 @@ def main(argv=None) -> int:
     parser.add_argument("--processes", nargs="*", default=list(PROCESSES), choices=PROCESSES)
     parser.add_argument("--log1p", nargs="*", default=[], help="fit the propensity model on log(1 + x) of these features (default: the specs' own model)")
     parser.add_argument("--balance-variances", action="store_true", help="entropy_balancing: balance the numeric features' variances too")
+    parser.add_argument("--no-doubly-robust", dest="doubly_robust", action="store_false", help="score_weighting without its doubly robust rows (they are on by default)")
     parser.add_argument("--workers", type=int, default=2, help="worker processes (default 2; the machine is shared)")
     parser.add_argument("--out", type=Path, default=REPO / "benchmarks" / "RESULTS_calibration.md")
     parser.add_argument("--raw", type=Path, default=REPO / "benchmarks" / "calibration_raw.json")
@@ -329,7 +345,7 @@ def main(argv=None) -> int:
         seconds = math.nan
     else:
         with tempfile.TemporaryDirectory(prefix="sqlmatch_calibration_") as work:
-            records, failures = run(args.replicates, {"demo": args.riders, "commuter": args.units}, args.first_seed, methods, args.processes, args.workers, Path(work), checkpoint=args.checkpoint, log1p=args.log1p)
+            records, failures = run(args.replicates, {"demo": args.riders, "commuter": args.units}, args.first_seed, methods, args.processes, args.workers, Path(work), checkpoint=args.checkpoint, log1p=args.log1p, doubly_robust=args.doubly_robust)
         seconds = time.perf_counter() - t0
     summary = summarise(records, failures)
     text = render(summary, failures, args, seconds, command.strip())

@@ -101,3 +101,10 @@ def balancing(what: str, i: int | None = None, j: int | None = None) -> str:
 def balancing_term(key: str, group: str, what: str, j: int | None = None) -> str:
     """A sum of entropy_balancing_sandwich for one outcome (or `<outcome>__did`) and group (t, c)."""
     return f"{key}__e{group}_{what}" + ("" if j is None else f"_{j}")
+
+
+def weighting_cross(what: str, i: int, j: int) -> str:
+    """Entry (i, j), i <= j, of a matrix of sums over design columns for the doubly robust effect of
+    score_weighting_sandwich: per group (t, c) a = sum a x x', aa = sum a^2 x x', ar = sum a (t - e) x x',
+    g = sum g x x'; over the target units s = sum x x', sr = sum (t - e) x x'."""
+    return f"dr_{what}_{i}_{j}"

@@ -49,6 +49,7 @@ def study_results(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
         n_control_outside_support=sizes.get(0, 0) - in_cells_c,
         effective_controls=_kish(summary, "control"),
         effective_treated=_kish(summary, "treated"),
+        **_weight_range(summary, spec.matching.stabilised_weights),
     )
     balance = aggregates.numeric_balance(r["balance_numeric"], [f.name for f in spec.numeric_features])
     if "balance_levels" in r:
@@ -59,9 +60,14 @@ def study_results(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
         with_bias = BIAS_STEP in r
         nn = MatchingInference(r[MATCHING_VARIANCE], r[BIAS_STEP] if with_bias else None, variable_numbers(plan.outcomes), len(bias_features(spec)) if with_bias else 0)
     # score_weighting: the weighted effect and its sandwich variance replace the per-stratum one
-    weighting = (r["weighting_sandwich"].one(), spec.propensity.ridge) if "weighting_sandwich" in r else None
+    weighting = None
+    if "weighting_sandwich" in r:
+        row = dict(r["weighting_sandwich"].one())
+        for name in sorted(k for k in r if k.startswith("weighting_adjustment_")):  # the doubly robust sums, in parts
+            row.update(r[name].one())
+        weighting = (row, spec.propensity.ridge, spec.regression_adjustment, output.model)
     if "balancing_sandwich" in r:  # entropy balancing: its own stacked equations, the same fields (ridge None)
-        weighting = (r["balancing_sandwich"].one(), None)
+        weighting = (r["balancing_sandwich"].one(), None, False, None)
     effects = [
         outcome_effect(
             o, r["outcome_strata"], r["outcome_unmatched"], r.get("outcome_regression"), numeric, spec.matching.method,
@@ -254,7 +260,7 @@ def outcome_effect(
                 did_lo, did_hi = normal_interval(did_est, did_se)
             extra.update(did_twin=outcome.twin, did=_interval(did_est, did_se, did_lo, did_hi))
     if weighting is not None:
-        fields, extra, rr = _weighted_fields(outcome, fields, extra, *weighting)
+        fields, extra, rr = _weighted_fields(outcome, fields, extra, *weighting, estimand=estimand)
     sensitivity = outcome_sensitivity(outcome, fields, rr, regression, list(features), method, pair_ranks, treatment_words)
     return Effect(
         outcome=outcome.name,
@@ -275,13 +281,32 @@ def _kish(summary: dict, group: str) -> float | None:
     return kish_effective_size(summary.get(f"{group}_weight_sum"), summary.get(f"{group}_weight_sumsq"))
 
 
-def _weighted_fields(outcome, fields: dict, extra: dict, row: dict, ridge: float):
+def _weight_range(summary: dict, stabilised: bool) -> dict:
+    """The weights' mean and range over every weighted unit, from a summary that returns each
+    group's weights' sum, minimum and maximum (score_weighting's); empty for other methods."""
+    if summary.get("treated_weight_sum") is None or summary.get("control_weight_sum") is None:
+        return {}
+    n = int(summary["n_treated_matched"] or 0) + int(summary["n_control_matched"] or 0)
+    if n == 0:
+        return {}
+    total = float(summary["treated_weight_sum"]) + float(summary["control_weight_sum"])
+    return dict(
+        weight_mean=total / n,
+        weight_min=min(float(summary["treated_weight_min"]), float(summary["control_weight_min"])),
+        weight_max=max(float(summary["treated_weight_max"]), float(summary["control_weight_max"])),
+        stabilised_weights=stabilised,
+    )
+
+
+def _weighted_fields(outcome, fields: dict, extra: dict, row: dict, ridge: float, adjust: bool = False, model=None, estimand: str = "att"):
     """Propensity-score weighting: the weighted difference (of means, or of ratios) with the
     sandwich variance that counts the estimated score (estimators/weighting.py); the lift (and a
-    binary outcome's risk ratio) from the same covariance of the two weighted means."""
+    binary outcome's risk ratio) from the same covariance of the two weighted means. With
+    effect.regression_adjustment the headline of a count, sum or 0/1 outcome is the doubly robust
+    one (weighted regression adjustment), the plain weighted difference kept as `unadjusted`."""
     from types import SimpleNamespace
 
-    from sqlmatch.estimators.weighting import sums_from_row, weighted_effect
+    from sqlmatch.estimators.weighting import adjustment_sums_from_row, doubly_robust_effect, sums_from_row, weighted_effect
 
     what = "ratios" if outcome.kind == "ratio" else "means"
     if ridge is None:  # entropy balancing (matching/entropy_balancing.py)
@@ -313,6 +338,24 @@ def _weighted_fields(outcome, fields: dict, extra: dict, row: dict, ridge: float
     if extra.get("did_twin"):
         did = effect(f"{outcome.name}__did")
         extra["did"] = _interval(did.estimate, did.std_error, did.ci_low, did.ci_high)
+    adj = adjustment_sums_from_row(row, outcome.name) if adjust and outcome.kind != "ratio" else None
+    if adj is not None:
+        dr = doubly_robust_effect(sums_from_row(row, outcome.name), adj, estimand, ridge)
+        names = tuple(c.name for c in model.columns if c.kind != "intercept") if model is not None else ()
+        extra.update(
+            adjusted=_interval(dr.estimate, dr.std_error, dr.ci_low, dr.ci_high),
+            adjusted_for=names,
+            unadjusted=_interval(fields["estimate"], fields["std_error"], fields["ci_low"], fields["ci_high"]),
+        )
+        fields.update(
+            estimator=f"{fields['estimator']}, doubly robust: adjusted by a weighted regression on the score model's columns in each group, sandwich variance at the fitted slopes",
+            estimate=dr.estimate,
+            std_error=dr.std_error,
+            ci_low=dr.ci_low,
+            ci_high=dr.ci_high,
+            mean_treated=dr.mean_treated,
+            mean_control=dr.mean_control,
+        )
     return fields, extra, rr
 
 

@@ -159,6 +159,11 @@ class MatchingSummary:
     # weighting methods: Kish's effective numbers of weighted units, (sum w)^2 / sum w^2, per group
     effective_controls: float | None = None
     effective_treated: float | None = None
+    # weighting methods: the weights' mean and range over every weighted unit (both groups)
+    weight_mean: float | None = None
+    weight_min: float | None = None
+    weight_max: float | None = None
+    stabilised_weights: bool = False
 
 
 @dataclass(frozen=True)
@@ -172,7 +177,7 @@ class SubgroupLevel:
 
 @dataclass(frozen=True)
 class SubgroupEffects:
-    """One outcome's effect in each level of one subgroup, and Cochran's Q across the levels."""
+    """One outcome's effect in each level of one subgroup, and a test of equal effects across the levels."""
 
     subgroup: str
     describes: str
@@ -181,6 +186,8 @@ class SubgroupEffects:
     q: float | None = None
     df: int | None = None
     p_value: float | None = None
+    # Cochran's Q (independent levels); weighting: the Wald statistic with the levels' shared-score covariance
+    test: str = "Cochran's Q"
 
     def shown(self, min_cell: int) -> list[dict]:
         """The levels as outputs show them: a level's counts and effect withheld when either group
@@ -206,7 +213,7 @@ class SubgroupEffects:
     def to_dict(self, min_cell: int) -> dict:
         levels = self.shown(min_cell)
         return {"subgroup": self.subgroup, "describes": self.describes, "outcome": self.outcome, "levels": levels,
-                "heterogeneity": {"q": _num(self.q), "df": self.df, "p_value": _num(self.p_value)}}
+                "heterogeneity": {"test": self.test, "q": _num(self.q), "df": self.df, "p_value": _num(self.p_value)}}
 
 
 @dataclass(frozen=True)

@@ -206,6 +206,7 @@ class Matching:
     # entropy_balancing
     balance_variances: bool = False  # also balance the numeric features' variances
     balancing_max_steps: int = 50  # Newton steps of the dual before the targets count as unreachable
+    stabilised_weights: bool = False  # weights times the group's marginal share (Robins, Hernan & Brumback 2000)
 
 
 @dataclass(frozen=True)

@@ -7,7 +7,9 @@ Q = sum_l (tau_l - tau_bar)^2 / v_l with tau_bar the inverse-variance weighted m
 chi-square on L - 1 degrees of freedom: the same computation as for pooled cohorts (pooling.py). The levels are independent samples (a unit is in one level),
 so the test is valid; with few units per level it has little power, and a small p-value among many
 subgroups and outcomes can be chance. A level with fewer than report.min_cell_size enrolled or
-comparison units gets no estimate (and stays out of Q): it could single out a few people.
+comparison units gets no estimate (and stays out of Q): it could single out a few people. Under
+propensity-score weighting the levels share the fitted score, so their estimates are correlated:
+the test is then the Wald statistic of equal effects with their joint sandwich covariance.
 """
 
 from __future__ import annotations
@@ -41,6 +43,9 @@ def subgroup_effects(spec, outcomes, r) -> list[SubgroupEffects]:
         result = r[f"subgroup_{g.name}"]
         i = result.columns.index("subgroup_level")
         levels = sorted({row[i] for row in result.rows}, key=str)
+        if f"weighting_subgroup_{g.name}" in r:
+            out += _weighted_levels(spec, g, outcomes, result, levels, r)
+            continue
         for o in outcomes:
             rows, shown = [], []
             for level in levels:
@@ -75,4 +80,63 @@ def subgroup_effects(spec, outcomes, r) -> list[SubgroupEffects]:
                 q, df, p = pooled.q, pooled.cohorts - 1, pooled.q_p_value
             describes = f"levels of {g.feature}" if g.feature else f"{g.where_text} (yes / no)"
             out.append(SubgroupEffects(subgroup=g.name, describes=describes, outcome=o.name, levels=tuple(rows), q=q, df=df, p_value=p))
+    return out
+
+
+def _weighted_levels(spec, g, outcomes, counts: QueryResult, levels, r) -> list[SubgroupEffects]:
+    """Propensity-score weighting: each level's weighted difference (each group's weights normalised
+    within the level) with the sandwich covariance of all levels, which share the score fitted on
+    every unit (estimators/weighting.level_effects); heterogeneity by the Wald test of equal
+    effects with that covariance (Cochran's Q when the levels are independent). Counts are the
+    level's weighted units; small levels are withheld before anything is estimated."""
+    import dataclasses
+
+    import numpy as np
+
+    from sqlmatch.estimators.intervals import normal_interval
+    from sqlmatch.estimators.weighting import equal_effects_test, level_effects, sums_from_row
+
+    study = r["weighting_sandwich"].one()
+    sums = r[f"weighting_subgroup_{g.name}"]
+    j = sums.columns.index("subgroup_level")
+    by_level = {row[j]: dict(zip(sums.columns, row)) for row in sums.rows}
+    describes = f"levels of {g.feature}" if g.feature else f"{g.where_text} (yes / no)"
+    out = []
+    for o in outcomes:
+        global_sums = sums_from_row(study, o.name)
+        counted, shown = [], []
+        for level in levels:
+            sub = _level_result(counts, level)
+            t, c = (aggregates.ratio_sums(sub, o.name) if o.kind == "ratio" else aggregates.outcome_moments(sub, o.name))
+            n_t, n_c = int(t.n.sum()), int(c.n.sum())
+            small = is_small(n_t, spec.min_cell_size) or is_small(n_c, spec.min_cell_size)
+            counted.append((level, n_t, n_c, small))
+            if not small and n_t > 0 and n_c > 0 and level in by_level:
+                shown.append(level)
+        est = cov = None
+        if shown:
+            fits = [dataclasses.replace(sums_from_row(by_level[lv], o.name), information=global_sums.information, score_products=global_sums.score_products) for lv in shown]
+            le = level_effects(fits, global_sums.information, global_sums.score_products, spec.propensity.ridge)
+            est, cov = le.estimates, le.covariance
+        rows, ok = [], []
+        for level, n_t, n_c, small in counted:
+            if level not in shown:
+                rows.append(SubgroupLevel(str(level), n_t, n_c, Interval(None), withheld=small))
+                continue
+            k = shown.index(level)
+            var = cov[k, k]
+            se = math.sqrt(var) if math.isfinite(var) and var >= 0 else None
+            lo, hi = normal_interval(est[k], se)
+            iv = Interval(_finite(est[k]), _finite(se), _finite(lo), _finite(hi))
+            rows.append(SubgroupLevel(str(level), n_t, n_c, iv))
+            if iv.estimate is not None and iv.std_error is not None:
+                ok.append(k)
+        q = df = p = None
+        if len(ok) >= 2:
+            q, df, p = equal_effects_test(est[ok], cov[np.ix_(ok, ok)])
+        out.append(
+            SubgroupEffects(
+                subgroup=g.name, describes=describes, outcome=o.name, levels=tuple(rows), q=q, df=df, p_value=p, test="Wald chi-square of equal effects (levels share the fitted score)"
+            )
+        )
     return out

@@ -49,6 +49,14 @@ def demo_plans():
     plans["nearest_pairs"] = build_plan(parse_spec(pairs), "duckdb", model=model)
     weighting = dict(raw, matching={"method": "score_weighting", "score_margin": 0.01, "weight_cap_quantile": 0.99})
     plans["score_weighting"] = build_plan(parse_spec(weighting), "duckdb", model=model)
+    # stabilised weights, the doubly robust sums and a weighted subgroup
+    options = dict(
+        raw,
+        matching={"method": "score_weighting", "weight_cap_quantile": 0.99, "stabilised_weights": True, "estimand": "ate"},
+        effect={"regression_adjustment": True},
+        subgroups=[{"feature": "age_band"}],
+    )
+    plans["score_weighting_options"] = build_plan(parse_spec(options), "duckdb", model=model)
     return plans
 
 

@@ -249,7 +249,7 @@ def test_balance_after_weighting_uses_the_weights(demo_weighted):
 
 @pytest.mark.parametrize(
     "key, value",
-    [("score_margin", 0.5), ("score_margin", -0.1), ("weight_cap_quantile", 1.0), ("weight_cap_quantile", 0.2), ("weight_cap_quantile", "0.99"), ("estimand", "everyone")],
+    [("score_margin", 0.5), ("score_margin", -0.1), ("weight_cap_quantile", 1.0), ("weight_cap_quantile", 0.2), ("weight_cap_quantile", "0.99"), ("estimand", "everyone"), ("stabilised_weights", "yes")],
 )
 def test_bad_options_name_their_key(nsw_db, key, value):
     with pytest.raises(SpecError) as err:
@@ -261,8 +261,6 @@ def test_bad_options_name_their_key(nsw_db, key, value):
     "section, value, key",
     [
         ("propensity", {"sample_controls": 0.5}, "propensity.sample_controls"),
-        ("effect", {"regression_adjustment": True}, "effect.regression_adjustment"),
-        ("subgroups", [{"name": "frequent", "where": "re75 > 0"}], "subgroups"),
     ],
 )
 def test_what_weighting_does_not_support_is_refused_before_the_pass_over_the_events(tmp_path, section, value, key):
@@ -333,9 +331,18 @@ def test_report_withholds_the_weighted_count_where_the_sample_table_does(demo_we
     assert f"{m.n_control_matched:,}" not in text.split("## Effects")[0]
 
 
-def test_postgres_gives_duckdbs_numbers(nsw_db):
-    """The weighting steps (the quantile cap by ROW_NUMBER, the one-row sandwich) mean the same on
-    PostgreSQL: every number of results.json equal to 1e-9 relative."""
+@pytest.mark.parametrize(
+    "options",
+    [
+        dict(estimand="ate", score_margin=0.001, weight_cap_quantile=0.98),
+        dict(weight_cap_quantile=0.98, stabilised_weights=True, regression_adjustment=True, subgroup="re75 > 0"),
+    ],
+    ids=["ate_margin_cap", "stabilised_doubly_robust_subgroup"],
+)
+def test_postgres_gives_duckdbs_numbers(nsw_db, options):
+    """The weighting steps (the quantile cap by ROW_NUMBER, the one-row sandwich, the stabilised
+    factors, the doubly robust sums, the per-level sums) mean the same on PostgreSQL: every number
+    of results.json equal to 1e-9 relative."""
     import os
     import secrets
 
@@ -348,7 +355,12 @@ def test_postgres_gives_duckdbs_numbers(nsw_db):
     from test_engines import PG_TYPES, assert_same_numbers
 
     def spec_for(schema, work):
-        raw = nsw_spec(":memory:", "score_weighting", estimand="ate", score_margin=0.001, weight_cap_quantile=0.98)
+        matching = dict(options)
+        adjust, subgroup = matching.pop("regression_adjustment", False), matching.pop("subgroup", None)
+        raw = nsw_spec(":memory:", "score_weighting", **matching)
+        raw["effect"] = {"regression_adjustment": adjust}
+        if subgroup:
+            raw["subgroups"] = [{"name": "earned_1975", "where": subgroup}]
         raw["study"].update(work_schema=work)
         raw["units"]["table"] = {"schema": schema, "name": "men"}
         raw["events"]["table"] = {"schema": schema, "name": "earnings"}

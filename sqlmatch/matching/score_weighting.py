@@ -15,6 +15,14 @@ weighted mean is normalised by its weights' sum. All units form one stratum. Opt
     the two groups' scores, as for score_bins.
   * matching.weight_cap_quantile = q: weights above their q-quantile among the weighted units of
     their group are set to it (truncation; off by default; under ATT only the controls' vary).
+  * matching.stabilised_weights = true: each group's weights times its share p of the weighted
+    units (ATE: treated p / e, control (1 - p) / (1 - e); Robins, Hernan & Brumback 2000,
+    Epidemiology 11:550), so they average about 1; a constant per group, so the normalised means,
+    the effect and its variance do not change. The summary reports the weights' mean and range.
+
+With effect.regression_adjustment = true the headline of a count, sum or 0/1 outcome is the doubly
+robust effect (estimators/weighting.doubly_robust_effect), from the weighting_adjustment_<k> sums.
+[[subgroups]] add one weighting_subgroup_<name> query: the sandwich sums per level.
 
 The effect and its variance come from one aggregate query (score_weighting_sandwich): the
 sandwich variance of the stacked estimating equations of the logit model and the weighted means
@@ -33,7 +41,7 @@ from sqlmatch.errors import SpecError
 from sqlmatch.matching.base import MatchingMethod, OptionInput
 
 DESCRIPTION = "propensity-score weighting (odds weights for the effect on the treated; or on the controls, or everyone), sandwich variance"
-OPTION_KEYS = ("score_margin", "weight_cap_quantile")
+OPTION_KEYS = ("score_margin", "weight_cap_quantile", "stabilised_weights")
 TARGETS = {"att": "enrolled", "atc": "not_enrolled", "ate": "everyone"}  # matching.estimand -> the templates' words
 
 
@@ -70,7 +78,8 @@ def steps(ctx, model):
     margin_logit = None if m.score_margin == 0 else math.log((1.0 - m.score_margin) / m.score_margin)
     effect_for = TARGETS[m.estimand]
     limits = dict(
-        common_support=m.common_support, margin_logit=margin_logit, margin=m.score_margin, cap_quantile=m.weight_cap_quantile, effect_for=effect_for, clamp=ETA_CLAMP
+        common_support=m.common_support, margin_logit=margin_logit, margin=m.score_margin, cap_quantile=m.weight_cap_quantile, effect_for=effect_for, clamp=ETA_CLAMP,
+        stabilised=m.stabilised_weights,
     )
     cap_text = f", weights truncated at their group's {m.weight_cap_quantile} quantile" if m.weight_cap_quantile is not None else ""
     weights_text = {
@@ -79,6 +88,8 @@ def steps(ctx, model):
         "everyone": "for the average effect (treated 1 / e, control 1 / (1 - e))",
     }[effect_for]
     margin_text = f", units with a score outside [{m.score_margin}, {1 - m.score_margin}] left out" if margin_logit is not None else ""
+    if m.stabilised_weights:
+        margin_text += ", stabilised (each group's weights times its marginal share, so they average about 1)"
     out = [
         ctx.score_step(model, []),
         ctx.table_step(
@@ -86,7 +97,7 @@ def steps(ctx, model):
             "score_weighting_limits",
             writes="weighting_limits",
             reads=[ctx.display("scores")],
-            purpose="Common support of the logit scores" + (" and the caps on the weights." if cap_text else "."),
+            purpose="Common support of the logit scores" + (" and the caps on the weights" if cap_text else "") + (" and the stabilised weights' factors." if m.stabilised_weights else "."),
             scores_table=ctx.table("scores"),
             **limits,
         ),
@@ -121,32 +132,98 @@ def steps(ctx, model):
             purpose="Sums for the weighted effect on the treated and its sandwich variance, which counts the estimated propensity score (one row).",
             columns=[] if model is None else model.columns,
             terms=terms(spec),
+            adjust=False,
             weighted_table=ctx.table("weighted_units"),
             scores_table=ctx.table("scores"),
             limits_table=ctx.table("weighting_limits"),
+            level=None,
             **limits,
         )
     )
+    if spec.regression_adjustment and model is not None:
+        chunks = adjustment_sums(model.columns, terms(spec))
+        for k, chunk in enumerate(chunks, 1):
+            out.append(
+                ctx.query_step(
+                    f"weighting_adjustment_{k}",
+                    "score_weighting_adjustment",
+                    reads=[ctx.display("weighted_units"), ctx.display("scores")],
+                    purpose=f"Sums for the doubly robust effect (weighted regression adjustment) and its sandwich variance, part {k} of {len(chunks)} (one row).",
+                    columns=model.columns,
+                    terms=terms(spec),
+                    sums=chunk,
+                    part=k,
+                    parts=len(chunks),
+                    weighted_table=ctx.table("weighted_units"),
+                    scores_table=ctx.table("scores"),
+                    limits_table=ctx.table("weighting_limits"),
+                    **limits,
+                )
+            )
+    from sqlmatch.plan import subgroup_level, subgroup_text
+
+    for g in spec.subgroups:
+        # each level's weighted means and their sandwich sums (the plain weighted effect per level)
+        out.append(
+            ctx.query_step(
+                f"weighting_subgroup_{g.name}",
+                "score_weighting_sandwich",
+                reads=[ctx.display("weighted_units"), ctx.display("scores")],
+                purpose=f"Sums for the weighted effect and its sandwich variance per level of subgroup {g.name!r} ({subgroup_text(g)}).",
+                columns=[] if model is None else model.columns,
+                terms=terms(spec),
+                adjust=False,
+                weighted_table=ctx.table("weighted_units"),
+                scores_table=ctx.table("scores"),
+                limits_table=ctx.table("weighting_limits"),
+                level=subgroup_level(g),
+                **limits,
+            )
+        )
     return out
+
+
+# PostgreSQL refuses a SELECT list longer than 1,664 entries; a margin below it
+MAX_SUMS_PER_QUERY = 1500
+
+
+@dataclass(frozen=True)
+class AdjustmentSum:
+    """One sum of score_weighting_adjustment: SUM(share * weight * left * x_j)."""
+
+    column: str
+    share: str  # t | c | "" (every unit)
+    weight: str  # a | aa | ar | g | s | sr
+    left: str  # x<i> or u<k>
+    j: int
+
+
+def adjustment_sums(columns, study_terms) -> list[list[AdjustmentSum]]:
+    """The doubly robust effect's sums (estimators/weighting.AdjustmentSums), in chunks of at most
+    MAX_SUMS_PER_QUERY: per group the four weighted x x' matrices, over the target units two, and per
+    mean outcome a u x and a^2 u x per group (ratio outcomes and the difference-in-differences keep
+    the plain weighted effect)."""
+    from sqlmatch import columns as col
+
+    p = len(columns)
+    out = []
+    for i, j in col.upper_pairs(p):
+        for g in ("t", "c"):
+            out += [AdjustmentSum(col.weighting_cross(g + w, i, j), g, w, f"x{i}", j) for w in ("a", "aa", "ar", "g")]
+        out += [AdjustmentSum(col.weighting_cross(w, i, j), "", w, f"x{i}", j) for w in ("s", "sr")]
+    for k, o in enumerate(study_terms):
+        if o.v or o.minus:
+            continue
+        for g in ("t", "c"):
+            for w, what in (("a", "au"), ("aa", "aau")):
+                out += [AdjustmentSum(col.weighting(o.key, g, what, j), g, w, f"u{k}", j) for j in range(p)]
+    return [out[i : i + MAX_SUMS_PER_QUERY] for i in range(0, len(out), MAX_SUMS_PER_QUERY)]
 
 
 def check_full_fit(spec, result=None) -> None:
     """Refuse what weighting does not support: a fit on sampled controls (the sandwich counts the
-    uncertainty of a fit on every unit), the within-stratum regression adjustment and subgroup
-    effects (both read unweighted per-stratum sums). Also run on the first aggregate step
-    (group_sizes), so a run stops before the pass over the events."""
-    if spec.regression_adjustment:
-        raise SpecError(
-            "effect.regression_adjustment",
-            "score_weighting has no regression-adjusted effect: the adjustment works within strata where every unit of a group weighs the same.",
-            "set regression_adjustment = false, or use coarsened_exact or score_bins.",
-        )
-    if spec.subgroups:
-        raise SpecError(
-            "subgroups",
-            "score_weighting does not estimate effects per subgroup yet (the per-level sums are unweighted).",
-            "remove [[subgroups]] for this method, or use coarsened_exact or score_bins.",
-        )
+    uncertainty of a fit on every unit). Also run on the first aggregate step (group_sizes), so a
+    run stops before the pass over the events."""
     if spec.propensity.sample_controls < 1.0:
         raise SpecError(
             "propensity.sample_controls",
@@ -166,10 +243,13 @@ def _read_share(table: dict, name: str, low: float, high: float, hint: str):
 
 
 def read_options(table: dict, given: OptionInput) -> dict:
-    """matching.score_margin / weight_cap_quantile."""
+    """matching.score_margin / weight_cap_quantile / stabilised_weights."""
+    from sqlmatch.spec_values import read_bool
+
     margin = _read_share(table, "score_margin", 0.0, 0.5, "e.g. score_margin = 0.05 leaves out units with a score below 0.05 or above 0.95.")
     cap = _read_share(table, "weight_cap_quantile", 0.5, 1.0, "e.g. weight_cap_quantile = 0.99 truncates the largest 1% of control weights.")
-    return {"score_margin": margin or 0.0, "weight_cap_quantile": cap}
+    stabilised = read_bool(table, "matching", "stabilised_weights", default=False)
+    return {"score_margin": margin or 0.0, "weight_cap_quantile": cap, "stabilised_weights": stabilised}
 
 
 def warnings(spec, results) -> list[str]:

@@ -224,7 +224,7 @@ def render_html(r: StudyResults) -> str:
         for sg in r.subgroups:
             if sg.p_value is not None:
                 verdict = "the effect differs between the levels more than chance would explain" if sg.p_value < 0.05 else "no clear difference between the levels"
-                parts.append(f"<li>{_e(sg.subgroup)}, {_e(sg.outcome)}: Cochran's Q = {sg.q:.2f} on {sg.df} df, p = {sg.p_value:.2g} ({verdict}).</li>")
+                parts.append(f"<li>{_e(sg.subgroup)}, {_e(sg.outcome)}: {html.escape(sg.test, quote=False)} = {sg.q:.2f} on {sg.df} df, p = {sg.p_value:.2g} ({verdict}).</li>")
         parts.append("<li>With many subgroups and outcomes, some differences are chance; a subgroup chosen after seeing the results proves little.</li></ul>")
     # ---- placebo check
     if r.placebo is not None:

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from sqlmatch.privacy import count_text, flow_texts, suppress_levels
+from sqlmatch.privacy import count_text, suppress_levels
 from sqlmatch.report.words import design_lines, effect_sentence, groups_sentence, provenance_text, sample_rows, window_length
 from sqlmatch.results import StudyResults, warning_kind
 
@@ -115,22 +115,6 @@ ESTIMAND_HEADINGS = {
 }
 
 
-def _groups_line(m, flow: dict, estimand: str = "att") -> str:
-    """What the method built: strata (or matched sets), or for weighting the controls' effective number."""
-    if m.effective_controls is not None:
-        # the counts as the sample table shows them: withheld there, withheld here
-        treated = (
-            f" and the {flow['treated']['matched']} weighted enrolled units as about {m.effective_treated:,.0f}"
-            if estimand != "att" and m.effective_treated is not None
-            else ""
-        )
-        return (
-            f"Weighted comparison (one group, no strata): the {flow['control']['matched']} weighted non-enrolled units count as "
-            f"about {m.effective_controls:,.0f} unweighted ones{treated} (Kish's effective sample size, (sum w)² / sum w²)."
-        )
-    return f"Strata used: {m.strata:,}; cells dropped for lacking an enrolled or a non-enrolled unit: {m.strata_dropped:,}."
-
-
 
 def render_markdown(r: StudyResults, balance_image: str | None = None) -> str:
     """Markdown sized for a pull-request comment; `balance_image` names the balance plot written
@@ -168,7 +152,7 @@ def render_markdown(r: StudyResults, balance_image: str | None = None) -> str:
         *[f"| {label} | {t} | {c} |" for label, t, c in rows],
         *(["", f"Counts under {mc} are not shown, nor (–) a second count from which one could be worked out."] if _withheld(rows) else []),
         "",
-        _groups_line(m, flow_texts(m, mc), r.effects[0].estimand if r.effects else "att") if m.effective_controls is not None and "balancing" not in (r.design or {}) else groups_sentence(r),
+        groups_sentence(r),
         "",
         "## " + ESTIMAND_HEADINGS.get(r.effects[0].estimand if r.effects else "att", "Effects on the enrolled"),
         "",
@@ -225,7 +209,7 @@ def render_markdown(r: StudyResults, balance_image: str | None = None) -> str:
         for sg in r.subgroups:
             if sg.p_value is not None:
                 lines.append(
-                    f"- {sg.subgroup}, {sg.outcome}: Cochran's Q = {sg.q:.2f} on {sg.df} df, p = {sg.p_value:.2g} "
+                    f"- {sg.subgroup}, {sg.outcome}: {sg.test} = {sg.q:.2f} on {sg.df} df, p = {sg.p_value:.2g} "
                     + ("(the effect differs between the levels more than chance would explain)." if sg.p_value < 0.05 else "(no clear difference between the levels).")
                 )
         lines.append("- With many subgroups and outcomes, some differences are chance; a subgroup chosen after seeing the results proves little.")

@@ -192,6 +192,8 @@ def groups_sentence(r: StudyResults) -> str:
             f"({cal.get('sd', '?')} SD of the logit propensity score{width}), {reuse}: {f['control']['matched']} distinct comparison "
             f"units serve {f['treated']['matched']} matched enrolled units."
         )
+    if m.effective_controls is not None:
+        return weighting_sentence(m, flow_texts(m, r.min_cell_size), r.effects[0].estimand if r.effects else "att")
     return f"Strata used: {m.strata:,}; cells dropped for lacking an enrolled or a non-enrolled unit: {m.strata_dropped:,}."
 
 
@@ -208,6 +210,29 @@ def balancing_sentence(r: StudyResults) -> str:
         f"units have the enrolled units' means of the matching features (largest gap left {b['max_gap_sd']:.1g} SD, after "
         f"{b['newton_steps']} Newton steps); the weighted controls count as {ess} unweighted ones (Kish's effective sample "
         f"size, (sum w)² / sum w²), and the largest weight is {share} of their total."
+    )
+
+
+def _weights_words(m) -> str:
+    """The weights' mean and range (weighting methods), as Cole & Hernan 2008 advise reporting them."""
+    if m.weight_mean is None:
+        return ""
+    kind = "stabilised weights" if m.stabilised_weights else "Weights"
+    return f" {kind[0].upper() + kind[1:]}: mean {m.weight_mean:.3g}, from {m.weight_min:.3g} to {m.weight_max:.3g} over the weighted units."
+
+
+def weighting_sentence(m, flow: dict, estimand: str = "att") -> str:
+    """Weighting: the weighted groups' effective numbers of units, then the weights' mean and range."""
+    # the counts as the sample table shows them: withheld there, withheld here
+    treated = (
+        f" and the {flow['treated']['matched']} weighted enrolled units as about {m.effective_treated:,.0f}"
+        if estimand != "att" and m.effective_treated is not None
+        else ""
+    )
+    return (
+        f"Weighted comparison (one group, no strata): the {flow['control']['matched']} weighted non-enrolled units count as "
+        f"about {m.effective_controls:,.0f} unweighted ones{treated} (Kish's effective sample size, (sum w)² / sum w²)."
+        + _weights_words(m)
     )
 
 
