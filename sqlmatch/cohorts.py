@@ -62,12 +62,6 @@ def pooled_interval_refusal(spec) -> str | None:
             f"every month), so their effects covary, and {why}. The pooled estimate is shown without one; read each month's "
             f"interval, or pool with method {' or '.join(POOLED_INTERVAL_METHODS)}."
         )
-    if spec.regression_adjustment:
-        return (
-            "no pooled interval with [effect] regression_adjustment = true: the months share units, so their adjusted effects "
-            "covary, and sqlmatch writes per-unit terms for the stratified effect only. The pooled estimate is shown without "
-            "one; set regression_adjustment = false to pool with an interval."
-        )
     return None
 
 
@@ -89,7 +83,7 @@ class PooledEffect:
     i_squared: float | None
     weights: tuple[float, ...] = ()
     std_error_if_independent: float | None = None  # same weights, covariances between months left out
-    note: str | None = None  # why there is no interval
+    note: str | None = None  # why there is no interval, or what was pooled
 
 
 @dataclass
@@ -105,6 +99,16 @@ class CohortResults:
         for outcome in [e.outcome for e in results[0].effects]:
             effects = [r.effect(outcome) for r in results]
             weights = [pooling_weight(e, estimand) for e in effects]
+            # the per-unit terms cohort_influence writes are the stratified (unadjusted) estimator's: pool that one
+            # where a month's headline is regression-adjusted, and say so
+            adjusted = any(e.unadjusted is not None for e in effects)
+            effects = [e.unadjusted if e.unadjusted is not None else e for e in effects] if adjusted else effects
+            pooled_words = (
+                "pooled from each month's unadjusted stratified effect (the months' headlines are regression-adjusted; the "
+                "per-unit terms sqlmatch writes per month, from which the months' covariances come, are the plain estimator's)."
+                if adjusted
+                else None
+            )
             note = refusal
             ses = [e.std_error for e in effects]
             if note is None and any(se is None or not math.isfinite(se) or se <= 0 for se in ses):
@@ -117,7 +121,7 @@ class CohortResults:
                 pooled.append(PooledEffect(outcome, est, None, None, None, len(effects), None, None, None, tuple(w / total for w in weights), None, note))
                 continue
             p = pool_covarying([e.estimate for e in effects], ses, covariances[outcome], weights)
-            pooled.append(PooledEffect(outcome, p.estimate, p.std_error, p.ci_low, p.ci_high, p.cohorts, p.q, p.q_p_value, p.i_squared, p.weights, p.std_error_if_independent))
+            pooled.append(PooledEffect(outcome, p.estimate, p.std_error, p.ci_low, p.ci_high, p.cohorts, p.q, p.q_p_value, p.i_squared, p.weights, p.std_error_if_independent, pooled_words))
         return cls(study=results[0].study, cohorts=results, pooled=pooled, covariances=covariances)
 
     @property

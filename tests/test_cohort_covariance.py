@@ -56,6 +56,11 @@ def cohorts(demo_dir, tmp_path_factory):
     return spec, combined, outcomes, rows, left
 
 
+def plain(effect):
+    """A month's stratified effect: its unadjusted one where the headline is regression-adjusted."""
+    return effect.unadjusted if effect.unadjusted is not None else effect
+
+
 def kept_cells(frame: pd.DataFrame) -> pd.DataFrame:
     """Matched rows of the strata holding both groups, with the ATT stratum weight n_1s / n_1."""
     both = frame.groupby("match__stratum")["treated"].agg(["min", "max"])
@@ -81,7 +86,8 @@ def test_covariances_of_mean_outcomes_equal_statsmodels_cluster_robust_by_unit(c
             r = first.loc[cell]
             L[int(r["cohort"]), j] = r["w_s"] if r["treated"] == 1 else -r["w_s"]
         # the cohorts' effects are these combinations of the cell means (the reported estimates)
-        reported = [r.effect(o.name).estimate for r in combined.cohorts]
+        # (the stratified ones: the months' headlines are regression-adjusted by default, the influence terms are not)
+        reported = [plain(r.effect(o.name)).estimate for r in combined.cohorts]
         assert L @ fit.params == pytest.approx(reported, rel=1e-9), o.name
         # statsmodels OLS cluster-robust covariance (by unit), mapped to the cohorts' effects
         reference = L @ fit.cov_params() @ L.T
@@ -146,9 +152,14 @@ def test_pooled_interval_uses_the_covariances_and_the_work_tables_are_gone(cohor
     spec, combined, outcomes, rows, left = cohorts
     assert left == []  # the influence tables are dropped once the covariances are fetched
     for p in combined.pooled:
-        effects = [r.effect(p.outcome) for r in combined.cohorts]
-        n = np.array([e.n_treated for e in effects], dtype=float)
+        headlines = [r.effect(p.outcome) for r in combined.cohorts]
+        n = np.array([e.n_treated for e in headlines], dtype=float)
         w = n / n.sum()
+        # the influence terms are the stratified estimator's: where the months' headlines are
+        # regression-adjusted (the default for coarsened_exact), the unadjusted effects are pooled, and said so
+        adjusted = [e.unadjusted is not None for e in headlines]
+        assert all(adjusted) == (p.outcome != "fare_per_trip") and any(adjusted) == ("unadjusted" in (p.note or ""))
+        effects = [e.unadjusted if e.unadjusted is not None else e for e in headlines]
         cov = np.asarray(combined.covariances[p.outcome]).copy()
         np.fill_diagonal(cov, [e.std_error**2 for e in effects])  # each month's own variance, as reported
         assert p.estimate == pytest.approx(float(w @ [e.estimate for e in effects]), rel=1e-12)
@@ -170,7 +181,7 @@ def test_generalised_q_with_no_covariance_is_cochrans_q():
 
 @pytest.mark.parametrize(
     ("override", "words"),
-    [({"matching": {"method": "nearest_neighbour"}}, "nearest_neighbour"), ({"effect": {"regression_adjustment": True}}, "regression_adjustment")],
+    [({"matching": {"method": "nearest_neighbour"}}, "nearest_neighbour"), ({"matching": {"method": "score_weighting"}}, "score_weighting")],
 )
 def test_no_pooled_interval_where_the_months_covariances_are_not_computed(override, words):
     import tomllib
