@@ -35,8 +35,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from sqlmatch.estimators.intervals import normal_interval
-from sqlmatch.estimators.weighting import WeightedEffect
+from sqlmatch.estimators.weighting import WeightedEffect, difference_from_sandwich
 
 ARMIJO = 1e-4  # sufficient decrease of the line search (Nocedal & Wright 2006, ch. 3; common practice)
 MAX_HALVINGS = 20
@@ -198,12 +197,4 @@ def weighted_effect(s: MomentSums, o: TermSums, level: float = 0.95) -> Weighted
     meat[1, lam_] = meat[lam_, 1] = r0z
     meat[lam_, lam_] = s.control_w2zz - np.outer(s.control_w2z, m) - np.outer(m, s.control_w2z) + s.control_w2 * np.outer(m, m)
     meat[m_, m_] = s.treated_zz - s.n_treated * np.outer(m, m)
-    try:
-        bread = np.linalg.inv(jac)
-    except np.linalg.LinAlgError:
-        return WeightedEffect(mu1 - mu0, None, None, None, mu1, mu0, np.full((2, 2), nan))
-    cov = (bread @ meat @ bread.T)[:2, :2]
-    var = cov[0, 0] + cov[1, 1] - 2 * cov[0, 1]
-    se = math.sqrt(var) if math.isfinite(var) and var >= 0 else None
-    lo, hi = normal_interval(mu1 - mu0, se, level)
-    return WeightedEffect(mu1 - mu0, se, lo, hi, mu1, mu0, cov)
+    return difference_from_sandwich(mu1, mu0, jac, meat, level)

@@ -139,15 +139,7 @@ def weighted_effect(s: WeightingSums, ridge: float = 0.0, level: float = 0.95) -
     meat[0, 2:] = meat[2:, 0] = t.ru - mu1 * t.rv
     meat[1, 2:] = meat[2:, 1] = c.ru - mu0 * c.rv
     meat[2:, 2:] = s.score_products
-    try:
-        bread = np.linalg.inv(jac)
-    except np.linalg.LinAlgError:
-        return WeightedEffect(mu1 - mu0, None, None, None, mu1, mu0, np.full((2, 2), nan))
-    cov = (bread @ meat @ bread.T)[:2, :2]
-    var = cov[0, 0] + cov[1, 1] - 2 * cov[0, 1]
-    se = math.sqrt(var) if math.isfinite(var) and var >= 0 else None
-    lo, hi = normal_interval(mu1 - mu0, se, level)
-    return WeightedEffect(mu1 - mu0, se, lo, hi, mu1, mu0, cov)
+    return difference_from_sandwich(mu1, mu0, jac, meat, level)
 
 
 # --- Doubly robust effect: weighted regression adjustment -------------------------------------
@@ -237,6 +229,20 @@ def _solve_normal_equations(xtx: np.ndarray, xty: np.ndarray) -> np.ndarray:
     d = np.where(d > 0, d, 1.0)
     scaled = xtx / np.outer(d, d)
     return (np.linalg.pinv(scaled, rcond=1e-12, hermitian=True) @ (xty / d)) / d
+
+
+def difference_from_sandwich(mu1: float, mu0: float, jac: np.ndarray, meat: np.ndarray, level: float = 0.95) -> WeightedEffect:
+    """mu1 - mu0 with the sandwich covariance bread meat bread' of stacked estimating equations whose
+    first two parameters are (mu1, mu0) (Stefanski & Boos 2002); no SE when the Jacobian is singular."""
+    try:
+        bread = np.linalg.inv(jac)
+    except np.linalg.LinAlgError:
+        return WeightedEffect(mu1 - mu0, None, None, None, mu1, mu0, np.full((2, 2), math.nan))
+    cov = (bread @ meat @ bread.T)[:2, :2]
+    var = cov[0, 0] + cov[1, 1] - 2 * cov[0, 1]
+    se = math.sqrt(var) if math.isfinite(var) and var >= 0 else None
+    lo, hi = normal_interval(mu1 - mu0, se, level)
+    return WeightedEffect(mu1 - mu0, se, lo, hi, mu1, mu0, cov)
 
 
 @dataclass(frozen=True)
