@@ -278,7 +278,10 @@ def _failed(spec, moments, err) -> DataError:
     if err.reason == "singular":
         w, v = np.linalg.eigh(err.dual.hessian)
         vec = v[:, int(np.argmin(np.abs(w)))]
-        names = ", ".join(moments[i].label for i in np.argsort(-np.abs(vec))[:3] if abs(vec[i]) > 1e-3)
+        # the (up to 3) moments carrying the null direction, named in the spec's order: scaled copies of one
+        # feature carry equal shares, and ranking those by size would let rounding pick the order
+        top = np.argsort(-np.round(np.abs(vec), 6), kind="stable")[:3]
+        names = ", ".join(moments[i].label for i in sorted(int(i) for i in top if abs(vec[i]) > 1e-3))
         return DataError(
             "matching.on",
             f"entropy balancing cannot separate the moments {names}: among the weighted non-enrolled units they are collinear (or one is constant).",
