@@ -66,8 +66,8 @@ def study_results(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
         for name in sorted(k for k in r if k.startswith("weighting_adjustment_")):  # the doubly robust sums, in parts
             row.update(r[name].one())
         weighting = (row, spec.propensity.ridge, spec.regression_adjustment, output.model)
-    if "balancing_sandwich" in r:  # entropy balancing: its own stacked equations, the same fields (ridge None)
-        weighting = (r["balancing_sandwich"].one(), None, False, None)
+    if "balancing_sandwich" in r:  # entropy balancing: its own stacked equations, the same fields
+        weighting = (r["balancing_sandwich"].one(), 0.0, False, None, True)
     effects = [
         outcome_effect(
             o, r["outcome_strata"], r["outcome_unmatched"], r.get("outcome_regression"), numeric, spec.matching.method,
@@ -298,7 +298,7 @@ def _weight_range(summary: dict, stabilised: bool) -> dict:
     )
 
 
-def _weighted_fields(outcome, fields: dict, extra: dict, row: dict, ridge: float, adjust: bool = False, model=None, estimand: str = "att"):
+def _weighted_fields(outcome, fields: dict, extra: dict, row: dict, ridge: float, adjust: bool = False, model=None, balancing: bool = False, estimand: str = "att"):
     """Propensity-score weighting: the weighted difference (of means, or of ratios) with the
     sandwich variance that counts the estimated score (estimators/weighting.py); the lift (and a
     binary outcome's risk ratio) from the same covariance of the two weighted means. With
@@ -309,7 +309,7 @@ def _weighted_fields(outcome, fields: dict, extra: dict, row: dict, ridge: float
     from sqlmatch.estimators.weighting import adjustment_sums_from_row, doubly_robust_effect, sums_from_row, weighted_effect
 
     what = "ratios" if outcome.kind == "ratio" else "means"
-    if ridge is None:  # entropy balancing (matching/entropy_balancing.py)
+    if balancing:  # entropy balancing (matching/entropy_balancing.py)
         from sqlmatch.matching.entropy_balancing import effect_of
 
         effect = effect_of(row)

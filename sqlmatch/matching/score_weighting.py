@@ -81,6 +81,8 @@ def steps(ctx, model):
         common_support=m.common_support, margin_logit=margin_logit, margin=m.score_margin, cap_quantile=m.weight_cap_quantile, effect_for=effect_for, clamp=ETA_CLAMP,
         stabilised=m.stabilised_weights,
     )
+    # the three work tables the weighting steps read (the templates name them so)
+    tables = dict(weighted_table=ctx.table("weighted_units"), scores_table=ctx.table("scores"), limits_table=ctx.table("weighting_limits"))
     cap_text = f", weights truncated at their group's {m.weight_cap_quantile} quantile" if m.weight_cap_quantile is not None else ""
     weights_text = {
         "enrolled": "for the effect on the treated (treated 1, control e / (1 - e))",
@@ -118,9 +120,7 @@ def steps(ctx, model):
             "score_weighting_summary",
             reads=[ctx.display("weighted_units"), ctx.display("scores"), ctx.display("weighting_limits")],
             purpose="Units weighted per group, and each group's weights' sum, sum of squares and range (effective numbers of units).",
-            weighted_table=ctx.table("weighted_units"),
-            scores_table=ctx.table("scores"),
-            limits_table=ctx.table("weighting_limits"),
+            **tables,
             **limits,
         ),
     ]
@@ -133,9 +133,7 @@ def steps(ctx, model):
             columns=[] if model is None else model.columns,
             terms=terms(spec),
             adjust=False,
-            weighted_table=ctx.table("weighted_units"),
-            scores_table=ctx.table("scores"),
-            limits_table=ctx.table("weighting_limits"),
+            **tables,
             level=None,
             **limits,
         )
@@ -154,9 +152,7 @@ def steps(ctx, model):
                     sums=chunk,
                     part=k,
                     parts=len(chunks),
-                    weighted_table=ctx.table("weighted_units"),
-                    scores_table=ctx.table("scores"),
-                    limits_table=ctx.table("weighting_limits"),
+                    **tables,
                     **limits,
                 )
             )
@@ -173,9 +169,7 @@ def steps(ctx, model):
                 columns=[] if model is None else model.columns,
                 terms=terms(spec),
                 adjust=False,
-                weighted_table=ctx.table("weighted_units"),
-                scores_table=ctx.table("scores"),
-                limits_table=ctx.table("weighting_limits"),
+                **tables,
                 level=subgroup_level(g),
                 **limits,
             )
