@@ -412,20 +412,25 @@ def derived_column(f, spec: Spec) -> DerivedColumn:
             return col if node.name in categorical else exp.cast(col, exp.DataType.build("DOUBLE"))
         return node
 
-    def rewrite(node):
+    def guard(node):
         if isinstance(node, exp.Div):
             node.set("expression", exp.Nullif(this=node.expression, expression=exp.Literal.number(0)))
         elif isinstance(node, (exp.Ln, exp.Sqrt)):
             low = exp.GT if isinstance(node, exp.Ln) else exp.GTE
             arg = node.this
             node.set("this", exp.Case(ifs=[exp.If(this=low(this=arg.copy(), expression=exp.Literal.number(0)), true=arg)]))
-        elif isinstance(node, exp.Round):
+        return node
+
+    def round_half_away(node):
+        if isinstance(node, exp.Round):
             digits = node.args.get("decimals") or exp.Literal.number(0)
             decimal = exp.DataType.build("DECIMAL(38, 10)")
             return exp.cast(exp.Round(this=exp.cast(node.this, decimal), decimals=digits), exp.DataType.build("DOUBLE"))
         return node
 
-    tree = tree.transform(read, copy=False).transform(rewrite, copy=False)
+    # ROUND last, in a pass of its own: transform does not descend into a node it replaced, so a
+    # division or ln inside ROUND would keep no guard if ROUND were rewritten in the same pass
+    tree = tree.transform(read, copy=False).transform(guard, copy=False).transform(round_half_away, copy=False)
     return DerivedColumn(f.name, f.key, tree.sql(render.SOURCE_DIALECT), condition=is_boolean(f.expression), fill=f.fill)
 
 

@@ -161,6 +161,17 @@ def test_a_derived_feature_is_numeric_and_reads_no_source_column():
     assert err.value.key.endswith("(bad).expression")
 
 
+def test_guards_hold_inside_round():
+    """x / y and ln(x) keep their guards (NULLIF, CASE) inside ROUND, which is rewritten too: a
+    division by zero there would raise on PostgreSQL and give NULL on DuckDB and Spark."""
+    from sqlmatch.plan import derived_column
+
+    spec = parse_spec(_with("round(pre_minutes / pre_trips, 1) + round(ln(pre_trips), 2)", fill=0))
+    (bad,) = [f for f in spec.derived_features if f.name == "bad"]
+    sql = derived_column(bad, spec).value
+    assert "NULLIF" in sql and "CASE WHEN" in sql and sql.count("DECIMAL(38, 10)") == 2, sql
+
+
 def test_a_derived_feature_without_a_value_refuses_the_run_unless_filled(demo_db):
     """pre_minutes / pre_trips has no value for riders without pre-window trips (x / NULLIF(y, 0)
     on every engine); the run names the key, and fill = 0 gives those riders 0."""

@@ -284,9 +284,9 @@ SELECT
   CAST(CAST(ROUND(
     CAST(CAST(CAST(r."pre_trips_sq" AS DOUBLE PRECISION) * (
       1 - CAST(r."no_trips" AS DOUBLE PRECISION)
-    ) AS DOUBLE PRECISION) / (
+    ) AS DOUBLE PRECISION) / NULLIF((
       1 + CAST(r."pre_days_since_last" AS DOUBLE PRECISION)
-    ) AS DECIMAL(38, 10)),
+    ), 0) AS DECIMAL(38, 10)),
     1
   ) AS DOUBLE PRECISION) AS DOUBLE PRECISION) AS sq_if_riding
 FROM derived_4 AS r;

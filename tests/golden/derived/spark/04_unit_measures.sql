@@ -286,9 +286,9 @@ SELECT
   CAST(CAST(ROUND(
     CAST(CAST(r.`pre_trips_sq` AS DOUBLE) * (
       1 - CAST(r.`no_trips` AS DOUBLE)
-    ) / (
+    ) / NULLIF((
       1 + CAST(r.`pre_days_since_last` AS DOUBLE)
-    ) AS DECIMAL(38, 10)),
+    ), 0) AS DECIMAL(38, 10)),
     1
   ) AS DOUBLE) AS DOUBLE) AS sq_if_riding
 FROM derived_4 AS r;
