@@ -142,3 +142,43 @@ def test_unknown_terms_value_names_the_key(tmp_path):
     raw["propensity"]["terms"] = "quadratic"
     with pytest.raises(SpecError, match="propensity.terms"):
         parse_spec(raw)
+
+
+def test_postgres_chooses_the_same_terms_as_duckdb(tmp_path):
+    """The same simulation on PostgreSQL: the same chosen terms and statistics as DuckDB."""
+    import os
+
+    url = os.environ.get("SQLMATCH_TEST_POSTGRES_URL")
+    if not url:
+        pytest.skip("no PostgreSQL server (SQLMATCH_TEST_POSTGRES_URL)")
+    from sqlmatch.engines.postgres import PostgresEngine
+
+    raw = simulated(tmp_path)
+    duck, _ = run_stepwise(raw)
+    with duckdb.connect(raw["study"]["database"], read_only=True) as con:
+        men = con.execute("SELECT * FROM men").df()
+        earnings = con.execute("SELECT * FROM earnings").df()
+    import psycopg
+
+    with psycopg.connect(url, autocommit=True) as pg:
+        pg.execute("DROP SCHEMA IF EXISTS stepwise_src CASCADE")
+        pg.execute("CREATE SCHEMA stepwise_src")
+        pg.execute("CREATE TABLE stepwise_src.men (person_id BIGINT, enrolled_on DATE, trips DOUBLE PRECISION, km DOUBLE PRECISION)")
+        pg.execute("CREATE TABLE stepwise_src.earnings (person_id BIGINT, paid_on DATE, earnings DOUBLE PRECISION)")
+        with pg.cursor() as cur:
+            cur.executemany("INSERT INTO stepwise_src.men VALUES (%s, %s, %s, %s)", [(int(r.person_id), None if pd.isna(r.enrolled_on) else r.enrolled_on.date(), float(r.trips), float(r.km)) for r in men.itertuples()])
+            cur.executemany("INSERT INTO stepwise_src.earnings VALUES (%s, %s, %s)", [(int(r.person_id), r.paid_on, float(r.earnings)) for r in earnings.itertuples()])
+    raw["study"] = {"name": "sim", "work_schema": "stepwise_work", "database": url}
+    raw["units"]["table"] = "stepwise_src.men"
+    raw["events"]["table"] = "stepwise_src.earnings"
+    spec = parse_spec(raw)
+    try:
+        with PostgresEngine(url) as engine:
+            out = run_plan(build_plan(spec, "postgres"), spec, engine)
+    finally:
+        with psycopg.connect(url, autocommit=True) as pg:
+            pg.execute("DROP SCHEMA IF EXISTS stepwise_src CASCADE")
+            pg.execute("DROP SCHEMA IF EXISTS stepwise_work CASCADE")
+    assert [c.describes for c in out.model.columns] == [c.describes for c in duck.columns]
+    for a, b in zip(out.model.selection, duck.selection):
+        assert a["statistic"] == pytest.approx(b["statistic"], rel=1e-6)
