@@ -115,6 +115,8 @@ def replicate(task) -> tuple[list[dict], list[dict]]:
                     # the propensity model on log(1 + x) of these features (where the model has them)
                     chosen = tuple(f for f in log1p if f in spec.propensity.features)
                     spec = dataclasses.replace(spec, propensity=dataclasses.replace(spec.propensity, log1p=chosen))
+                if os.environ.get("CALIBRATION_TERMS"):  # --terms, through the environment so worker processes see it
+                    spec = dataclasses.replace(spec, propensity=dataclasses.replace(spec.propensity, terms=os.environ["CALIBRATION_TERMS"]))
                 if BALANCE_VARIANCES:
                     spec = dataclasses.replace(spec, matching=dataclasses.replace(spec.matching, balance_variances=True))
                 if doubly_robust and method == "score_weighting":
@@ -253,6 +255,7 @@ def render(summary, failures, args, seconds: float, command: str) -> str:
         "entropy_balancing on the means of `matching.on`" + (" and the variances of its numeric features (--balance-variances)" if args.balance_variances else "") + ". "
         "Count, sum and 0/1 outcomes of coarsened_exact and score_bins: the headline row is regression-adjusted within strata "
         "(the default since this run's commit; `(unadjusted)` rows hold the plain stratified comparison), ratio outcomes are not adjusted."
+        + (f" Propensity terms: {args.terms} (--terms)." if args.terms else "")
         + (f" Propensity model on log(1 + x) of {', '.join(args.log1p)} (--log1p)." if args.log1p else "")
         + (
             " score_weighting run with effect.regression_adjustment = true: its `(doubly robust)` rows are the weighted regression "
@@ -322,6 +325,7 @@ def main(argv=None) -> int:
     parser.add_argument("--first-seed", type=int, default=1, help="first seed (default 1)")
     parser.add_argument("--methods", nargs="*", default=None, help="methods to run (default: every method in sqlmatch.matching.METHODS)")
     parser.add_argument("--processes", nargs="*", default=list(PROCESSES), choices=PROCESSES)
+    parser.add_argument("--terms", choices=["linear", "stepwise"], default=None, help="propensity.terms for every study (default: the specs' own)")
     parser.add_argument("--log1p", nargs="*", default=[], help="fit the propensity model on log(1 + x) of these features (default: the specs' own model)")
     parser.add_argument("--balance-variances", action="store_true", help="entropy_balancing: balance the numeric features' variances too")
     parser.add_argument("--no-doubly-robust", dest="doubly_robust", action="store_false", help="score_weighting without its doubly robust rows (they are on by default)")
@@ -331,6 +335,8 @@ def main(argv=None) -> int:
     parser.add_argument("--checkpoint", type=Path, default=Path(tempfile.gettempdir()) / "sqlmatch_calibration.jsonl", help="JSON lines, one per finished replicate")
     parser.add_argument("--from-checkpoint", action="store_true", help="summarise the checkpoint of an interrupted run instead of running (--replicates: the count it was started with)")
     args = parser.parse_args(argv)
+    if args.terms:
+        os.environ["CALIBRATION_TERMS"] = args.terms
     global BALANCE_VARIANCES
     BALANCE_VARIANCES = args.balance_variances
     methods = args.methods or list(METHODS)

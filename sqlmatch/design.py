@@ -68,12 +68,14 @@ def study_design(spec: Spec, r: dict, model=None) -> dict:
             "log1p": list(p.log1p),
             "ridge": p.ridge,
             "sample_controls": p.sample_controls,
+            "terms": p.terms,
         }
         if model is not None:
             from sqlmatch.propensity import describe_column
 
             design["propensity"]["fitted_on"] = model.fitted_on
             design["propensity"]["iterations"] = model.iterations
+            design["propensity"]["selection"] = list(model.selection)
             design["propensity"]["coefficients"] = [
                 {"term": describe_column(c), "coefficient": float(b)} for c, b in zip(model.columns, model.coefficients)
             ]

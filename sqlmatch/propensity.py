@@ -22,6 +22,7 @@ from pathlib import Path
 import numpy as np
 
 from sqlmatch import columns
+from sqlmatch.columns import upper_pairs
 from sqlmatch.errors import DataError, SqlmatchError
 
 MODEL_VERSION = 1
@@ -34,9 +35,10 @@ class DesignColumn:
     """One column of the design matrix, built in SQL from the per-unit measures table."""
 
     name: str
-    kind: str  # intercept | numeric | log1p | level
+    kind: str  # intercept | numeric | log1p | level | product (of the two `factors`)
     feature: str | None = None
     level: str | None = None
+    factors: tuple = ()  # product: two first-order DesignColumns (the same one twice for a square)
 
     @property
     def describes(self) -> str:
@@ -64,6 +66,9 @@ def design_columns(spec, levels: dict[str, list[str]]) -> list[DesignColumn]:
 
 
 def describe_column(col: DesignColumn) -> str:
+    if col.kind == "product":
+        a, b = col.factors
+        return f"({describe_column(a)})^2" if a == b else f"({describe_column(a)}) * ({describe_column(b)})"
     if col.kind == "level":
         return f"{col.feature} = {col.level!r}"
     if col.kind == "log1p":
@@ -83,6 +88,8 @@ class FittedModel:
     ridge: float = 0.0
     fitted_on: str = field(default_factory=lambda: dt.date.today().isoformat())
     sampled_controls: float = 1.0  # share of controls the fit used; the intercept is corrected for it
+    selection: list = field(default_factory=list)  # stepwise terms: [{"term", "order", "statistic"}] in the order added
+    refused: list = field(default_factory=list)  # stepwise candidates left out because their refit separated the groups
 
     def to_json(self) -> str:
         body = {
@@ -95,6 +102,8 @@ class FittedModel:
             "ridge": self.ridge,
             "sampled_controls": self.sampled_controls,
             "levels": self.levels,
+            "selection": self.selection,
+            "refused_terms": self.refused,
             "coefficients": [
                 {**asdict(c), "describes": describe_column(c), "coefficient": b} for c, b in zip(self.columns, self.coefficients)
             ],
@@ -107,7 +116,7 @@ class FittedModel:
             body = json.loads(text)
             if body.get("sqlmatch_propensity_model") != MODEL_VERSION:
                 raise ValueError("not a sqlmatch propensity model file")
-            cols = [DesignColumn(name=c["name"], kind=c["kind"], feature=c.get("feature"), level=c.get("level")) for c in body["coefficients"]]
+            cols = [_column_from_json(c) for c in body["coefficients"]]
             coefs = [float(c["coefficient"]) for c in body["coefficients"]]
             return cls(
                 columns=cols,
@@ -119,6 +128,8 @@ class FittedModel:
                 levels={k: list(v) for k, v in body.get("levels", {}).items()},
                 ridge=float(body.get("ridge", 0.0)),
                 sampled_controls=float(body.get("sampled_controls", 1.0)),
+                selection=list(body.get("selection", [])),
+                refused=list(body.get("refused_terms", [])),
                 fitted_on=str(body.get("fitted_on", "")),
             )
         except (ValueError, KeyError, TypeError) as err:
@@ -128,6 +139,11 @@ class FittedModel:
         path = Path(path)
         path.write_text(self.to_json(), encoding="utf-8")
         return path
+
+
+def _column_from_json(c: dict) -> DesignColumn:
+    factors = tuple(_column_from_json(f) for f in c.get("factors", ()))
+    return DesignColumn(name=c["name"], kind=c["kind"], feature=c.get("feature"), level=c.get("level"), factors=factors)
 
 
 def model_path(spec) -> Path | None:
@@ -149,11 +165,12 @@ def load_model(spec) -> FittedModel | None:
 # Newton-Raphson on aggregates
 
 
-def unpack(row: dict, p: int) -> tuple[float, np.ndarray, np.ndarray, float, float, float]:
-    """n, gradient, information matrix, log-likelihood, min and max fitted p from one result row."""
+def unpack(row: dict, p: int, pairs=None) -> tuple[float, np.ndarray, np.ndarray, float, float, float]:
+    """n, gradient, information matrix, log-likelihood, min and max fitted p from one result row
+    (`pairs`: the entries of the information matrix the query returned; the others are NaN)."""
     g = np.array([float(row[columns.gradient(i)]) for i in range(p)])
-    h = np.empty((p, p))
-    for i, j in columns.upper_pairs(p):
+    h = np.full((p, p), np.nan)
+    for i, j in pairs if pairs is not None else columns.upper_pairs(p):
         h[i, j] = h[j, i] = float(row[columns.information(i, j)])
     return float(row["n_units"]), g, h, float(row["log_likelihood"]), float(row["p_min"]), float(row["p_max"])
 
@@ -181,7 +198,7 @@ def newton(evaluate, columns: list[DesignColumn], ridge: float = 0.0, max_iterat
         g = g - penalty @ beta
         h = h + penalty
         try:
-            step = np.linalg.solve(h, g)
+            step = _scaled_solve(h, g)
         except np.linalg.LinAlgError:
             raise DataError(
                 "propensity.features",
@@ -208,6 +225,118 @@ def newton(evaluate, columns: list[DesignColumn], ridge: float = 0.0, max_iterat
         levels={},
         ridge=ridge,
     )
+
+
+def _scaled_solve(h: np.ndarray, g: np.ndarray) -> np.ndarray:
+    """Solve h d = g after scaling h to unit diagonal: the squares of large counts make h span many
+    orders of magnitude; the scaled system has the same solution and a far smaller condition number."""
+    d = np.sqrt(np.abs(np.diag(h)))
+    if np.any(d == 0):
+        raise np.linalg.LinAlgError("constant column")
+    hs = h / np.outer(d, d)
+    return np.linalg.solve(hs, g / d) / d
+
+
+# --------------------------------------------------------------------------------------------
+# Stepwise choice of the model's terms (Imbens & Rubin 2015, Causal Inference for Statistics,
+# Social, and Biomedical Sciences, section 13.3): from the base model, add first-order terms while
+# the best statistic exceeds C_LIN, then second-order terms while it exceeds C_QUA.
+
+C_LIN = 1.0
+C_QUA = 2.71
+MAX_CANDIDATE_SUMS = 1400  # one selection query stays under PostgreSQL's 1,664-column SELECT list
+
+
+def first_order_candidates(current: list[DesignColumn]) -> list[DesignColumn]:
+    """log(1 + x) beside each numeric term x: lets a skewed count enter on its log scale. The SQL
+    clips x at 0 inside the log, so for a feature with negative values it is a hinge-like term."""
+    have = {(c.kind, c.feature) for c in current}
+    return [
+        DesignColumn(name=f"log1p_{c.feature}", kind="log1p", feature=c.feature)
+        for c in current
+        if c.kind == "numeric" and ("log1p", c.feature) not in have
+    ]
+
+
+def second_order_candidates(current: list[DesignColumn]) -> list[DesignColumn]:
+    """Squares of numeric terms, products of pairs of numeric terms, numeric x level products and
+    products of levels of two different categorical features."""
+    first = [c for c in current if c.kind in ("numeric", "log1p", "level")]
+    have = {c.factors for c in current if c.kind == "product"}
+    out = []
+    for i, a in enumerate(first):
+        for b in first[i:]:
+            if a.kind == "level" and b.kind == "level" and a.feature == b.feature:
+                continue  # a level times itself is itself; two levels of one feature never co-occur
+            if a.feature == b.feature and a != b:
+                continue  # x * log(1 + x): too close to the square to be worth a term
+            if (a, b) in have:
+                continue
+            name = f"{a.name}__sq" if a == b else f"{a.name}__x__{b.name}"
+            out.append(DesignColumn(name=name, kind="product", factors=(a, b)))
+    return out
+
+
+def score_statistics(row: dict, n_current: int, n_candidates: int) -> np.ndarray:
+    """Rao's score statistic for adding each candidate alone to the current model, from one
+    aggregate row at the current fit: U_c^2 / (I_cc - I_cb I_bb^-1 I_bc), with U_c = sum (t - p) x_c
+    and I = sum p (1 - p) x x'. It is asymptotically equivalent to the likelihood-ratio statistic
+    (Rao 1948) and needs no refit per candidate: one query scores every candidate at once."""
+    p = n_current + n_candidates
+    _, g, h, _, _, _ = unpack(row, p, selection_pairs(n_current, n_candidates))
+    hbb = h[:n_current, :n_current]
+    out = np.empty(n_candidates)
+    for k in range(n_candidates):
+        c = n_current + k
+        hcb = h[c, :n_current]
+        v = h[c, c] - hcb @ np.linalg.solve(hbb, hcb)
+        out[k] = g[c] ** 2 / v if v > 1e-12 * max(h[c, c], 1e-300) else 0.0
+    return out
+
+
+def selection_pairs(n_current: int, n_candidates: int) -> list[tuple[int, int]]:
+    """The information entries a selection query needs: current x current, candidate x current
+    and each candidate's own square (no candidate x candidate products)."""
+    pairs = [(i, j) for i in range(n_current) for j in range(i, n_current)]
+    for c in range(n_current, n_current + n_candidates):
+        pairs += [(i, c) for i in range(n_current)] + [(c, c)]
+    return pairs
+
+
+def stepwise(fit, evaluate, base: list[DesignColumn], progress=None):
+    """Choose the terms: `fit(columns)` returns a FittedModel, `evaluate(columns, beta, pairs)` the
+    selection query's row. Returns the final model with `selection` filled in."""
+    model = fit(base)
+    chosen: list[dict] = []
+    refused: set = set()  # terms whose refit separates the groups: never offered again
+    for order, threshold, candidates_of in ((1, C_LIN, first_order_candidates), (2, C_QUA, second_order_candidates)):
+        while True:
+            cands = [c for c in candidates_of(model.columns) if c not in refused]
+            if not cands:
+                break
+            p = len(model.columns)
+            batch = max(1, MAX_CANDIDATE_SUMS // (p + 2) - 1)
+            stats = []
+            for start in range(0, len(cands), batch):
+                part = cands[start:start + batch]
+                cols = model.columns + part
+                row = evaluate(cols, list(model.coefficients) + [0.0] * len(part), selection_pairs(p, len(part)))
+                stats.extend(score_statistics(row, p, len(part)))
+            best = int(np.argmax(stats))
+            if stats[best] <= threshold:
+                break
+            try:
+                refit = fit(model.columns + [cands[best]])
+            except DataError:
+                refused.add(cands[best])  # separation or collinearity with this term: the next best may fit
+                continue
+            model = refit
+            chosen.append({"term": describe_column(cands[best]), "order": order, "statistic": float(stats[best])})
+            if progress is not None:
+                progress.note(f"propensity term added: {describe_column(cands[best])} (score statistic {stats[best]:.2f})")
+    model.selection = chosen
+    model.refused = [describe_column(c) for c in refused]
+    return model
 
 
 @dataclass(frozen=True)
@@ -299,15 +428,16 @@ def logit(p: float) -> float:
 # ---------------------------------------------------------------- plan steps
 
 
-def newton_statement(spec, dialect: str, columns, beta) -> str:
-    """The aggregate query of one Newton step of the propensity model at coefficients `beta`."""
+def newton_statement(spec, dialect: str, columns, beta, pairs=None) -> str:
+    """The aggregate query of one Newton step of the propensity model at coefficients `beta`
+    (`pairs`: only these information entries, for the stepwise selection query)."""
     from sqlmatch.plan import PlanContext
 
     ctx = PlanContext(spec=spec, dialect=dialect)
-    return newton_step(ctx, columns, beta).statements[0]
+    return newton_step(ctx, columns, beta, pairs=pairs).statements[0]
 
 
-def newton_step(ctx, columns, beta, name: str = "propensity_newton"):
+def newton_step(ctx, columns, beta, name: str = "propensity_newton", pairs=None):
     return ctx.query_step(
         name,
         "propensity_newton",
@@ -315,6 +445,7 @@ def newton_step(ctx, columns, beta, name: str = "propensity_newton"):
         purpose="Propensity model: score vector, information matrix and log-likelihood at the coefficients shown.",
         columns=columns,
         beta=[float(b) for b in beta],
+        pairs=pairs if pairs is not None else upper_pairs(len(columns)),
         clamp=ETA_CLAMP,
         sample_per_10000=_sample_per_10000(ctx.spec),
         cells_table=ctx.table("score_cells"),

@@ -392,12 +392,24 @@ def fit_propensity(spec: Spec, engine: Engine, out: RunOutput, progress: Progres
     levels = {k: sorted(v) for k, v in levels.items()}
     columns = propensity.design_columns(spec, levels)
     t0 = time.perf_counter()
-    model = propensity.newton(
-        lambda beta: engine.fetch(newton_statement(spec, engine.dialect, columns, beta)).one(),
-        columns,
-        ridge=spec.propensity.ridge,
-        max_iterations=spec.propensity.max_iterations,
-    )
+
+    def fit(cols):
+        return propensity.newton(
+            lambda beta: engine.fetch(newton_statement(spec, engine.dialect, cols, beta)).one(),
+            cols,
+            ridge=spec.propensity.ridge,
+            max_iterations=spec.propensity.max_iterations,
+        )
+
+    if spec.propensity.terms == "stepwise":
+        model = propensity.stepwise(
+            fit,
+            lambda cols, beta, pairs: engine.fetch(newton_statement(spec, engine.dialect, cols, beta, pairs)).one(),
+            columns,
+            progress,
+        )
+    else:
+        model = fit(columns)
     model.levels = levels
     share = round(spec.propensity.sample_controls * 10000) / 10000
     if share < 1.0:

@@ -218,6 +218,7 @@ class Propensity:
     ridge: float = 0.0
     max_iterations: int = 25
     sample_controls: float = 1.0  # fit on all treated and this share of controls (integer unit keys)
+    terms: str = "linear"  # linear: the base terms only; stepwise: terms chosen from the data (propensity.stepwise)
 
 
 @dataclass(frozen=True)
@@ -973,7 +974,7 @@ def _with_indicators(names: list[str], features: tuple[Feature, ...]) -> list[st
 def _propensity(value: Any, features: tuple[Feature, ...], matching: Matching) -> Propensity:
     if not isinstance(value, dict):
         raise SpecError("propensity", "must be a table.", "write it as [propensity].")
-    _check_keys(value, "propensity", {"features", "log1p", "ridge", "max_iterations", "sample_controls"})
+    _check_keys(value, "propensity", {"features", "log1p", "ridge", "max_iterations", "sample_controls", "terms"})
     names = [f.name for f in features]
     chosen = value.get("features", [n for n in matching.on if n not in matching.block_on])
     for key, items in (("propensity.features", chosen), ("propensity.log1p", value.get("log1p", []))):
@@ -992,4 +993,7 @@ def _propensity(value: Any, features: tuple[Feature, ...], matching: Matching) -
     sample = value.get("sample_controls", 1.0)
     if isinstance(sample, bool) or not isinstance(sample, (int, float)) or not 0.0001 <= sample <= 1.0:
         raise SpecError("propensity.sample_controls", f"must be a share between 0.0001 and 1, got {sample!r}.", "e.g. 0.1 fits on a tenth of the controls.")
-    return Propensity(features=tuple(chosen), log1p=tuple(log1p), ridge=float(ridge), max_iterations=iterations, sample_controls=float(sample))
+    terms = value.get("terms", "linear")
+    if terms not in ("linear", "stepwise"):
+        raise SpecError("propensity.terms", f"must be \"linear\" or \"stepwise\", got {terms!r}.", "\"stepwise\" chooses log, square and product terms from the data.")
+    return Propensity(features=tuple(chosen), log1p=tuple(log1p), ridge=float(ridge), max_iterations=iterations, sample_controls=float(sample), terms=terms)

@@ -271,6 +271,10 @@ def design_lines(r: StudyResults) -> list[tuple[str, str]]:
             text += f", ridge {p['ridge']:g}"
         if p.get("sample_controls", 1.0) < 1.0:
             text += f", fitted on {100 * p['sample_controls']:g}% of the comparison units"
+        if p.get("terms") == "stepwise":
+            added = p.get("selection") or []
+            text += "; terms chosen stepwise (Imbens & Rubin 2015, 13.3; score statistic > 1 for first-order, > 2.71 for second-order terms): "
+            text += ", ".join(f"{c['term']} ({c['statistic']:.1f})" for c in added) if added else "none added to the base terms"
         if p.get("coefficients"):
             text += "; coefficients: " + ", ".join(f"{c['term']} {c['coefficient']:+.3g}" for c in p["coefficients"])
             text += f" (fitted {p.get('fitted_on', '?')}, {p.get('iterations', '?')} Newton steps)"
