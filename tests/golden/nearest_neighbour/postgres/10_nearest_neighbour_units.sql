@@ -19,8 +19,8 @@ CREATE TABLE "sqlmatch".annual_pass_nearest_neighbour_units__building AS
    Mahalanobis distances, so that treated units at the same distance do not all take the same control
    (the one with the lowest key), while the result stays the same on every engine.
    score_position: the unit's place in its exact block in score order (ties: unit key), and
-   controls_through the number of controls up to and including that place (its place minus its place
-   among the block's treated units, for a treated unit: ROW_NUMBER only). For a control it is
+   controls_through the number of controls up to and including that place (a running count over the
+   same window as score_position, so both share one sort). For a control it is
    the control's index in the block's score order; for a treated unit the number of controls below
    it, so its neighbouring controls in score order have the indices just below and just above it
    (the score distance finds them by an equality join on that index, never a join of all pairs).
@@ -52,17 +52,11 @@ WITH placed AS (
       s.score - k.score_min
     ) AS DOUBLE PRECISION) / NULLIF(k.width, 0.0)) AS INT) AS score_bin,
     ROW_NUMBER() OVER (PARTITION BY COALESCE(s.age_band, '(missing)') ORDER BY s.score, s.unit_key) AS score_position,
-    CASE
-      WHEN s.treated = 1
-      THEN ROW_NUMBER() OVER (PARTITION BY COALESCE(s.age_band, '(missing)') ORDER BY s.score, s.unit_key) - ROW_NUMBER() OVER (
-        PARTITION BY COALESCE(s.age_band, '(missing)'), s.treated
-        ORDER BY s.score, s.unit_key
-      )
-      ELSE ROW_NUMBER() OVER (
-        PARTITION BY COALESCE(s.age_band, '(missing)'), s.treated
-        ORDER BY s.score, s.unit_key
-      )
-    END AS controls_through
+    SUM(CASE WHEN s.treated = 0 THEN 1 ELSE 0 END) OVER (
+      PARTITION BY COALESCE(s.age_band, '(missing)')
+      ORDER BY s.score, s.unit_key
+      ROWS BETWEEN UNBOUNDED PRECEDING AND CURRENT ROW
+    ) AS controls_through
   FROM "sqlmatch".annual_pass_scores AS s
   CROSS JOIN "sqlmatch".annual_pass_nearest_neighbour_caliper AS k
   WHERE
