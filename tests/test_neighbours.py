@@ -484,6 +484,19 @@ def test_plan_compiles_for_every_dialect():
         assert all("QUALIFY" not in sql.upper() for s in plan.steps for sql in s.statements)
 
 
+@pytest.mark.parametrize("distance", ["score", "mahalanobis"])
+def test_plan_with_reused_controls_compiles_for_every_dialect(distance):
+    """With controls reused, the running sums over score order and over distance print for every
+    dialect (sqlglot refuses a NULLS LAST running sum for BigQuery, so the order is spelled out)."""
+    spec = parse_spec(demo_raw("unused.duckdb", "nearest_neighbour_compile", distance=distance, block_on=["home_district"], reuse_controls=True))
+    for dialect in DIALECTS:
+        plan = build_plan(spec, dialect, model=STAND_IN_MODEL)
+        units = "\n".join(plan.step("nearest_neighbour_units").statements)
+        matches = "\n".join(plan.step("nearest_neighbour_matches").statements)
+        assert "controls_through" in units and "n_within" in matches, dialect
+        assert ("control_group" in units) == (distance == "score"), dialect
+
+
 # ---------------------------------------------------------------------------------------------
 # NSW and rows fetched
 

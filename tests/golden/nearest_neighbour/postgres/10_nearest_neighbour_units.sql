@@ -24,6 +24,8 @@ CREATE TABLE "sqlmatch".annual_pass_nearest_neighbour_units__building AS
    the control's index in the block's score order; for a treated unit the number of controls below
    it, so its neighbouring controls in score order have the indices just below and just above it
    (the score distance finds them by an equality join on that index, never a join of all pairs).
+   The window keys are never NULL (the WHERE below); NULLS FIRST is spelled out so that every dialect
+   prints the same order (sqlglot cannot print a NULLS LAST running sum for BigQuery).
    score_compared: the score at 10 decimal places, in which score distances are taken, so that
    distances equal in exact arithmetic are equal on every engine (ties).
    control_group (matching with replacement on the score): for a control, the index of its score
@@ -51,10 +53,13 @@ WITH placed AS (
     CAST(FLOOR(CAST((
       s.score - k.score_min
     ) AS DOUBLE PRECISION) / NULLIF(k.width, 0.0)) AS INT) AS score_bin,
-    ROW_NUMBER() OVER (PARTITION BY COALESCE(s.age_band, '(missing)') ORDER BY s.score, s.unit_key) AS score_position,
+    ROW_NUMBER() OVER (
+      PARTITION BY COALESCE(s.age_band, '(missing)')
+      ORDER BY s.score NULLS FIRST, s.unit_key NULLS FIRST
+    ) AS score_position,
     SUM(CASE WHEN s.treated = 0 THEN 1 ELSE 0 END) OVER (
       PARTITION BY COALESCE(s.age_band, '(missing)')
-      ORDER BY s.score, s.unit_key
+      ORDER BY s.score NULLS FIRST, s.unit_key NULLS FIRST
       ROWS BETWEEN UNBOUNDED PRECEDING AND CURRENT ROW
     ) AS controls_through
   FROM "sqlmatch".annual_pass_scores AS s
@@ -64,7 +69,10 @@ WITH placed AS (
 )
 SELECT
   p.*,
-  SUM(p.opens_group) OVER (PARTITION BY p.age_band ORDER BY p.score_compared, p.treated, p.unit_key) AS control_group
+  SUM(p.opens_group) OVER (
+    PARTITION BY p.age_band
+    ORDER BY p.score_compared NULLS FIRST, p.treated NULLS FIRST, p.unit_key NULLS FIRST
+  ) AS control_group
 FROM placed AS p;
 
 BEGIN TRANSACTION;

@@ -61,6 +61,8 @@ WITH candidates AS (
     c.distance,
     SUM(c.n_controls) AS n_at
   FROM candidates AS c
+  WHERE
+    NOT c.distance IS NULL
   GROUP BY
     c.treated_key,
     c.distance
@@ -69,7 +71,7 @@ WITH candidates AS (
     l.treated_key,
     l.distance,
     l.n_at,
-    SUM(l.n_at) OVER (PARTITION BY l.treated_key ORDER BY l.distance) AS n_within,
+    SUM(l.n_at) OVER (PARTITION BY l.treated_key ORDER BY l.distance NULLS FIRST) AS n_within, /* distance is never NULL here; NULLS FIRST, the default of BigQuery and Spark, keeps one order on every dialect */
     SUM(l.n_at) OVER (PARTITION BY l.treated_key) AS n_candidates
   FROM levels AS l
 ), kept AS (
