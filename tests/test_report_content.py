@@ -129,7 +129,7 @@ def test_nearest_neighbour_reports_speak_of_matched_sets_and_controls_not_picked
         text = nn[key]
         assert "Strata used" not in text and "no comparable unit" not in text
         assert "comparison units not picked as a match" in text and f"{not_picked:,}" in text
-        assert f"{m['n_control_matched']:,} distinct comparison units serve {m['n_treated_matched']:,} matched enrolled units" in text
+        assert f"the {m['n_control_matched']:,} distinct comparison units serve the {m['n_treated_matched']:,} matched enrolled units" in text
     assert "Strata used" in runs["coarsened_exact"]["md"]
 
 
@@ -227,3 +227,14 @@ def test_the_html_shows_the_subgroup_effects_the_markdown_shows(demo_db):
         assert f"{x['estimate']:,.3f} {cell}" in md
         assert f"<td class='num'>{x['estimate']:,.3f}</td><td class='ci'>{cell}</td>" in page
     assert "Cochran's Q" in page
+
+
+@pytest.mark.parametrize(
+    "cell, words",
+    [("1,458", "the 1,458 weighted enrolled units"), ("<10", "fewer than 10 weighted enrolled units"), ("–", "the weighted enrolled units (count withheld, see the sample table)")],
+)
+def test_sentences_name_a_withheld_or_small_count_in_words(cell, words):
+    """The sample table's cells ("<10", "–" for a withheld count) read as words in the report's sentences."""
+    from sqlmatch.report.words import counted
+
+    assert counted(cell, "weighted enrolled units") == words

@@ -327,7 +327,8 @@ def test_report_withholds_the_weighted_count_where_the_sample_table_does(demo_we
     flow = flow_texts(m, results.min_cell_size)
     assert flow["control"]["matched"] == "–"  # 3 dropped is under min_cell_size, so the matched count would reveal it
     text = render_markdown(dataclasses.replace(results, matching=m))
-    assert "the – weighted non-enrolled units" in text
+    assert "the weighted non-enrolled units (count withheld, see the sample table) count as" in text
+    assert "the – weighted" not in text  # a dash is a table cell, not a word
     assert f"{m.n_control_matched:,}" not in text.split("## Effects")[0]
 
 

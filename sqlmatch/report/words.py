@@ -189,12 +189,22 @@ def groups_sentence(r: StudyResults) -> str:
         reuse = "with replacement (a control may serve several enrolled units)" if d.get("reuse_controls", True) else "without replacement"
         return (
             f"Matched sets: each matched enrolled unit with its {k} nearest comparison unit{'s' if k != 1 else ''} within the caliper "
-            f"({cal.get('sd', '?')} SD of the logit propensity score{width}), {reuse}: {f['control']['matched']} distinct comparison "
-            f"units serve {f['treated']['matched']} matched enrolled units."
+            f"({cal.get('sd', '?')} SD of the logit propensity score{width}), {reuse}: {counted(f['control']['matched'], 'distinct comparison units')} "
+            f"serve {counted(f['treated']['matched'], 'matched enrolled units')}."
         )
     if m.effective_controls is not None:
         return weighting_sentence(m, flow_texts(m, r.min_cell_size), r.effects[0].estimand if r.effects else "att")
     return f"Strata used: {m.strata:,}; cells dropped for lacking an enrolled or a non-enrolled unit: {m.strata_dropped:,}."
+
+
+def counted(cell: str, noun: str) -> str:
+    """A count cell of the sample table before its noun, in a sentence: a withheld count ("–") is
+    left out rather than printed as a dash, a small one reads "fewer than N"."""
+    if cell == "–":
+        return f"the {noun} (count withheld, see the sample table)"
+    if cell.startswith("<"):
+        return f"fewer than {cell[1:]} {noun}"
+    return f"the {cell} {noun}"
 
 
 def balancing_sentence(r: StudyResults) -> str:
@@ -206,8 +216,8 @@ def balancing_sentence(r: StudyResults) -> str:
     ess = f"about {m.effective_controls:,.0f}" if m.effective_controls is not None else "–"
     share = f"{100 * b['max_weight_share']:.2g}%" if b.get("max_weight_share") is not None else "–"
     return (
-        f"Weighted comparison (entropy balancing; one group, no strata): the {f['control']['matched']} weighted non-enrolled "
-        f"units have the enrolled units' means of the matching features (largest gap left {b['max_gap_sd']:.1g} SD, after "
+        f"Weighted comparison (entropy balancing; one group, no strata): {counted(f['control']['matched'], 'weighted non-enrolled units')} "
+        f"have the enrolled units' means of the matching features (largest gap left {b['max_gap_sd']:.1g} SD, after "
         f"{b['newton_steps']} Newton steps); the weighted controls count as {ess} unweighted ones (Kish's effective sample "
         f"size, (sum w)² / sum w²), and the largest weight is {share} of their total."
     )
@@ -225,12 +235,12 @@ def weighting_sentence(m, flow: dict, estimand: str = "att") -> str:
     """Weighting: the weighted groups' effective numbers of units, then the weights' mean and range."""
     # the counts as the sample table shows them: withheld there, withheld here
     treated = (
-        f" and the {flow['treated']['matched']} weighted enrolled units as about {m.effective_treated:,.0f}"
+        f" and {counted(flow['treated']['matched'], 'weighted enrolled units')} as about {m.effective_treated:,.0f}"
         if estimand != "att" and m.effective_treated is not None
         else ""
     )
     return (
-        f"Weighted comparison (one group, no strata): the {flow['control']['matched']} weighted non-enrolled units count as "
+        f"Weighted comparison (one group, no strata): {counted(flow['control']['matched'], 'weighted non-enrolled units')} count as "
         f"about {m.effective_controls:,.0f} unweighted ones{treated} (Kish's effective sample size, (sum w)² / sum w²)."
         + _weights_words(m)
     )
