@@ -117,6 +117,9 @@ def replicate(task) -> tuple[list[dict], list[dict]]:
                     spec = dataclasses.replace(spec, propensity=dataclasses.replace(spec.propensity, log1p=chosen))
                 if os.environ.get("CALIBRATION_TERMS"):  # --terms, through the environment so worker processes see it
                     spec = dataclasses.replace(spec, propensity=dataclasses.replace(spec.propensity, terms=os.environ["CALIBRATION_TERMS"]))
+                if os.environ.get("CALIBRATION_COMPUTED_CUTS") and method == "coarsened_exact":
+                    # --computed-cut-points: the method's default, cut points computed in the warehouse
+                    spec = dataclasses.replace(spec, matching=dataclasses.replace(spec.matching, cut_points={}))
                 if BALANCE_VARIANCES:
                     spec = dataclasses.replace(spec, matching=dataclasses.replace(spec.matching, balance_variances=True))
                 if doubly_robust and method == "score_weighting":
@@ -256,6 +259,7 @@ def render(summary, failures, args, seconds: float, command: str) -> str:
         "Count, sum and 0/1 outcomes of coarsened_exact and score_bins: the headline row is regression-adjusted within strata "
         "(the default since this run's commit; `(unadjusted)` rows hold the plain stratified comparison), ratio outcomes are not adjusted."
         + (f" Propensity terms: {args.terms} (--terms)." if args.terms else "")
+        + (" coarsened_exact with cut points computed in the warehouse, not the specs' (--computed-cut-points)." if args.computed_cut_points else "")
         + (f" Propensity model on log(1 + x) of {', '.join(args.log1p)} (--log1p)." if args.log1p else "")
         + (
             " score_weighting run with effect.regression_adjustment = true: its `(doubly robust)` rows are the weighted regression "
@@ -326,6 +330,7 @@ def main(argv=None) -> int:
     parser.add_argument("--methods", nargs="*", default=None, help="methods to run (default: every method in sqlmatch.matching.METHODS)")
     parser.add_argument("--processes", nargs="*", default=list(PROCESSES), choices=PROCESSES)
     parser.add_argument("--terms", choices=["linear", "stepwise"], default=None, help="propensity.terms for every study (default: the specs' own)")
+    parser.add_argument("--computed-cut-points", action="store_true", help="coarsened_exact without the specs' cut points: equal-count cut points computed in the warehouse (the method's default)")
     parser.add_argument("--log1p", nargs="*", default=[], help="fit the propensity model on log(1 + x) of these features (default: the specs' own model)")
     parser.add_argument("--balance-variances", action="store_true", help="entropy_balancing: balance the numeric features' variances too")
     parser.add_argument("--no-doubly-robust", dest="doubly_robust", action="store_false", help="score_weighting without its doubly robust rows (they are on by default)")
@@ -337,6 +342,8 @@ def main(argv=None) -> int:
     args = parser.parse_args(argv)
     if args.terms:
         os.environ["CALIBRATION_TERMS"] = args.terms
+    if args.computed_cut_points:
+        os.environ["CALIBRATION_COMPUTED_CUTS"] = "1"
     global BALANCE_VARIANCES
     BALANCE_VARIANCES = args.balance_variances
     methods = args.methods or list(METHODS)
