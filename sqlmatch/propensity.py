@@ -182,13 +182,16 @@ def fingerprint(n: float, h0: np.ndarray) -> str:
     return hashlib.sha256(json.dumps([n, rounded]).encode()).hexdigest()[:16]
 
 
-def newton(evaluate, columns: list[DesignColumn], ridge: float = 0.0, max_iterations: int = 25, tolerance: float = 1e-10):
+def newton(evaluate, columns: list[DesignColumn], ridge: float = 0.0, max_iterations: int = 25, tolerance: float = 1e-10, start=None):
     """Fit by Newton-Raphson; `evaluate(beta)` runs the aggregate query and returns its row.
 
     Stops when the largest step is below `tolerance` (relative to the coefficient size).
+    `start`: the coefficients to begin from (the stepwise search begins each refit at the previous
+    fit with 0 for the added term: the same optimum, fewer queries); the fingerprint is then the
+    caller's to set, as the first evaluation is no longer at zero.
     Raises DataError naming the features on (quasi-)complete separation or non-convergence."""
     p = len(columns)
-    beta = np.zeros(p)
+    beta = np.zeros(p) if start is None else np.array(start, dtype=float)
     penalty = _ridge_penalty(p, ridge)
     first = None
     for iteration in range(1, max_iterations + 1):
@@ -221,7 +224,7 @@ def newton(evaluate, columns: list[DesignColumn], ridge: float = 0.0, max_iterat
         iterations=iteration,
         log_likelihood=loglik,
         n_units=int(n),
-        fingerprint=fingerprint(*first),
+        fingerprint=fingerprint(*first) if start is None else "",
         levels={},
         ridge=ridge,
     )
@@ -304,9 +307,10 @@ def selection_pairs(n_current: int, n_candidates: int) -> list[tuple[int, int]]:
 
 
 def stepwise(fit, evaluate, base: list[DesignColumn], progress=None):
-    """Choose the terms: `fit(columns)` returns a FittedModel, `evaluate(columns, beta, pairs)` the
+    """Choose the terms: `fit(columns, start=None)` returns a FittedModel, `evaluate(columns, beta, pairs)` the
     selection query's row. Returns the final model with `selection` filled in."""
     model = fit(base)
+    base_fingerprint = model.fingerprint
     chosen: list[dict] = []
     refused: set = set()  # terms whose refit separates the groups: never offered again
     for order, threshold, candidates_of in ((1, C_LIN, first_order_candidates), (2, C_QUA, second_order_candidates)):
@@ -326,10 +330,12 @@ def stepwise(fit, evaluate, base: list[DesignColumn], progress=None):
             if stats[best] <= threshold:
                 break
             try:
-                refit = fit(model.columns + [cands[best]])
+                # begin at the current fit, the new term at 0 (it is the point the statistic was taken at)
+                refit = fit(model.columns + [cands[best]], start=list(model.coefficients) + [0.0])
             except DataError:
                 refused.add(cands[best])  # separation or collinearity with this term: the next best may fit
                 continue
+            refit.fingerprint = base_fingerprint  # a digest of the data: the base fit's, taken at zero
             model = refit
             chosen.append({"term": describe_column(cands[best]), "order": order, "statistic": float(stats[best])})
             if progress is not None:

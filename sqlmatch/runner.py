@@ -393,12 +393,13 @@ def fit_propensity(spec: Spec, engine: Engine, out: RunOutput, progress: Progres
     columns = propensity.design_columns(spec, levels)
     t0 = time.perf_counter()
 
-    def fit(cols):
+    def fit(cols, start=None):
         return propensity.newton(
             lambda beta: engine.fetch(newton_statement(spec, engine.dialect, cols, beta)).one(),
             cols,
             ridge=spec.propensity.ridge,
             max_iterations=spec.propensity.max_iterations,
+            start=start,
         )
 
     if spec.propensity.terms == "stepwise":
