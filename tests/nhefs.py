@@ -69,4 +69,5 @@ def nhefs_spec(database: str, **matching) -> dict:
         "features": features,
         "outcomes": [{"name": "weight_gain", "aggregate": "sum", "measure": "weight_change"}],
         "matching": {"method": "score_weighting", **matching},
+        "propensity": {"terms": "linear"},  # the book's model as written (its squares are features above)
     }

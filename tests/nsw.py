@@ -84,4 +84,7 @@ def nsw_spec(database: str, method: str, **matching) -> dict:
         "features": [{"name": n, "aggregate": "attribute", "attribute": n} for n in numeric],
         "outcomes": [{"name": "earnings_after", "aggregate": "sum", "measure": "earnings"}],
         "matching": {"method": method, **matching},
+        # Dehejia & Wahba's specification already holds its squares and interaction as features:
+        # the published model is fitted as written, not re-chosen stepwise
+        "propensity": {"terms": "linear"},
     }

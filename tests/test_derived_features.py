@@ -95,7 +95,7 @@ def test_a_propensity_model_on_derived_features_equals_statsmodels(demo_dir, tmp
     shutil.copyfile(demo_dir / "bikeshare.duckdb", tmp_path / "bikeshare.duckdb")
     raw = with_derived(_raw(tmp_path / "bikeshare.duckdb"))
     raw["matching"] = {"method": "score_bins", "bins": 5}
-    raw["propensity"] = {"features": ["log_trips", "no_trips", "minutes_per_trip", "harbour_trips"]}
+    raw["propensity"] = {"features": ["log_trips", "no_trips", "minutes_per_trip", "harbour_trips"], "terms": "linear"}
     spec = parse_spec(raw, source_path=tmp_path / "study.toml")
     api.run(spec)
     with duckdb.connect(str(tmp_path / "bikeshare.duckdb"), read_only=True) as con:

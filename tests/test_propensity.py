@@ -28,7 +28,8 @@ def demo_score_spec(folder, **matching) -> dict:
     raw = tomllib.loads(DEMO_SPEC.read_text())
     raw["study"]["database"] = str(folder / "bikeshare.duckdb")
     raw["matching"] = {"method": "score_bins", **matching}
-    raw["propensity"] = {"features": ["pre_trips", "pre_minutes", "pre_active_days", "age_band", "home_district"], "log1p": ["pre_trips", "pre_minutes"]}
+    # the Newton fit of a given design is what these tests check against statsmodels: terms as written
+    raw["propensity"] = {"features": ["pre_trips", "pre_minutes", "pre_active_days", "age_band", "home_district"], "log1p": ["pre_trips", "pre_minutes"], "terms": "linear"}
     return raw
 
 
@@ -68,7 +69,7 @@ def test_fit_on_grouped_units_equals_statsmodels_on_rows(demo_dir, tmp_path):
     rows as pandas finds distinct combinations among the units."""
     shutil.copyfile(demo_dir / "bikeshare.duckdb", tmp_path / "bikeshare.duckdb")
     raw = demo_score_spec(tmp_path, bins=5)
-    raw["propensity"] = {"features": ["pre_trips", "age_band", "home_district"]}
+    raw["propensity"] = {"features": ["pre_trips", "age_band", "home_district"], "terms": "linear"}
     spec = parse_spec(raw, source_path=tmp_path / "study.toml")
     api.run(spec)
     with duckdb.connect(str(tmp_path / "bikeshare.duckdb"), read_only=True) as con:
@@ -226,7 +227,7 @@ def test_fit_on_a_sample_of_controls_with_the_intercept_corrected(demo_dir, tmp_
     and the intercept is the sample's plus log(0.3) (prior correction, King & Zeng 2001)."""
     shutil.copyfile(demo_dir / "bikeshare.duckdb", tmp_path / "bikeshare.duckdb")
     raw = demo_score_spec(tmp_path, bins=5)
-    raw["propensity"] = {"features": ["pre_trips", "pre_active_days"], "sample_controls": 0.3}
+    raw["propensity"] = {"features": ["pre_trips", "pre_active_days"], "sample_controls": 0.3, "terms": "linear"}
     spec = parse_spec(raw, source_path=tmp_path / "study.toml")
     api.run(spec)
     model = load_model(spec)
@@ -245,7 +246,9 @@ def test_fit_on_a_sample_of_controls_with_the_intercept_corrected(demo_dir, tmp_
 
 
 def test_rows_fetched_for_subclassification_does_not_grow_with_the_data(tmp_path):
-    """Ten times the riders: the same rows reach Python (levels, Newton steps, strata, bins)."""
+    """Ten times the riders: the same rows reach Python (levels, Newton steps, strata, bins). The
+    terms are fixed here: with `terms = "stepwise"` the rounds of the search depend on which terms the
+    data support (at most one per candidate, a number set by the spec's features, not by the rows)."""
     from sqlmatch.demo_run import build_demo
 
     fetched = []
@@ -253,6 +256,7 @@ def test_rows_fetched_for_subclassification_does_not_grow_with_the_data(tmp_path
         spec_path = build_demo(tmp_path / str(riders), riders=riders, seed=7)
         raw = tomllib.loads(spec_path.read_text())
         raw["matching"] = {"method": "score_bins", "bins": 10}
+        raw["propensity"] = {"terms": "linear"}
         results = api.run(parse_spec(raw, source_path=spec_path), keep_tables=False)
         fetched.append(results.rows_fetched)
     assert fetched[0] == fetched[1]
