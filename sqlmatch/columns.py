@@ -118,11 +118,13 @@ def weighting_cross(what: str, i: int, j: int) -> str:
 MAX_SUMS_PER_QUERY = 1500
 
 
-def split_sums(items: list, first_fixed: int = 0, later_fixed: int = 0, limit: int = MAX_SUMS_PER_QUERY) -> list[list]:
+def split_sums(items: list, first_fixed: int = 0, later_fixed: int = 0, limit: int | None = None) -> list[list]:
     """`items` (the sums of one query, in order) cut into consecutive parts such that each part's
     SELECT list, its items plus the columns every part of that kind repeats (`first_fixed` in the
     first part, `later_fixed` in the others), has at most `limit` entries. One part (the whole list)
-    when it fits, so a small query is the query it always was."""
+    when it fits, so a small query is the query it always was. `limit` defaults to
+    MAX_SUMS_PER_QUERY, read at the call."""
+    limit = MAX_SUMS_PER_QUERY if limit is None else limit
     if first_fixed >= limit or later_fixed >= limit:
         raise ValueError(f"{max(first_fixed, later_fixed)} fixed columns leave no room under {limit}")
     parts, rest, room = [], list(items), limit - first_fixed

@@ -222,10 +222,6 @@ def sandwich_steps(ctx, name: str, purpose: str, columns, terms, level, tables: 
     )
 
 
-# PostgreSQL refuses a SELECT list longer than 1,664 entries; a margin below it
-MAX_SUMS_PER_QUERY = 1500
-
-
 @dataclass(frozen=True)
 class AdjustmentSum:
     """One sum of score_weighting_adjustment: SUM(share * weight * left * x_j)."""
@@ -239,7 +235,7 @@ class AdjustmentSum:
 
 def adjustment_sums(columns, study_terms) -> list[list[AdjustmentSum]]:
     """The doubly robust effect's sums (estimators/weighting.AdjustmentSums), in chunks of at most
-    MAX_SUMS_PER_QUERY: per group the four weighted x x' matrices, over the target units two, and per
+    columns.MAX_SUMS_PER_QUERY: per group the four weighted x x' matrices, over the target units two, and per
     mean outcome a u x and a^2 u x per group (ratio outcomes and the difference-in-differences keep
     the plain weighted effect)."""
     from sqlmatch import columns as col
@@ -256,7 +252,7 @@ def adjustment_sums(columns, study_terms) -> list[list[AdjustmentSum]]:
         for g in ("t", "c"):
             for w, what in (("a", "au"), ("aa", "aau")):
                 out += [AdjustmentSum(col.weighting(o.key, g, what, j), g, w, f"u{k}", j) for j in range(p)]
-    return [out[i : i + MAX_SUMS_PER_QUERY] for i in range(0, len(out), MAX_SUMS_PER_QUERY)]
+    return col.split_sums(out)
 
 
 def check_full_fit(spec, result=None) -> None:
