@@ -177,7 +177,7 @@ def run(
 def cleanup(spec: Spec, engine: Engine | None = None, database: str | None = None, engine_url: str | None = None) -> list[str]:
     """Drop every table this study's plan can write (and half-built leftovers of them), nothing
     else; returns the distinct names dropped."""
-    from sqlmatch.plan import writable_tables
+    from sqlmatch.plan import part_tables, writable_tables
     from sqlmatch.runner import drop_stray_tables, drop_work_tables
 
     own = engine is None
@@ -190,7 +190,8 @@ def cleanup(spec: Spec, engine: Engine | None = None, database: str | None = Non
             # a killed `--cohorts` run's influence tables (run_cohorts drops them when it ends)
             from sqlmatch.cohorts import leftover_influence_tables
 
-            leftovers = leftover_influence_tables(spec, engine.table_names(spec.work_schema))
+            present = engine.table_names(spec.work_schema)
+            leftovers = leftover_influence_tables(spec, present) + part_tables(spec, present, engine.dialect)
             dropped += drop_work_tables([f"{spec.work_schema}.{n}" for n in leftovers], engine)
     finally:
         if own:

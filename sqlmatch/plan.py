@@ -797,3 +797,19 @@ def writable_tables(spec: Spec, dialect: str = "duckdb") -> tuple[str, ...]:
     plan's steps are listed without rendering their SQL (no fitted model is needed)."""
     names = [t for materialize in (False, True) for t in build_plan(spec, dialect, materialize=materialize, names_only=True).work_tables]
     return tuple(dict.fromkeys(names))
+
+
+def part_tables(spec: Spec, present, dialect: str = "duckdb") -> list[str]:
+    """Tables of later parts of split queries (`<study>_agg_<step>__part<k>`, PlanContext.query_parts)
+    of a scheduled plan, found among `present` (names in the work schema): their number depends on
+    the fitted model, so writable_tables cannot list them; cleanup drops them by this pattern."""
+    import re
+
+    from sqlmatch.dialects import BUILDING_SUFFIX
+
+    bases = [t.split(".", 1)[1] for t in writable_tables(spec, dialect) if t.split(".", 1)[1].startswith(f"{spec.name}_agg_")]
+    if not bases:
+        return []
+    pattern = re.compile("(" + "|".join(re.escape(b) for b in bases) + r")__part\d+(" + re.escape(BUILDING_SUFFIX) + ")?", re.IGNORECASE)
+    found = {n[: -len(BUILDING_SUFFIX)] if n.lower().endswith(BUILDING_SUFFIX.lower()) else n for n in present if pattern.fullmatch(n)}
+    return sorted(found)

@@ -99,7 +99,7 @@ def wide_postgres(wide_db):
                         copy.write_row(row)
         yield engine, tag
     finally:
-        for schema in (tag, f"{tag}_work"):
+        for schema in (tag, f"{tag}_work", f"{tag}_cov"):
             engine.execute(f'DROP SCHEMA IF EXISTS "{schema}" CASCADE')
         engine.close()
 
@@ -172,7 +172,8 @@ def wide_plan(method: str, dialect: str = "postgres"):
     SQL's shape is looked at)."""
     from sqlmatch.matching import entropy_balancing as eb
 
-    spec = parse_spec(wide_raw("main", "w", method, subgroups=[{"name": "busy", "where": "pre_trips > 3"}]))
+    extra = {"subgroups": [{"name": "busy", "where": "pre_trips > 3"}]} if method == "score_weighting" else {}
+    spec = parse_spec(wide_raw("main", "w", method, **extra))
     levels = {"zone": [f"zone_{k:02d}" for k in range(ZONES)]}
     if method == "score_weighting":
         cols = propensity.design_columns(spec, levels)
@@ -244,10 +245,12 @@ def test_split_rows_equal_the_one_query_rows(demo_db):
 COHORTS = 29  # with the demo's 4 outcomes: 1 + 4 x 29 x 30 / 2 = 1,741 entries in one query
 
 
+@pytest.mark.slow
 def test_cohort_covariances_of_many_months_on_postgres_and_duckdb_equal_numpy(wide_postgres, tmp_path):
     """The covariance query over 29 months' influence tables (made-up terms; a unit missing from a
     month adds 0 there), split into parts: PostgreSQL and DuckDB give the sums over units of the
-    products of every two months' terms, as numpy computes them from the same terms."""
+    products of every two months' terms, as numpy computes them from the same terms (slow: 6 to
+    13 s here, most of it PostgreSQL with the 1,500-entry parts)."""
     from sqlmatch.cohorts import covariance_matrices, covariance_row, covariance_steps
 
     pg, tag = wide_postgres
@@ -273,14 +276,14 @@ def test_cohort_covariances_of_many_months_on_postgres_and_duckdb_equal_numpy(wi
         for name, rows in tables.items():
             con.execute(f"CREATE TABLE w.{name} ({ddl})")
             con.executemany(f"INSERT INTO w.{name} VALUES ({', '.join('?' * (1 + len(outcomes)))})", rows)
-    pg.execute(f'CREATE SCHEMA "{tag}_work"')
+    pg.execute(f'CREATE SCHEMA "{tag}_cov"')
     for name, rows in tables.items():
-        pg.execute(f'CREATE TABLE "{tag}_work".{name} ({ddl})')
-        with pg.con.cursor() as cur, cur.copy(f'COPY "{tag}_work".{name} FROM STDIN') as copy:
+        pg.execute(f'CREATE TABLE "{tag}_cov".{name} ({ddl})')
+        with pg.con.cursor() as cur, cur.copy(f'COPY "{tag}_cov".{name} FROM STDIN') as copy:
             for row in rows:
                 copy.write_row(row)
     want = {o.name: terms[k].T @ terms[k] for k, o in enumerate(outcomes)}  # numpy: sum over units of t_a t_b
-    for engine, schema in ((DuckDBEngine(str(path)), "w"), (pg, f"{tag}_work")):
+    for engine, schema in ((DuckDBEngine(str(path)), "w"), (pg, f"{tag}_cov")):
         steps = covariance_steps(spec, engine.dialect, [f"{schema}.{t}" for t in tables])
         assert len(steps) > 1 and max(select_width(s.statements[0]) for s in steps) <= columns.MAX_SUMS_PER_QUERY
         row = covariance_row(engine.fetch, steps)
@@ -310,14 +313,14 @@ def test_split_sums_keeps_a_small_query_whole_and_counts_the_fixed_columns():
 
 
 def test_a_scheduled_plan_holds_every_part_and_report_reads_them(demo_dir, tmp_path, monkeypatch):
-    """The scheduler path with the split queries (the limit lowered to 30 entries, so the small demo
+    """The scheduler path with the split queries (the limit lowered to 25 entries, so the small demo
     study splits its stored-model check, sandwich and subgroup sums): the compiled plan has a file
     per part, each marked part_of in the manifest; plain DuckDB runs the files; `report` reads every
     part's table and gives the numbers of a direct run."""
     import json
     import shutil
 
-    monkeypatch.setattr(columns, "MAX_SUMS_PER_QUERY", 30)
+    monkeypatch.setattr(columns, "MAX_SUMS_PER_QUERY", 25)
     shutil.copyfile(demo_dir / "bikeshare.duckdb", tmp_path / "bikeshare.duckdb")
     text = DEMO_SPEC.read_text(encoding="utf-8").replace('method = "coarsened_exact"', 'method = "score_weighting"')
     text += '\n[[subgroups]]\nname = "busy"\nwhere = "pre_trips > 3"\n'
@@ -341,3 +344,8 @@ def test_a_scheduled_plan_holds_every_part_and_report_reads_them(demo_dir, tmp_p
         out.pop("provenance")
         out.pop("rows_fetched")  # the report reads tables, the run its queries
     assert_same_numbers(reported, want)
+    with duckdb.connect(str(tmp_path / "bikeshare.duckdb"), read_only=True) as con:
+        assert any("__part" in t for (t,) in con.execute("SELECT table_name FROM information_schema.tables").fetchall())
+    api.cleanup(spec)  # the parts' tables are the study's too
+    with duckdb.connect(str(tmp_path / "bikeshare.duckdb"), read_only=True) as con:
+        assert not [t for (t,) in con.execute("SELECT table_name FROM information_schema.tables").fetchall() if t.startswith("annual_pass_")]
