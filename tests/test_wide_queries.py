@@ -124,7 +124,7 @@ def test_postgres_gives_duckdbs_numbers_for_a_wide_weighting_sandwich(wide_db, w
     """score_weighting with 30 design columns: the sandwich sums (2,181 entries in one query) and
     the per-level sums of a subgroup (2,182), each split into two parts, give on PostgreSQL every
     number of results.json DuckDB gives (1e-9 relative). Before the split PostgreSQL refused the
-    sandwich query. Slow: about 95 s here, most of it PostgreSQL planning the wide queries."""
+    sandwich query. Slow: 95 to 160 s here, most of it PostgreSQL with the wide queries."""
     got, want = run_both(wide_db, wide_postgres, "score_weighting", zone="few_zone", subgroups=[{"name": "busy", "where": "pre_trips > 3"}])
     assert want.matching.n_treated_matched > 100  # a real study, or equality would prove little
     assert_same_numbers(comparable(got), comparable(want))
@@ -145,7 +145,7 @@ def test_postgres_gives_duckdbs_newton_step_for_a_wide_propensity_model(wide_db,
     """One Newton step of the propensity model with 58 design columns (1,831 entries in one query:
     refused by PostgreSQL before the split), in two parts over the same cells table on both engines:
     the same score vector, information matrix and log-likelihood to 1e-9 relative (slow:
-    PostgreSQL took about 85 s to plan and run the two parts here)."""
+    100 to 112 s here; PostgreSQL alone took about 85 s to plan and run the two parts)."""
     from sqlmatch.engines.postgres import PostgresEngine  # noqa: F401 (the fixture's engine)
 
     pg, tag = wide_postgres
