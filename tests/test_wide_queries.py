@@ -145,7 +145,7 @@ def test_postgres_gives_duckdbs_newton_step_for_a_wide_propensity_model(wide_db,
     """One Newton step of the propensity model with 58 design columns (1,831 entries in one query:
     refused by PostgreSQL before the split), in two parts over the same cells table on both engines:
     the same score vector, information matrix and log-likelihood to 1e-9 relative (slow:
-    100 to 112 s here; PostgreSQL alone took about 85 s to plan and run the two parts)."""
+    100 to 112 s here; PostgreSQL alone took 87 to 95 s to plan and run the two parts)."""
     from sqlmatch.engines.postgres import PostgresEngine  # noqa: F401 (the fixture's engine)
 
     pg, tag = wide_postgres
