@@ -219,6 +219,7 @@ def test_split_rows_equal_the_one_query_rows(demo_db):
     raw["study"]["database"] = str(demo_db)
     raw["matching"] = {"method": "score_weighting"}
     raw["subgroups"] = [{"name": "busy", "where": "pre_trips > 3"}]
+    raw["propensity"] = {"terms": "linear"}  # the demo's two terms, split at 40 entries
     spec = parse_spec(raw)
     with DuckDBEngine(str(demo_db)) as engine:
         model = run_plan(build_plan(spec, "duckdb"), spec, engine, keep_tables=True).model
@@ -324,6 +325,7 @@ def test_a_scheduled_plan_holds_every_part_and_report_reads_them(demo_dir, tmp_p
     shutil.copyfile(demo_dir / "bikeshare.duckdb", tmp_path / "bikeshare.duckdb")
     text = DEMO_SPEC.read_text(encoding="utf-8").replace('method = "coarsened_exact"', 'method = "score_weighting"')
     text += '\n[[subgroups]]\nname = "busy"\nwhere = "pre_trips > 3"\n'
+    text += '\n[propensity]\nterms = "linear"\n'  # a design small enough for parts of 25 entries
     (tmp_path / "annual_pass.toml").write_text(text, encoding="utf-8")
     spec = api.load(tmp_path / "annual_pass.toml")
     direct = api.run(spec)  # writes the model file a scheduled plan needs
