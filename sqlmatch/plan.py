@@ -547,8 +547,10 @@ def source_steps(ctx: PlanContext, outcomes, columns) -> list[Step]:
 def matching_steps(ctx: PlanContext, model) -> list[Step]:
     """The method's steps; a method that lists matches (one row per match) gets the step that sums
     them per unit into <study>_weighted_units, which every later step reads."""
-    steps = list(method_for(ctx.spec.matching.method).steps(ctx, model))
+    method = method_for(ctx.spec.matching.method)
+    steps = list(method.steps(ctx, model))
     if not any(ctx.display("weighted_units") in s.writes for s in steps):
+        one_row = bool(method.one_weight_row_per_unit and method.one_weight_row_per_unit(ctx.spec))
         steps.append(
             ctx.table_step(
                 "weighted_units",
@@ -559,6 +561,7 @@ def matching_steps(ctx: PlanContext, model) -> list[Step]:
                 measures_table=ctx.table("measures"),
                 weights_table=ctx.table("match_weights"),
                 columns=ctx.weighted_columns(),
+                one_row_per_unit=one_row,
             )
         )
     return steps
