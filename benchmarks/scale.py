@@ -20,9 +20,9 @@ seconds apart on this shared machine:
              to pull (--inmem-routes): "in-memory" is generous to pandas (the window filter is
              pushed into SQL and only the four columns used are pulled); "in-memory:whole-table"
              pulls the trips table as it is (SELECT *) and filters in pandas;
-  @LIMIT     sqlmatch (the spec's method) with a DuckDB memory_limit and a temp_directory to spill
+  @LIMIT     sqlmatch (the spec's method, or each of --methods) with a DuckDB memory_limit and a temp_directory to spill
              to (--limited-memory: 4GB at the largest size by default, or SIZE:LIMIT pairs);
-  +proposal  with --proposal DIR, the spec's method on a copy of the code with DIR's files swapped in.
+  +proposal  with --proposal DIR, the spec's method (or each of --methods) on a copy of the code with DIR's files swapped in.
 
 Per run: wall and CPU time of the work inside the child (and the wall time of the whole child),
 the child's peak RSS (os.wait4 returns the rusage of that one child: the per-child form of
@@ -759,6 +759,8 @@ def run_benchmark(args) -> dict:
             "memory_limit": args.memory_limit or None,
             "gen_memory_limit": args.gen_memory_limit,
             "spec_method": api.load(spec_master).matching.method,
+            # the methods the @LIMIT and +proposal variants run: those of --methods when given, else the spec's
+            "target_methods": methods if args.methods else [api.load(spec_master).matching.method],
         },
         "floor_sql": FLOOR_SQL,
         "code_fingerprint": fingerprint,
@@ -817,14 +819,15 @@ def run_benchmark(args) -> dict:
         if args.memory_limit:
             for v in variants + [floor_variant]:
                 v["memory_limit"] = args.memory_limit
+        targets = raw["settings"]["target_methods"]
         for where, limit in limited_runs(args.limited_memory, sizes):
             if where == size:
-                variants.append(
-                    {"variant": f"sqlmatch:{raw['settings']['spec_method']} @{limit}", "kind": "sqlmatch",
-                     "method": raw["settings"]["spec_method"], "memory_limit": limit, "limited": True}
-                )
+                for m in targets:
+                    variants.append(
+                        {"variant": f"sqlmatch:{m} @{limit}", "kind": "sqlmatch", "method": m, "memory_limit": limit, "limited": True}
+                    )
         if code_proposal is not None:
-            for v in [v for v in variants if v.get("method") == raw["settings"]["spec_method"]]:
+            for v in [v for v in variants if v.get("method") in targets]:
                 twin = dict(v, code=str(code_proposal))
                 twin["variant"] = v["variant"].replace(f"sqlmatch:{v['method']}", f"sqlmatch:{v['method']}+proposal")
                 variants.insert(variants.index(v) + 1, twin)
@@ -1333,12 +1336,12 @@ def main(argv: list[str] | None = None) -> int:
                    help="in-memory routes to run: window (window filter in SQL, four columns) and/or whole-table (SELECT * FROM trips)")
     p.add_argument("--inmem-rss-cap-gb", default="16", help="kill the in-memory child above this RSS, GiB (shared machine; '' for none)")
     p.add_argument("--limited-memory", default="4GB",
-                   help="extra sqlmatch runs with a DuckDB memory_limit: '4GB' (at the largest size) or 'SIZE:LIMIT', comma-separated ('' for none)")
+                   help="extra sqlmatch runs (the spec's method, or those of --methods) with a DuckDB memory_limit: '4GB' (at the largest size) or 'SIZE:LIMIT', comma-separated ('' for none)")
     p.add_argument("--memory-limit", default="", help="DuckDB memory_limit of every other variant (default: DuckDB's own, 80%% of RAM)")
     p.add_argument("--gen-memory-limit", default="8GB", help="DuckDB memory_limit while generating the data")
     p.add_argument("--retry-failed", action="store_true", help="re-run a variant in later repetitions after it failed")
     p.add_argument("--no-profile", action="store_true", help="skip the EXPLAIN ANALYZE profile of the heaviest step")
-    p.add_argument("--proposal", help="directory of changed files laid out like the repository; the spec's method also runs on them")
+    p.add_argument("--proposal", help="directory of changed files laid out like the repository; the spec's method (or those of --methods) also runs on them")
     p.add_argument("--out", default=str(HERE / "RESULTS.md"))
     p.add_argument("--raw", default=str(HERE / "scale_raw.json"))
     p.add_argument("--render-only", metavar="RAW_JSON[,RAW_JSON...]", help="only re-render --out from raw JSON file(s); several are merged")

@@ -177,7 +177,7 @@ def run(
 def cleanup(spec: Spec, engine: Engine | None = None, database: str | None = None, engine_url: str | None = None) -> list[str]:
     """Drop every table this study's plan can write (and half-built leftovers of them), nothing
     else; returns the distinct names dropped."""
-    from sqlmatch.plan import writable_tables
+    from sqlmatch.plan import part_tables, writable_tables
     from sqlmatch.runner import drop_stray_tables, drop_work_tables
 
     own = engine is None
@@ -190,7 +190,8 @@ def cleanup(spec: Spec, engine: Engine | None = None, database: str | None = Non
             # a killed `--cohorts` run's influence tables (run_cohorts drops them when it ends)
             from sqlmatch.cohorts import leftover_influence_tables
 
-            leftovers = leftover_influence_tables(spec, engine.table_names(spec.work_schema))
+            present = engine.table_names(spec.work_schema)
+            leftovers = leftover_influence_tables(spec, present) + part_tables(spec, present, engine.dialect)
             dropped += drop_work_tables([f"{spec.work_schema}.{n}" for n in leftovers], engine)
     finally:
         if own:
@@ -263,7 +264,7 @@ def run_cohorts(
     After each month's run its units' influence terms are written to a table of the work
     schema; one aggregate query over them gives the months' covariances (sqlmatch/cohorts.py).
     Those tables are dropped at the end (they are only read by that query)."""
-    from sqlmatch.cohorts import CohortResults, covariance_matrices, covariance_step, influence_step, month_range, pooled_interval_refusal
+    from sqlmatch.cohorts import CohortResults, covariance_matrices, covariance_row, covariance_steps, influence_step, month_range, pooled_interval_refusal
     from sqlmatch.plan import measure_columns, writable_tables
     from sqlmatch.runner import drop_work_tables
 
@@ -271,7 +272,7 @@ def run_cohorts(
     refusal = pooled_interval_refusal(spec)
     own = engine is None
     engine = engine or open_engine(spec, database, engine_url)
-    results, influence, covariances = [], [], None
+    results, influence, covariances, parts = [], [], None, [None]
     try:
         for month in months_list:
             if progress is not None:
@@ -287,14 +288,14 @@ def run_cohorts(
             if not keep_tables:
                 drop_work_tables(writable_tables(cohort, engine.dialect), engine)
         if refusal is None:
-            (statement,) = covariance_step(spec, engine.dialect, influence).statements
-            row = engine.fetch(statement).one()
+            parts = covariance_steps(spec, engine.dialect, influence)
+            row = covariance_row(engine.fetch, parts)
             covariances = covariance_matrices(row, measure_columns(spec)[1], len(influence))
     finally:
         drop_work_tables(influence, engine)
         if own:
             engine.close()
-    return CohortResults.combine(results, covariances=covariances, refusal=refusal, estimand=spec.matching.estimand)
+    return CohortResults.combine(results, covariances=covariances, refusal=refusal, estimand=spec.matching.estimand, covariance_rows=len(parts))
 
 
 def write_cohort_results(combined, out_dir: str | Path) -> list[Path]:
@@ -341,7 +342,7 @@ def report_from_tables(spec: Spec, engine: Engine | None = None, database: str |
     reads only those small tables, never the source tables."""
     from sqlglot import exp
 
-    from sqlmatch.engines.base import QueryResult
+    from sqlmatch.engines.base import QueryResult, merged
     from sqlmatch.plan import FINGERPRINT_COLUMN, changed_sections, spec_fingerprint
     from sqlmatch.runner import RunOutput
 
@@ -369,7 +370,11 @@ def report_from_tables(spec: Spec, engine: Engine | None = None, database: str |
                 stale.append((step.name, changed_sections(next(iter(stored - {expected})), expected)))
                 continue
             keep = [i for i, c in enumerate(result.columns) if c != FINGERPRINT_COLUMN]
-            output.results[step.name] = QueryResult(tuple(result.columns[i] for i in keep), tuple(tuple(r[i] for i in keep) for r in result.rows))
+            result = QueryResult(tuple(result.columns[i] for i in keep), tuple(tuple(r[i] for i in keep) for r in result.rows))
+            if step.part_of is None:
+                output.results[step.name] = result
+            elif step.part_of in output.results:  # a later part of a split query: joins part 1's columns
+                output.results[step.part_of] = merged([output.results[step.part_of], result], step.part_of)
         output.rows_fetched = engine.rows_fetched - start
     finally:
         if own:

@@ -92,9 +92,12 @@ class CohortResults:
     cohorts: list[StudyResults]
     pooled: list[PooledEffect]
     covariances: dict | None = None  # outcome -> months x months: sums of products of influence terms
+    covariance_rows: int = 1  # rows the covariance query fetched: one per part (cohorts.covariance_steps)
 
     @classmethod
-    def combine(cls, results: list[StudyResults], covariances: dict | None = None, refusal: str | None = None, estimand: str = "att") -> "CohortResults":
+    def combine(
+        cls, results: list[StudyResults], covariances: dict | None = None, refusal: str | None = None, estimand: str = "att", covariance_rows: int = 1
+    ) -> "CohortResults":
         pooled = []
         for outcome in [e.outcome for e in results[0].effects]:
             effects = [r.effect(outcome) for r in results]
@@ -122,11 +125,11 @@ class CohortResults:
                 continue
             p = pool_covarying([e.estimate for e in effects], ses, covariances[outcome], weights)
             pooled.append(PooledEffect(outcome, p.estimate, p.std_error, p.ci_low, p.ci_high, p.cohorts, p.q, p.q_p_value, p.i_squared, p.weights, p.std_error_if_independent, pooled_words))
-        return cls(study=results[0].study, cohorts=results, pooled=pooled, covariances=covariances)
+        return cls(study=results[0].study, cohorts=results, pooled=pooled, covariances=covariances, covariance_rows=covariance_rows)
 
     @property
     def rows_fetched(self) -> int:
-        return sum(r.rows_fetched for r in self.cohorts) + (1 if self.covariances is not None else 0)
+        return sum(r.rows_fetched for r in self.cohorts) + (self.covariance_rows if self.covariances is not None else 0)
 
     def to_dict(self) -> dict:
         return {
@@ -179,21 +182,33 @@ def leftover_influence_tables(spec, present: list[str]) -> list[str]:
     return sorted(n for n in present if pattern.fullmatch(n))
 
 
-def covariance_step(spec, dialect: str, tables: list[str]):
-    """The one-row query of the months' covariances, per outcome, from their influence tables."""
+def covariance_steps(spec, dialect: str, tables: list[str]) -> list:
+    """The one-row query of the months' covariances, per outcome, from their influence tables: one
+    query, or parts of at most columns.MAX_SUMS_PER_QUERY products (part 1 also counts the units),
+    whose rows columns.merge_parts joins."""
     from sqlglot import exp
 
     from sqlmatch import render
-    from sqlmatch.columns import upper_pairs
+    from sqlmatch.columns import split_sums, upper_pairs
     from sqlmatch.plan import PlanContext, measure_columns
 
     ctx = PlanContext(spec=spec, dialect=dialect)
     _, outcomes = measure_columns(spec)
     quoted = [exp.table_(t.split(".", 1)[1], db=t.split(".", 1)[0], quoted=True).sql(render.SOURCE_DIALECT) for t in tables]
-    return ctx.query_step(
+    products = [(o.name, a, b) for o in outcomes for a, b in upper_pairs(len(tables))]
+    parts = split_sums(products, first_fixed=1)
+    return ctx.query_parts(
         "cohort_covariance", "cohort_covariance", reads=list(tables), purpose="Covariances of the cohorts' effects.",
-        outcomes=outcomes, tables=quoted, pairs=upper_pairs(len(tables)),
+        parts=[dict(sums=part, head=k == 1, part=k) for k, part in enumerate(parts, 1)], n_parts=len(parts),
+        outcomes=outcomes, tables=quoted,
     )
+
+
+def covariance_row(fetch, steps) -> dict:
+    """The covariance query's one row from its parts (`fetch(sql)` returns a QueryResult)."""
+    from sqlmatch.engines.base import merged
+
+    return merged([fetch(s.statements[0]) for s in steps], "cohort_covariance").one()
 
 
 def covariance_matrices(row: dict, outcomes, k: int) -> dict:

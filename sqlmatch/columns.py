@@ -108,3 +108,62 @@ def weighting_cross(what: str, i: int, j: int) -> str:
     score_weighting_sandwich: per group (t, c) a = sum a x x', aa = sum a^2 x x', ar = sum a (t - e) x x',
     g = sum g x x'; over the target units s = sum x x', sr = sum (t - e) x x'."""
     return f"dr_{what}_{i}_{j}"
+
+
+# PostgreSQL refuses a SELECT list longer than 1,664 entries ("target lists can have at most 1664
+# entries"); a one-row aggregate query whose sums grow with the square of the design columns is
+# split into several queries of at most this many entries each, merged by column name
+# (merge_parts). A margin below the limit; a scheduled part is also a table, and PostgreSQL tables
+# hold at most 1,600 columns (the part's entries plus plan__fingerprint).
+MAX_SUMS_PER_QUERY = 1500
+
+
+def split_sums(items: list, first_fixed: int = 0, later_fixed: int = 0, limit: int | None = None) -> list[list]:
+    """`items` (the sums of one query, in order) cut into consecutive parts such that each part's
+    SELECT list, its items plus the columns every part of that kind repeats (`first_fixed` in the
+    first part, `later_fixed` in the others), has at most `limit` entries. One part (the whole list)
+    when it fits, so a small query is the query it always was. `limit` defaults to
+    MAX_SUMS_PER_QUERY, read at the call."""
+    limit = MAX_SUMS_PER_QUERY if limit is None else limit
+    if first_fixed >= limit or later_fixed >= limit:
+        raise ValueError(f"{max(first_fixed, later_fixed)} fixed columns leave no room under {limit}")
+    parts, rest, room = [], list(items), limit - first_fixed
+    while True:
+        parts.append(rest[:room])
+        rest = rest[room:]
+        if not rest:
+            return parts
+        room = limit - later_fixed
+
+
+def part_name(name: str, k: int) -> str:
+    """The step (and scheduled table) of part k >= 2 of a split query `name`; part 1 keeps `name`."""
+    return name if k == 1 else f"{name}__part{k}"
+
+
+def merge_parts(parts: list[tuple[tuple[str, ...], tuple[tuple, ...]]], what: str = "query") -> tuple[tuple[str, ...], tuple[tuple, ...]]:
+    """The (columns, rows) of the parts of one split query, as the one result the query would have
+    given: rows are matched in order (each part returns the same rows: one, or one per subgroup
+    level in the same ORDER BY), columns are joined by name. A column several parts return (the
+    coefficients a row was computed at, a subgroup level, a maximum) must have equal values in all
+    of them, or the parts were not computed together and are refused."""
+    from sqlmatch.errors import SqlmatchError
+
+    columns, rows = parts[0]
+    columns, rows = list(columns), [list(r) for r in rows]
+    for k, (more_columns, more_rows) in enumerate(parts[1:], 2):
+        if len(more_rows) != len(rows):
+            raise SqlmatchError(f"{what}: part {k} returned {len(more_rows)} rows, part 1 {len(rows)}. Fix: run every part of the step from the same plan.")
+        index = {c: i for i, c in enumerate(columns)}
+        for r, more in zip(rows, more_rows):
+            for c, value in zip(more_columns, more):
+                if c in index:
+                    if r[index[c]] != value:
+                        raise SqlmatchError(
+                            f"{what}: part {k} has {c} = {value!r} where part 1 has {r[index[c]]!r}: the parts were computed "
+                            "at different coefficients or on different data. Fix: run every part of the step from the same plan."
+                        )
+                else:
+                    r.append(value)
+        columns += [c for c in more_columns if c not in index]
+    return tuple(columns), tuple(tuple(r) for r in rows)

@@ -8,6 +8,7 @@ bytes.
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as dt
 import json
 from dataclasses import dataclass, field
@@ -15,7 +16,7 @@ from dataclasses import dataclass, field
 from sqlglot import exp
 
 from sqlmatch import dialects, render
-from sqlmatch.columns import regression_design, stat, upper_pairs
+from sqlmatch.columns import part_name, regression_design, stat, upper_pairs
 from sqlmatch.matching import method_for
 from sqlmatch.spec import DERIVED, MISSING_INDICATOR, Spec, is_boolean, last_period_start
 
@@ -85,6 +86,10 @@ class Step:
     # step rewrites the table it reads, and once nothing is open another run changes nothing.
     repeat_check: str | None = None
     max_repeats: int = 1
+    # A later part of a one-row aggregate query split under the SELECT-list limit
+    # (columns.MAX_SUMS_PER_QUERY): the name of the step holding part 1, whose result this step's
+    # columns join (columns.merge_parts); the runner and `sqlmatch report` merge them.
+    part_of: str | None = None
 
 
 BITMASK_LANE_DAYS = 63  # days per BIGINT lane: the sign bit is never set
@@ -201,7 +206,7 @@ class PlanContext:
         (or sqlmatch version) compiled."""
         logical = f"agg_{step.name}"
         if self.names_only:
-            return Step(name=step.name, kind="table", purpose=step.purpose, reads=step.reads, writes=(self.display(logical),), statements=())
+            return Step(name=step.name, kind="table", purpose=step.purpose, reads=step.reads, writes=(self.display(logical),), statements=(), part_of=step.part_of)
         (sql,) = step.statements
         (query,) = dialects.parse(sql, self.dialect)
         mark = exp.alias_(exp.Literal.string(spec_fingerprint(self.spec)), FINGERPRINT_COLUMN)
@@ -210,6 +215,7 @@ class PlanContext:
         return Step(
             name=step.name,
             kind="table",
+            part_of=step.part_of,
             purpose=step.purpose + " Written to a table for `sqlmatch report`; plan__fingerprint (a hash per spec section) lets report refuse tables an earlier spec wrote.",
             reads=step.reads,
             writes=(self.display(logical),),
@@ -229,6 +235,19 @@ class PlanContext:
             writes=(),
             statements=tuple(dialects.generate(s, self.dialect) for s in statements),
         )
+
+    def query_parts(self, name: str, template: str, reads: list[str], purpose: str, parts: list[dict], **context) -> list[Step]:
+        """One aggregate query split into parts (columns.split_sums): a step per part, rendered
+        with `context` and that part's own entries. Part 1 keeps `name` (and, alone, the step it
+        always was); part k is `<name>__part<k>`, marked part_of `name`."""
+        out = []
+        for k, own in enumerate(parts, 1):
+            step = self.query_step(
+                part_name(name, k), template, reads=reads, purpose=purpose if len(parts) == 1 else f"{purpose} Part {k} of {len(parts)} (split under PostgreSQL's 1,664-entry SELECT list).",
+                **context, **own,
+            )
+            out.append(step if k == 1 else dataclasses.replace(step, part_of=name))
+        return out
 
 
 @dataclass(frozen=True)
@@ -319,6 +338,7 @@ class Plan:
                     "writes": list(s.writes),
                     "purpose": s.purpose,
                     **({"repeat": {"until": "n_open = 0", "check": s.repeat_check, "max": s.max_repeats}} if s.repeat_check else {}),
+                    **({"part_of": s.part_of} if s.part_of else {}),
                     **({"skip_when_schema_exists": True} if s.kind == "setup" else {}),
                 }
                 for i, s in enumerate(self.steps)
@@ -527,8 +547,10 @@ def source_steps(ctx: PlanContext, outcomes, columns) -> list[Step]:
 def matching_steps(ctx: PlanContext, model) -> list[Step]:
     """The method's steps; a method that lists matches (one row per match) gets the step that sums
     them per unit into <study>_weighted_units, which every later step reads."""
-    steps = list(method_for(ctx.spec.matching.method).steps(ctx, model))
+    method = method_for(ctx.spec.matching.method)
+    steps = list(method.steps(ctx, model))
     if not any(ctx.display("weighted_units") in s.writes for s in steps):
+        one_row = bool(method.one_weight_row_per_unit and method.one_weight_row_per_unit(ctx.spec))
         steps.append(
             ctx.table_step(
                 "weighted_units",
@@ -539,6 +561,7 @@ def matching_steps(ctx: PlanContext, model) -> list[Step]:
                 measures_table=ctx.table("measures"),
                 weights_table=ctx.table("match_weights"),
                 columns=ctx.weighted_columns(),
+                one_row_per_unit=one_row,
             )
         )
     return steps
@@ -777,3 +800,19 @@ def writable_tables(spec: Spec, dialect: str = "duckdb") -> tuple[str, ...]:
     plan's steps are listed without rendering their SQL (no fitted model is needed)."""
     names = [t for materialize in (False, True) for t in build_plan(spec, dialect, materialize=materialize, names_only=True).work_tables]
     return tuple(dict.fromkeys(names))
+
+
+def part_tables(spec: Spec, present, dialect: str = "duckdb") -> list[str]:
+    """Tables of later parts of split queries (`<study>_agg_<step>__part<k>`, PlanContext.query_parts)
+    of a scheduled plan, found among `present` (names in the work schema): their number depends on
+    the fitted model, so writable_tables cannot list them; cleanup drops them by this pattern."""
+    import re
+
+    from sqlmatch.dialects import BUILDING_SUFFIX
+
+    bases = [t.split(".", 1)[1] for t in writable_tables(spec, dialect) if t.split(".", 1)[1].startswith(f"{spec.name}_agg_")]
+    if not bases:
+        return []
+    pattern = re.compile("(" + "|".join(re.escape(b) for b in bases) + r")__part\d+(" + re.escape(BUILDING_SUFFIX) + ")?", re.IGNORECASE)
+    found = {n[: -len(BUILDING_SUFFIX)] if n.lower().endswith(BUILDING_SUFFIX.lower()) else n for n in present if pattern.fullmatch(n)}
+    return sorted(found)

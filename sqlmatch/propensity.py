@@ -22,7 +22,7 @@ from pathlib import Path
 import numpy as np
 
 from sqlmatch import columns
-from sqlmatch.columns import upper_pairs
+from sqlmatch.columns import split_sums, upper_pairs
 from sqlmatch.errors import DataError, SqlmatchError
 
 MODEL_VERSION = 1
@@ -434,24 +434,39 @@ def logit(p: float) -> float:
 # ---------------------------------------------------------------- plan steps
 
 
-def newton_statement(spec, dialect: str, columns, beta, pairs=None) -> str:
-    """The aggregate query of one Newton step of the propensity model at coefficients `beta`
-    (`pairs`: only these information entries, for the stepwise selection query)."""
+def newton_statements(spec, dialect: str, columns, beta, pairs=None) -> list[str]:
+    """The aggregate queries of one Newton step of the propensity model at coefficients `beta`
+    (`pairs`: only these information entries, for the stepwise selection query): one, or several
+    parts whose rows `evaluate_newton` merges, when the sums exceed columns.MAX_SUMS_PER_QUERY."""
     from sqlmatch.plan import PlanContext
 
     ctx = PlanContext(spec=spec, dialect=dialect)
-    return newton_step(ctx, columns, beta, pairs=pairs).statements[0]
+    return [s.statements[0] for s in newton_steps(ctx, columns, beta, pairs=pairs)]
 
 
-def newton_step(ctx, columns, beta, name: str = "propensity_newton", pairs=None):
-    return ctx.query_step(
+def evaluate_newton(fetch, statements: list[str]) -> dict:
+    """One Newton step's row from its queries (`fetch(sql)` returns a QueryResult), parts merged."""
+    from sqlmatch.engines.base import merged
+
+    return merged([fetch(s) for s in statements], "propensity_newton").one()
+
+
+def newton_steps(ctx, columns, beta, name: str = "propensity_newton", pairs=None) -> list:
+    """The Newton step's query steps: part 1 returns n, the score vector, the log-likelihood, the
+    fitted range and the first information entries; each later part more entries; every part the
+    coefficients b (so a row's parts are known to belong together)."""
+    p = len(columns)
+    pairs = list(pairs if pairs is not None else upper_pairs(p))
+    parts = split_sums(pairs, first_fixed=2 * p + 4, later_fixed=p)
+    return ctx.query_parts(
         name,
         "propensity_newton",
         reads=[ctx.display("score_cells")],
         purpose="Propensity model: score vector, information matrix and log-likelihood at the coefficients shown.",
+        parts=[dict(pairs=part, head=k == 1, part=k) for k, part in enumerate(parts, 1)],
+        n_parts=len(parts),
         columns=columns,
         beta=[float(b) for b in beta],
-        pairs=pairs if pairs is not None else upper_pairs(len(columns)),
         clamp=ETA_CLAMP,
         sample_per_10000=_sample_per_10000(ctx.spec),
         cells_table=ctx.table("score_cells"),
@@ -497,8 +512,8 @@ def plan_steps(ctx, model) -> list:
     to fit one; with one, the Newton-step aggregates at its coefficients (the stored-model check)."""
     steps = [cells_step(ctx)]
     if ctx.names_only:  # the steps' names and tables only (plan.writable_tables)
-        return steps + [newton_step(ctx, (), (), name="propensity_check")]
+        return steps + newton_steps(ctx, (), (), name="propensity_check")
     if model is None:
         levels = levels_step(ctx)
         return steps + ([levels] if levels else [])
-    return steps + [newton_step(ctx, model.columns, model.coefficients, name="propensity_check")]
+    return steps + newton_steps(ctx, model.columns, model.coefficients, name="propensity_check")

@@ -18,7 +18,7 @@ from sqlglot import exp
 
 from sqlmatch.columns import stat
 from sqlmatch.dialects import BUILDING_SUFFIX
-from sqlmatch.engines.base import Engine, QueryResult
+from sqlmatch.engines.base import Engine, QueryResult, merged
 from sqlmatch.errors import DataError, SpecError
 from sqlmatch.matching import method_for
 from sqlmatch.plan import TIME_ZONE, Plan
@@ -342,6 +342,12 @@ def _pause_for_tests(step: str) -> None:
         time.sleep(300)
 
 
+def _part_follows(plan: Plan, i: int) -> bool:
+    """Step i is part of a split query whose next part is the next step: its refusals wait for it."""
+    base = plan.steps[i].part_of or plan.steps[i].name
+    return i + 1 < len(plan.steps) and plan.steps[i + 1].part_of == base
+
+
 def _run_steps(plan: Plan, spec: Spec, engine: Engine, out: RunOutput, progress: Progress) -> None:
     """Run the plan's steps not yet run (by name), collecting query results into `out`."""
     total = len(plan.steps)
@@ -373,17 +379,22 @@ def _run_steps(plan: Plan, spec: Spec, engine: Engine, out: RunOutput, progress:
                     break
         else:
             (statement,) = step.statements
-            out.results[step.name] = engine.fetch(statement)
-            check_step(spec, step.name, out.results)
+            fetched = engine.fetch(statement)
+            if step.part_of is None:
+                out.results[step.name] = fetched
+            else:  # a later part of a split query: its columns join part 1's row
+                out.results[step.part_of] = merged([out.results[step.part_of], fetched], step.part_of)
+            if not _part_follows(plan, i):
+                check_step(spec, step.part_of or step.name, out.results)
         out.timings[step.name] = time.perf_counter() - t0
-        rows = written if step.kind == "table" else (len(out.results[step.name].rows) if step.kind == "query" else None)
+        rows = written if step.kind == "table" else (len(fetched.rows) if step.kind == "query" else None)
         progress.step(i, total, step.name, out.timings[step.name], rows=rows, fetched=step.kind == "query")
 
 
 def fit_propensity(spec: Spec, engine: Engine, out: RunOutput, progress: Progress):
     """Newton-Raphson in the warehouse: one aggregate query per step (see propensity.py)."""
     from sqlmatch import propensity
-    from sqlmatch.propensity import newton_statement
+    from sqlmatch.propensity import evaluate_newton, newton_statements
 
     levels: dict[str, list[str]] = {}
     if "categorical_levels" in out.results:
@@ -395,7 +406,7 @@ def fit_propensity(spec: Spec, engine: Engine, out: RunOutput, progress: Progres
 
     def fit(cols, start=None):
         return propensity.newton(
-            lambda beta: engine.fetch(newton_statement(spec, engine.dialect, cols, beta)).one(),
+            lambda beta: evaluate_newton(engine.fetch, newton_statements(spec, engine.dialect, cols, beta)),
             cols,
             ridge=spec.propensity.ridge,
             max_iterations=spec.propensity.max_iterations,
@@ -405,7 +416,7 @@ def fit_propensity(spec: Spec, engine: Engine, out: RunOutput, progress: Progres
     if spec.propensity.terms == "stepwise":
         model = propensity.stepwise(
             fit,
-            lambda cols, beta, pairs: engine.fetch(newton_statement(spec, engine.dialect, cols, beta, pairs)).one(),
+            lambda cols, beta, pairs: evaluate_newton(engine.fetch, newton_statements(spec, engine.dialect, cols, beta, pairs)),
             columns,
             progress,
         )

@@ -179,3 +179,22 @@ def test_bias_corrected_estimate_equals_the_per_unit_form(runs, name, outcome):
     assert "bias-corrected" in effect.estimator
     # the interval is centred on the corrected estimate
     assert (effect.ci_low + effect.ci_high) / 2 == pytest.approx(expected, rel=1e-9, abs=1e-12)
+
+
+@pytest.mark.parametrize("distance", ["score", "mahalanobis"])
+def test_variance_sorts_the_score_distance_units_by_their_integer_rank(distance):
+    """On the score distance the variance step orders each group by the units table's integer score_rank
+    (the order of the score at 10 decimal places and the key, stored by the units step) instead of sorting
+    by the decimal score; the Mahalanobis route, whose units table has no such rank, reads the scores."""
+    import sqlglot
+    from sqlglot import exp
+
+    from sqlmatch.plan import build_plan
+    from test_neighbours import STAND_IN_MODEL
+
+    spec = parse_spec(demo_raw("unused.duckdb", "mv_plan", distance=distance))
+    step = build_plan(spec, "duckdb", model=STAND_IN_MODEL).step("matching_variance")
+    (query,) = [sql for sql in step.statements if "LAG(" in sql.upper()]
+    orders = {o.sql("duckdb") for w in sqlglot.parse_one(query, read="duckdb").find_all(exp.Window) for o in w.args["order"].expressions}
+    assert orders == ({"u.score_rank", "u.unit_key"} if distance == "score" else {"u.score", "u.unit_key"})
+    assert ("nearest_neighbour_units" in query) == (distance == "score")

@@ -79,7 +79,7 @@ CONFIGS = {
     "robust": {"distance": "rank_mahalanobis", "block_on": ["home_district"]},
     "greedy": {"reuse_controls": False},
 }
-TABLES = ("scores", "nearest_neighbour_caliper", "nearest_neighbour_units", "measures", "match_weights")
+TABLES = ("scores", "nearest_neighbour_caliper", "nearest_neighbour_units", "measures", "match_weights", "weighted_units")
 
 
 @pytest.fixture(scope="module")
@@ -227,6 +227,67 @@ def test_logit_matches_equal_brute_force_nearest_neighbours(runs, name):
     n_slots = {int(t.unit_key[i]): min(k, int(t_ok[i].sum())) for i in range(len(t)) if t_ok[i].any()}
     assert summary["n_strata"] == len(set(n_slots.values()))
     assert summary["n_cells_dropped"] == summary["n_treated"] - len(treated)
+
+
+@pytest.mark.parametrize("name", ["logit", "logit_blocks_k3"])
+def test_control_group_counts_distinct_control_scores(runs, name):
+    """The units table's control_group, recomputed in pandas from the scores at 10 decimal places: for a
+    control, the index of its score among the distinct control scores of its block (1-based); for a
+    treated unit, how many distinct control scores of its block are at or below its own."""
+    spec, _, tables = runs[name]
+    units = tables["nearest_neighbour_units"]
+    exact = list(spec.matching.block_on)
+    scores = tables["scores"].dropna(subset=["score"]).copy()
+    scores["compared"] = np.rint(scores.score.to_numpy() * 1e10).astype(np.int64)  # 10 decimal places, as integers
+    for f in exact:
+        scores[f] = tables["measures"].set_index("unit_key").loc[scores.unit_key, f].fillna("(missing)").to_numpy()
+    blocks = scores.groupby(exact) if exact else [((), scores)]
+    expected = {}
+    for _, b in blocks:
+        distinct = np.unique(b[b.treated == 0].compared.to_numpy())
+        side = np.where(b.treated.to_numpy() == 0, "left", "right")
+        for key, value, how in zip(b.unit_key, b.compared, side):
+            expected[int(key)] = int(np.searchsorted(distinct, value, side=how)) + (1 if how == "left" else 0)
+    got = dict(zip(units.unit_key.astype(int), units.control_group.astype(int)))
+    assert len(got) == len(expected) > 1000
+    assert got == expected
+    assert units[units.treated == 0].control_group.min() == 1
+
+
+def test_grouped_units_step_has_one_window():
+    """With controls reused on the score, the units step sorts once: its window functions (the running
+    count over the treated units and the distinct control scores, and the place in that order) share one
+    PARTITION BY / ORDER BY; it had three orders (a ROW_NUMBER per score, the score order of every unit,
+    the running count)."""
+    import sqlglot
+    from sqlglot import exp
+
+    spec = parse_spec(demo_raw("unused.duckdb", "nearest_neighbour_compile", distance="score", block_on=["home_district"], reuse_controls=True))
+    plan = build_plan(spec, "duckdb", model=STAND_IN_MODEL)
+    (create,) = [sql for sql in plan.step("nearest_neighbour_units").statements if sql.lstrip().upper().startswith("CREATE")]
+    windows = list(sqlglot.parse_one(create, read="duckdb").find_all(exp.Window))
+    orders = {(w.args["partition_by"] and tuple(p.sql() for p in w.args["partition_by"]), w.args["order"].sql()) for w in windows}
+    assert len(windows) == 2 and len(orders) == 1
+
+
+@pytest.mark.parametrize("name", list(CONFIGS))
+def test_weighted_units_weight_is_the_sum_of_match_weights(runs, name):
+    """Each unit's match__weight in weighted_units is the sum of its match_weights rows (pandas), NULL when it
+    has none; with one control slot the matching writes at most one row per unit, so the step joins the rows
+    as they are (no GROUP BY), and with k = 3 it sums them."""
+    spec, _, tables = runs[name]
+    mw, wu = tables["match_weights"], tables["weighted_units"]
+    k = spec.matching.controls_per_treated
+    if k == 1:
+        assert mw.unit_key.is_unique
+    summed = mw.groupby("unit_key").weight.sum()
+    got = wu.set_index("unit_key").match__weight
+    assert len(got) == len(tables["measures"]) and got.index.is_unique
+    assert got.isna().sum() == len(got) - len(summed)
+    np.testing.assert_allclose(got.loc[summed.index].to_numpy(), summed.to_numpy(), rtol=1e-12)
+    plan = build_plan(spec, "duckdb", model=STAND_IN_MODEL)
+    (create,) = [sql for sql in plan.step("weighted_units").statements if sql.lstrip().upper().startswith("CREATE")]
+    assert ("GROUP BY" in create.upper()) == (k > 1)
 
 
 def test_greedy_without_replacement_equals_greedy_by_distance(runs):
@@ -494,7 +555,7 @@ def test_plan_with_reused_controls_compiles_for_every_dialect(distance):
         plan = build_plan(spec, dialect, model=STAND_IN_MODEL)
         units = "\n".join(plan.step("nearest_neighbour_units").statements)
         matches = "\n".join(plan.step("nearest_neighbour_matches").statements)
-        assert "controls_through" in units and "n_within" in matches, dialect
+        assert "ROWS BETWEEN UNBOUNDED PRECEDING AND CURRENT ROW" in units.upper() and "n_within" in matches, dialect
         assert ("control_group" in units) == (distance == "score"), dialect
 
 

@@ -26,6 +26,13 @@ class QueryResult:
         return dict(zip(self.columns, self.rows[0]))
 
 
+def merged(parts: list[QueryResult], what: str = "query") -> QueryResult:
+    """The parts of one query split under the SELECT-list limit, as one result (columns.merge_parts)."""
+    from sqlmatch.columns import merge_parts
+
+    return QueryResult(*merge_parts([(p.columns, p.rows) for p in parts], what))
+
+
 class Engine(ABC):
     dialect: str = ""
     transactional_ddl: bool = False  # DROP/ALTER can run inside BEGIN ... COMMIT

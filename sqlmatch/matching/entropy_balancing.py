@@ -221,12 +221,32 @@ def targets_statement(spec, dialect: str, moments) -> str:
     ).statements[0]
 
 
-def newton_statement(spec, dialect: str, moments, lam) -> str:
-    """The aggregate query of one Newton step of the dual at `lam`."""
+def newton_statements(spec, dialect: str, moments, lam) -> list[str]:
+    """The aggregate queries of one Newton step of the dual at `lam`: one, or parts of at most
+    columns.MAX_SUMS_PER_QUERY entries (the s2 entries split; every part returns top and lam,
+    part 1 the count, s0 and s1), whose rows `evaluate_newton` merges."""
     ctx = _context(spec, dialect)
-    return ctx.query_step(
-        "balancing_newton", "entropy_balancing_newton", reads=[], purpose="", moments=list(moments), lam=[float(b) for b in lam], measures_table=ctx.table("measures")
-    ).statements[0]
+    p = len(moments)
+    parts = col.split_sums(col.upper_pairs(p), first_fixed=2 * p + 4, later_fixed=p + 1)
+    steps = ctx.query_parts(
+        "balancing_newton", "entropy_balancing_newton", reads=[], purpose="",
+        parts=[dict(pairs=part, head=k == 1, part=k) for k, part in enumerate(parts, 1)], n_parts=len(parts),
+        moments=list(moments), lam=[float(b) for b in lam], measures_table=ctx.table("measures"),
+    )
+    return [s.statements[0] for s in steps]
+
+
+def newton_statement(spec, dialect: str, moments, lam) -> str:
+    """The one query of a Newton step of the dual at `lam` (a dual small enough for one)."""
+    (statement,) = newton_statements(spec, dialect, moments, lam)
+    return statement
+
+
+def evaluate_newton(fetch, statements: list[str]) -> dict:
+    """One Newton step's row from its queries (`fetch(sql)` returns a QueryResult), parts merged."""
+    from sqlmatch.engines.base import merged
+
+    return merged([fetch(s) for s in statements], "entropy_balancing_newton").one()
 
 
 def fit(spec, engine, out, progress) -> BalancingFit:
@@ -248,7 +268,7 @@ def fit(spec, engine, out, progress) -> BalancingFit:
         raise DataError("matching.on", "every matching feature is constant and equal in both groups: there is nothing to balance.", "match on features that vary.")
     p = len(moments)
     try:
-        sol = solve(lambda lam: dual_value(engine.fetch(newton_statement(spec, engine.dialect, moments, lam)).one(), p), p, spec.matching.balancing_max_steps, TOLERANCE)
+        sol = solve(lambda lam: dual_value(evaluate_newton(engine.fetch, newton_statements(spec, engine.dialect, moments, lam)), p), p, spec.matching.balancing_max_steps, TOLERANCE)
     except BalanceFailed as err:
         raise _failed(spec, moments, err) from None
     gaps = np.abs(sol.dual.gradient) * np.array([c.scale for c in moments])
@@ -344,16 +364,53 @@ def steps(ctx, fitted):
             weighted_table=ctx.table("weighted_units"),
             **({} if ctx.names_only else dict(moments=list(fitted.moments))),
         ),
-        ctx.query_step(
-            "balancing_sandwich",
-            "entropy_balancing_sandwich",
-            reads=[ctx.display("weighted_units")],
-            purpose="Sums for the weighted effect on the treated and its sandwich variance, which counts the estimated weights and targets (one row).",
-            terms=terms(ctx.spec),
-            weighted_table=ctx.table("weighted_units"),
-            **({} if ctx.names_only else dict(moments=list(fitted.moments))),
-        ),
-    ]
+    ] + sandwich_steps(ctx, fitted, terms(ctx.spec))
+
+
+@dataclass(frozen=True)
+class SandwichSum:
+    """One sum of entropy_balancing_sandwich: of the moments (key None: n_treated, w, w2; per moment
+    i tz, wz, w2z; per pair i <= j tzz, wzz, w2zz), or of term k (column prefix `key`) for group
+    t / c (v, u, uu, uv, vv, w2u, w2v; per moment j uz, vz, w2uz, w2vz)."""
+
+    what: str
+    i: int | None = None
+    j: int | None = None
+    k: int | None = None
+    key: str | None = None
+    group: str = ""
+
+
+def sandwich_sums(p: int, study_terms) -> list[SandwichSum]:
+    """Every sum of the sandwich query, in its order (columns.balancing, balancing_term)."""
+    out = [SandwichSum(w) for w in ("n_treated", "w", "w2")]
+    for i in range(p):
+        out += [SandwichSum(w, i) for w in ("tz", "wz", "w2z")]
+        for j in range(i, p):
+            out += [SandwichSum(w, i, j) for w in ("tzz", "wzz", "w2zz")]
+    for k, o in enumerate(study_terms):
+        out += [SandwichSum(w, k=k, key=o.key, group="t") for w in ("v", "u", "uu", "uv", "vv")]
+        out += [SandwichSum(w, k=k, key=o.key, group="c") for w in ("v", "u", "uu", "uv", "vv", "w2u", "w2v")]
+        for j in range(p):
+            out += [SandwichSum(w, j=j, k=k, key=o.key, group=g) for g, w in (("t", "uz"), ("t", "vz"), ("c", "uz"), ("c", "vz"), ("c", "w2uz"), ("c", "w2vz"))]
+    return out
+
+
+def sandwich_steps(ctx, fitted, study_terms) -> list:
+    """The sandwich query, in parts of at most columns.MAX_SUMS_PER_QUERY sums (one part when it fits)."""
+    moments = [] if ctx.names_only else list(fitted.moments)
+    parts = col.split_sums(sandwich_sums(len(moments), study_terms))
+    return ctx.query_parts(
+        "balancing_sandwich",
+        "entropy_balancing_sandwich",
+        reads=[ctx.display("weighted_units")],
+        purpose="Sums for the weighted effect on the treated and its sandwich variance, which counts the estimated weights and targets (one row).",
+        parts=[dict(sums=part, part=k) for k, part in enumerate(parts, 1)],
+        n_parts=len(parts),
+        terms=study_terms,
+        weighted_table=ctx.table("weighted_units"),
+        **({} if ctx.names_only else dict(moments=moments)),
+    )
 
 
 # ---------------------------------------------------------------- results

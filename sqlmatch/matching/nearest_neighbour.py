@@ -317,6 +317,13 @@ def steps(ctx, model):
     return out
 
 
+def one_weight_row_per_unit(spec) -> bool:
+    """With one control slot (k = 1) every matched treated unit is in stratum 1, so match_weights holds
+    one row per treated unit and one per control (its shares summed over the treated units it serves,
+    or its one pair): at most one row per unit, which weighted_units then joins without summing."""
+    return spec.matching.controls_per_treated == 1
+
+
 def check_candidates(spec, result) -> None:
     """Refuse, before the candidate join, a study that cannot or should not run it (the runner calls
     this on the result of the `candidate_pairs` step)."""
@@ -449,4 +456,5 @@ METHOD = MatchingMethod(
     warnings=warnings,
     groups_word="matched sets",
     outcome_steps=nn_variance.steps,
+    one_weight_row_per_unit=one_weight_row_per_unit,
 )

@@ -1,8 +1,11 @@
 """Nearest-neighbour matching with replacement: the plan step whose sums give the Abadie & Imbens
 (2006, Econometrica 74(1):235) variance of the effect on the treated, which counts how often each
 control is used (see sql_templates/nearest_neighbour_variance.sql.j2 and
-estimators/matching_variance.py). It reads only <study>_scores and <study>_weighted_units, so it
-does not depend on how the matches were found."""
+estimators/matching_variance.py). It reads the units with a score and <study>_weighted_units, so it
+does not depend on how the matches were found: on the score distance (the grouped search) the units
+come from <study>_nearest_neighbour_units, whose integer score_rank orders them as the score at 10
+decimal places and the unit key do (a sort on integers, not on the decimal score); otherwise from
+<study>_scores."""
 
 from __future__ import annotations
 
@@ -102,17 +105,22 @@ def steps(ctx, outcomes) -> list:
                 weighted_table=ctx.table("weighted_units"),
             )
         )
+    from sqlmatch.matching import nearest_neighbour  # imports this module
+
+    # the grouped search (with replacement on the score) stored an integer score order with the units
+    ranked = nearest_neighbour.search_route(m) == "sorted"
     return out + [
         ctx.query_step(
             STEP,
             "nearest_neighbour_variance",
-            reads=[ctx.display("scores"), ctx.display("weighted_units")],
+            reads=[ctx.display("nearest_neighbour_units" if ranked else "scores"), ctx.display("weighted_units")],
             purpose="Abadie-Imbens variance sums: squared matching weights (times each control is used) times conditional "
             "variances estimated by matching each unit to its nearest unit of the same group.",
             exact=list(m.block_on),
             variables=vs,
             products=ps,
             scores_table=ctx.table("scores"),
+            ranked_units=ctx.table("nearest_neighbour_units") if ranked else None,
             weighted_table=ctx.table("weighted_units"),
         )
     ]

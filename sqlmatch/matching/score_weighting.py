@@ -124,19 +124,16 @@ def steps(ctx, model):
             **limits,
         ),
     ]
-    out.append(
-        ctx.query_step(
-            "weighting_sandwich",
-            "score_weighting_sandwich",
-            reads=[ctx.display("weighted_units"), ctx.display("scores")],
-            purpose="Sums for the weighted effect on the treated and its sandwich variance, which counts the estimated propensity score (one row).",
-            columns=[] if model is None else model.columns,
-            terms=terms(spec),
-            adjust=False,
-            **tables,
-            level=None,
-            **limits,
-        )
+    design = [] if model is None else model.columns
+    out += sandwich_steps(
+        ctx,
+        "weighting_sandwich",
+        purpose="Sums for the weighted effect on the treated and its sandwich variance, which counts the estimated propensity score (one row).",
+        columns=design,
+        terms=terms(spec),
+        level=None,
+        tables=tables,
+        limits=limits,
     )
     if spec.regression_adjustment and model is not None:
         chunks = adjustment_sums(model.columns, terms(spec))
@@ -160,25 +157,69 @@ def steps(ctx, model):
 
     for g in spec.subgroups:
         # each level's weighted means and their sandwich sums (the plain weighted effect per level)
-        out.append(
-            ctx.query_step(
-                f"weighting_subgroup_{g.name}",
-                "score_weighting_sandwich",
-                reads=[ctx.display("weighted_units"), ctx.display("scores")],
-                purpose=f"Sums for the weighted effect and its sandwich variance per level of subgroup {g.name!r} ({subgroup_text(g)}).",
-                columns=[] if model is None else model.columns,
-                terms=terms(spec),
-                adjust=False,
-                **tables,
-                level=subgroup_level(g),
-                **limits,
-            )
+        out += sandwich_steps(
+            ctx,
+            f"weighting_subgroup_{g.name}",
+            purpose=f"Sums for the weighted effect and its sandwich variance per level of subgroup {g.name!r} ({subgroup_text(g)}).",
+            columns=design,
+            terms=terms(spec),
+            level=subgroup_level(g),
+            tables=tables,
+            limits=limits,
         )
     return out
 
 
-# PostgreSQL refuses a SELECT list longer than 1,664 entries; a margin below it
-MAX_SUMS_PER_QUERY = 1500
+@dataclass(frozen=True)
+class SandwichSum:
+    """One sum of score_weighting_sandwich: an entry (i, j) of the information (what = h) or of the
+    score's products (rr), or for term k (its column prefix `key`) and group t / c a weighted sum
+    of u, v and their products (v, u, uu, uv, vv), or of them times x_j (ru, rv, du, dv)."""
+
+    what: str
+    i: int | None = None
+    j: int | None = None
+    k: int | None = None
+    key: str = ""
+    group: str = ""
+
+
+def sandwich_sums(columns, study_terms) -> list[SandwichSum]:
+    """Every sum of the sandwich query in its order (columns.weighting, information, score_products)."""
+    from sqlmatch import columns as col
+
+    out = []
+    for i, j in col.upper_pairs(len(columns)):
+        out += [SandwichSum("h", i, j), SandwichSum("rr", i, j)]
+    for k, o in enumerate(study_terms):
+        for g in ("t", "c"):
+            out += [SandwichSum(w, k=k, key=o.key, group=g) for w in ("v", "u", "uu", "uv", "vv")]
+            for j in range(len(columns)):
+                out += [SandwichSum(w, j=j, k=k, key=o.key, group=g) for w in ("ru", "rv", "du", "dv")]
+    return out
+
+
+def sandwich_steps(ctx, name: str, purpose: str, columns, terms, level, tables: dict, limits: dict) -> list:
+    """The sandwich query (one row, or a row per subgroup level), split into parts of at most
+    columns.MAX_SUMS_PER_QUERY entries; every part repeats the subgroup level, part 1 has n_units."""
+    from sqlmatch.columns import split_sums
+
+    keyed = 1 if level else 0
+    parts = split_sums(sandwich_sums(columns, terms), first_fixed=1 + keyed, later_fixed=keyed)
+    return ctx.query_parts(
+        name,
+        "score_weighting_sandwich",
+        reads=[ctx.display("weighted_units"), ctx.display("scores")],
+        purpose=purpose,
+        parts=[dict(sums=part, head=k == 1, part=k) for k, part in enumerate(parts, 1)],
+        n_parts=len(parts),
+        columns=columns,
+        terms=terms,
+        adjust=False,
+        level=level,
+        **tables,
+        **limits,
+    )
 
 
 @dataclass(frozen=True)
@@ -194,7 +235,7 @@ class AdjustmentSum:
 
 def adjustment_sums(columns, study_terms) -> list[list[AdjustmentSum]]:
     """The doubly robust effect's sums (estimators/weighting.AdjustmentSums), in chunks of at most
-    MAX_SUMS_PER_QUERY: per group the four weighted x x' matrices, over the target units two, and per
+    columns.MAX_SUMS_PER_QUERY: per group the four weighted x x' matrices, over the target units two, and per
     mean outcome a u x and a^2 u x per group (ratio outcomes and the difference-in-differences keep
     the plain weighted effect)."""
     from sqlmatch import columns as col
@@ -211,7 +252,7 @@ def adjustment_sums(columns, study_terms) -> list[list[AdjustmentSum]]:
         for g in ("t", "c"):
             for w, what in (("a", "au"), ("aa", "aau")):
                 out += [AdjustmentSum(col.weighting(o.key, g, what, j), g, w, f"u{k}", j) for j in range(p)]
-    return [out[i : i + MAX_SUMS_PER_QUERY] for i in range(0, len(out), MAX_SUMS_PER_QUERY)]
+    return col.split_sums(out)
 
 
 def check_full_fit(spec, result=None) -> None:

@@ -14,7 +14,9 @@ CREATE TABLE "sqlmatch".annual_pass_weighted_units__building AS
 /* Every study unit's features and outcomes with its matching weight: the sum of its weights over
    the matches (a control serving several treated units counts that often); NULL for a unit
    left unmatched. Built once, so the balance, plot and regression steps after it read one narrow
-   table instead of each joining the measures to the matches again. */
+   table instead of each joining the measures to the matches again. Here the matching writes at
+   most one weight row per unit (nearest neighbours with one control slot: one stratum), so that row is the
+   unit's sum and is joined as it is, without summing the weights per unit first. */
 SELECT
   m.unit_key,
   m.treated,
@@ -32,14 +34,7 @@ SELECT
   m.home_district,
   w.weight AS match__weight
 FROM "sqlmatch".annual_pass_measures AS m
-LEFT JOIN (
-  SELECT
-    unit_key,
-    SUM(weight) AS weight
-  FROM "sqlmatch".annual_pass_match_weights
-  GROUP BY
-    unit_key
-) AS w
+LEFT JOIN "sqlmatch".annual_pass_match_weights AS w
   ON w.unit_key = m.unit_key;
 
 BEGIN TRANSACTION;

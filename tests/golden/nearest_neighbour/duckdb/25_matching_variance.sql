@@ -1,7 +1,7 @@
 -- sqlmatch study 'annual_pass', step 25: matching_variance (duckdb)
 -- Abadie-Imbens variance sums: squared matching weights (times each control is used) times conditional variances estimated by matching each unit to its nearest unit of the same group.
 -- kind: returns aggregates to sqlmatch
--- reads: sqlmatch.annual_pass_scores, sqlmatch.annual_pass_weighted_units
+-- reads: sqlmatch.annual_pass_nearest_neighbour_units, sqlmatch.annual_pass_weighted_units
 -- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
 
 SET TimeZone = 'UTC';
@@ -18,13 +18,16 @@ SET TimeZone = 'UTC';
    places, ties to the previous one, the unit key breaking ties in the order). Each product d_a d_b / 2
    of two neighbour differences is summed weighted by w^2 over the matched units, and unweighted over the
    matched units that have a neighbour (a unit alone in its group and block borrows their mean).
+   The units and their order come from the units table of the grouped search, whose score_rank orders each
+   group's units of a block as (score at 10 decimal places, unit key) does: the sort is on two integers.
    One row per group. */
 WITH units AS (
   SELECT
     s.unit_key,
     s.treated,
     COALESCE(s.age_band, '(missing)') AS age_band,
-    CAST(s.score AS DECIMAL(38, 10)) AS score,
+    s.score_compared AS score,
+    s.score_rank,
     CAST(w.post_trips AS DOUBLE) AS v1,
     CAST(w.post_trips - w.pre_trips AS DOUBLE) AS v2,
     CAST(w.post_minutes AS DOUBLE) AS v3,
@@ -37,7 +40,7 @@ WITH units AS (
     CAST(w.pre_active_days AS DOUBLE) AS v10,
     CAST(w.pre_days_since_last AS DOUBLE) AS v11,
     w.match__weight AS weight
-  FROM "sqlmatch".annual_pass_scores AS s
+  FROM "sqlmatch".annual_pass_nearest_neighbour_units AS s
   INNER JOIN "sqlmatch".annual_pass_weighted_units AS w
     ON w.unit_key = s.unit_key
   WHERE
@@ -46,30 +49,30 @@ WITH units AS (
   SELECT
     u.treated,
     u.weight,
-    u.score - LAG(u.score) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score, u.unit_key) AS gap_before,
-    LEAD(u.score) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score, u.unit_key) - u.score AS gap_after,
-    u.v1 - LAG(u.v1) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score, u.unit_key) AS before1,
-    u.v1 - LEAD(u.v1) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score, u.unit_key) AS after1,
-    u.v2 - LAG(u.v2) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score, u.unit_key) AS before2,
-    u.v2 - LEAD(u.v2) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score, u.unit_key) AS after2,
-    u.v3 - LAG(u.v3) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score, u.unit_key) AS before3,
-    u.v3 - LEAD(u.v3) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score, u.unit_key) AS after3,
-    u.v4 - LAG(u.v4) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score, u.unit_key) AS before4,
-    u.v4 - LEAD(u.v4) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score, u.unit_key) AS after4,
-    u.v5 - LAG(u.v5) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score, u.unit_key) AS before5,
-    u.v5 - LEAD(u.v5) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score, u.unit_key) AS after5,
-    u.v6 - LAG(u.v6) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score, u.unit_key) AS before6,
-    u.v6 - LEAD(u.v6) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score, u.unit_key) AS after6,
-    u.v7 - LAG(u.v7) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score, u.unit_key) AS before7,
-    u.v7 - LEAD(u.v7) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score, u.unit_key) AS after7,
-    u.v8 - LAG(u.v8) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score, u.unit_key) AS before8,
-    u.v8 - LEAD(u.v8) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score, u.unit_key) AS after8,
-    u.v9 - LAG(u.v9) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score, u.unit_key) AS before9,
-    u.v9 - LEAD(u.v9) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score, u.unit_key) AS after9,
-    u.v10 - LAG(u.v10) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score, u.unit_key) AS before10,
-    u.v10 - LEAD(u.v10) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score, u.unit_key) AS after10,
-    u.v11 - LAG(u.v11) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score, u.unit_key) AS before11,
-    u.v11 - LEAD(u.v11) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score, u.unit_key) AS after11
+    u.score - LAG(u.score) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score_rank, u.unit_key) AS gap_before,
+    LEAD(u.score) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score_rank, u.unit_key) - u.score AS gap_after,
+    u.v1 - LAG(u.v1) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score_rank, u.unit_key) AS before1,
+    u.v1 - LEAD(u.v1) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score_rank, u.unit_key) AS after1,
+    u.v2 - LAG(u.v2) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score_rank, u.unit_key) AS before2,
+    u.v2 - LEAD(u.v2) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score_rank, u.unit_key) AS after2,
+    u.v3 - LAG(u.v3) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score_rank, u.unit_key) AS before3,
+    u.v3 - LEAD(u.v3) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score_rank, u.unit_key) AS after3,
+    u.v4 - LAG(u.v4) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score_rank, u.unit_key) AS before4,
+    u.v4 - LEAD(u.v4) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score_rank, u.unit_key) AS after4,
+    u.v5 - LAG(u.v5) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score_rank, u.unit_key) AS before5,
+    u.v5 - LEAD(u.v5) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score_rank, u.unit_key) AS after5,
+    u.v6 - LAG(u.v6) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score_rank, u.unit_key) AS before6,
+    u.v6 - LEAD(u.v6) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score_rank, u.unit_key) AS after6,
+    u.v7 - LAG(u.v7) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score_rank, u.unit_key) AS before7,
+    u.v7 - LEAD(u.v7) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score_rank, u.unit_key) AS after7,
+    u.v8 - LAG(u.v8) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score_rank, u.unit_key) AS before8,
+    u.v8 - LEAD(u.v8) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score_rank, u.unit_key) AS after8,
+    u.v9 - LAG(u.v9) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score_rank, u.unit_key) AS before9,
+    u.v9 - LEAD(u.v9) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score_rank, u.unit_key) AS after9,
+    u.v10 - LAG(u.v10) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score_rank, u.unit_key) AS before10,
+    u.v10 - LEAD(u.v10) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score_rank, u.unit_key) AS after10,
+    u.v11 - LAG(u.v11) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score_rank, u.unit_key) AS before11,
+    u.v11 - LEAD(u.v11) OVER (PARTITION BY u.treated, u.age_band ORDER BY u.score_rank, u.unit_key) AS after11
   FROM units AS u
 ), differences AS (
   SELECT

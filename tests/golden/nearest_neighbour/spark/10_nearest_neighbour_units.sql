@@ -18,12 +18,6 @@ CREATE TABLE `sqlmatch`.annual_pass_nearest_neighbour_units__building AS
    unit_seq (Mahalanobis distances only) numbers the units by key; it feeds a multiplicative hash that breaks ties in the
    Mahalanobis distances, so that treated units at the same distance do not all take the same control
    (the one with the lowest key), while the result stays the same on every engine.
-   score_position: the unit's place in its exact block in score order (ties: unit key), and
-   controls_through the number of controls up to and including that place (a running count over the
-   same window as score_position, so both share one sort). For a control it is
-   the control's index in the block's score order; for a treated unit the number of controls below
-   it, so its neighbouring controls in score order have the indices just below and just above it
-   (the score distance finds them by an equality join on that index, never a join of all pairs).
    The window keys are never NULL (the WHERE below); NULLS FIRST is spelled out so that every dialect
    prints the same order (sqlglot cannot print a NULLS LAST running sum for BigQuery).
    score_compared: the score at 10 decimal places, in which score distances are taken, so that
@@ -32,42 +26,101 @@ CREATE TABLE `sqlmatch`.annual_pass_nearest_neighbour_units__building AS
    (score_compared) among the distinct scores of its block's controls, so controls tied in score share it;
    for a treated unit, the number of distinct control scores at or below its own. The k nearest controls
    of a treated unit and every control tied with the k-th lie in the k groups just below and the k just
-   above it (an equality join on the group index, as for controls_through).
+   above it (an equality join on the group index).
+   How: the controls are grouped by (block, score_compared), one row per distinct control score (a hash
+   aggregate); those rows and the treated units, and only those, are put in score order (treated after
+   controls at the same score, then the key: MIN(unit_key) for a group, unique either way), and a running
+   count of the group rows gives each its index and each treated unit the number of distinct control scores
+   at or below its own; each control then takes its group's index by an equality join. So the one sort
+   covers the treated units and the distinct control scores, not every unit. The grouped search reads
+   nothing else of the score order (no score_position, no controls_through here).
+   score_rank: an integer that orders each group's units of a block as (score_compared, unit key) does:
+   control_group for a control (then the key), the treated unit's place in the sort above for a treated
+   unit (a ROW_NUMBER over the same window, so no second sort); matching_variance sorts by it, not by the
+   decimal score.
 */
-WITH placed AS (
+WITH scored AS (
   SELECT
     s.unit_key,
     s.treated,
     COALESCE(s.age_band, '(missing)') AS age_band,
     s.score,
     CAST(s.score AS DECIMAL(24, 10)) AS score_compared,
-    CASE
-      WHEN s.treated = 0
-      AND ROW_NUMBER() OVER (
-        PARTITION BY COALESCE(s.age_band, '(missing)'), s.treated, CAST(s.score AS DECIMAL(24, 10))
-        ORDER BY s.unit_key NULLS LAST
-      ) = 1
-      THEN 1
-      ELSE 0
-    END AS opens_group,
     CAST(FLOOR((
       s.score - k.score_min
-    ) / NULLIF(k.width, 0.0)) AS INT) AS score_bin,
-    ROW_NUMBER() OVER (PARTITION BY COALESCE(s.age_band, '(missing)') ORDER BY s.score, s.unit_key) AS score_position,
-    SUM(CASE WHEN s.treated = 0 THEN 1 ELSE 0 END) OVER (
-      PARTITION BY COALESCE(s.age_band, '(missing)')
-      ORDER BY s.score, s.unit_key
-      ROWS BETWEEN UNBOUNDED PRECEDING AND CURRENT ROW
-    ) AS controls_through
+    ) / NULLIF(k.width, 0.0)) AS INT) AS score_bin
   FROM `sqlmatch`.annual_pass_scores AS s
   CROSS JOIN `sqlmatch`.annual_pass_nearest_neighbour_caliper AS k
   WHERE
     NOT s.score IS NULL AND k.width > 0.0
+), marks AS (
+  SELECT
+    t.unit_key,
+    t.treated,
+    t.age_band,
+    t.score,
+    t.score_compared,
+    t.score_bin
+  FROM scored AS t
+  WHERE
+    t.treated = 1
+  UNION ALL
+  SELECT
+    MIN(c.unit_key) AS unit_key,
+    0 AS treated,
+    c.age_band,
+    MIN(c.score) AS score,
+    c.score_compared,
+    MIN(c.score_bin) AS score_bin
+  FROM scored AS c
+  WHERE
+    c.treated = 0
+  GROUP BY
+    c.age_band,
+    c.score_compared
+), ranked AS (
+  SELECT
+    m.unit_key,
+    m.treated,
+    m.age_band,
+    m.score,
+    m.score_compared,
+    m.score_bin,
+    CAST(SUM(CASE WHEN m.treated = 0 THEN 1 ELSE 0 END) OVER (
+      PARTITION BY m.age_band
+      ORDER BY m.score_compared, m.treated, m.unit_key
+      ROWS BETWEEN UNBOUNDED PRECEDING AND CURRENT ROW
+    ) AS BIGINT) AS control_group,
+    CAST(ROW_NUMBER() OVER (PARTITION BY m.age_band ORDER BY m.score_compared, m.treated, m.unit_key) AS BIGINT) AS mark_position
+  FROM marks AS m
 )
 SELECT
-  p.*,
-  SUM(p.opens_group) OVER (PARTITION BY p.age_band ORDER BY p.score_compared, p.treated, p.unit_key) AS control_group
-FROM placed AS p;
+  r.unit_key,
+  r.treated,
+  r.age_band,
+  r.score,
+  r.score_compared,
+  r.score_bin,
+  r.control_group,
+  r.mark_position AS score_rank
+FROM ranked AS r
+WHERE
+  r.treated = 1
+UNION ALL
+SELECT
+  c.unit_key,
+  c.treated,
+  c.age_band,
+  c.score,
+  c.score_compared,
+  c.score_bin,
+  r.control_group,
+  r.control_group AS score_rank
+FROM scored AS c
+INNER JOIN ranked AS r
+  ON r.treated = 0 AND r.score_compared = c.score_compared AND r.age_band = c.age_band
+WHERE
+  c.treated = 0;
 
 DROP TABLE IF EXISTS `sqlmatch`.annual_pass_nearest_neighbour_units;
 
