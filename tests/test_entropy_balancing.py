@@ -36,9 +36,21 @@ def run_study(db: str, spec):
     return out, results, rows
 
 
-def moment_matrix(rows, spec, variances=False) -> tuple[np.ndarray, list[str]]:
+def term_values(rows, c) -> np.ndarray:
+    """A design column of the score model's stepwise search, computed here from its definition:
+    x, log(1 + max(x, 0)), a level's indicator, or a product of two such."""
+    if c.kind == "product":
+        return term_values(rows, c.factors[0]) * term_values(rows, c.factors[1])
+    if c.kind == "level":
+        return (rows[c.feature].fillna("(missing)") == c.level).to_numpy(float)
+    x = rows[c.feature].to_numpy(float)
+    return np.log1p(np.maximum(x, 0.0)) if c.kind == "log1p" else x
+
+
+def moment_matrix(rows, spec, variances=False, fit=None) -> tuple[np.ndarray, list[str]]:
     """The moment functions from the rows, built here: numeric features, each level but the first
-    (sorted) of a categorical one, and with `variances` (x - enrolled mean)^2 per numeric one."""
+    (sorted) of a categorical one, and with `variances` (x - enrolled mean)^2 per numeric one;
+    with stepwise terms (`fit`), also each term the search added, from its definition."""
     t = rows.treated.to_numpy() == 1
     cols, names, squares = [], [], []
     for name in spec.matching.on:
@@ -55,6 +67,10 @@ def moment_matrix(rows, spec, variances=False) -> tuple[np.ndarray, list[str]]:
             if variances:
                 squares.append((x - x[t].mean()) ** 2)
                 names.append(f"var {name}")
+    for m in fit.moments if fit is not None else ():
+        if m.kind == "term":
+            cols.append(term_values(rows, m.column))
+            names.append(m.label)
     return np.column_stack(cols + squares), names
 
 
@@ -121,19 +137,21 @@ def numpy_sandwich(C, t, w, u, v):
     return theta[0] - theta[1], math.sqrt(V[0, 0] + V[1, 1] - 2 * V[0, 1])
 
 
-def demo_spec(folder, **matching):
+def demo_spec(folder, terms="linear", **matching):
     raw = tomllib.loads(DEMO_SPEC.read_text())
     raw["study"]["database"] = str(folder / "bikeshare.duckdb")
     raw["matching"] = {"method": "entropy_balancing", "on": ["pre_trips", "pre_minutes", "age_band"], **matching}
+    raw["propensity"] = {"terms": terms}
     return parse_spec(raw)
 
 
-@pytest.fixture(scope="module", params=[False, True], ids=["means", "means_and_variances"])
+@pytest.fixture(scope="module", params=[("linear", False), ("linear", True), ("stepwise", False)], ids=["means", "means_and_variances", "stepwise_terms"])
 def demo_balanced(request, demo_dir, tmp_path_factory):
     folder = tmp_path_factory.mktemp("demo_entropy")
     shutil.copyfile(demo_dir / "bikeshare.duckdb", folder / "bikeshare.duckdb")
-    spec = demo_spec(folder, balance_variances=request.param)
-    return (spec, request.param, *run_study(str(folder / "bikeshare.duckdb"), spec))
+    terms, variances = request.param
+    spec = demo_spec(folder, terms=terms, balance_variances=variances)
+    return (spec, variances, *run_study(str(folder / "bikeshare.duckdb"), spec))
 
 
 def test_weights_equal_scipys_solution_of_the_dual(demo_balanced):
@@ -141,7 +159,7 @@ def test_weights_equal_scipys_solution_of_the_dual(demo_balanced):
     (to 1e-6 relative), and the stored weights balance the means (and variances) to 1e-8."""
     spec, variances, out, results, rows = demo_balanced
     t = rows.treated.to_numpy() == 1
-    C, names = moment_matrix(rows, spec, variances)
+    C, names = moment_matrix(rows, spec, variances, out.model)
     w = rows.match__weight.to_numpy(float)
     expected = scipy_weights(C, t)
     np.testing.assert_allclose(w[~t], expected, rtol=1e-6)
@@ -172,7 +190,7 @@ def test_effect_and_sandwich_equal_numpys_stacked_equations(demo_balanced, outco
     per-unit estimating equations, the Jacobian by finite differences."""
     spec, variances, out, results, rows = demo_balanced
     t = rows.treated.to_numpy() == 1
-    C, _ = moment_matrix(rows, spec, variances)
+    C, _ = moment_matrix(rows, spec, variances, out.model)
     if outcome == "fare_per_trip":
         u, v = rows.fare_per_trip__num.to_numpy(float), rows.fare_per_trip__den.to_numpy(float)
     elif outcome == "post_trips__did":
@@ -463,3 +481,58 @@ def test_compile_says_the_method_runs_with_sqlmatch_run(tmp_path, capsys, schedu
     err = capsys.readouterr().err
     assert len(err.splitlines()) == 1 and "matching.method" in err and "sqlmatch run" in err and "model.json" not in err
     assert not sql.exists()
+
+
+def test_stepwise_terms_are_the_score_models_and_are_balanced(demo_balanced, demo_dir, tmp_path):
+    """With `[propensity] terms = "stepwise"` the balanced moments are matching.on's plus exactly
+    the terms the propensity model's stepwise search adds for score_weighting on the same data
+    (Imbens & Rubin 2015, 13.3), and the weights reach their enrolled means (to 1e-8, numpy)."""
+    spec, variances, out, results, rows = demo_balanced
+    if spec.propensity.terms != "stepwise":
+        pytest.skip("the linear fixtures balance matching.on only")
+    terms = [m for m in out.model.moments if m.kind == "term"]
+    assert terms, "the search added no term on the demo data"
+    shutil.copyfile(demo_dir / "bikeshare.duckdb", tmp_path / "bikeshare.duckdb")
+    raw = tomllib.loads(DEMO_SPEC.read_text())
+    raw["study"]["database"] = str(tmp_path / "bikeshare.duckdb")
+    raw["matching"] = {"method": "score_weighting", "on": list(spec.matching.on)}
+    weighting = parse_spec(raw)
+    with DuckDBEngine(str(tmp_path / "bikeshare.duckdb")) as engine:
+        model = run_plan(build_plan(weighting, "duckdb"), weighting, engine).model
+    added = [c for c in model.columns if c.kind in ("log1p", "product")]
+    assert [m.column for m in terms] == added
+    assert [t["term"] for t in out.model.added_terms] == [c["term"] for c in model.selection]
+    t = rows.treated.to_numpy() == 1
+    w = rows.match__weight.to_numpy(float)
+    for m in terms:
+        x = term_values(rows, m.column)
+        assert abs(np.average(x[~t], weights=w[~t]) - x[t].mean()) < 1e-8 * max(1.0, x.std()), m.label
+    words = results.design["balancing"]
+    assert words["terms"] == "stepwise" and [a["term"] for a in words["added_terms"]] == [m.label for m in terms]
+
+
+def test_an_added_term_out_of_reach_is_left_out_but_a_feature_is_refused():
+    """A term the stepwise search added whose enrolled mean lies outside the non-enrolled units'
+    range is left out (and named); a matching.on feature in that state is refused."""
+    from sqlmatch import columns as col
+    from sqlmatch.matching.entropy_balancing import Moment, standardised
+    from sqlmatch.propensity import DesignColumn
+
+    x = DesignColumn(name="pre_trips", kind="numeric", feature="pre_trips")
+    term = Moment("pre_trips", "term", column=DesignColumn(name="pre_trips__sq", kind="product", factors=(x, x)))
+    moments = [Moment("pre_trips", "numeric"), term]
+    row = {col.balancing("n_treated"): 10, col.balancing("n_control"): 20}
+    values = {  # moment 0 reachable (treated mean 5 inside [0, 10]); moment 1's treated mean 120 above the controls' 100
+        0: dict(present=30, t_sum=50, t_sumsq=300, c_sum=100, c_sumsq=700, c_min=0, c_max=10, t_min=1, t_max=9),
+        1: dict(present=30, t_sum=1200, t_sumsq=150000, c_sum=700, c_sumsq=40000, c_min=0, c_max=100, t_min=100, t_max=144),
+    }
+    for k, v in values.items():
+        row.update({col.balancing(what, k): value for what, value in v.items()})
+    spec = type("S", (), {"matching": type("M", (), {"balance_variances": False})()})()
+    kept, left_out, n_t, n_c = standardised(spec, moments, row)
+    assert [m.kind for m in kept] == ["numeric"] and (n_t, n_c) == (10, 20)
+    assert len(left_out) == 1 and "(pre_trips)^2" in left_out[0] and "stepwise" in left_out[0]
+    row[col.balancing("t_sum", 0)] = 150  # the feature's own mean, 15, above the controls' maximum 10
+    with pytest.raises(DataError) as err:
+        standardised(spec, moments, row)
+    assert err.value.key == "matching.on"

@@ -97,11 +97,16 @@ def test_score_method_plan_matches_golden(spec, method, dialect, update_golden, 
 
 
 def entropy_plan(dialect: str):
-    """The demo study with entropy balancing on means and variances, compiled with a fixed fit
+    """The demo study with entropy balancing on means, two stepwise terms and a variance, compiled with a fixed fit
     (coefficients made up for the golden files), and the statements of its fit: the targets and
     one Newton step of the dual."""
     from sqlmatch.matching.entropy_balancing import BalancingFit, Moment, newton_statement, targets_statement
     from sqlmatch.plan import build_plan
+    from sqlmatch.propensity import DesignColumn
+
+    # two terms as the stepwise search (the default propensity.terms) adds them
+    LOG_TRIPS = DesignColumn("log1p_pre_trips", "log1p", feature="pre_trips")
+    AGE_LEVEL = DesignColumn("age_band__l1", "level", feature="age_band", level="25-34")
 
     raw = tomllib.loads(DEMO_SPEC.read_text())
     raw["matching"] = {"method": "entropy_balancing", "on": ["pre_trips", "pre_minutes", "age_band"], "balance_variances": True}
@@ -110,12 +115,14 @@ def entropy_plan(dialect: str):
         Moment("pre_trips", "numeric", centre=7.25, scale=6.5),
         Moment("pre_minutes", "numeric", centre=105.0, scale=96.5),
         Moment("age_band", "level", level="25-34", centre=0.375, scale=0.5),
+        Moment("pre_trips", "term", column=LOG_TRIPS, centre=1.9, scale=0.8),
+        Moment("age_band", "term", column=DesignColumn("age_band__l1__x__log1p_pre_trips", "product", factors=(AGE_LEVEL, LOG_TRIPS)), centre=0.7, scale=0.9),
         Moment("pre_trips", "square", mean=7.25, centre=52.0, scale=60.0),
     )
-    fit = BalancingFit(moments=moments, lam=(0.5, -0.125, 0.25, -0.0625), log_normaliser=2.5, steps=6, evaluations=7, max_gap=1e-12,
+    fit = BalancingFit(moments=moments, lam=(0.5, -0.125, 0.25, 0.375, -0.25, -0.0625), log_normaliser=2.5, steps=6, evaluations=7, max_gap=1e-12,
                        max_share=0.01, effective_controls=2500.0, n_treated=426, n_control=4680)
     extra = {
-        "fit_targets.sql": targets_statement(spec, dialect, [Moment("pre_trips", "numeric"), Moment("pre_minutes", "numeric"), Moment("age_band", "level", level="25-34")]) + ";\n",
+        "fit_targets.sql": targets_statement(spec, dialect, [Moment(m.feature, m.kind, level=m.level, column=m.column) for m in moments if m.kind != "square"]) + ";\n",
         "fit_newton_step.sql": newton_statement(spec, dialect, moments, fit.lam) + ";\n",
     }
     return build_plan(spec, dialect, model=fit), extra

@@ -15,6 +15,15 @@ ours):
     enrolled units' variance, divisor n).
   * matching.balancing_max_steps = 50: Newton steps before the constraints count as unreachable.
 
+Which functions of the features are balanced follows `[propensity] terms`: with "stepwise" (the
+default) the propensity model's stepwise search (propensity.stepwise, Imbens & Rubin 2015, 13.3) is
+run on the features first and every term it adds (log(1 + x), squares, products) is balanced too,
+beside the means of matching.on; with "linear" only those means. Zhao & Percival (2017, Journal of
+Causal Inference 5(1)) show the weights are consistent when the odds of enrolment are log-linear in
+the balanced terms or the outcome is linear in them: the means of matching.on alone left the
+simulated confounding (benchmarks/RESULTS_calibration_entropy.md, 10-89% coverage). A term the
+search adds whose target the weights cannot reach is left out, and the report says so.
+
 A target outside the controls' range, or (jointly) outside their convex hull, cannot be met: the
 run is refused naming matching.on and the feature. The effect's variance is the sandwich of the
 stacked estimating equations (entropy_balancing_sandwich), which counts the estimated weights and
@@ -45,14 +54,19 @@ class Moment:
     units' mean of c) and `scale` the controls' spread of c; the SQL works with (c - centre) / scale."""
 
     feature: str
-    kind: str  # numeric | level | square
+    kind: str  # numeric | level | square | term (a propensity.DesignColumn the stepwise search added)
     level: str | None = None
     mean: float | None = None  # square: the enrolled units' mean of the feature
     centre: float = 0.0
     scale: float = 1.0
+    column: object | None = None  # term: the design column (log1p or product), rendered as the score model does
 
     @property
     def label(self) -> str:
+        if self.kind == "term":
+            from sqlmatch.propensity import describe_column
+
+            return describe_column(self.column)
         if self.kind == "level":
             return f"{self.feature} = {self.level!r}"
         if self.kind == "square":
@@ -81,6 +95,9 @@ class BalancingFit:
     n_treated: int
     n_control: int
     left_out: tuple[str, ...] = ()  # moments with nothing to balance (constant and equal; a 0/1 feature's variance), and why
+    terms: str = "linear"  # propensity.terms: "stepwise" balances the terms its search added too
+    added_terms: tuple[dict, ...] = ()  # the search's additions, as propensity.stepwise records them (term, order, statistic)
+    unreachable: tuple[str, ...] = ()  # added terms left out because the weights could not reach their targets
 
 
 # ---------------------------------------------------------------- options
@@ -128,7 +145,32 @@ def first_moments(spec, levels: dict[str, list[str]]) -> list[Moment]:
 
 
 def categorical_on(spec) -> list[str]:
-    return [n for n in spec.matching.on if spec.feature(n).categorical]
+    """The categorical features whose levels the fit needs: of matching.on, and with stepwise terms
+    of the propensity features the search runs on."""
+    names = list(spec.matching.on) + (list(spec.propensity.features) if spec.propensity.terms == "stepwise" else [])
+    return [n for n in dict.fromkeys(names) if spec.feature(n).categorical]
+
+
+def _term_feature(c) -> str:
+    """The feature a design column is built from (a product's first factor's): errors name it."""
+    while c.kind == "product":
+        c = c.factors[0]
+    return c.feature
+
+
+def searched_terms(spec, engine, out, progress, first: list[Moment]) -> tuple[list[Moment], tuple[dict, ...]]:
+    """Run the propensity model's stepwise search (the runner's fit, on the propensity_cells table)
+    and return its columns beyond the first moments, in the order it added them, as term moments."""
+    from sqlmatch.runner import fit_propensity
+
+    model = fit_propensity(spec, engine, out, progress)
+    have = {(m.kind, m.feature, m.level) for m in first}
+    added = [
+        Moment(feature=_term_feature(c), kind="term", column=c)
+        for c in model.columns
+        if c.kind != "intercept" and (c.kind, c.feature, c.level) not in have
+    ]
+    return added, tuple(model.selection or ())
 
 
 def _fix(feature: str) -> str:
@@ -163,8 +205,14 @@ def standardised(spec, moments: list[Moment], row: dict) -> tuple[list[Moment], 
             if f("t_max") - f("t_min") <= spread and abs(target - lo) <= spread:
                 left_out.append(f"{c.label} (constant, equal in both groups)")
                 continue
+            if c.kind == "term":
+                left_out.append(f"{c.label} (added by the stepwise search; constant among the non-enrolled units)")
+                continue
         if not lo + spread < target < hi - spread:
             where = "equals the edge of" if lo - spread <= target <= hi + spread else "lies outside"
+            if c.kind == "term":  # added by the stepwise search, not asked for: leave it out and say so
+                left_out.append(f"{c.label} (added by the stepwise search; the enrolled mean {target:.6g} {where} the non-enrolled units' range)")
+                continue
             raise DataError(
                 "matching.on",
                 f"entropy balancing cannot reach the enrolled units' mean of {c.label} ({target:.6g}): it {where} the range of the "
@@ -262,15 +310,25 @@ def fit(spec, engine, out, progress) -> BalancingFit:
             levels.setdefault(r["feature"], []).append(str(r["level"]))
     levels = {k: sorted(v) for k, v in levels.items()}
     first = first_moments(spec, levels)
-    row = engine.fetch(targets_statement(spec, engine.dialect, first)).one()
-    moments, left_out, n_t, n_c = standardised(spec, first, row)
+    added, selection = searched_terms(spec, engine, out, progress, first) if spec.propensity.terms == "stepwise" else ([], ())
+    row = engine.fetch(targets_statement(spec, engine.dialect, first + added)).one()
+    moments, left_out, n_t, n_c = standardised(spec, first + added, row)
     if not moments:
         raise DataError("matching.on", "every matching feature is constant and equal in both groups: there is nothing to balance.", "match on features that vary.")
-    p = len(moments)
-    try:
-        sol = solve(lambda lam: dual_value(evaluate_newton(engine.fetch, newton_statements(spec, engine.dialect, moments, lam)), p), p, spec.matching.balancing_max_steps, TOLERANCE)
-    except BalanceFailed as err:
-        raise _failed(spec, moments, err) from None
+    unreachable: list[str] = []
+    while True:
+        p = len(moments)
+        try:
+            sol = solve(lambda lam: dual_value(evaluate_newton(engine.fetch, newton_statements(spec, engine.dialect, moments, lam)), p), p, spec.matching.balancing_max_steps, TOLERANCE)
+            break
+        except BalanceFailed as err:
+            terms = [k for k, c in enumerate(moments) if c.kind == "term"]
+            if not terms:
+                raise _failed(spec, moments, err) from None
+            # an added term the weights cannot reach together with the rest: drop the last one the search added
+            unreachable.append(moments[terms[-1]].label)
+            progress.note(f"entropy balancing: left out {moments[terms[-1]].label} (its target cannot be reached with the others)")
+            moments = moments[: terms[-1]] + moments[terms[-1] + 1 :]
     gaps = np.abs(sol.dual.gradient) * np.array([c.scale for c in moments])
     # weights exp(lam'z - top) / s0 sum to 1; times n_treated: exp(lam'z - (top + log s0 - log n_t))
     fitted = BalancingFit(
@@ -285,6 +343,9 @@ def fit(spec, engine, out, progress) -> BalancingFit:
         n_treated=n_t,
         n_control=n_c,
         left_out=tuple(left_out),
+        terms=spec.propensity.terms,
+        added_terms=selection,
+        unreachable=tuple(unreachable),
     )
     out.timings["balancing_fit"] = time.perf_counter() - t0
     progress.note(f"entropy balancing: {sol.steps} Newton steps ({sol.evaluations} queries), {out.timings['balancing_fit']:.2f}s")
@@ -322,11 +383,16 @@ def _failed(spec, moments, err) -> DataError:
 
 
 def fit_steps(ctx, fitted) -> list:
-    """What the fit reads before its Newton steps: the levels of the categorical matching features."""
+    """What the fit reads before its Newton steps: with stepwise terms the units grouped by the
+    propensity features (what the search's Newton steps sum over), and the levels of the
+    categorical features."""
+    from sqlmatch import propensity
+
+    cells = [propensity.cells_step(ctx)] if ctx.spec.propensity.terms == "stepwise" else []
     cats = categorical_on(ctx.spec)
     if not cats:
-        return []
-    return [
+        return cells
+    return cells + [
         ctx.query_step(
             "categorical_levels",
             "categorical_levels",
@@ -547,5 +613,8 @@ def design_entry(spec, r: dict, fitted) -> dict:
         "newton_steps": fitted.steps,
         "dual_queries": fitted.evaluations,
         "left_out": list(fitted.left_out),
+        "terms": fitted.terms,
+        "added_terms": [dict(t) for t in fitted.added_terms],
+        "unreachable_terms": list(fitted.unreachable),
     }
     return out

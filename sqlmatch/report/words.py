@@ -217,10 +217,17 @@ def balancing_sentence(r: StudyResults) -> str:
     share = f"{100 * b['max_weight_share']:.2g}%" if b.get("max_weight_share") is not None else "–"
     return (
         f"Weighted comparison (entropy balancing; one group, no strata): {counted(f['control']['matched'], 'weighted non-enrolled units')} "
-        f"have the enrolled units' means of the matching features (largest gap left {b['max_gap_sd']:.1g} SD, after "
+        f"have the enrolled units' means of the matching features{_added_words(b)} (largest gap left {b['max_gap_sd']:.1g} SD, after "
         f"{b['newton_steps']} Newton steps); the weighted controls count as {ess} unweighted ones (Kish's effective sample "
         f"size, (sum w)² / sum w²), and the largest weight is {share} of their total."
     )
+
+
+def _added_words(b: dict) -> str:
+    added = [t for t in b.get("added_terms") or [] if t["term"] not in (b.get("unreachable_terms") or [])]
+    if b.get("terms") != "stepwise" or not added:
+        return ""
+    return f" and of the {len(added)} term{'s' if len(added) != 1 else ''} the stepwise search added"
 
 
 def _weights_words(m) -> str:
@@ -293,8 +300,14 @@ def design_lines(r: StudyResults) -> list[tuple[str, str]]:
     if b:
         gaps = ", ".join(f"{x['moment']} {x['gap']:+.1g}" for x in b["moments"])
         text = f"weighted non-enrolled mean − enrolled mean: {gaps}; {b['newton_steps']} Newton steps ({b['dual_queries']} aggregate queries of the dual)"
+        if b.get("terms") == "stepwise":
+            added = b.get("added_terms") or []
+            text += "; terms chosen stepwise (propensity.terms; Imbens & Rubin 2015, 13.3; score statistic > 1 for first-order, > 2.71 for second-order terms) and balanced beside the features: "
+            text += ", ".join(f"{c['term']} ({c['statistic']:.1f})" for c in added) if added else "none added"
+        if b.get("unreachable_terms"):
+            text += "; added terms left out (the weights could not reach them together with the rest): " + ", ".join(b["unreachable_terms"])
         if b.get("left_out"):
-            text += "; not balanced (nothing to balance): " + "; ".join(b["left_out"])
+            text += "; not balanced: " + "; ".join(b["left_out"])
         out.append(("Balance reached", text))
     return out
 

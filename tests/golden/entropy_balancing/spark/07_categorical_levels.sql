@@ -1,4 +1,4 @@
--- sqlmatch study 'annual_pass', step 06: categorical_levels (spark)
+-- sqlmatch study 'annual_pass', step 07: categorical_levels (spark)
 -- Levels of the categorical matching features (each level but the first is a balanced share).
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_measures

@@ -1,10 +1,10 @@
--- sqlmatch study 'annual_pass', step 09: balancing_sandwich (spark)
+-- sqlmatch study 'annual_pass', step 10: balancing_sandwich (duckdb)
 -- Sums for the weighted effect on the treated and its sandwich variance, which counts the estimated weights and targets (one row).
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_weighted_units
 -- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
 
-SET spark.sql.session.timeZone = UTC;
+SET TimeZone = 'UTC';
 
 /* Entropy balancing: the sums behind the weighted effect on the treated and its variance (one
    row). The estimate solves stacked estimating equations (M-estimation; Zhao & Percival 2017,
@@ -14,7 +14,7 @@ SET spark.sql.session.timeZone = UTC;
    conditions) and t (z - m) (the targets m, the enrolled means). Its sandwich variance needs
    sums of products of z, w, u and v per group; sqlmatch puts in mu1, mu0 and m afterwards.
    Rows stay one however many units.
-   Moments: z0 = (pre_trips - 7.25) / 6.5; z1 = (pre_minutes - 105.0) / 96.5; z2 = (age_band = '25-34' - 0.375) / 0.5; z3 = ((pre_trips - 7.25)^2 - 52.0) / 60.0. */
+   Moments: z0 = (pre_trips - 7.25) / 6.5; z1 = (pre_minutes - 105.0) / 96.5; z2 = (age_band = '25-34' - 0.375) / 0.5; z3 = (log(1 + pre_trips) - 1.9) / 0.8; z4 = ((age_band = '25-34') * (log(1 + pre_trips)) - 0.7) / 0.9; z5 = ((pre_trips - 7.25)^2 - 52.0) / 60.0. */
 WITH design AS (
   SELECT
     CAST(m.treated AS DOUBLE) AS t,
@@ -39,13 +39,23 @@ WITH design AS (
       CASE WHEN COALESCE(m.age_band, '(missing)') = '25-34' THEN 1.0 ELSE 0.0 END - 0.375
     ) / 0.5 AS eb__z2,
     (
+      CAST(LN(1.0 + GREATEST(m.pre_trips, 0.0)) AS DOUBLE) - 1.9
+    ) / 0.8 AS eb__z3,
+    (
+      CAST((
+        CASE WHEN COALESCE(m.age_band, '(missing)') = '25-34' THEN 1.0 ELSE 0.0 END
+      ) * (
+        LN(1.0 + GREATEST(m.pre_trips, 0.0))
+      ) AS DOUBLE) - 0.7
+    ) / 0.9 AS eb__z4,
+    (
       (
         CAST(m.pre_trips AS DOUBLE) - 7.25
       ) * (
         CAST(m.pre_trips AS DOUBLE) - 7.25
       ) - 52.0
-    ) / 60.0 AS eb__z3
-  FROM `sqlmatch`.annual_pass_weighted_units AS m
+    ) / 60.0 AS eb__z5
+  FROM "sqlmatch".annual_pass_weighted_units AS m
 )
 SELECT
   SUM(t) AS eb_n_treated,
@@ -66,6 +76,12 @@ SELECT
   SUM(t * eb__z0 * eb__z3) AS eb_tzz_0_3,
   SUM(w * eb__z0 * eb__z3) AS eb_wzz_0_3,
   SUM(w * w * eb__z0 * eb__z3) AS eb_w2zz_0_3,
+  SUM(t * eb__z0 * eb__z4) AS eb_tzz_0_4,
+  SUM(w * eb__z0 * eb__z4) AS eb_wzz_0_4,
+  SUM(w * w * eb__z0 * eb__z4) AS eb_w2zz_0_4,
+  SUM(t * eb__z0 * eb__z5) AS eb_tzz_0_5,
+  SUM(w * eb__z0 * eb__z5) AS eb_wzz_0_5,
+  SUM(w * w * eb__z0 * eb__z5) AS eb_w2zz_0_5,
   SUM(t * eb__z1) AS eb_tz_1,
   SUM(w * eb__z1) AS eb_wz_1,
   SUM(w * w * eb__z1) AS eb_w2z_1,
@@ -78,6 +94,12 @@ SELECT
   SUM(t * eb__z1 * eb__z3) AS eb_tzz_1_3,
   SUM(w * eb__z1 * eb__z3) AS eb_wzz_1_3,
   SUM(w * w * eb__z1 * eb__z3) AS eb_w2zz_1_3,
+  SUM(t * eb__z1 * eb__z4) AS eb_tzz_1_4,
+  SUM(w * eb__z1 * eb__z4) AS eb_wzz_1_4,
+  SUM(w * w * eb__z1 * eb__z4) AS eb_w2zz_1_4,
+  SUM(t * eb__z1 * eb__z5) AS eb_tzz_1_5,
+  SUM(w * eb__z1 * eb__z5) AS eb_wzz_1_5,
+  SUM(w * w * eb__z1 * eb__z5) AS eb_w2zz_1_5,
   SUM(t * eb__z2) AS eb_tz_2,
   SUM(w * eb__z2) AS eb_wz_2,
   SUM(w * w * eb__z2) AS eb_w2z_2,
@@ -87,12 +109,39 @@ SELECT
   SUM(t * eb__z2 * eb__z3) AS eb_tzz_2_3,
   SUM(w * eb__z2 * eb__z3) AS eb_wzz_2_3,
   SUM(w * w * eb__z2 * eb__z3) AS eb_w2zz_2_3,
+  SUM(t * eb__z2 * eb__z4) AS eb_tzz_2_4,
+  SUM(w * eb__z2 * eb__z4) AS eb_wzz_2_4,
+  SUM(w * w * eb__z2 * eb__z4) AS eb_w2zz_2_4,
+  SUM(t * eb__z2 * eb__z5) AS eb_tzz_2_5,
+  SUM(w * eb__z2 * eb__z5) AS eb_wzz_2_5,
+  SUM(w * w * eb__z2 * eb__z5) AS eb_w2zz_2_5,
   SUM(t * eb__z3) AS eb_tz_3,
   SUM(w * eb__z3) AS eb_wz_3,
   SUM(w * w * eb__z3) AS eb_w2z_3,
   SUM(t * eb__z3 * eb__z3) AS eb_tzz_3_3,
   SUM(w * eb__z3 * eb__z3) AS eb_wzz_3_3,
   SUM(w * w * eb__z3 * eb__z3) AS eb_w2zz_3_3,
+  SUM(t * eb__z3 * eb__z4) AS eb_tzz_3_4,
+  SUM(w * eb__z3 * eb__z4) AS eb_wzz_3_4,
+  SUM(w * w * eb__z3 * eb__z4) AS eb_w2zz_3_4,
+  SUM(t * eb__z3 * eb__z5) AS eb_tzz_3_5,
+  SUM(w * eb__z3 * eb__z5) AS eb_wzz_3_5,
+  SUM(w * w * eb__z3 * eb__z5) AS eb_w2zz_3_5,
+  SUM(t * eb__z4) AS eb_tz_4,
+  SUM(w * eb__z4) AS eb_wz_4,
+  SUM(w * w * eb__z4) AS eb_w2z_4,
+  SUM(t * eb__z4 * eb__z4) AS eb_tzz_4_4,
+  SUM(w * eb__z4 * eb__z4) AS eb_wzz_4_4,
+  SUM(w * w * eb__z4 * eb__z4) AS eb_w2zz_4_4,
+  SUM(t * eb__z4 * eb__z5) AS eb_tzz_4_5,
+  SUM(w * eb__z4 * eb__z5) AS eb_wzz_4_5,
+  SUM(w * w * eb__z4 * eb__z5) AS eb_w2zz_4_5,
+  SUM(t * eb__z5) AS eb_tz_5,
+  SUM(w * eb__z5) AS eb_wz_5,
+  SUM(w * w * eb__z5) AS eb_w2z_5,
+  SUM(t * eb__z5 * eb__z5) AS eb_tzz_5_5,
+  SUM(w * eb__z5 * eb__z5) AS eb_wzz_5_5,
+  SUM(w * w * eb__z5 * eb__z5) AS eb_w2zz_5_5,
   SUM(t * v0) AS post_trips__et_v,
   SUM(t * u0) AS post_trips__et_u,
   SUM(t * u0 * u0) AS post_trips__et_uu,
@@ -129,6 +178,18 @@ SELECT
   SUM(w * v0 * eb__z3) AS post_trips__ec_vz_3,
   SUM(w * w * u0 * eb__z3) AS post_trips__ec_w2uz_3,
   SUM(w * w * v0 * eb__z3) AS post_trips__ec_w2vz_3,
+  SUM(t * u0 * eb__z4) AS post_trips__et_uz_4,
+  SUM(t * v0 * eb__z4) AS post_trips__et_vz_4,
+  SUM(w * u0 * eb__z4) AS post_trips__ec_uz_4,
+  SUM(w * v0 * eb__z4) AS post_trips__ec_vz_4,
+  SUM(w * w * u0 * eb__z4) AS post_trips__ec_w2uz_4,
+  SUM(w * w * v0 * eb__z4) AS post_trips__ec_w2vz_4,
+  SUM(t * u0 * eb__z5) AS post_trips__et_uz_5,
+  SUM(t * v0 * eb__z5) AS post_trips__et_vz_5,
+  SUM(w * u0 * eb__z5) AS post_trips__ec_uz_5,
+  SUM(w * v0 * eb__z5) AS post_trips__ec_vz_5,
+  SUM(w * w * u0 * eb__z5) AS post_trips__ec_w2uz_5,
+  SUM(w * w * v0 * eb__z5) AS post_trips__ec_w2vz_5,
   SUM(t * v1) AS post_trips__did__et_v,
   SUM(t * u1) AS post_trips__did__et_u,
   SUM(t * u1 * u1) AS post_trips__did__et_uu,
@@ -165,6 +226,18 @@ SELECT
   SUM(w * v1 * eb__z3) AS post_trips__did__ec_vz_3,
   SUM(w * w * u1 * eb__z3) AS post_trips__did__ec_w2uz_3,
   SUM(w * w * v1 * eb__z3) AS post_trips__did__ec_w2vz_3,
+  SUM(t * u1 * eb__z4) AS post_trips__did__et_uz_4,
+  SUM(t * v1 * eb__z4) AS post_trips__did__et_vz_4,
+  SUM(w * u1 * eb__z4) AS post_trips__did__ec_uz_4,
+  SUM(w * v1 * eb__z4) AS post_trips__did__ec_vz_4,
+  SUM(w * w * u1 * eb__z4) AS post_trips__did__ec_w2uz_4,
+  SUM(w * w * v1 * eb__z4) AS post_trips__did__ec_w2vz_4,
+  SUM(t * u1 * eb__z5) AS post_trips__did__et_uz_5,
+  SUM(t * v1 * eb__z5) AS post_trips__did__et_vz_5,
+  SUM(w * u1 * eb__z5) AS post_trips__did__ec_uz_5,
+  SUM(w * v1 * eb__z5) AS post_trips__did__ec_vz_5,
+  SUM(w * w * u1 * eb__z5) AS post_trips__did__ec_w2uz_5,
+  SUM(w * w * v1 * eb__z5) AS post_trips__did__ec_w2vz_5,
   SUM(t * v2) AS post_minutes__et_v,
   SUM(t * u2) AS post_minutes__et_u,
   SUM(t * u2 * u2) AS post_minutes__et_uu,
@@ -201,6 +274,18 @@ SELECT
   SUM(w * v2 * eb__z3) AS post_minutes__ec_vz_3,
   SUM(w * w * u2 * eb__z3) AS post_minutes__ec_w2uz_3,
   SUM(w * w * v2 * eb__z3) AS post_minutes__ec_w2vz_3,
+  SUM(t * u2 * eb__z4) AS post_minutes__et_uz_4,
+  SUM(t * v2 * eb__z4) AS post_minutes__et_vz_4,
+  SUM(w * u2 * eb__z4) AS post_minutes__ec_uz_4,
+  SUM(w * v2 * eb__z4) AS post_minutes__ec_vz_4,
+  SUM(w * w * u2 * eb__z4) AS post_minutes__ec_w2uz_4,
+  SUM(w * w * v2 * eb__z4) AS post_minutes__ec_w2vz_4,
+  SUM(t * u2 * eb__z5) AS post_minutes__et_uz_5,
+  SUM(t * v2 * eb__z5) AS post_minutes__et_vz_5,
+  SUM(w * u2 * eb__z5) AS post_minutes__ec_uz_5,
+  SUM(w * v2 * eb__z5) AS post_minutes__ec_vz_5,
+  SUM(w * w * u2 * eb__z5) AS post_minutes__ec_w2uz_5,
+  SUM(w * w * v2 * eb__z5) AS post_minutes__ec_w2vz_5,
   SUM(t * v3) AS fare_per_trip__et_v,
   SUM(t * u3) AS fare_per_trip__et_u,
   SUM(t * u3 * u3) AS fare_per_trip__et_uu,
@@ -237,6 +322,18 @@ SELECT
   SUM(w * v3 * eb__z3) AS fare_per_trip__ec_vz_3,
   SUM(w * w * u3 * eb__z3) AS fare_per_trip__ec_w2uz_3,
   SUM(w * w * v3 * eb__z3) AS fare_per_trip__ec_w2vz_3,
+  SUM(t * u3 * eb__z4) AS fare_per_trip__et_uz_4,
+  SUM(t * v3 * eb__z4) AS fare_per_trip__et_vz_4,
+  SUM(w * u3 * eb__z4) AS fare_per_trip__ec_uz_4,
+  SUM(w * v3 * eb__z4) AS fare_per_trip__ec_vz_4,
+  SUM(w * w * u3 * eb__z4) AS fare_per_trip__ec_w2uz_4,
+  SUM(w * w * v3 * eb__z4) AS fare_per_trip__ec_w2vz_4,
+  SUM(t * u3 * eb__z5) AS fare_per_trip__et_uz_5,
+  SUM(t * v3 * eb__z5) AS fare_per_trip__et_vz_5,
+  SUM(w * u3 * eb__z5) AS fare_per_trip__ec_uz_5,
+  SUM(w * v3 * eb__z5) AS fare_per_trip__ec_vz_5,
+  SUM(w * w * u3 * eb__z5) AS fare_per_trip__ec_w2uz_5,
+  SUM(w * w * v3 * eb__z5) AS fare_per_trip__ec_w2vz_5,
   SUM(t * v4) AS active_last_month__et_v,
   SUM(t * u4) AS active_last_month__et_u,
   SUM(t * u4 * u4) AS active_last_month__et_uu,
@@ -272,5 +369,17 @@ SELECT
   SUM(w * u4 * eb__z3) AS active_last_month__ec_uz_3,
   SUM(w * v4 * eb__z3) AS active_last_month__ec_vz_3,
   SUM(w * w * u4 * eb__z3) AS active_last_month__ec_w2uz_3,
-  SUM(w * w * v4 * eb__z3) AS active_last_month__ec_w2vz_3
+  SUM(w * w * v4 * eb__z3) AS active_last_month__ec_w2vz_3,
+  SUM(t * u4 * eb__z4) AS active_last_month__et_uz_4,
+  SUM(t * v4 * eb__z4) AS active_last_month__et_vz_4,
+  SUM(w * u4 * eb__z4) AS active_last_month__ec_uz_4,
+  SUM(w * v4 * eb__z4) AS active_last_month__ec_vz_4,
+  SUM(w * w * u4 * eb__z4) AS active_last_month__ec_w2uz_4,
+  SUM(w * w * v4 * eb__z4) AS active_last_month__ec_w2vz_4,
+  SUM(t * u4 * eb__z5) AS active_last_month__et_uz_5,
+  SUM(t * v4 * eb__z5) AS active_last_month__et_vz_5,
+  SUM(w * u4 * eb__z5) AS active_last_month__ec_uz_5,
+  SUM(w * v4 * eb__z5) AS active_last_month__ec_vz_5,
+  SUM(w * w * u4 * eb__z5) AS active_last_month__ec_w2uz_5,
+  SUM(w * w * v4 * eb__z5) AS active_last_month__ec_w2vz_5
 FROM design;

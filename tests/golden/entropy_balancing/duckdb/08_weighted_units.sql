@@ -1,4 +1,4 @@
--- sqlmatch study 'annual_pass', step 07: weighted_units (postgres)
+-- sqlmatch study 'annual_pass', step 08: weighted_units (duckdb)
 -- Entropy-balancing weights (enrolled 1, non-enrolled exp(lam'z), summing to the enrolled count), beside every unit's features and outcomes.
 -- kind: writes a table
 -- reads: sqlmatch.annual_pass_measures
@@ -18,26 +18,36 @@ CREATE TABLE "sqlmatch".annual_pass_weighted_units__building AS
    so the weights sum to the number of enrolled units and the weighted non-enrolled means of the
    moment functions equal the enrolled units' means (Hainmueller 2012, Political Analysis 20:25).
    One stratum (0).
-   Moments: z0 = (pre_trips - 7.25) / 6.5; z1 = (pre_minutes - 105.0) / 96.5; z2 = (age_band = '25-34' - 0.375) / 0.5; z3 = ((pre_trips - 7.25)^2 - 52.0) / 60.0. */
+   Moments: z0 = (pre_trips - 7.25) / 6.5; z1 = (pre_minutes - 105.0) / 96.5; z2 = (age_band = '25-34' - 0.375) / 0.5; z3 = (log(1 + pre_trips) - 1.9) / 0.8; z4 = ((age_band = '25-34') * (log(1 + pre_trips)) - 0.7) / 0.9; z5 = ((pre_trips - 7.25)^2 - 52.0) / 60.0. */
 WITH design AS (
   SELECT
     m.*,
-    CAST((
-      CAST(m.pre_trips AS DOUBLE PRECISION) - 7.25
-    ) AS DOUBLE PRECISION) / 6.5 AS eb__z0,
-    CAST((
-      CAST(m.pre_minutes AS DOUBLE PRECISION) - 105.0
-    ) AS DOUBLE PRECISION) / 96.5 AS eb__z1,
-    CAST((
+    (
+      CAST(m.pre_trips AS DOUBLE) - 7.25
+    ) / 6.5 AS eb__z0,
+    (
+      CAST(m.pre_minutes AS DOUBLE) - 105.0
+    ) / 96.5 AS eb__z1,
+    (
       CASE WHEN COALESCE(m.age_band, '(missing)') = '25-34' THEN 1.0 ELSE 0.0 END - 0.375
-    ) AS DOUBLE PRECISION) / 0.5 AS eb__z2,
-    CAST((
-      (
-        CAST(m.pre_trips AS DOUBLE PRECISION) - 7.25
+    ) / 0.5 AS eb__z2,
+    (
+      CAST(LN(1.0 + GREATEST(m.pre_trips, 0.0)) AS DOUBLE) - 1.9
+    ) / 0.8 AS eb__z3,
+    (
+      CAST((
+        CASE WHEN COALESCE(m.age_band, '(missing)') = '25-34' THEN 1.0 ELSE 0.0 END
       ) * (
-        CAST(m.pre_trips AS DOUBLE PRECISION) - 7.25
+        LN(1.0 + GREATEST(m.pre_trips, 0.0))
+      ) AS DOUBLE) - 0.7
+    ) / 0.9 AS eb__z4,
+    (
+      (
+        CAST(m.pre_trips AS DOUBLE) - 7.25
+      ) * (
+        CAST(m.pre_trips AS DOUBLE) - 7.25
       ) - 52.0
-    ) AS DOUBLE PRECISION) / 60.0 AS eb__z3
+    ) / 60.0 AS eb__z5
   FROM "sqlmatch".annual_pass_measures AS m
 )
 SELECT
@@ -60,7 +70,10 @@ SELECT
     WHEN d.treated = 1
     THEN 1.0
     ELSE EXP(
-      GREATEST(0.5 * eb__z0 + -0.125 * eb__z1 + 0.25 * eb__z2 + -0.0625 * eb__z3 - 2.5, -300.0)
+      GREATEST(
+        0.5 * eb__z0 + -0.125 * eb__z1 + 0.25 * eb__z2 + 0.375 * eb__z3 + -0.25 * eb__z4 + -0.0625 * eb__z5 - 2.5,
+        -300.0
+      )
     )
   END AS match__weight
 FROM design AS d;

@@ -1,4 +1,4 @@
--- sqlmatch study 'annual_pass', step 12: imbalance_l1 (spark)
+-- sqlmatch study 'annual_pass', step 13: imbalance_l1 (spark)
 -- Multivariate L1 imbalance on a fixed histogram, before and after matching.
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_weighted_units

@@ -1,10 +1,10 @@
--- sqlmatch study 'annual_pass', step 14: outcome_strata (spark)
+-- sqlmatch study 'annual_pass', step 15: outcome_strata (postgres)
 -- Outcome sums per stratum and group among matched units, with the feature sums and cross-products that adjust them by regression.
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_weighted_units
 -- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
 
-SET spark.sql.session.timeZone = UTC;
+SET TimeZone = 'UTC';
 
 /* Outcomes per stratum and group among matched units:
    counts, sums, sums of squares (and, for ratio outcomes, the cross-product) from which the
@@ -33,12 +33,12 @@ SELECT
   SUM(m.fare_per_trip__num * m.fare_per_trip__den) AS fare_per_trip__sum_xy,
   SUM(m.active_last_month) AS active_last_month__sum,
   SUM(m.active_last_month * m.active_last_month) AS active_last_month__sumsq
-FROM `sqlmatch`.annual_pass_weighted_units AS m
+FROM "sqlmatch".annual_pass_weighted_units AS m
 WHERE
   NOT m.match__weight IS NULL
 GROUP BY
   m.match__stratum,
   m.treated
 ORDER BY
-  m.match__stratum NULLS LAST,
-  m.treated NULLS LAST;
+  m.match__stratum,
+  m.treated;

@@ -1,4 +1,4 @@
--- sqlmatch study 'annual_pass', step 14: outcome_strata (duckdb)
+-- sqlmatch study 'annual_pass', step 15: outcome_strata (duckdb)
 -- Outcome sums per stratum and group among matched units, with the feature sums and cross-products that adjust them by regression.
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_weighted_units

@@ -1,4 +1,4 @@
--- sqlmatch study 'annual_pass', step 12: imbalance_l1 (postgres)
+-- sqlmatch study 'annual_pass', step 13: imbalance_l1 (duckdb)
 -- Multivariate L1 imbalance on a fixed histogram, before and after matching.
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_weighted_units
@@ -14,14 +14,14 @@ SET TimeZone = 'UTC';
    ones (age_band). 0 = identical distributions, 1 = no overlap. One row. */
 WITH ranges AS (
   SELECT
-    MIN(CAST(CAST(m.pre_trips AS DECIMAL(38, 10)) AS DOUBLE PRECISION)) AS pre_trips__low,
-    CAST((
-      MAX(CAST(CAST(m.pre_trips AS DECIMAL(38, 10)) AS DOUBLE PRECISION)) - MIN(CAST(CAST(m.pre_trips AS DECIMAL(38, 10)) AS DOUBLE PRECISION))
-    ) AS DOUBLE PRECISION) / 10.0 AS pre_trips__width,
-    MIN(CAST(CAST(m.pre_minutes AS DECIMAL(38, 10)) AS DOUBLE PRECISION)) AS pre_minutes__low,
-    CAST((
-      MAX(CAST(CAST(m.pre_minutes AS DECIMAL(38, 10)) AS DOUBLE PRECISION)) - MIN(CAST(CAST(m.pre_minutes AS DECIMAL(38, 10)) AS DOUBLE PRECISION))
-    ) AS DOUBLE PRECISION) / 10.0 AS pre_minutes__width
+    MIN(CAST(CAST(m.pre_trips AS DECIMAL(38, 10)) AS DOUBLE)) AS pre_trips__low,
+    (
+      MAX(CAST(CAST(m.pre_trips AS DECIMAL(38, 10)) AS DOUBLE)) - MIN(CAST(CAST(m.pre_trips AS DECIMAL(38, 10)) AS DOUBLE))
+    ) / 10.0 AS pre_trips__width,
+    MIN(CAST(CAST(m.pre_minutes AS DECIMAL(38, 10)) AS DOUBLE)) AS pre_minutes__low,
+    (
+      MAX(CAST(CAST(m.pre_minutes AS DECIMAL(38, 10)) AS DOUBLE)) - MIN(CAST(CAST(m.pre_minutes AS DECIMAL(38, 10)) AS DOUBLE))
+    ) / 10.0 AS pre_minutes__width
   FROM "sqlmatch".annual_pass_weighted_units AS m
 ), cells AS (
   SELECT
@@ -29,9 +29,9 @@ WITH ranges AS (
     COALESCE(
       LEAST(
         CAST(FLOOR(
-          CAST((
-            CAST(CAST(m.pre_trips AS DECIMAL(38, 10)) AS DOUBLE PRECISION) - r.pre_trips__low
-          ) AS DOUBLE PRECISION) / NULLIF(r.pre_trips__width, 0)
+          (
+            CAST(CAST(m.pre_trips AS DECIMAL(38, 10)) AS DOUBLE) - r.pre_trips__low
+          ) / NULLIF(r.pre_trips__width, 0)
         ) AS INT),
         9
       ),
@@ -40,16 +40,16 @@ WITH ranges AS (
     COALESCE(
       LEAST(
         CAST(FLOOR(
-          CAST((
-            CAST(CAST(m.pre_minutes AS DECIMAL(38, 10)) AS DOUBLE PRECISION) - r.pre_minutes__low
-          ) AS DOUBLE PRECISION) / NULLIF(r.pre_minutes__width, 0)
+          (
+            CAST(CAST(m.pre_minutes AS DECIMAL(38, 10)) AS DOUBLE) - r.pre_minutes__low
+          ) / NULLIF(r.pre_minutes__width, 0)
         ) AS INT),
         9
       ),
       -1
     ) AS pre_minutes__h,
     COALESCE(m.age_band, '(missing)') AS age_band__h,
-    CAST(COUNT(*) AS DOUBLE PRECISION) AS n,
+    CAST(COUNT(*) AS DOUBLE) AS n,
     SUM(COALESCE(m.match__weight, 0)) AS sum_w
   FROM "sqlmatch".annual_pass_weighted_units AS m
   CROSS JOIN ranges AS r
@@ -71,34 +71,10 @@ WITH ranges AS (
     c.pre_trips__h,
     c.pre_minutes__h,
     c.age_band__h,
-    SUM(
-      CASE
-        WHEN c.treated = 1
-        THEN CAST(c.n AS DOUBLE PRECISION) / NULLIF(t.n, 0)
-        ELSE 0
-      END
-    ) AS treated_before,
-    SUM(
-      CASE
-        WHEN c.treated = 0
-        THEN CAST(c.n AS DOUBLE PRECISION) / NULLIF(t.n, 0)
-        ELSE 0
-      END
-    ) AS control_before,
-    SUM(
-      CASE
-        WHEN c.treated = 1
-        THEN CAST(c.sum_w AS DOUBLE PRECISION) / NULLIF(t.sum_w, 0)
-        ELSE 0
-      END
-    ) AS treated_after,
-    SUM(
-      CASE
-        WHEN c.treated = 0
-        THEN CAST(c.sum_w AS DOUBLE PRECISION) / NULLIF(t.sum_w, 0)
-        ELSE 0
-      END
-    ) AS control_after
+    SUM(CASE WHEN c.treated = 1 THEN c.n / NULLIF(t.n, 0) ELSE 0 END) AS treated_before,
+    SUM(CASE WHEN c.treated = 0 THEN c.n / NULLIF(t.n, 0) ELSE 0 END) AS control_before,
+    SUM(CASE WHEN c.treated = 1 THEN c.sum_w / NULLIF(t.sum_w, 0) ELSE 0 END) AS treated_after,
+    SUM(CASE WHEN c.treated = 0 THEN c.sum_w / NULLIF(t.sum_w, 0) ELSE 0 END) AS control_after
   FROM cells AS c
   INNER JOIN totals AS t
     ON t.treated = c.treated
