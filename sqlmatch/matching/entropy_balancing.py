@@ -42,7 +42,7 @@ from sqlmatch.errors import DataError, SpecError
 from sqlmatch.matching.base import MatchingMethod, OptionInput
 
 NAME = "entropy_balancing"
-DESCRIPTION = "non-enrolled units weighted so their means of the matching features equal the enrolled units' exactly (Hainmueller 2012), sandwich variance"
+DESCRIPTION = "non-enrolled units weighted so their means of the matching features (and of the stepwise terms) equal the enrolled units' exactly (Hainmueller 2012), sandwich variance"
 OPTION_KEYS = ("balance_variances", "balancing_max_steps")
 TOLERANCE = 1e-10  # largest weighted-mean gap left, in SDs of the controls' moment
 
