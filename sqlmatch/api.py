@@ -29,7 +29,11 @@ def compile_plan(spec: Spec, dialect: str = "duckdb") -> Plan:
     from sqlmatch.matching import method_for
     from sqlmatch.propensity import load_model
 
-    model = load_model(spec) if method_for(spec.matching.method).uses_score else None
+    method = method_for(spec.matching.method)
+    if method.uses_score:
+        model = load_model(spec)
+    else:
+        model = method.load_fit(spec) if method.load_fit is not None else None
     return build_plan(spec, dialect, model=model)
 
 
@@ -167,10 +171,13 @@ def run(
     finally:
         if own:
             engine.close()
-    if output.model is not None and spec.source_path is not None and method_for(spec.matching.method).uses_score:
+    method = method_for(spec.matching.method)
+    if output.model is not None and spec.source_path is not None and method.uses_score:
         from sqlmatch.propensity import model_path
 
         output.model.save(model_path(spec))
+    elif output.model is not None and spec.source_path is not None and method.save_fit is not None:
+        method.save_fit(spec, output.model)
     return results
 
 
@@ -313,13 +320,17 @@ def plan_model(spec: Spec):
     from sqlmatch.matching import method_for
     from sqlmatch.propensity import load_model
 
-    if method_for(spec.matching.method).fit is not None:
-        raise SqlmatchError(
-            f"matching.method: {spec.matching.method} fits its weights by Newton steps that sqlmatch runs and reads between "
-            "the steps, so a scheduler cannot run its plan alone yet. Fix: run it with `sqlmatch run`, or use another "
-            "matching.method for a scheduled plan."
-        )
-    if not method_for(spec.matching.method).uses_score:
+    method = method_for(spec.matching.method)
+    if method.fit is not None:
+        fitted = method.load_fit(spec) if method.load_fit is not None else None
+        if fitted is None:
+            raise SqlmatchError(
+                f"matching.method: {spec.matching.method} fits its weights by Newton steps that sqlmatch runs and reads between "
+                "the steps, so the plan a scheduler runs needs that fit stored beside the spec. Fix: run `sqlmatch run` once (it "
+                "writes <spec>.balancing.json), then compile again; the scheduled runs apply that fit's weights to their units."
+            )
+        return fitted
+    if not method.uses_score:
         return None
     model = load_model(spec)
     if model is None:

@@ -140,8 +140,8 @@ def _dispatch(args) -> int:
         if not plan.complete and method_for(spec.matching.method).fit is not None:
             raise SqlmatchError(
                 f"matching.method: {spec.matching.method} fits its weights by Newton steps that `sqlmatch run` runs and reads "
-                "between the steps, so a compiled plan would stop before them. Fix: use `sqlmatch run` (--keep leaves the "
-                "tables for inspection; --verbose prints each step's purpose), or another matching.method to compile."
+                "between the steps, so a compiled plan would stop before them. Fix: run `sqlmatch run` once (it stores the fit "
+                "beside the spec, <spec>.balancing.json), then compile again: the compiled SQL applies that fit's weights."
             )
         if not plan.complete:
             # A partial plan would stop before matching: nothing to review or schedule.

@@ -54,9 +54,10 @@ def study_design(spec: Spec, r: dict, model=None) -> dict:
         design["reuse_controls"] = m.reuse_controls
         design["bias_correction"] = m.bias_correction and m.reuse_controls
     elif m.method == "entropy_balancing":
-        from sqlmatch.matching.entropy_balancing import design_entry
+        from sqlmatch.matching.entropy_balancing import design_entry, load_fit
 
-        design.update(design_entry(spec, r, model))
+        # a scheduled run: the SQL applied the fit kept beside the spec
+        design.update(design_entry(spec, r, model if model is not None else load_fit(spec)))
     if method.uses_score:
         if model is None:  # a scheduled run: the SQL applied the model kept beside the spec
             from sqlmatch.propensity import load_model

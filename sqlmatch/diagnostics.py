@@ -46,11 +46,37 @@ def balance_warnings(spec: Spec, balance, matching) -> list[Caution]:
     ]
 
 
+STALE_BALANCE_SD = 1e-6  # a gap this large (in SDs) is no rounding: the stored weights were fitted on other data
+
+
+def balancing_warnings(spec: Spec, r, fitted) -> list[str]:
+    """Entropy-balancing weights read from their file (a scheduled plan) balance the units they
+    were fitted on exactly; on this run's units they may not: say so, from matching_summary."""
+    if spec.matching.method != "entropy_balancing" or "matching_summary" not in r:
+        return []
+    from sqlmatch.matching.entropy_balancing import balance_reached, fit_path, load_fit
+
+    fitted = fitted if fitted is not None else load_fit(spec)
+    if fitted is None:
+        return []
+    reached = balance_reached(r["matching_summary"].one(), fitted.moments)
+    worst = max(reached, key=lambda m: abs(m["gap_sd"]), default=None)
+    if worst is None or abs(worst["gap_sd"]) <= STALE_BALANCE_SD:
+        return []
+    where = fit_path(spec).name if spec.source_path is not None else "the stored fit"
+    return [
+        f"The entropy-balancing weights come from the fit in {where} (fitted on {fitted.fitted_on or 'an earlier run'}), and on this "
+        f"run's units they no longer balance the enrolled units' means: the largest gap is {worst['gap_sd']:+.2g} SD, in "
+        f"{worst['moment']}. The effect compares the enrolled with comparison units that differ by that much. Refit: "
+        f"`sqlmatch run` fits the weights again and rewrites {where}; then compile again for the scheduler."
+    ]
+
+
 def model_warnings(spec: Spec, r, fitted) -> list[str]:
     """A propensity model read from its file (baked into compiled SQL, perhaps long ago) may no
     longer describe the units it scores: say so, from the propensity_check aggregates."""
     if "propensity_check" not in r:
-        return []
+        return balancing_warnings(spec, r, fitted)
     from sqlmatch.propensity import check_model, load_model, model_path
 
     model = fitted if fitted is not None else load_model(spec)

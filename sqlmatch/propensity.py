@@ -116,7 +116,7 @@ class FittedModel:
             body = json.loads(text)
             if body.get("sqlmatch_propensity_model") != MODEL_VERSION:
                 raise ValueError("not a sqlmatch propensity model file")
-            cols = [_column_from_json(c) for c in body["coefficients"]]
+            cols = [column_from_json(c) for c in body["coefficients"]]
             coefs = [float(c["coefficient"]) for c in body["coefficients"]]
             return cls(
                 columns=cols,
@@ -141,8 +141,8 @@ class FittedModel:
         return path
 
 
-def _column_from_json(c: dict) -> DesignColumn:
-    factors = tuple(_column_from_json(f) for f in c.get("factors", ()))
+def column_from_json(c: dict) -> DesignColumn:
+    factors = tuple(column_from_json(f) for f in c.get("factors", ()))
     return DesignColumn(name=c["name"], kind=c["kind"], feature=c.get("feature"), level=c.get("level"), factors=factors)
 
 

@@ -536,3 +536,40 @@ def test_an_added_term_out_of_reach_is_left_out_but_a_feature_is_refused():
     with pytest.raises(DataError) as err:
         standardised(spec, moments, row)
     assert err.value.key == "matching.on"
+
+
+def test_a_scheduled_plan_applies_the_fit_stored_beside_the_spec(demo_dir, tmp_path):
+    """`sqlmatch run` stores the fit beside the spec (<spec>.balancing.json); the plan compiled for a
+    scheduler bakes it into its SQL and, run file by file with no sqlmatch around it, `sqlmatch
+    report` gives the run's effects and SEs (same data, same weights, so to 1e-9). On data that
+    changed since, the stored weights no longer balance the means, and the report says so."""
+    import duckdb
+
+    from test_scheduler_files import compiled, run_duckdb
+
+    db = tmp_path / "bikeshare.duckdb"
+    shutil.copyfile(demo_dir / "bikeshare.duckdb", db)
+    spec_file = tmp_path / "annual_pass.toml"
+    spec_file.write_text(DEMO_SPEC.read_text().replace('method = "coarsened_exact"', 'method = "entropy_balancing"').replace('database = "bikeshare.duckdb"', f'database = "{db}"'))
+    spec = api.load(str(spec_file))
+    with pytest.raises(SqlmatchError, match="balancing.json"):
+        api.compile_for_scheduler(spec)
+    direct = api.run(spec, keep_tables=False)
+    stored = tmp_path / "annual_pass.balancing.json"
+    assert stored.is_file()
+    files = compiled(spec, "duckdb", tmp_path / "sql")
+    run_duckdb(db, files)
+    scheduled = api.report_from_tables(spec)
+    for name in ("post_trips", "fare_per_trip", "active_last_month"):
+        assert scheduled.effect(name).estimate == pytest.approx(direct.effect(name).estimate, rel=1e-9)
+        assert scheduled.effect(name).std_error == pytest.approx(direct.effect(name).std_error, rel=1e-9)
+    assert scheduled.design["balancing"]["max_gap_sd"] < 1e-8
+    assert not any("no longer balance" in w for w in scheduled.warnings)
+    # a fifth of the comparison riders lose their trips: the stored weights meet other units
+    with duckdb.connect(str(db)) as con:
+        con.execute("DELETE FROM trips WHERE rider_id % 5 = 0 AND rider_id IN (SELECT rider_id FROM riders WHERE pass_bought_on IS NULL)")
+    run_duckdb(db, files)
+    stale = api.report_from_tables(spec)
+    (warning,) = [w for w in stale.warnings if "no longer balance" in w]
+    assert "annual_pass.balancing.json" in warning and "sqlmatch run" in warning
+    assert stale.design["balancing"]["max_gap_sd"] > 1e-3

@@ -61,6 +61,10 @@ class MatchingMethod:
     # progress) -> fitted and builds the full plan with it (entropy balancing's Newton steps)
     fit: Callable | None = None
     fit_steps: Callable | None = None
+    # where a scheduled plan finds that fit: save_fit(spec, fitted) writes it beside the spec after a
+    # run, load_fit(spec) -> fitted or None (as the propensity model's <spec>.model.json)
+    save_fit: Callable | None = None
+    load_fit: Callable | None = None
     # for a method that writes <study>_match_weights: one_weight_row_per_unit(spec) -> True when that
     # table holds at most one row per unit, so the weighted_units step joins it as it is instead of
     # summing it per unit first (the same weights, one hash aggregate over the matches fewer)

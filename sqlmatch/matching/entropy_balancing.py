@@ -32,8 +32,11 @@ targets.
 
 from __future__ import annotations
 
+import datetime as dt
+import json
 import math
-from dataclasses import dataclass, replace
+from dataclasses import asdict, dataclass, field, replace
+from pathlib import Path
 
 import numpy as np
 
@@ -98,6 +101,92 @@ class BalancingFit:
     terms: str = "linear"  # propensity.terms: "stepwise" balances the terms its search added too
     added_terms: tuple[dict, ...] = ()  # the search's additions, as propensity.stepwise records them (term, order, statistic)
     unreachable: tuple[str, ...] = ()  # added terms left out because the weights could not reach their targets
+    fitted_on: str = field(default_factory=lambda: dt.date.today().isoformat())
+
+    def to_json(self) -> str:
+        """The fit a scheduled plan bakes into its SQL (`<spec>.balancing.json`, beside the spec)."""
+        body = {
+            "sqlmatch_balancing_fit": FIT_VERSION,
+            "fitted_on": self.fitted_on,
+            "newton_steps": self.steps,
+            "dual_queries": self.evaluations,
+            "log_normaliser": self.log_normaliser,
+            "max_gap": self.max_gap,
+            "max_share": self.max_share,
+            "effective_controls": self.effective_controls,
+            "n_treated": self.n_treated,
+            "n_control": self.n_control,
+            "terms": self.terms,
+            "added_terms": list(self.added_terms),
+            "unreachable_terms": list(self.unreachable),
+            "left_out": list(self.left_out),
+            "moments": [
+                {**{k: v for k, v in asdict(m).items() if k != "column"}, "column": None if m.column is None else asdict(m.column), "describes": m.label, "lam": b}
+                for m, b in zip(self.moments, self.lam)
+            ],
+        }
+        return json.dumps(body, indent=2) + "\n"
+
+    @classmethod
+    def from_json(cls, text: str, source: str = "balancing fit file") -> "BalancingFit":
+        from sqlmatch.errors import SqlmatchError
+        from sqlmatch.propensity import column_from_json
+
+        try:
+            body = json.loads(text)
+            if body.get("sqlmatch_balancing_fit") != FIT_VERSION:
+                raise ValueError("not a sqlmatch entropy-balancing fit file")
+            moments = tuple(
+                Moment(
+                    feature=str(m["feature"]), kind=str(m["kind"]), level=m.get("level"), mean=m.get("mean"),
+                    centre=float(m["centre"]), scale=float(m["scale"]), column=None if m.get("column") is None else column_from_json(m["column"]),
+                )
+                for m in body["moments"]
+            )
+            return cls(
+                moments=moments,
+                lam=tuple(float(m["lam"]) for m in body["moments"]),
+                log_normaliser=float(body["log_normaliser"]),
+                steps=int(body["newton_steps"]),
+                evaluations=int(body["dual_queries"]),
+                max_gap=float(body["max_gap"]),
+                max_share=float(body["max_share"]),
+                effective_controls=float(body["effective_controls"]),
+                n_treated=int(body["n_treated"]),
+                n_control=int(body["n_control"]),
+                left_out=tuple(body.get("left_out", ())),
+                terms=str(body.get("terms", "linear")),
+                added_terms=tuple(body.get("added_terms", ())),
+                unreachable=tuple(body.get("unreachable_terms", ())),
+                fitted_on=str(body.get("fitted_on", "")),
+            )
+        except (ValueError, KeyError, TypeError) as err:
+            raise SqlmatchError(f"{source}: not a readable entropy-balancing fit ({err}). Fix: delete it and run the study to fit again.") from None
+
+
+FIT_VERSION = 1
+
+
+def fit_path(spec) -> Path | None:
+    """Where a study keeps its entropy-balancing fit: beside the spec, `<spec name>.balancing.json`."""
+    if spec.source_path is None:
+        return None
+    suffix = ".placebo.balancing.json" if spec.enrolment_windows_of is not None else ".balancing.json"
+    return spec.source_path.with_name(spec.source_path.stem + suffix)
+
+
+def save_fit(spec, fitted: BalancingFit) -> Path | None:
+    path = fit_path(spec)
+    if path is not None:
+        path.write_text(fitted.to_json(), encoding="utf-8")
+    return path
+
+
+def load_fit(spec) -> BalancingFit | None:
+    path = fit_path(spec)
+    if path is None or not path.is_file():
+        return None
+    return BalancingFit.from_json(path.read_text(encoding="utf-8"), source=str(path))
 
 
 # ---------------------------------------------------------------- options
@@ -580,6 +669,8 @@ METHOD = MatchingMethod(
     groups_word="weighted comparison",
     fit=fit,
     fit_steps=fit_steps,
+    save_fit=save_fit,
+    load_fit=load_fit,
 )
 
 
