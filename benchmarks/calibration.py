@@ -255,7 +255,7 @@ def render(summary, failures, args, seconds: float, command: str) -> str:
         "chosen from the data (split until the score and the model's numeric features are balanced, |t| <= 1.96 per subclass and pooled), common "
         "support, propensity on `matching.on`; nearest_neighbour 1:1 with replacement, logit distance, caliper 0.2 SD, "
         "Abadie-Imbens (2006) variance and (2011) bias correction. score_weighting with odds weights, common support, no trimming or truncation. "
-        "entropy_balancing on the means of `matching.on`" + (" and the variances of its numeric features (--balance-variances)" if args.balance_variances else "") + ". "
+        "entropy_balancing on the means of `matching.on`" + (" and of the terms the propensity model's stepwise search adds" if (args.terms or "stepwise") == "stepwise" else "") + (" and the variances of its numeric features (--balance-variances)" if args.balance_variances else "") + ". "
         "Count, sum and 0/1 outcomes of coarsened_exact and score_bins: the headline row is regression-adjusted within strata "
         "(the default since this run's commit; `(unadjusted)` rows hold the plain stratified comparison), ratio outcomes are not adjusted."
         + (f" Propensity terms: {args.terms} (--terms)." if args.terms else "")
