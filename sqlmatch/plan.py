@@ -144,6 +144,11 @@ class PlanContext:
     # list what the steps write without rendering SQL (writable_tables): a score-based plan then
     # needs no fitted model, since no table name depends on its coefficients
     names_only: bool = False
+    # statements the runner sends once and never writes to a file (a fit's Newton steps): on the
+    # source dialect they run as rendered, without the parse-and-print pass that formats plan files
+    # (that pass is most of a Newton step's cost in Python; tests/test_filled_statements.py checks
+    # both give the same aggregates)
+    transient: bool = False
     tables: dict[str, str] = field(default_factory=dict)  # logical name -> quoted SQL name
     table_names: dict[str, str] = field(default_factory=dict)  # logical name -> schema.table (display)
 
@@ -222,11 +227,23 @@ class PlanContext:
             statements=tuple(dialects.generate(s, self.dialect) for s in statements),
         )
 
-    def query_step(self, name: str, template: str, reads: list[str], purpose: str, kind: str = "query", **context) -> Step:
+    def query_step(self, name: str, template: str, reads: list[str], purpose: str, kind: str = "query", numbers: dict | None = None, **context) -> Step:
+        """One query step. `numbers` ({context key: list of floats}) are the values that change
+        from one call to the next with everything else the same (a Newton step's coefficients):
+        the template is rendered and parsed once with placeholders there, and each call fills the
+        parsed statements with the numbers' literals (the same SQL as rendering them, faster)."""
         if self.names_only:
             return Step(name=name, kind=kind, purpose=purpose, reads=tuple(reads), writes=(), statements=())
-        sql, written_in = render.render(template, self.dialect, **context)
-        statements = dialects.parse(sql, written_in)
+        if numbers and self.transient and self.dialect == render.SOURCE_DIALECT:
+            sql, written_in = render.render(template, self.dialect, **context, **numbers)
+            if written_in == render.SOURCE_DIALECT:
+                return Step(name=name, kind=kind, purpose=purpose, reads=tuple(reads), writes=(), statements=(sql,))
+            statements = dialects.parse(sql, written_in)
+        elif numbers:
+            statements = _filled(template, self.dialect, context, numbers)
+        else:
+            sql, written_in = render.render(template, self.dialect, **context)
+            statements = dialects.parse(sql, written_in)
         return Step(
             name=name,
             kind=kind,
@@ -248,6 +265,48 @@ class PlanContext:
             )
             out.append(step if k == 1 else dataclasses.replace(step, part_of=name))
         return out
+
+
+_PARSED_WITH_SLOTS: dict = {}  # (template, dialect, context) -> (parsed statements, the dialect written in)
+_PARSED_WITH_SLOTS_MAX = 32
+
+
+def _frozen(value):
+    """A hashable copy of a template context value (lists and dicts of frozen dataclasses, numbers, strings)."""
+    if isinstance(value, dict):
+        return tuple(sorted((k, _frozen(v)) for k, v in value.items()))
+    if isinstance(value, (list, tuple)):
+        return tuple(_frozen(v) for v in value)
+    return value
+
+
+def _filled(template: str, dialect: str, context: dict, numbers: dict) -> list:
+    """The template's statements with `numbers` filled in: parsed once per shape (the context and
+    the count of each number), every later call only copies the trees and sets the literals."""
+    from sqlglot import parse_one
+
+    slots = {key: [render.NumberSlot(f"sqlmatch__{key}__{i}") for i in range(len(values))] for key, values in numbers.items()}
+    key = (template, dialect, _frozen(context), tuple((k, len(v)) for k, v in sorted(numbers.items())))
+    try:
+        hash(key)
+    except TypeError:  # a context value that cannot be a key: render as usual
+        sql, written_in = render.render(template, dialect, **context, **numbers)
+        return dialects.parse(sql, written_in)
+    if key not in _PARSED_WITH_SLOTS:
+        if len(_PARSED_WITH_SLOTS) >= _PARSED_WITH_SLOTS_MAX:
+            _PARSED_WITH_SLOTS.pop(next(iter(_PARSED_WITH_SLOTS)))
+        sql, written_in = render.render(template, dialect, **context, **slots)
+        _PARSED_WITH_SLOTS[key] = (dialects.parse(sql, written_in), written_in)
+    trees, written_in = _PARSED_WITH_SLOTS[key]
+    # each literal as rendering it would give: the filter's text, parsed in the template's dialect
+    values = {slot.name: parse_one(render.literal(v), read=written_in) for k, vs in numbers.items() for slot, v in zip(slots[k], vs)}
+
+    def fill(node):
+        if isinstance(node, exp.Placeholder) and node.this in values:
+            return values[node.this].copy()
+        return node
+
+    return [tree.transform(fill) for tree in trees]
 
 
 @dataclass(frozen=True)

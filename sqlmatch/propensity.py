@@ -434,13 +434,13 @@ def logit(p: float) -> float:
 # ---------------------------------------------------------------- plan steps
 
 
-def newton_statements(spec, dialect: str, columns, beta, pairs=None) -> list[str]:
+def newton_statements(spec, dialect: str, columns, beta, pairs=None, transient: bool = True) -> list[str]:
     """The aggregate queries of one Newton step of the propensity model at coefficients `beta`
     (`pairs`: only these information entries, for the stepwise selection query): one, or several
     parts whose rows `evaluate_newton` merges, when the sums exceed columns.MAX_SUMS_PER_QUERY."""
     from sqlmatch.plan import PlanContext
 
-    ctx = PlanContext(spec=spec, dialect=dialect)
+    ctx = PlanContext(spec=spec, dialect=dialect, transient=transient)
     return [s.statements[0] for s in newton_steps(ctx, columns, beta, pairs=pairs)]
 
 
@@ -466,7 +466,7 @@ def newton_steps(ctx, columns, beta, name: str = "propensity_newton", pairs=None
         parts=[dict(pairs=part, head=k == 1, part=k) for k, part in enumerate(parts, 1)],
         n_parts=len(parts),
         columns=columns,
-        beta=[float(b) for b in beta],
+        numbers={"beta": [float(b) for b in beta]},
         clamp=ETA_CLAMP,
         sample_per_10000=_sample_per_10000(ctx.spec),
         cells_table=ctx.table("score_cells"),

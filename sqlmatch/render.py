@@ -7,6 +7,7 @@ literals and dates go through the filters below, which build sqlglot nodes and p
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as dt
 import functools
 from importlib import resources
@@ -79,7 +80,19 @@ def comment_name(value) -> str:
     return comment_text(sql)
 
 
+@dataclasses.dataclass(frozen=True)
+class NumberSlot:
+    """A number left open in a rendered template: printed as the placeholder `:name`, then filled
+    with the literal (built here, by `literal`) in the parsed statement (plan.PlanContext.query_step
+    with `numbers`), so a statement run again and again with new coefficients (a Newton step) is
+    rendered and parsed once."""
+
+    name: str
+
+
 def literal(value) -> str:
+    if isinstance(value, NumberSlot):
+        return f":{value.name}"
     if value is None:
         return "NULL"
     if isinstance(value, bool):

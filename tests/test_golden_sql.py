@@ -123,7 +123,7 @@ def entropy_plan(dialect: str):
                        max_share=0.01, effective_controls=2500.0, n_treated=426, n_control=4680)
     extra = {
         "fit_targets.sql": targets_statement(spec, dialect, [Moment(m.feature, m.kind, level=m.level, column=m.column) for m in moments if m.kind != "square"]) + ";\n",
-        "fit_newton_step.sql": newton_statement(spec, dialect, moments, fit.lam) + ";\n",
+        "fit_newton_step.sql": newton_statement(spec, dialect, moments, fit.lam, transient=False) + ";\n",
     }
     return build_plan(spec, dialect, model=fit), extra
 

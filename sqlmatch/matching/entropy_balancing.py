@@ -345,10 +345,10 @@ def dual_value(row: dict, p: int):
     return dual_from_sums(float(row[col.balancing("top")]), float(row[col.balancing("s0")]), s1, s2, float(row[col.balancing("s0_sq")]))
 
 
-def _context(spec, dialect):
+def _context(spec, dialect, transient=False):
     from sqlmatch.plan import PlanContext
 
-    return PlanContext(spec=spec, dialect=dialect)
+    return PlanContext(spec=spec, dialect=dialect, transient=transient)
 
 
 def targets_statement(spec, dialect: str, moments) -> str:
@@ -358,24 +358,25 @@ def targets_statement(spec, dialect: str, moments) -> str:
     ).statements[0]
 
 
-def newton_statements(spec, dialect: str, moments, lam) -> list[str]:
+def newton_statements(spec, dialect: str, moments, lam, transient: bool = True) -> list[str]:
     """The aggregate queries of one Newton step of the dual at `lam`: one, or parts of at most
     columns.MAX_SUMS_PER_QUERY entries (the s2 entries split; every part returns top and lam,
     part 1 the count, s0 and s1), whose rows `evaluate_newton` merges."""
-    ctx = _context(spec, dialect)
+    ctx = _context(spec, dialect, transient=transient)
     p = len(moments)
     parts = col.split_sums(col.upper_pairs(p), first_fixed=2 * p + 4, later_fixed=p + 1)
     steps = ctx.query_parts(
         "balancing_newton", "entropy_balancing_newton", reads=[], purpose="",
         parts=[dict(pairs=part, head=k == 1, part=k) for k, part in enumerate(parts, 1)], n_parts=len(parts),
-        moments=list(moments), lam=[float(b) for b in lam], measures_table=ctx.table("measures"),
+        moments=list(moments), numbers={"lam": [float(b) for b in lam]}, measures_table=ctx.table("measures"),
     )
     return [s.statements[0] for s in steps]
 
 
-def newton_statement(spec, dialect: str, moments, lam) -> str:
-    """The one query of a Newton step of the dual at `lam` (a dual small enough for one)."""
-    (statement,) = newton_statements(spec, dialect, moments, lam)
+def newton_statement(spec, dialect: str, moments, lam, transient: bool = True) -> str:
+    """The one query of a Newton step of the dual at `lam` (a dual small enough for one);
+    transient=False: formatted as a plan file is (for review)."""
+    (statement,) = newton_statements(spec, dialect, moments, lam, transient)
     return statement
 
 
