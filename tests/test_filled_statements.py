@@ -88,7 +88,9 @@ def test_the_template_is_rendered_once_per_shape(monkeypatch):
 
 def test_the_runners_duckdb_statements_give_the_formatted_ones_aggregates(demo_dir, tmp_path):
     """On DuckDB the runner sends a fit's Newton steps as rendered (not parsed and printed again):
-    the same row of aggregates, to the last bit, as the formatted statement a plan file holds."""
+    the same row of aggregates as the formatted statement a plan file holds. Counts must be equal;
+    sums are compared to 1e-12 relative, because DuckDB's parallel aggregation adds rows in an order
+    that varies from run to run (seen on CI: the 14th significant digit moved)."""
     import shutil
 
     import duckdb
@@ -113,4 +115,10 @@ def test_the_runners_duckdb_statements_give_the_formatted_ones_aggregates(demo_d
         ):
             assert fast != formatted  # the check compares two different texts
             for a, b in zip(fast, formatted):
-                assert con.execute(a).fetchall() == con.execute(b).fetchall()
+                (row_fast,), (row_formatted,) = con.execute(a).fetchall(), con.execute(b).fetchall()
+                assert len(row_fast) == len(row_formatted)
+                for x, y in zip(row_fast, row_formatted):
+                    if isinstance(x, int) and isinstance(y, int):
+                        assert x == y
+                    else:
+                        assert float(x) == pytest.approx(float(y), rel=1e-12, abs=1e-12)
