@@ -234,7 +234,7 @@ def outcome_effect(
             # regression adjustment within strata on the numeric features (estimators/adjusted.py);
             # nearest neighbours with replacement have the Abadie-Imbens correction instead, whose
             # variance counts control reuse (the stratified one here would not)
-            adj = adjusted_att(*aggregates.cell_sums(matched, outcome.name, list(features)), list(features))
+            adj = adjusted_att(*aggregates.cell_sums(matched, outcome.name, list(features)), list(features), estimand=estimand)
             a = adj.effect
             extra.update(adjusted=_interval(a.estimate, a.std_error, a.ci_low, a.ci_high), adjusted_for=adj.adjusted_for)
             if adjust:
