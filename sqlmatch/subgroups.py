@@ -44,7 +44,10 @@ def subgroup_effects(spec, outcomes, r) -> list[SubgroupEffects]:
         i = result.columns.index("subgroup_level")
         levels = sorted({row[i] for row in result.rows}, key=str)
         if f"weighting_subgroup_{g.name}" in r:
-            out += _weighted_levels(spec, g, outcomes, result, levels, r)
+            out += _weighted_levels(spec, g, outcomes, result, levels, r, _score_weighted(r, g, spec), "Wald chi-square of equal effects (levels share the fitted score)")
+            continue
+        if f"balancing_subgroup_{g.name}" in r:
+            out += _weighted_levels(spec, g, outcomes, result, levels, r, _balanced(r, g), "Wald chi-square of equal effects (levels share the balancing weights)")
             continue
         for o in outcomes:
             rows, shown = [], []
@@ -83,27 +86,64 @@ def subgroup_effects(spec, outcomes, r) -> list[SubgroupEffects]:
     return out
 
 
-def _weighted_levels(spec, g, outcomes, counts: QueryResult, levels, r) -> list[SubgroupEffects]:
-    """Propensity-score weighting: each level's weighted difference (each group's weights normalised
-    within the level) with the sandwich covariance of all levels, which share the score fitted on
-    every unit (estimators/weighting.level_effects); heterogeneity by the Wald test of equal
-    effects with that covariance (Cochran's Q when the levels are independent). Counts are the
-    level's weighted units; small levels are withheld before anything is estimated."""
+def _score_weighted(r, g, spec):
+    """Propensity-score weighting: (outcome, levels) -> each level's weighted difference (each group's
+    weights normalised within the level) and the sandwich covariance of all levels, which share the
+    score fitted on every unit (estimators/weighting.level_effects)."""
     import dataclasses
 
+    from sqlmatch.estimators.weighting import level_effects, sums_from_row
+
+    study = r["weighting_sandwich"].one()
+    by_level = _rows_by_level(r[f"weighting_subgroup_{g.name}"])
+
+    def joint(o, shown):
+        global_sums = sums_from_row(study, o.name)
+        fits = [dataclasses.replace(sums_from_row(by_level[lv], o.name), information=global_sums.information, score_products=global_sums.score_products) for lv in shown]
+        le = level_effects(fits, global_sums.information, global_sums.score_products, spec.propensity.ridge)
+        return le.estimates, le.covariance
+
+    return joint, by_level
+
+
+def _balanced(r, g):
+    """Entropy balancing: each level's enrolled mean minus its non-enrolled units' weighted mean, with
+    the study-wide weights, and the sandwich covariance of all levels, which share the balance
+    conditions and targets fitted on every unit (estimators/entropy_balancing.level_effects)."""
+    from sqlmatch.estimators.entropy_balancing import level_effects
+    from sqlmatch.matching.entropy_balancing import moment_count, sums_from_row
+
+    study = r["balancing_sandwich"].one()
+    p = moment_count(study)
+    by_level = _rows_by_level(r[f"balancing_subgroup_{g.name}"])
+
+    def joint(o, shown):
+        moments, _ = sums_from_row(study, o.name, p)
+        le = level_effects(moments, [sums_from_row(by_level[lv], o.name, p)[1] for lv in shown])
+        return le.estimates, le.covariance
+
+    return joint, by_level
+
+
+def _rows_by_level(sums: QueryResult) -> dict:
+    j = sums.columns.index("subgroup_level")
+    return {row[j]: dict(zip(sums.columns, row)) for row in sums.rows}
+
+
+def _weighted_levels(spec, g, outcomes, counts: QueryResult, levels, r, weighted, test: str) -> list[SubgroupEffects]:
+    """A weighting method's levels: `weighted` = (joint, by_level), joint(outcome, levels) giving
+    the levels' effects and their joint covariance; heterogeneity by the Wald test of equal effects
+    with that covariance (Cochran's Q when the levels are independent). Counts are the level's
+    weighted units; small levels are withheld before anything is estimated."""
     import numpy as np
 
     from sqlmatch.estimators.intervals import normal_interval
-    from sqlmatch.estimators.weighting import equal_effects_test, level_effects, sums_from_row
+    from sqlmatch.estimators.weighting import equal_effects_test
 
-    study = r["weighting_sandwich"].one()
-    sums = r[f"weighting_subgroup_{g.name}"]
-    j = sums.columns.index("subgroup_level")
-    by_level = {row[j]: dict(zip(sums.columns, row)) for row in sums.rows}
+    joint, by_level = weighted
     describes = f"levels of {g.feature}" if g.feature else f"{g.where_text} (yes / no)"
     out = []
     for o in outcomes:
-        global_sums = sums_from_row(study, o.name)
         counted, shown = [], []
         for level in levels:
             sub = _level_result(counts, level)
@@ -115,9 +155,7 @@ def _weighted_levels(spec, g, outcomes, counts: QueryResult, levels, r) -> list[
                 shown.append(level)
         est = cov = None
         if shown:
-            fits = [dataclasses.replace(sums_from_row(by_level[lv], o.name), information=global_sums.information, score_products=global_sums.score_products) for lv in shown]
-            le = level_effects(fits, global_sums.information, global_sums.score_products, spec.propensity.ridge)
-            est, cov = le.estimates, le.covariance
+            est, cov = joint(o, shown)
         rows, ok = [], []
         for level, n_t, n_c, small in counted:
             if level not in shown:
@@ -136,7 +174,7 @@ def _weighted_levels(spec, g, outcomes, counts: QueryResult, levels, r) -> list[
             q, df, p = equal_effects_test(est[ok], cov[np.ix_(ok, ok)])
         out.append(
             SubgroupEffects(
-                subgroup=g.name, describes=describes, outcome=o.name, levels=tuple(rows), q=q, df=df, p_value=p, test="Wald chi-square of equal effects (levels share the fitted score)"
+                subgroup=g.name, describes=describes, outcome=o.name, levels=tuple(rows), q=q, df=df, p_value=p, test=test
             )
         )
     return out

@@ -198,3 +198,50 @@ def weighted_effect(s: MomentSums, o: TermSums, level: float = 0.95) -> Weighted
     meat[lam_, lam_] = s.control_w2zz - np.outer(s.control_w2z, m) - np.outer(m, s.control_w2z) + s.control_w2 * np.outer(m, m)
     meat[m_, m_] = s.treated_zz - s.n_treated * np.outer(m, m)
     return difference_from_sandwich(mu1, mu0, jac, meat, level)
+
+
+def level_effects(s: MomentSums, levels: list[TermSums]):
+    """Per subgroup level l the weighted difference mu1_l - mu0_l (the level's enrolled mean and its
+    non-enrolled units' weighted mean) and the sandwich covariance of all of them. The stacked
+    equations are those of weighted_effect with a pair per level,
+
+        psi_1l = t 1[l] (u - mu1_l v),    psi_0l = (1 - t) w 1[l] (u - mu0_l v),
+
+    zero outside the level, beside the study's own balance conditions and targets (lam and m,
+    fitted on every unit; `s` holds the study-wide moment sums). A unit is in one level, so the
+    levels' equations meet only through lam and m: that is where their covariance comes from
+    (Stefanski & Boos 2002, The American Statistician 56:29, for the stacking). With one level
+    holding every unit this is weighted_effect."""
+    from sqlmatch.estimators.weighting import LevelEffects
+
+    L, p = len(levels), len(s.treated_z)
+    k = 2 * L + 2 * p
+    lam_, m_ = slice(2 * L, 2 * L + p), slice(2 * L + p, k)
+    est = np.full(L, math.nan)
+    if s.n_treated <= 0:
+        return LevelEffects(est, np.full((L, L), math.nan))
+    m = s.treated_z / s.n_treated
+    jac, meat, grad = np.zeros((k, k)), np.zeros((k, k)), np.zeros((L, k))
+    for i, o in enumerate(levels):
+        if o.t_v <= 0 or o.c_wv <= 0:
+            return LevelEffects(est, np.full((L, L), math.nan))
+        mu1, mu0 = o.t_u / o.t_v, o.c_wu / o.c_wv
+        a, b = 2 * i, 2 * i + 1
+        jac[a, a], jac[b, b] = -o.t_v, -o.c_wv
+        jac[b, lam_] = o.c_wuz - mu0 * o.c_wvz
+        meat[a, a] = o.t_uu - 2 * mu1 * o.t_uv + mu1**2 * o.t_vv
+        meat[b, b] = o.c_w2uu - 2 * mu0 * o.c_w2uv + mu0**2 * o.c_w2vv
+        meat[a, m_] = meat[m_, a] = (o.t_uz - mu1 * o.t_vz) - m * (o.t_u - mu1 * o.t_v)
+        meat[b, lam_] = meat[lam_, b] = (o.c_w2uz - mu0 * o.c_w2vz) - m * (o.c_w2u - mu0 * o.c_w2v)
+        est[i] = mu1 - mu0
+        grad[i, a], grad[i, b] = 1.0, -1.0
+    jac[lam_, lam_] = s.control_wzz - np.outer(m, s.control_wz)
+    jac[lam_, m_] = -s.control_w * np.eye(p)
+    jac[m_, m_] = -s.n_treated * np.eye(p)
+    meat[lam_, lam_] = s.control_w2zz - np.outer(s.control_w2z, m) - np.outer(m, s.control_w2z) + s.control_w2 * np.outer(m, m)
+    meat[m_, m_] = s.treated_zz - s.n_treated * np.outer(m, m)
+    try:
+        bread = np.linalg.inv(jac)
+    except np.linalg.LinAlgError:
+        return LevelEffects(est, np.full((L, L), math.nan))
+    return LevelEffects(est, grad @ bread @ meat @ bread.T @ grad.T)

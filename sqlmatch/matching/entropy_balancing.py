@@ -210,12 +210,6 @@ def check_supported(spec, result=None) -> None:
             "entropy_balancing has no regression-adjusted effect: the adjustment works within strata where every unit of a group weighs the same.",
             "set regression_adjustment = false, or use coarsened_exact or score_bins.",
         )
-    if spec.subgroups:
-        raise SpecError(
-            "subgroups",
-            "entropy_balancing does not estimate effects per subgroup yet (the per-level sums are unweighted, and the weights balance the whole cohort only).",
-            "remove [[subgroups]] for this method, or use coarsened_exact or score_bins.",
-        )
 
 
 # ---------------------------------------------------------------- moments and the fit
@@ -520,7 +514,7 @@ def steps(ctx, fitted):
             weighted_table=ctx.table("weighted_units"),
             **({} if ctx.names_only else dict(moments=list(fitted.moments))),
         ),
-    ] + sandwich_steps(ctx, fitted, terms(ctx.spec))
+    ] + sandwich_steps(ctx, fitted, terms(ctx.spec)) + subgroup_steps(ctx, fitted, terms(ctx.spec))
 
 
 @dataclass(frozen=True)
@@ -552,21 +546,42 @@ def sandwich_sums(p: int, study_terms) -> list[SandwichSum]:
     return out
 
 
-def sandwich_steps(ctx, fitted, study_terms) -> list:
-    """The sandwich query, in parts of at most columns.MAX_SUMS_PER_QUERY sums (one part when it fits)."""
+def sandwich_steps(ctx, fitted, study_terms, name: str = "balancing_sandwich", level=None, purpose: str | None = None) -> list:
+    """The sandwich query (one row, or with `level` a row per subgroup level), in parts of at most
+    columns.MAX_SUMS_PER_QUERY sums (one part when it fits); every part repeats the level."""
     moments = [] if ctx.names_only else list(fitted.moments)
-    parts = col.split_sums(sandwich_sums(len(moments), study_terms))
+    keyed = 1 if level else 0
+    parts = col.split_sums(sandwich_sums(len(moments), study_terms), first_fixed=keyed, later_fixed=keyed)
     return ctx.query_parts(
-        "balancing_sandwich",
+        name,
         "entropy_balancing_sandwich",
         reads=[ctx.display("weighted_units")],
-        purpose="Sums for the weighted effect on the treated and its sandwich variance, which counts the estimated weights and targets (one row).",
+        purpose=purpose or "Sums for the weighted effect on the treated and its sandwich variance, which counts the estimated weights and targets (one row).",
         parts=[dict(sums=part, part=k) for k, part in enumerate(parts, 1)],
         n_parts=len(parts),
         terms=study_terms,
+        level=level,
         weighted_table=ctx.table("weighted_units"),
         **({} if ctx.names_only else dict(moments=moments)),
     )
+
+
+def subgroup_steps(ctx, fitted, study_terms) -> list:
+    """Per [[subgroups]] entry, the sandwich sums per level (subgroups.py: each level's weighted
+    effect, with the covariance the levels share through the study-wide weights)."""
+    from sqlmatch.plan import subgroup_level, subgroup_text
+
+    out = []
+    for g in ctx.spec.subgroups:
+        out += sandwich_steps(
+            ctx,
+            fitted,
+            study_terms,
+            name=f"balancing_subgroup_{g.name}",
+            level=subgroup_level(g),
+            purpose=f"Sums for the weighted effect and its sandwich variance per level of subgroup {g.name!r} ({subgroup_text(g)}).",
+        )
+    return out
 
 
 # ---------------------------------------------------------------- results
