@@ -416,6 +416,7 @@ def test_postgres_gives_duckdbs_numbers(nsw_db):
         raw["study"].update(work_schema=work)
         raw["units"]["table"] = {"schema": schema, "name": "men"}
         raw["events"]["table"] = {"schema": schema, "name": "earnings"}
+        raw["subgroups"] = [{"name": "earned_1975", "where": "re75 > 0"}]  # the per-level sandwich query too
         return parse_spec(raw)
 
     def gaps(d):
@@ -450,6 +451,7 @@ def test_postgres_gives_duckdbs_numbers(nsw_db):
     got.pop("provenance"), want.pop("provenance")
     assert max(abs(x) for x in gaps(got) + gaps(want)) < 1e-9  # in SDs of the controls' values
     assert got["effects"][0]["estimator"].startswith("entropy-balancing")
+    assert len(got["subgroups"]) == 1 and got["subgroups"][0]["heterogeneity"]["p_value"] is not None
     assert_same_numbers(got, want)
 
 
