@@ -37,6 +37,10 @@ _UTC_NOTE = f"Days are cut in {TIME_ZONE}: the session's time zone must be {TIME
 # there a failure between the two statements leaves only the __building table.
 FILE_TIME_ZONE = {"duckdb": f"SET TimeZone = '{TIME_ZONE}'", "postgres": f"SET TimeZone = '{TIME_ZONE}'", "spark": f"SET spark.sql.session.timeZone = {TIME_ZONE}"}
 FILE_TRANSACTIONS = ("duckdb", "postgres")
+# Session settings a compiled file sets after the time zone, as the engine adapter does for the
+# sessions sqlmatch opens: PostgreSQL's JIT compiles the wide one-row aggregates slower than it runs
+# them (engines/postgres.py: 820 sums over 500,000 rows took 58-70 s with JIT, 4-5 s without).
+FILE_SESSION = {"postgres": ("SET jit = off", "-- jit: the next statement turns PostgreSQL's JIT compilation off for this session (the wide aggregates run many times slower compiled; `sqlmatch run` does the same)")}
 # The level that categorical levels held by fewer than report.min_cell_size units of the study are
 # pooled into, in unit_measures: every later step (balance, propensity levels, exact matching,
 # L1 cells) sees it, so the rows fetched stay fixed by the spec and no small level is named.
@@ -359,6 +363,8 @@ class Plan:
         statements = list(step.statements)
         if step.kind == "table" and self.dialect in FILE_TRANSACTIONS:
             statements = statements[:2] + ["BEGIN TRANSACTION"] + statements[2:] + ["COMMIT"]
+        if step.kind != "setup" and self.dialect in FILE_SESSION:
+            statements = [FILE_SESSION[self.dialect][0]] + statements
         if step.kind != "setup" and self.dialect in FILE_TIME_ZONE:
             statements = [FILE_TIME_ZONE[self.dialect]] + statements
         return statements
@@ -373,6 +379,8 @@ class Plan:
             lines = [f"-- time zone: the first statement sets this session's time zone to {TIME_ZONE} (it stays so for the rest of the session)"]
         else:
             lines = [f"-- time zone: run it in a session whose time zone is {TIME_ZONE} (no statement for it is written for {self.dialect})"]
+        if self.dialect in FILE_SESSION:
+            lines.append(FILE_SESSION[self.dialect][1])
         if step.kind == "table" and self.dialect in FILE_TRANSACTIONS:
             lines.append("-- swap: the DROP of the old table and the RENAME of the new one run in one transaction: a failure before COMMIT leaves the old table as it was")
         elif step.kind == "table":

@@ -3,8 +3,11 @@
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_units
 -- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
+-- jit: the next statement turns PostgreSQL's JIT compilation off for this session (the wide aggregates run many times slower compiled; `sqlmatch run` does the same)
 
 SET TimeZone = 'UTC';
+
+SET jit = off;
 
 /* Is "select" a key of "bike ""share"""."riders; DROP TABLE riders"? Rows and distinct keys among the units in the study;
    they must be equal, or units would be counted twice. One row. */

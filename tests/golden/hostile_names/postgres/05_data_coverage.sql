@@ -3,8 +3,11 @@
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_measures
 -- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
+-- jit: the next statement turns PostgreSQL's JIT compilation off for this session (the wide aggregates run many times slower compiled; `sqlmatch run` does the same)
 
 SET TimeZone = 'UTC';
+
+SET jit = off;
 
 /* Do the events cover both windows? The first and last event of the study's units within
    [2025-09-01, 2026-07-01), and how many units have none. One row.

@@ -3,8 +3,11 @@
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_weighted_units
 -- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
+-- jit: the next statement turns PostgreSQL's JIT compilation off for this session (the wide aggregates run many times slower compiled; `sqlmatch run` does the same)
 
 SET TimeZone = 'UTC';
+
+SET jit = off;
 
 /* Weighted regression of each outcome on treatment and the numeric features, among matched units
    with the matching weights (the input of the robustness value). Returns one row of sums only:

@@ -4,9 +4,12 @@
 -- reads: sqlmatch.annual_pass_measures
 -- writes: sqlmatch.annual_pass_scores
 -- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
+-- jit: the next statement turns PostgreSQL's JIT compilation off for this session (the wide aggregates run many times slower compiled; `sqlmatch run` does the same)
 -- swap: the DROP of the old table and the RENAME of the new one run in one transaction: a failure before COMMIT leaves the old table as it was
 
 SET TimeZone = 'UTC';
+
+SET jit = off;
 
 DROP TABLE IF EXISTS "sqlmatch".annual_pass_scores__building;
 

@@ -3,8 +3,11 @@
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_nearest_neighbour_units, sqlmatch.annual_pass_nearest_neighbour_caliper
 -- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
+-- jit: the next statement turns PostgreSQL's JIT compilation off for this session (the wide aggregates run many times slower compiled; `sqlmatch run` does the same)
 
 SET TimeZone = 'UTC';
+
+SET jit = off;
 
 /* Nearest-neighbour matching, before the candidate join: how many (treated, control) pairs it
    will compare, from counts per block (exact levels x score bin) only:

@@ -3,8 +3,11 @@
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_nearest_neighbour_units, sqlmatch.annual_pass_nearest_neighbour_matches, sqlmatch.annual_pass_match_weights
 -- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
+-- jit: the next statement turns PostgreSQL's JIT compilation off for this session (the wide aggregates run many times slower compiled; `sqlmatch run` does the same)
 
 SET TimeZone = 'UTC';
+
+SET jit = off;
 
 /* Nearest-neighbour matching, what was kept. Units considered: those with a propensity score.
    Strata group the matched treated units by their number of control slots, so n_cells = n_strata =

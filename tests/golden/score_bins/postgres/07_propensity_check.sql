@@ -3,8 +3,11 @@
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_score_cells
 -- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
+-- jit: the next statement turns PostgreSQL's JIT compilation off for this session (the wide aggregates run many times slower compiled; `sqlmatch run` does the same)
 
 SET TimeZone = 'UTC';
+
+SET jit = off;
 
 /* Propensity model, one Newton-Raphson step as aggregates. At the coefficients b below, with
    p = 1 / (1 + exp(-b'x)), returns the score vector g_i = sum (t - p) x_i, the information matrix
