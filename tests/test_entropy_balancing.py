@@ -24,6 +24,7 @@ from sqlmatch.plan import build_plan
 from sqlmatch.runner import run_plan
 from sqlmatch.spec import parse_spec
 
+from sandwich import relative_steps, sandwich_covariance
 from conftest import DEMO_SPEC
 from nsw import EXPERIMENTAL_INTERVAL, load_nsw, nsw_spec
 
@@ -125,15 +126,7 @@ def numpy_sandwich(C, t, w, u, v):
     theta = np.concatenate([[u[t].sum() / v[t].sum(), (wt * u).sum() / (wt * v).sum()], lam, Z[t].mean(axis=0)])
     P = psi(theta)
     assert np.max(np.abs(P.sum(axis=0)[2:])) < 1e-6 * max(1.0, float(np.abs(P[:, 2:]).sum(axis=0).max()))  # balance holds
-    J = np.empty((len(theta), len(theta)))
-    for k in range(len(theta)):
-        h = 1e-6 * max(1.0, abs(theta[k]))
-        up, down = theta.copy(), theta.copy()
-        up[k] += h
-        down[k] -= h
-        J[:, k] = (psi(up).sum(axis=0) - psi(down).sum(axis=0)) / (2 * h)
-    bread = np.linalg.inv(J)
-    V = bread @ (P.T @ P) @ bread.T
+    V, _ = sandwich_covariance(psi, theta, relative_steps(theta, len(theta)))
     return theta[0] - theta[1], math.sqrt(V[0, 0] + V[1, 1] - 2 * V[0, 1])
 
 

@@ -16,6 +16,7 @@ from scipy.stats import chi2
 
 from sqlmatch.spec import parse_spec
 
+from sandwich import relative_steps, sandwich_covariance
 from nsw import load_nsw, nsw_spec
 from test_entropy_balancing import moment_matrix, numpy_sandwich, run_study
 
@@ -52,19 +53,11 @@ def joint_levels(C, t, w, y, levels):
     for lv in levels:
         mus += [np.sum(tf * lv * y) / np.sum(tf * lv), np.sum(wt * lv * y) / np.sum(wt * lv)]
     theta = np.concatenate([mus, lam, Z[t].mean(axis=0)])
-    P = psi(theta)
-    J = np.empty((len(theta), len(theta)))
-    for k in range(len(theta)):
-        h = 1e-6 * max(1.0, abs(theta[k]))
-        up, down = theta.copy(), theta.copy()
-        up[k] += h
-        down[k] -= h
-        J[:, k] = (psi(up).sum(axis=0) - psi(down).sum(axis=0)) / (2 * h)
-    bread = np.linalg.inv(J)
+    V, _ = sandwich_covariance(psi, theta, relative_steps(theta, len(theta)))
     D = np.zeros((L, len(theta)))
     for i in range(L):
         D[i, 2 * i], D[i, 2 * i + 1] = 1.0, -1.0
-    return D @ theta, D @ bread @ (P.T @ P) @ bread.T @ D.T
+    return D @ theta, D @ V @ D.T
 
 
 def test_nsw_levels_and_equal_effects_test_equal_numpy(nsw_db):

@@ -21,6 +21,7 @@ from sqlmatch.plan import build_plan
 from sqlmatch.runner import run_plan
 from sqlmatch.spec import parse_spec
 
+from sandwich import relative_steps, sandwich_covariance
 from nsw import EXPERIMENTAL_INTERVAL, load_nsw, nsw_spec
 
 
@@ -102,18 +103,8 @@ def numpy_sandwich(X, t, u, v, beta, keep, caps, effect_for="enrolled"):
 
     a = weights(beta)
     theta = np.concatenate([[np.sum(t * a * u) / np.sum(t * a * v), np.sum((1 - t) * a * u) / np.sum((1 - t) * a * v)], beta])
-    P = psi(theta)
     sd = X.std(axis=0)
-    scale = np.concatenate([[1.0, 1.0], 1.0 / np.where(sd > 0, sd, 1.0)])  # a step of 1e-6 in x'b per column
-    J = np.empty((len(theta), len(theta)))
-    for k in range(len(theta)):
-        h = 1e-6 * scale[k] * max(1.0, abs(theta[k]) if k < 2 else 1.0)
-        up, down = theta.copy(), theta.copy()
-        up[k] += h
-        down[k] -= h
-        J[:, k] = (psi(up).sum(axis=0) - psi(down).sum(axis=0)) / (2 * h)
-    bread = np.linalg.inv(J)
-    V = bread @ (P.T @ P) @ bread.T
+    V, P = sandwich_covariance(psi, theta, relative_steps(theta, 2, 1.0 / np.where(sd > 0, sd, 1.0)))  # a step of 1e-6 in x'b per column
     return theta[0] - theta[1], math.sqrt(V[0, 0] + V[1, 1] - 2 * V[0, 1]), P.sum(axis=0)
 
 

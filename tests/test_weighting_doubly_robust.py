@@ -16,6 +16,7 @@ import statsmodels.api as sm
 
 from sqlmatch.spec import parse_spec
 
+from sandwich import relative_steps, sandwich_covariance
 from nsw import load_nsw, nsw_spec
 from test_score_weighting import design, numpy_weights, raw_weights, run_study
 
@@ -54,18 +55,8 @@ def numpy_doubly_robust(X, t, y, beta, keep, estimand):
 
     nu = {g: np.sum((t == g) * a0 * (y - X @ d[g])) / np.sum((t == g) * a0) for g in (1, 0)}
     theta = np.concatenate([[nu[1], nu[0], xbar @ (d[1] - d[0])], beta])
-    P = psi(theta)
     sd = X.std(axis=0)
-    scale = np.concatenate([[1.0, 1.0, 1.0], 1.0 / np.where(sd > 0, sd, 1.0)])
-    J = np.empty((len(theta), len(theta)))
-    for k in range(len(theta)):
-        h = 1e-6 * scale[k] * (max(1.0, abs(theta[k])) if k < 3 else 1.0)
-        up, down = theta.copy(), theta.copy()
-        up[k] += h
-        down[k] -= h
-        J[:, k] = (psi(up).sum(axis=0) - psi(down).sum(axis=0)) / (2 * h)
-    bread = np.linalg.inv(J)
-    V = bread @ (P.T @ P) @ bread.T
+    V, P = sandwich_covariance(psi, theta, relative_steps(theta, 3, 1.0 / np.where(sd > 0, sd, 1.0)))
     grad = np.zeros(len(theta))
     grad[:3] = (1.0, -1.0, 1.0)
     assert theta[0] - theta[1] + theta[2] == pytest.approx(est, rel=1e-7)  # nu1 - nu0 + kappa is the mean predicted difference

@@ -18,6 +18,7 @@ from scipy.stats import chi2
 from sqlmatch import api
 from sqlmatch.spec import parse_spec
 
+from sandwich import relative_steps, sandwich_covariance
 from conftest import DEMO_SPEC
 from nsw import load_nsw, nsw_spec
 from test_score_weighting import design, numpy_sandwich, numpy_weights, raw_weights, run_study
@@ -49,21 +50,12 @@ def joint_levels(X, t, y, beta, keep, levels):
     for lv in levels:
         mus += [np.sum(t * a * lv * y) / np.sum(t * a * lv), np.sum((1 - t) * a * lv * y) / np.sum((1 - t) * a * lv)]
     theta = np.concatenate([mus, beta])
-    P = psi(theta)
     sd = X.std(axis=0)
-    scale = np.concatenate([np.ones(2 * L), 1.0 / np.where(sd > 0, sd, 1.0)])
-    J = np.empty((len(theta), len(theta)))
-    for k in range(len(theta)):
-        h = 1e-6 * scale[k] * (max(1.0, abs(theta[k])) if k < 2 * L else 1.0)
-        up, down = theta.copy(), theta.copy()
-        up[k] += h
-        down[k] -= h
-        J[:, k] = (psi(up).sum(axis=0) - psi(down).sum(axis=0)) / (2 * h)
-    bread = np.linalg.inv(J)
+    V, _ = sandwich_covariance(psi, theta, relative_steps(theta, 2 * L, 1.0 / np.where(sd > 0, sd, 1.0)))
     D = np.zeros((L, len(theta)))
     for i in range(L):
         D[i, 2 * i], D[i, 2 * i + 1] = 1.0, -1.0
-    V = D @ bread @ (P.T @ P) @ bread.T @ D.T
+    V = D @ V @ D.T
     return D @ theta, V
 
 
