@@ -13,6 +13,7 @@ from dataclasses import dataclass
 
 STEP = "matching_variance"
 BIAS_STEP = "bias_sums"
+PAIR_STEP = "pair_sums"
 
 
 @dataclass(frozen=True)
@@ -109,18 +110,36 @@ def steps(ctx, outcomes) -> list:
 
     # the grouped search (with replacement on the score) stored an integer score order with the units
     ranked = nearest_neighbour.search_route(m) == "sorted"
+    links = dict(
+        exact=list(m.block_on),
+        grouped=ranked,
+        matches_table=ctx.table("nearest_neighbour_matches"),
+        units_table=ctx.table("nearest_neighbour_units"),
+    )
+    match_reads = [ctx.display("nearest_neighbour_matches")] + ([ctx.display("nearest_neighbour_units")] if ranked else [])
     return out + [
         ctx.query_step(
             STEP,
             "nearest_neighbour_variance",
-            reads=[ctx.display("nearest_neighbour_units" if ranked else "scores"), ctx.display("weighted_units")],
+            reads=[ctx.display("nearest_neighbour_units" if ranked else "scores"), ctx.display("weighted_units")] + match_reads,
             purpose="Abadie-Imbens variance sums: squared matching weights (times each control is used) times conditional "
             "variances estimated by matching each unit to its nearest unit of the same group.",
-            exact=list(m.block_on),
             variables=vs,
             products=ps,
             scores_table=ctx.table("scores"),
             ranked_units=ctx.table("nearest_neighbour_units") if ranked else None,
             weighted_table=ctx.table("weighted_units"),
-        )
+            **links,
+        ),
+        ctx.query_step(
+            PAIR_STEP,
+            "nearest_neighbour_pair_sums",
+            reads=[ctx.display("weighted_units")] + match_reads,
+            purpose="Abadie-Imbens population variance sums: products of each matched treated unit's values and its matches' "
+            "share-weighted means, summed over the treated units.",
+            variables=vs,
+            products=ps,
+            weighted_table=ctx.table("weighted_units"),
+            **links,
+        ),
     ]
