@@ -1,11 +1,13 @@
-"""Nearest-neighbour matching with replacement: the plan step whose sums give the Abadie & Imbens
-(2006, Econometrica 74(1):235) variance of the effect on the treated, which counts how often each
-control is used (see sql_templates/nearest_neighbour_variance.sql.j2 and
-estimators/matching_variance.py). It reads the units with a score and <study>_weighted_units, so it
-does not depend on how the matches were found: on the score distance (the grouped search) the units
-come from <study>_nearest_neighbour_units, whose integer score_rank orders them as the score at 10
-decimal places and the unit key do (a sort on integers, not on the decimal score); otherwise from
-<study>_scores."""
+"""Nearest-neighbour matching with replacement: the plan steps whose sums give the Abadie & Imbens
+(2006, Econometrica 74(1):235, section 4) variance of the estimator of the population effect on the
+treated, which counts how often each control is used (see sql_templates/nearest_neighbour_variance.sql.j2,
+nearest_neighbour_pair_sums.sql.j2 and estimators/matching_variance.py). `matching_variance` reads
+the units with a score and <study>_weighted_units (on the score distance, the grouped search, the
+units come from <study>_nearest_neighbour_units, whose integer score_rank orders them as the score
+at 10 decimal places and the unit key do: a sort on integers, not on the decimal score; otherwise
+from <study>_scores), and the matches table for each control's sum of squared shares;
+`pair_sums` reads the matches table and <study>_weighted_units for each treated unit's matched
+mean. Both return a fixed number of rows (two, one)."""
 
 from __future__ import annotations
 
