@@ -13,7 +13,7 @@ the matching estimator of the effect on the treated conditional on the features,
 with sigma2(X_i, W_i) = J / (J + 1) (Y_i - mean of the J nearest units of i's own group)^2, J = 1.
 
 The reported standard error is the paper's variance of the estimator of the population effect on
-the treated (Abadie & Imbens 2006, section 4, Theorem 7, recalled from memory):
+the treated (Abadie & Imbens 2006, section 4; recalled from memory, theorem number not checked):
     V_pop = (1 / N_1^2) [sum_treated (Y_i - Yhat_i(0) - tau)^2 + sum_controls (w_j^2 - sum_i share_ij^2) sigma2_j],
 Yhat_i(0) the share-weighted mean of i's matches (bias-corrected with the controls' regression when
 the correction is on; Abadie & Imbens 2011, recalled); w_j^2 - sum_i share_ij^2 is K_M (K_M - 1) / M^2

@@ -20,14 +20,15 @@ neighbour with other features out of sigma2 (a choice of ours, not the paper's; 
 on the features themselves).
 
 The headline variance is the paper's variance of the estimator of the population effect on the
-treated (Abadie & Imbens 2006, section 4, Theorem 7, recalled from memory):
+treated (Abadie & Imbens 2006, section 4; recalled from memory, theorem number not checked):
 
     V_pop = (1 / N_1^2) [ sum_{treated i} (Y_i - Yhat_i(0) - tau)^2
                           + sum_{controls j} (K_M(j) (K_M(j) - 1) / M^2) sigma2_j ],
 
 Yhat_i(0) the mean of i's matches, bias-corrected by the controls' regression (Abadie & Imbens 2011,
-section 4, recalled: the corrected estimator's variance is estimated by the same formula with the
-corrected Yhat_i(0)). The treated units' squared matched differences hold, besides sigma2 of the
+recalled from memory, section not checked: the corrected estimator has the same asymptotic variance
+and is estimated by the same formula with the corrected Yhat_i(0)). The formula can be checked by
+hand: E (Y_i - Yhat_i(0) - tau)^2 = (tau(X_i) - tau)^2 + sigma2_1(X_i) + sum_j share_ij^2 sigma2_0(X_j). The treated units' squared matched differences hold, besides sigma2 of the
 treated and (1 / M^2) sigma2 of each match, the spread of the effect across the treated units'
 features and latent traits, which the conditional V above leaves out; the second sum adds the rest
 of each reused control's w^2 sigma2. With tied controls sharing a treated unit's slots, K_M (K_M -
