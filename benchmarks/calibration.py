@@ -7,7 +7,15 @@ each process is generated afresh and its study run with every matching method of
 sqlmatch.matching.METHODS at the method's default settings (the spec's `on` and cut points, the
 method replaced). Each 95% interval is checked against the simulation's expected effect on the
 cohort given its units (`expected`, the demo's `true_att`), the realised sample ATT (`sample`) and,
-for the commuter process, the population ATT. A replicate where a method raises counts as failed
+for the commuter process, the population ATT. With `--estimand atc` (or `ate`, or several) each
+method that offers that estimand (MatchingMethod.estimands) runs with `[matching] estimand` set to
+it and is scored against the same truths of that estimand: the effect on the controls (on every
+unit of the study) given their latent values (demo: `true_atc`/`true_ate`; the demo has no realised
+sample ATC/ATE), the realised one (commuter) and the population's (commuter); methods that do not
+offer it are skipped and named in the output. For the commuter process each run is also scored
+against the expected effect over the units it kept (`kept`: the treated for the ATT, the controls
+for the ATC, both for the ATE, with a weight; a method that drops units estimates the effect on
+the ones it kept). A replicate where a method raises counts as failed
 for that method (its first message is kept). Replicates run in `--workers` processes, each DuckDB
 connection on one thread.
 
@@ -76,26 +84,45 @@ PROCESSES = ("demo", "commuter")
 def _demo_truth(path: Path) -> dict[str, dict]:
     con = duckdb.connect(str(path), read_only=True)
     try:
-        rows = con.execute("SELECT outcome, true_att, sample_att FROM demo_truth").fetchall()
+        rows = con.execute("SELECT outcome, true_att, sample_att, true_atc, true_ate FROM demo_truth").fetchall()
     finally:
         con.close()
-    return {o: dict(expected_att=float(e), sample_att=float(s), population_att=None) for o, e, s in rows}
+    # the demo draws no pass-world trips for its controls: no realised sample ATC/ATE
+    return {
+        o: dict(expected_att=float(e), sample_att=float(s), population_att=None, expected_atc=float(c), sample_atc=None, population_atc=None,
+                expected_ate=float(a), sample_ate=None, population_ate=None)
+        for o, e, s, c, a in rows
+    }
 
 
-def _matched_truth(con, spec) -> dict[str, float]:
-    """The commuter truth over the treated units this run matched (benchmark only: it reads the
-    run's kept <study>_weighted_units rows, which sqlmatch itself never pulls)."""
+# the units an estimand's kept-units truth averages over, by their treated flag
+KEPT_UNITS = {"att": "w.treated = 1", "atc": "w.treated = 0", "ate": "TRUE"}
+
+
+def _matched_truth(con, spec, estimand: str | None = None) -> dict[str, float]:
+    """The commuter truth over the units this run kept in the estimand's target group (the
+    treated for the ATT, the controls for the ATC, every unit for the ATE; benchmark only: it
+    reads the run's kept <study>_weighted_units rows, which sqlmatch itself never pulls)."""
+    group = KEPT_UNITS[estimand or spec.matching.estimand]
     row = con.execute(
         f'SELECT AVG(u.trips1 - u.trips0), AVG(u.fare1 - u.fare0), SUM(u.fare1) / SUM(u.trips1) - SUM(u.fare0) / SUM(u.trips0), '
         f'AVG(u.active1 - u.active0) FROM commuter_unit_truth AS u JOIN "{spec.work_schema}"."{spec.name}_weighted_units" AS w '
-        f"ON w.unit_key = u.rider_id WHERE w.treated = 1 AND w.match__weight IS NOT NULL"
+        f"ON w.unit_key = u.rider_id WHERE {group} AND w.match__weight IS NOT NULL"
     ).fetchone()
-    return dict(zip(("post_trips", "post_fare", "fare_per_trip", "active_last_month"), map(float, row)))
+    return dict(zip(("post_trips", "post_fare", "fare_per_trip", "active_last_month"), (None if v is None else float(v) for v in row)))
+
+
+def _normalise(record: dict) -> dict:
+    """Records of runs before --estimand (checkpoints, raw files) carry the ATT truths by name."""
+    if "estimand" not in record:
+        record = dict(record, estimand="att", truth_expected=record.get("expected_att"), truth_sample=record.get("sample_att"),
+                      truth_population=record.get("population_att"), truth_matched=record.get("matched_att"))
+    return record
 
 
 def replicate(task) -> tuple[list[dict], list[dict]]:
     """One process at one seed, every method: (records, failures)."""
-    process, seed, size, methods, work, log1p, doubly_robust = task
+    process, seed, size, methods, work, log1p, doubly_robust, estimands = task
     folder = Path(work) / f"{process}_{seed}"
     if process == "demo":
         spec_path = build_demo(folder, riders=size, seed=seed)
@@ -107,10 +134,11 @@ def replicate(task) -> tuple[list[dict], list[dict]]:
     records, failures = [], []
     con = duckdb.connect(str(database), config={"threads": 1})  # two workers on a shared 2-core machine
     try:
-        for method in methods:
+        for method, estimand in ((m, e) for m in methods for e in estimands if e in METHODS[m].estimands):
             t0 = time.perf_counter()
             try:
                 spec = load_spec(spec_path).with_overrides(method=method)
+                spec = dataclasses.replace(spec, matching=dataclasses.replace(spec.matching, estimand=estimand))
                 if log1p:
                     # the propensity model on log(1 + x) of these features (where the model has them)
                     chosen = tuple(f for f in log1p if f in spec.propensity.features)
@@ -127,13 +155,14 @@ def replicate(task) -> tuple[list[dict], list[dict]]:
                     spec = dataclasses.replace(spec, regression_adjustment=True)
                 results = api.run(spec, engine=DuckDBEngine(str(database), connection=con))
             except Exception as err:  # a failing method is counted, not fatal
-                failures.append(dict(process=process, seed=seed, method=method, error=f"{type(err).__name__}: {str(err).splitlines()[0] if str(err) else ''}"))
+                failures.append(dict(process=process, seed=seed, method=method, estimand=estimand, error=f"{type(err).__name__}: {str(err).splitlines()[0] if str(err) else ''}"))
                 continue
             seconds = time.perf_counter() - t0
-            matched = _matched_truth(con, spec) if process == "commuter" else {}
+            matched = _matched_truth(con, spec, estimand) if process == "commuter" else {}
             for e in results.effects:
-                t = dict(truth[e.outcome], matched_att=matched.get(e.outcome))
-                base = dict(process=process, seed=seed, method=method, kind=e.kind, seconds=seconds, n_treated=e.n_treated, n_control=e.n_control, **t)
+                tr = truth[e.outcome]
+                t = dict(truth_expected=tr[f"expected_{estimand}"], truth_sample=tr[f"sample_{estimand}"], truth_population=tr[f"population_{estimand}"], truth_matched=matched.get(e.outcome))
+                base = dict(process=process, seed=seed, method=method, estimand=estimand, kind=e.kind, seconds=seconds, n_treated=e.n_treated, n_control=e.n_control, **t)
                 plain = e.unadjusted if method == "score_weighting" and e.unadjusted is not None else e
                 records.append(dict(base, row=e.outcome, estimate=plain.estimate, se=plain.std_error, lo=plain.ci_low, hi=plain.ci_high))
                 records.append(dict(base, row=f"{e.outcome} (unmatched)", estimate=e.naive.estimate, se=e.naive.std_error, lo=e.naive.ci_low, hi=e.naive.ci_high))
@@ -156,10 +185,10 @@ def replicate(task) -> tuple[list[dict], list[dict]]:
     return records, failures
 
 
-def run(replicates: int, sizes: dict, first_seed: int, methods: list[str], processes: list[str], workers: int, work: Path, log=sys.stderr, checkpoint: Path | None = None, log1p: tuple = (), doubly_robust: bool = True):
+def run(replicates: int, sizes: dict, first_seed: int, methods: list[str], processes: list[str], workers: int, work: Path, log=sys.stderr, checkpoint: Path | None = None, log1p: tuple = (), doubly_robust: bool = True, estimands: tuple = ("att",)):
     """Every (process, seed) in `workers` processes; each finished replicate is appended to
     `checkpoint` (JSON lines) so an interrupted run can still be summarised (--from-checkpoint)."""
-    tasks = [(p, first_seed + k, sizes[p], methods, str(work), tuple(log1p), doubly_robust) for k in range(replicates) for p in processes]
+    tasks = [(p, first_seed + k, sizes[p], methods, str(work), tuple(log1p), doubly_robust, tuple(estimands)) for k in range(replicates) for p in processes]
     records: list[dict] = []
     failures: list[dict] = []
     sink = checkpoint.open("w", encoding="utf-8") if checkpoint else None
@@ -171,7 +200,7 @@ def run(replicates: int, sizes: dict, first_seed: int, methods: list[str], proce
                 sink.write(json.dumps(dict(records=recs, failures=fails)) + "\n")
                 sink.flush()
             for f in fails:
-                print(f"calibration: {f['method']} failed on {f['process']} seed {f['seed']}: {f['error']}", file=log, flush=True)
+                print(f"calibration: {f['method']} ({f.get('estimand', 'att')}) failed on {f['process']} seed {f['seed']}: {f['error']}", file=log, flush=True)
             if i % 10 == 0 or i == len(tasks):
                 print(f"calibration: {i}/{len(tasks)} replicates done", file=log, flush=True)
     if sink:
@@ -187,18 +216,21 @@ def _cover(rs, key):
     return c, math.sqrt(c * (1 - c) / len(ok))
 
 
+ESTIMANDS = ("att", "atc", "ate")
+
+
 def summarise(records: list[dict], failures: list[dict]) -> list[dict]:
     groups: dict[tuple, list[dict]] = defaultdict(list)
-    for r in records:
-        groups[(r["process"], r["method"], r["row"])].append(r)
+    for r in map(_normalise, records):
+        groups[(r["process"], r["method"], r["estimand"], r["row"])].append(r)
     failed = defaultdict(int)
     for f in failures:
-        failed[(f["process"], f["method"])] += 1
+        failed[(f["process"], f["method"], f.get("estimand", "att"))] += 1
     out = []
-    for key in sorted(groups, key=lambda k: (PROCESSES.index(k[0]), k[1], k[2])):
+    for key in sorted(groups, key=lambda k: (PROCESSES.index(k[0]), k[1], ESTIMANDS.index(k[2]), k[3])):
         rs = sorted(groups[key], key=lambda r: r["seed"])
         n = len(rs)
-        errors = [r["estimate"] - r["expected_att"] for r in rs]
+        errors = [r["estimate"] - r["truth_expected"] for r in rs]
         bias = sum(errors) / n
         estimates = [r["estimate"] for r in rs]
         mean_est = sum(estimates) / n
@@ -208,19 +240,19 @@ def summarise(records: list[dict], failures: list[dict]) -> list[dict]:
         sd_err = math.sqrt(sum((x - err_mean) ** 2 for x in errors) / (n - 1)) if n > 1 else math.nan
         ses = [r["se"] for r in rs if r["se"] is not None]
         mean_se = sum(ses) / len(ses) if ses else math.nan
-        cov, mc = _cover(rs, "expected_att")
-        cov_s, _ = _cover(rs, "sample_att")
-        cov_p, _ = _cover(rs, "population_att")
-        cov_m, _ = _cover(rs, "matched_att")
-        with_m = [r for r in rs if r.get("matched_att") is not None]
-        bias_m = sum(r["estimate"] - r["matched_att"] for r in with_m) / len(with_m) if with_m else math.nan
+        cov, mc = _cover(rs, "truth_expected")
+        cov_s, _ = _cover(rs, "truth_sample")
+        cov_p, _ = _cover(rs, "truth_population")
+        cov_m, _ = _cover(rs, "truth_matched")
+        with_m = [r for r in rs if r.get("truth_matched") is not None]
+        bias_m = sum(r["estimate"] - r["truth_matched"] for r in with_m) / len(with_m) if with_m else math.nan
         out.append(
             dict(
-                process=key[0], method=key[1], row=key[2], kind=rs[0]["kind"], n=n, failed=failed[(key[0], key[1])],
+                process=key[0], method=key[1], estimand=key[2], row=key[3], kind=rs[0]["kind"], n=n, failed=failed[(key[0], key[1], key[2])],
                 coverage=cov, mc_se=mc, coverage_sample=cov_s, coverage_population=cov_p, coverage_matched=cov_m, bias_matched=bias_m,
                 bias=bias, bias_se=sd / math.sqrt(n) if n > 1 else math.nan,
                 bias_over_se=bias / mean_se if mean_se else math.nan,
-                mean_truth=sum(r["expected_att"] for r in rs) / n, sd=sd, mean_se=mean_se,
+                mean_truth=sum(r["truth_expected"] for r in rs) / n, sd=sd, mean_se=mean_se,
                 sd_error=sd_err, se_over_sd=mean_se / sd_err if sd_err else math.nan,
                 seconds=sum(r["seconds"] for r in rs) / n,
             )
@@ -241,7 +273,8 @@ def _commit() -> str:
         return "unknown"
 
 
-def render(summary, failures, args, seconds: float, command: str) -> str:
+def render(summary, failures, args, seconds: float, command: str, skipped: dict | None = None) -> str:
+    skipped = skipped or {}
     lines = [
         "# Calibration of the 95% intervals on two simulated bike-shares",
         "",
@@ -268,12 +301,15 @@ def render(summary, failures, args, seconds: float, command: str) -> str:
             if args.doubly_robust and "score_weighting" in (args.methods or list(METHODS))
             else ""
         ),
-        "- Truths. `expected`: the effect on the cohort given its units' latent values, averaged over the post-window "
-        "randomness (the demo's `true_att`; what the per-stratum variance formula targets). `sample`: the realised mean of "
-        "Y(1) − Y(0) over the cohort from both simulated potential outcomes. `population`: the ATT over a 1,000,000-rider "
-        "population (commuter only; the demo records none). `matched treated`: the expected effect over only the treated "
-        "units the run kept (commuter only): with a heterogeneous effect a method that drops treated units estimates "
-        "the effect on the ones it kept, as the report says.",
+        f"- Estimands (`[matching] estimand`): {', '.join(e.upper() for e in args.estimand)}."
+        + ("".join(f" Skipped for the {e.upper()} (the method does not offer it): {', '.join(ms)}." for e, ms in skipped.items() if ms)),
+        "- Truths, each of the row's estimand (ATT: over the cohort; ATC: over the study's controls; ATE: over both). "
+        "`expected`: the effect on the target units given their latent values, averaged over the post-window "
+        "randomness (the demo's `true_att`, `true_atc`, `true_ate`; what the per-stratum variance formula targets). `sample`: the realised mean of "
+        "Y(1) − Y(0) over the target units from both simulated potential outcomes (the demo has it for the ATT only). `population`: the effect over a 1,000,000-rider "
+        "population (commuter only; the demo records none). `kept`: the expected effect over only the target "
+        "units the run kept (commuter only; the treated for the ATT, the controls for the ATC, all for the ATE): with a heterogeneous effect a method that drops units estimates "
+        "the effect on the ones it kept, as the report says. Ratio outcomes: the ratio of the sums over the target units in each world, then the difference.",
         "",
         "Coverage: share of the 95% intervals that contain the truth (target 0.93–0.97; Monte Carlo SE in brackets). "
         "Bias: mean of estimate − expected truth (± its Monte Carlo SE); bias/SE divides it by the mean SE. "
@@ -281,42 +317,42 @@ def render(summary, failures, args, seconds: float, command: str) -> str:
         "over the SD of errors (1 = honest). "
         "Failed: replicates where the method raised (no estimate).",
         "",
-        "| process | method | estimate | kind | ok | failed | coverage (expected) | coverage (sample) | coverage (population) | coverage (matched treated) | bias | bias vs matched | bias/SE | mean truth | SD of estimates | SD of errors | mean SE | SE/SD |",
-        "|---|---|---|---|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|",
+        "| process | method | estimand | estimate | kind | ok | failed | coverage (expected) | coverage (sample) | coverage (population) | coverage (kept) | bias | bias vs kept | bias/SE | mean truth | SD of estimates | SD of errors | mean SE | SE/SD |",
+        "|---|---|---|---|---|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|",
     ]
     flagged = []
     for s in summary:
         if "(unmatched)" in s["row"]:
             continue
         lines.append(
-            f"| {s['process']} | {s['method']} | {s['row']} | {s['kind']} | {s['n']} | {s['failed']} | {_f(s['coverage'], '.3f')} ({_f(s['mc_se'], '.3f')}) | "
+            f"| {s['process']} | {s['method']} | {s['estimand'].upper()} | {s['row']} | {s['kind']} | {s['n']} | {s['failed']} | {_f(s['coverage'], '.3f')} ({_f(s['mc_se'], '.3f')}) | "
             f"{_f(s['coverage_sample'], '.3f')} | {_f(s['coverage_population'], '.3f')} | {_f(s['coverage_matched'], '.3f')} | {s['bias']:+.4f} (± {_f(s['bias_se'], '.4f')}) | {_f(s['bias_matched'], '+.4f')} | {_f(s['bias_over_se'], '+.2f')} | "
             f"{s['mean_truth']:.4f} | {_f(s['sd'], '.4f')} | {_f(s['sd_error'], '.4f')} | {_f(s['mean_se'], '.4f')} | {_f(s['se_over_sd'], '.2f')} |"
         )
         if not 0.93 <= s["coverage"] <= 0.97:
             flagged.append(s)
-    failed_cells = sorted({(f["process"], f["method"]) for f in failures})
+    failed_cells = sorted({(f["process"], f["method"], f.get("estimand", "att")) for f in failures})
     if failed_cells:
         lines += ["", "Failures (first message per cell):", ""]
         for cell in failed_cells:
-            fs = [f for f in failures if (f["process"], f["method"]) == cell]
-            lines.append(f"- {cell[0]} / `{cell[1]}`: {len(fs)} of {args.replicates} replicates; {fs[0]['error']}")
+            fs = [f for f in failures if (f["process"], f["method"], f.get("estimand", "att")) == cell]
+            lines.append(f"- {cell[0]} / `{cell[1]}` / {cell[2].upper()}: {len(fs)} of {args.replicates} replicates; {fs[0]['error']}")
     lines += ["", "Cells outside 0.93–0.97 (coverage of the expected truth):", ""]
-    lines += [f"- {s['process']} / {s['method']} / {s['row']}: {s['coverage']:.3f}" for s in flagged] or ["- none"]
+    lines += [f"- {s['process']} / {s['method']} / {s['estimand'].upper()} / {s['row']}: {s['coverage']:.3f}" for s in flagged] or ["- none"]
     # the SE against the spread of the errors, in both directions (0.9-1.1: our band, about the
     # Monte Carlo error of an SD from 100-200 replicates)
     narrow = [s for s in summary if "(unmatched)" not in s["row"] and s["se_over_sd"] < 0.9]
     wide = [s for s in summary if "(unmatched)" not in s["row"] and s["se_over_sd"] > 1.1]
     lines += ["", "Mean SE against the SD of the errors (SE/SD; band 0.9–1.1, about the Monte Carlo error of an SD at these replicate counts):", ""]
-    lines += ["- too narrow (SE/SD < 0.9): " + (", ".join(f"{s['process']} / {s['method']} / {s['row']} {s['se_over_sd']:.2f}" for s in narrow) or "none")]
-    lines += ["- too wide (SE/SD > 1.1): " + (", ".join(f"{s['process']} / {s['method']} / {s['row']} {s['se_over_sd']:.2f}" for s in wide) or "none")]
+    lines += ["- too narrow (SE/SD < 0.9): " + (", ".join(f"{s['process']} / {s['method']} / {s['estimand'].upper()} / {s['row']} {s['se_over_sd']:.2f}" for s in narrow) or "none")]
+    lines += ["- too wide (SE/SD > 1.1): " + (", ".join(f"{s['process']} / {s['method']} / {s['estimand'].upper()} / {s['row']} {s['se_over_sd']:.2f}" for s in wide) or "none")]
     lines += ["", "Unmatched (naive) comparisons, for reference (biased by design):", "",
-              "| process | estimate | coverage (expected) | bias |", "|---|---|---:|---:|"]
+              "| process | estimand | estimate | coverage (expected) | bias |", "|---|---|---|---:|---:|"]
     seen = set()
     for s in summary:
-        if "(unmatched)" in s["row"] and (s["process"], s["row"]) not in seen:
-            seen.add((s["process"], s["row"]))
-            lines.append(f"| {s['process']} | {s['row']} | {_f(s['coverage'], '.3f')} | {s['bias']:+.4f} |")
+        if "(unmatched)" in s["row"] and (s["process"], s["estimand"], s["row"]) not in seen:
+            seen.add((s["process"], s["estimand"], s["row"]))
+            lines.append(f"| {s['process']} | {s['estimand'].upper()} | {s['row']} | {_f(s['coverage'], '.3f')} | {s['bias']:+.4f} |")
     lines += [""]
     return "\n".join(lines)
 
@@ -334,6 +370,7 @@ def main(argv=None) -> int:
     parser.add_argument("--log1p", nargs="*", default=[], help="fit the propensity model on log(1 + x) of these features (default: the specs' own model)")
     parser.add_argument("--balance-variances", action="store_true", help="entropy_balancing: balance the numeric features' variances too")
     parser.add_argument("--no-doubly-robust", dest="doubly_robust", action="store_false", help="score_weighting without its doubly robust rows (they are on by default)")
+    parser.add_argument("--estimand", nargs="+", default=["att"], choices=ESTIMANDS, help="[matching] estimand of every run (several: each in turn on the same data; default att)")
     parser.add_argument("--workers", type=int, default=2, help="worker processes (default 2; the machine is shared)")
     parser.add_argument("--out", type=Path, default=REPO / "benchmarks" / "RESULTS_calibration.md")
     parser.add_argument("--raw", type=Path, default=REPO / "benchmarks" / "calibration_raw.json")
@@ -347,6 +384,10 @@ def main(argv=None) -> int:
     global BALANCE_VARIANCES
     BALANCE_VARIANCES = args.balance_variances
     methods = args.methods or list(METHODS)
+    skipped = {e: [m for m in methods if e not in METHODS[m].estimands] for e in args.estimand}
+    for e, ms in skipped.items():
+        if ms:
+            print(f"calibration: skipping {', '.join(ms)} for the {e.upper()} (not among the method's estimands)", file=sys.stderr, flush=True)
     command = "python3 benchmarks/calibration.py " + " ".join(argv if argv is not None else sys.argv[1:])
     t0 = time.perf_counter()
     if args.from_checkpoint:
@@ -358,10 +399,10 @@ def main(argv=None) -> int:
         seconds = math.nan
     else:
         with tempfile.TemporaryDirectory(prefix="sqlmatch_calibration_") as work:
-            records, failures = run(args.replicates, {"demo": args.riders, "commuter": args.units}, args.first_seed, methods, args.processes, args.workers, Path(work), checkpoint=args.checkpoint, log1p=args.log1p, doubly_robust=args.doubly_robust)
+            records, failures = run(args.replicates, {"demo": args.riders, "commuter": args.units}, args.first_seed, methods, args.processes, args.workers, Path(work), checkpoint=args.checkpoint, log1p=args.log1p, doubly_robust=args.doubly_robust, estimands=tuple(args.estimand))
         seconds = time.perf_counter() - t0
     summary = summarise(records, failures)
-    text = render(summary, failures, args, seconds, command.strip())
+    text = render(summary, failures, args, seconds, command.strip(), skipped)
     args.out.write_text(text, encoding="utf-8")
     args.raw.write_text(json.dumps(dict(command=command.strip(), commit=_commit(), machine=_machine(), seconds=seconds, summary=summary, failures=failures, records=records), separators=(",", ":"), default=str), encoding="utf-8")
     print(text)

@@ -28,6 +28,16 @@ Truth, per outcome (post_trips, post_fare, fare_per_trip, active_last_month):
                   treated units estimates the effect on those it kept, and the effect varies);
   population_att  the same expectation over the treated of a 1,000,000-rider population drawn
                   once with a fixed seed (weights: each rider's take-up probability).
+The same three for the effect on the controls (`expected_atc`, `sample_atc`, `population_atc`:
+this seed's controls, every rider who did not buy in March, late buyers included; population
+weights 1 - take-up probability) and on everyone (`expected_ate`, `sample_ate`, `population_ate`:
+all riders of the study, weight 1). A control's world with the pass is the cohort's: tau_i extra
+trips a month over April..June and half fare on every post-window trip. For the ratio outcome
+fare_per_trip every truth is the ratio of the expected (or realised) sums over the target units
+under the pass minus the same under no pass, as for the ATT. The realised control outcomes with a
+pass are drawn from a second generator (seeded by (seed, 1)) after the data, so the riders and
+trips of a seed are those the ATT-only version drew. `commuter_unit_truth` holds every rider's
+expectations with a `treated` flag (calibration.py's truth over the units a run kept).
 
 numpy draws the rows, DuckDB stores them (tables `riders`, `trips`, `commuter_truth`,
 `commuter_unit_truth`). A benchmark
@@ -99,7 +109,10 @@ def _expected(rate, fare_median, tau):
     return dict(trips0=trips0, trips1=trips1, fare0=fare0, fare1=fare1, active0=active0, active1=active1)
 
 
-def _att(ex: dict, weight) -> dict[str, float]:
+def _effect(ex: dict, weight) -> dict[str, float]:
+    """The effect over units weighted by `weight` (1/0 picks a group; take-up probabilities give
+    the population's treated, 1 - them its controls); ratio outcome: ratio of the weighted sums in
+    each world, then the difference."""
     w = weight / weight.sum()
     return {
         "post_trips": float(w @ (ex["trips1"] - ex["trips0"])),
@@ -110,14 +123,38 @@ def _att(ex: dict, weight) -> dict[str, float]:
 
 
 @functools.lru_cache(maxsize=1)
-def population_att(n: int = 1_000_000, seed: int = 987654321) -> dict[str, float]:
-    """Effect on the treated of a large population, weighting each rider by its take-up probability."""
+def population_truth(n: int = 1_000_000, seed: int = 987654321) -> dict[str, dict[str, float]]:
+    """Effects of a large population, estimand -> outcome -> value: on the treated (each rider
+    weighted by its take-up probability), on the controls (1 - it) and on everyone (1)."""
     rng = np.random.default_rng(seed)
     district, commute, rate, fare_median = _latent(rng, n)
     pre_trips = rng.poisson(rate * SEASON[PRE].sum())
     p = _takeup(pre_trips, commute, district)
-    # the cohort is March buyers among riders who did not buy otherwise; take-up is all in March
-    return _att(_expected(rate, fare_median, _tau(pre_trips)), p)
+    # the cohort is March buyers among riders who did not buy otherwise; take-up is all in March,
+    # and every other rider (late buyers too) is a control
+    ex = _expected(rate, fare_median, _tau(pre_trips))
+    return {"att": _effect(ex, p), "atc": _effect(ex, 1.0 - p), "ate": _effect(ex, np.ones(n))}
+
+
+def population_att(n: int = 1_000_000, seed: int = 987654321) -> dict[str, float]:
+    """Effect on the treated of a large population, weighting each rider by its take-up probability."""
+    return population_truth(n, seed)["att"]
+
+
+def _control_pass_world(seed: int, control, tau, fare_median, trips0, fare0, june0):
+    """Realised post-window outcomes of the controls had they bought in March: the cohort's
+    extra-trip and fare draws, from a generator of their own so the data's draws are untouched.
+    Returns (trips1, fare1, active1) for the rows `control`."""
+    rng = np.random.default_rng([seed, 1])
+    n = len(control)
+    extra = rng.poisson(np.repeat(tau[control, None], 3, axis=1))  # controls x (Apr, May, Jun)
+    count = extra.sum(axis=1)
+    rider = np.repeat(np.arange(n), count)
+    extra_fare = (1 - DISCOUNT) * fare_median[control][rider] * np.exp(FARE_LOG_SD * rng.standard_normal(len(rider)))
+    trips1 = trips0[control] + count
+    fare1 = (1 - DISCOUNT) * fare0 + np.bincount(rider, weights=extra_fare, minlength=n)
+    active1 = (june0[control] + extra[:, 2]) > 0
+    return trips1, fare1, active1
 
 
 def _trip_rows(rng, rider, month, count, fare_median, discount):
@@ -182,11 +219,41 @@ def simulate(units: int, seed: int):
         "fare_per_trip": float(fare1[c].sum() / trips1[c].sum() - fare0[c].sum() / trips0[c].sum()),
         "active_last_month": float(np.mean(act1[c].astype(float) - act0[c])),
     }
-    expected = _att(_expected(rate[c], fare_median[c], tau[c]), np.ones(len(c)))
-    ex = _expected(rate[c], fare_median[c], tau[c])
-    unit_truth = pd.DataFrame({"rider_id": rider_id[c], **{k: v for k, v in ex.items()}})
-    population = population_att()
-    truth = {o: dict(expected_att=expected[o], sample_att=sample[o], population_att=population[o]) for o in OUTCOMES}
+    expected = _effect(_expected(rate[c], fare_median[c], tau[c]), np.ones(len(c)))
+
+    # the controls (every rider not in the cohort) in both worlds: realised, and expected
+    k = np.flatnonzero(~treated)
+    is_c_b = ~treated[rows_b[0]] & in_post
+    fare0_k = np.bincount(rows_b[0][is_c_b], weights=rows_b[2][is_c_b], minlength=units)[k]
+    trips1_k, fare1_k, act1_k = _control_pass_world(seed, k, tau, fare_median, trips0, fare0_k, base[:, JUNE])
+
+    def realised(t0, t1, f0, f1, a0, a1):
+        return {
+            "post_trips": float(np.mean(t1 - t0)),
+            "post_fare": float(np.mean(f1 - f0)),
+            "fare_per_trip": float(f1.sum() / t1.sum() - f0.sum() / t0.sum()),
+            "active_last_month": float(np.mean(a1.astype(float) - a0)),
+        }
+
+    sample_c = realised(trips0[k], trips1_k, fare0_k, fare1_k, act0[k], act1_k)
+    sample_e = realised(
+        np.concatenate([trips0[c], trips0[k]]), np.concatenate([trips1[c], trips1_k]),
+        np.concatenate([fare0[c], fare0_k]), np.concatenate([fare1[c], fare1_k]),
+        np.concatenate([act0[c], act0[k]]), np.concatenate([act1[c], act1_k]),
+    )
+    ex_all = _expected(rate, fare_median, tau)
+    expected_c = _effect({key: v[k] for key, v in ex_all.items()}, np.ones(len(k)))
+    expected_e = _effect(ex_all, np.ones(units))
+    unit_truth = pd.DataFrame({"rider_id": rider_id, "treated": treated.astype(int), **ex_all})
+    population = population_truth()
+    truth = {
+        o: dict(
+            expected_att=expected[o], sample_att=sample[o], population_att=population["att"][o],
+            expected_atc=expected_c[o], sample_atc=sample_c[o], population_atc=population["atc"][o],
+            expected_ate=expected_e[o], sample_ate=sample_e[o], population_ate=population["ate"][o],
+        )
+        for o in OUTCOMES
+    }
 
     signup = np.datetime64("2023-01-01") + rng.integers(0, 900, units).astype("timedelta64[D]")
     riders = pd.DataFrame(

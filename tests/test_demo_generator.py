@@ -195,7 +195,10 @@ def test_schemas(warehouse):
         ("trip_id", "BIGINT"), ("rider_id", "BIGINT"), ("started_at", "TIMESTAMP"),
         ("minutes", "DOUBLE"), ("fare", "DOUBLE"), ("distance_km", "DOUBLE"),
     ]
-    assert columns("demo_truth") == [("outcome", "VARCHAR"), ("true_att", "DOUBLE"), ("sample_att", "DOUBLE"), ("note", "VARCHAR")]
+    assert columns("demo_truth") == [
+        ("outcome", "VARCHAR"), ("true_att", "DOUBLE"), ("sample_att", "DOUBLE"),
+        ("true_atc", "DOUBLE"), ("true_ate", "DOUBLE"), ("note", "VARCHAR"),
+    ]
     assert columns("demo_meta") == [("key", "VARCHAR"), ("value", "VARCHAR")]
     # scratch tables are gone
     assert _one(warehouse, "SELECT COUNT(*) FROM duckdb_tables() WHERE table_name LIKE '\\_demo\\_%' ESCAPE '\\'") == 0
@@ -388,6 +391,65 @@ def test_confounding_heavier_riders_buy_and_naive_difference_exceeds_truth(wareh
             GROUP BY r.rider_id, r.pass_bought_on)
         SELECT AVG(n) FILTER (WHERE d = 1) - AVG(n) FILTER (WHERE d = 0) FROM post""")
     assert naive > _truth(warehouse)["post_trips"] + 1.0
+
+
+_CONTROLS = "r.pass_bought_on IS NULL OR r.pass_bought_on > DATE '2026-06-30'"
+_COHORT = "r.pass_bought_on >= DATE '2026-03-01' AND r.pass_bought_on < DATE '2026-04-01'"
+
+
+def test_effect_on_everyone_mixes_the_cohort_and_the_controls(warehouse):
+    """A mean over the cohort and the controls is their size-weighted mix, so the expected ATE is
+    (n_t ATT + n_c ATC) / (n_t + n_c) for the outcomes linear in the riders (post_fare,
+    active_last_month); counts from the public riders table. The outcomes fixed by construction
+    (trips: 3 * DELTA; minutes and fare per trip: trip-level expectations) are equal across the three."""
+    n_t, n_c = _one(warehouse, f"SELECT COUNT(*) FILTER (WHERE {_COHORT}), COUNT(*) FILTER (WHERE {_CONTROLS}) FROM riders AS r")
+    assert n_t == int(_meta(warehouse)["cohort_riders"])
+    rows = {o: (att, atc, ate) for o, att, atc, ate in _rows(warehouse, "SELECT outcome, true_att, true_atc, true_ate FROM demo_truth")}
+    for outcome in ("post_fare", "active_last_month"):
+        att, atc, ate = rows[outcome]
+        # each group mean is rounded to 12 decimals in the generator
+        assert ate == pytest.approx((n_t * att + n_c * atc) / (n_t + n_c), abs=1e-9), outcome
+        assert atc != att  # the controls ride less than the cohort: a different effect
+    for outcome in ("post_trips", "post_minutes", "fare_per_trip"):
+        att, atc, ate = rows[outcome]
+        assert att == atc == ate, outcome
+    assert rows["post_trips"][1] == 3 * float(_meta(warehouse)["pass_extra_trips_per_month"])
+
+
+def test_effect_on_the_controls_follows_from_their_observed_no_pass_world(warehouse):
+    """The controls' observed post window is their world without a pass (none holds one before
+    July). By the construction (header, 5.) a March pass adds DELTA trips a month and charges 60%
+    of the standard fare on every trip, so E[ATC of post_fare] = (b + 3 DELTA) * 0.6 fs - b fs and
+    E[ATC of active_last_month] = P(no June trip) * (1 - exp(-DELTA)), with b the controls' mean
+    post-window trips and fs the standard fare per trip, both estimated from the public trips
+    table. Tolerance: 4 standard errors of those estimates (common practice), plus half a cent per
+    trip for the pass fare's rounding to cents."""
+    n, b, var_b, fs, var_fare, trips, idle = _one(warehouse, f"""
+        WITH post AS (
+            SELECT r.rider_id,
+                   COUNT(t.trip_id) AS n,
+                   SUM(t.fare) AS fare,
+                   SUM(t.fare * t.fare) AS fare2,
+                   MAX(CASE WHEN t.started_at >= TIMESTAMP '2026-06-01' THEN 1 ELSE 0 END) AS active
+            FROM riders AS r
+            LEFT JOIN trips AS t
+              ON t.rider_id = r.rider_id
+             AND t.started_at >= TIMESTAMP '2026-04-01' AND t.started_at < TIMESTAMP '2026-07-01'
+            WHERE {_CONTROLS}
+            GROUP BY r.rider_id)
+        SELECT COUNT(*), AVG(n), VAR_SAMP(n), SUM(fare) / SUM(n),
+               SUM(fare2) / SUM(n) - (SUM(fare) / SUM(n)) ^ 2, SUM(n), AVG(1.0 - COALESCE(active, 0)) FROM post""")
+    delta = float(_meta(warehouse)["pass_extra_trips_per_month"])
+    discount = float(_meta(warehouse)["pass_fare_discount"])
+    truth = {o: atc for o, atc in _rows(warehouse, "SELECT outcome, true_atc FROM demo_truth")}
+    fp = (1 - discount) * fs
+    predicted = (b + 3 * delta) * fp - b * fs
+    # delta method over the two estimates (independent enough: trip fares do not depend on the rider)
+    se = math.sqrt((fp - fs) ** 2 * var_b / n + ((1 - discount) * (b + 3 * delta) - b) ** 2 * var_fare / trips)
+    assert abs(truth["post_fare"] - predicted) < 4 * se + 0.005 * (b + 3 * delta), (truth["post_fare"], predicted, se)
+    predicted = idle * (1 - math.exp(-delta))
+    se = math.sqrt(idle * (1 - idle) / n) * (1 - math.exp(-delta))
+    assert abs(truth["active_last_month"] - predicted) < 4 * se, (truth["active_last_month"], predicted, se)
 
 
 # --------------------------------------------------------------------------------------------
