@@ -29,9 +29,10 @@ EXPECTED_KINDS = {"setup": [exp.Create], "table": [exp.Drop, exp.Create, exp.Dro
 
 def expected_kinds(kind: str, dialect: str, body=None) -> list:
     """A compiled file's statement kinds: the session's time zone first where the dialect has the
-    statement (DuckDB, PostgreSQL, Spark), and the swap in BEGIN ... COMMIT where DDL is
-    transactional (DuckDB, PostgreSQL)."""
+    statement (DuckDB, PostgreSQL, Spark), on PostgreSQL then JIT off, and the swap in BEGIN ...
+    COMMIT where DDL is transactional (DuckDB, PostgreSQL)."""
     zone = [exp.Set] if kind != "setup" and dialect in ("duckdb", "postgres", "spark") else []
+    zone += [exp.Set] if kind != "setup" and dialect == "postgres" else []
     if kind == "table":
         swap = [exp.Drop, exp.Alter]
         if dialect in ("duckdb", "postgres"):
