@@ -1,5 +1,5 @@
 -- sqlmatch study 'annual_pass', step 13: outcome_strata (duckdb)
--- Outcome sums per stratum and group among matched units, with the feature sums and cross-products that adjust them by regression.
+-- Outcome sums per stratum and group among matched units, with the sums of the regressors, their cross-products and products with the outcomes that adjust them by regression.
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_weighted_units
 -- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
@@ -8,8 +8,9 @@ SET TimeZone = 'UTC';
 
 /* Outcomes per stratum and group among matched units:
    counts, sums, sums of squares (and, for ratio outcomes, the cross-product) from which the
-   effect and its variance are computed. Also the sums of the numeric features, their
-   cross-products and their products with each outcome, from which the within-stratum regression
+   effect and its variance are computed. Also the sums of the regressors of the within-stratum
+   regression adjustment (the numeric features and their squares), their cross-products and
+   their products with each outcome (a ratio outcome's numerator and denominator), from which the
    adjustment is computed. Rows grow with the number of strata, never with the
    number of units. */
 SELECT
@@ -20,10 +21,19 @@ SELECT
   SUM(m.pre_trips) AS pre_trips__xsum,
   SUM(m.pre_fare) AS pre_fare__xsum,
   SUM(m.pre_trips * m.pre_trips) AS pre_trips__x__pre_trips,
-  SUM(m.pre_trips * m.pre_fare) AS pre_trips__x__pre_fare,
   SUM(m.pre_fare * m.pre_fare) AS pre_fare__x__pre_fare,
+  SUM(m.pre_trips * m.pre_fare) AS pre_trips__x__pre_fare,
+  SUM(CAST(m.pre_trips AS DOUBLE) * m.pre_trips * m.pre_trips) AS adj_0_0_0,
+  SUM(CAST(m.pre_trips AS DOUBLE) * m.pre_fare * m.pre_fare) AS adj_0_1_1,
+  SUM(CAST(m.pre_trips AS DOUBLE) * m.pre_trips * m.pre_fare) AS adj_0_0_1,
+  SUM(CAST(m.pre_fare AS DOUBLE) * m.pre_fare * m.pre_fare) AS adj_1_1_1,
+  SUM(CAST(m.pre_trips AS DOUBLE) * m.pre_trips * m.pre_trips * m.pre_trips) AS adj_0_0_0_0,
+  SUM(CAST(m.pre_trips AS DOUBLE) * m.pre_trips * m.pre_fare * m.pre_fare) AS adj_0_0_1_1,
+  SUM(CAST(m.pre_fare AS DOUBLE) * m.pre_fare * m.pre_fare * m.pre_fare) AS adj_1_1_1_1,
   SUM(m.pre_trips * m.post_fare) AS pre_trips__x__post_fare,
   SUM(m.pre_fare * m.post_fare) AS pre_fare__x__post_fare,
+  SUM(CAST(m.pre_trips AS DOUBLE) * m.pre_trips * m.post_fare) AS adj_0_0__x__post_fare,
+  SUM(CAST(m.pre_fare AS DOUBLE) * m.pre_fare * m.post_fare) AS adj_1_1__x__post_fare,
   SUM(m.post_fare) AS post_fare__sum,
   SUM(m.post_fare * m.post_fare) AS post_fare__sumsq
 FROM "sqlmatch".annual_pass_weighted_units AS m

@@ -1,5 +1,5 @@
 -- sqlmatch study 'annual_pass', step 21: outcome_strata (postgres)
--- Outcome sums per stratum and group among matched units, with the feature sums and cross-products that adjust them by regression.
+-- Outcome sums per stratum and group among matched units, with the sums of the regressors, their cross-products and products with the outcomes that adjust them by regression.
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_measures, sqlmatch.annual_pass_match_weights
 -- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
@@ -8,8 +8,9 @@ SET TimeZone = 'UTC';
 
 /* Outcomes per stratum and group among matched units:
    counts, sums, sums of squares (and, for ratio outcomes, the cross-product) from which the
-   effect and its variance are computed. Also the sums of the numeric features, their
-   cross-products and their products with each outcome, from which the within-stratum regression
+   effect and its variance are computed. Also the sums of the regressors of the within-stratum
+   regression adjustment (the numeric features and their squares), their cross-products and
+   their products with each outcome (a ratio outcome's numerator and denominator), from which the
    adjustment is computed. Rows grow with the number of strata, never with the
    number of units. An outcome with a pre-window twin (the same measure before
    enrolment) also gets the sums of (outcome - twin), for the difference-in-differences. */
@@ -37,6 +38,18 @@ SELECT
     m.pre_trips * m.pre_trips
   )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_trips__x__pre_trips,
   CAST(SUM(w.weight * (
+    m.pre_minutes * m.pre_minutes
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_minutes__x__pre_minutes,
+  CAST(SUM(w.weight * (
+    m.pre_fare_per_trip * m.pre_fare_per_trip
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_fare_per_trip__x__pre_fare_per_trip,
+  CAST(SUM(w.weight * (
+    m.pre_active_days * m.pre_active_days
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_active_days__x__pre_active_days,
+  CAST(SUM(w.weight * (
+    m.pre_days_since_last * m.pre_days_since_last
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_days_since_last__x__pre_days_since_last,
+  CAST(SUM(w.weight * (
     m.pre_trips * m.pre_minutes
   )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_trips__x__pre_minutes,
   CAST(SUM(w.weight * (
@@ -48,9 +61,31 @@ SELECT
   CAST(SUM(w.weight * (
     m.pre_trips * m.pre_days_since_last
   )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_trips__x__pre_days_since_last,
-  CAST(SUM(w.weight * (
-    m.pre_minutes * m.pre_minutes
-  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_minutes__x__pre_minutes,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_trips AS DOUBLE PRECISION) * m.pre_trips * m.pre_trips
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_0_0_0,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_trips AS DOUBLE PRECISION) * m.pre_minutes * m.pre_minutes
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_0_1_1,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_trips AS DOUBLE PRECISION) * m.pre_fare_per_trip * m.pre_fare_per_trip
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_0_2_2,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_trips AS DOUBLE PRECISION) * m.pre_active_days * m.pre_active_days
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_0_3_3,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_trips AS DOUBLE PRECISION) * m.pre_days_since_last * m.pre_days_since_last
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_0_4_4,
   CAST(SUM(w.weight * (
     m.pre_minutes * m.pre_fare_per_trip
   )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_minutes__x__pre_fare_per_trip,
@@ -60,24 +95,190 @@ SELECT
   CAST(SUM(w.weight * (
     m.pre_minutes * m.pre_days_since_last
   )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_minutes__x__pre_days_since_last,
-  CAST(SUM(w.weight * (
-    m.pre_fare_per_trip * m.pre_fare_per_trip
-  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_fare_per_trip__x__pre_fare_per_trip,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_trips AS DOUBLE PRECISION) * m.pre_trips * m.pre_minutes
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_0_0_1,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_minutes AS DOUBLE PRECISION) * m.pre_minutes * m.pre_minutes
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_1_1_1,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_minutes AS DOUBLE PRECISION) * m.pre_fare_per_trip * m.pre_fare_per_trip
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_1_2_2,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_minutes AS DOUBLE PRECISION) * m.pre_active_days * m.pre_active_days
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_1_3_3,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_minutes AS DOUBLE PRECISION) * m.pre_days_since_last * m.pre_days_since_last
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_1_4_4,
   CAST(SUM(w.weight * (
     m.pre_fare_per_trip * m.pre_active_days
   )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_fare_per_trip__x__pre_active_days,
   CAST(SUM(w.weight * (
     m.pre_fare_per_trip * m.pre_days_since_last
   )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_fare_per_trip__x__pre_days_since_last,
-  CAST(SUM(w.weight * (
-    m.pre_active_days * m.pre_active_days
-  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_active_days__x__pre_active_days,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_trips AS DOUBLE PRECISION) * m.pre_trips * m.pre_fare_per_trip
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_0_0_2,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_minutes AS DOUBLE PRECISION) * m.pre_minutes * m.pre_fare_per_trip
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_1_1_2,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_fare_per_trip AS DOUBLE PRECISION) * m.pre_fare_per_trip * m.pre_fare_per_trip
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_2_2_2,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_fare_per_trip AS DOUBLE PRECISION) * m.pre_active_days * m.pre_active_days
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_2_3_3,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_fare_per_trip AS DOUBLE PRECISION) * m.pre_days_since_last * m.pre_days_since_last
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_2_4_4,
   CAST(SUM(w.weight * (
     m.pre_active_days * m.pre_days_since_last
   )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_active_days__x__pre_days_since_last,
-  CAST(SUM(w.weight * (
-    m.pre_days_since_last * m.pre_days_since_last
-  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_days_since_last__x__pre_days_since_last,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_trips AS DOUBLE PRECISION) * m.pre_trips * m.pre_active_days
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_0_0_3,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_minutes AS DOUBLE PRECISION) * m.pre_minutes * m.pre_active_days
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_1_1_3,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_fare_per_trip AS DOUBLE PRECISION) * m.pre_fare_per_trip * m.pre_active_days
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_2_2_3,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_active_days AS DOUBLE PRECISION) * m.pre_active_days * m.pre_active_days
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_3_3_3,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_active_days AS DOUBLE PRECISION) * m.pre_days_since_last * m.pre_days_since_last
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_3_4_4,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_trips AS DOUBLE PRECISION) * m.pre_trips * m.pre_days_since_last
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_0_0_4,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_minutes AS DOUBLE PRECISION) * m.pre_minutes * m.pre_days_since_last
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_1_1_4,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_fare_per_trip AS DOUBLE PRECISION) * m.pre_fare_per_trip * m.pre_days_since_last
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_2_2_4,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_active_days AS DOUBLE PRECISION) * m.pre_active_days * m.pre_days_since_last
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_3_3_4,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_days_since_last AS DOUBLE PRECISION) * m.pre_days_since_last * m.pre_days_since_last
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_4_4_4,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_trips AS DOUBLE PRECISION) * m.pre_trips * m.pre_trips * m.pre_trips
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_0_0_0_0,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_trips AS DOUBLE PRECISION) * m.pre_trips * m.pre_minutes * m.pre_minutes
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_0_0_1_1,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_trips AS DOUBLE PRECISION) * m.pre_trips * m.pre_fare_per_trip * m.pre_fare_per_trip
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_0_0_2_2,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_trips AS DOUBLE PRECISION) * m.pre_trips * m.pre_active_days * m.pre_active_days
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_0_0_3_3,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_trips AS DOUBLE PRECISION) * m.pre_trips * m.pre_days_since_last * m.pre_days_since_last
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_0_0_4_4,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_minutes AS DOUBLE PRECISION) * m.pre_minutes * m.pre_minutes * m.pre_minutes
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_1_1_1_1,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_minutes AS DOUBLE PRECISION) * m.pre_minutes * m.pre_fare_per_trip * m.pre_fare_per_trip
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_1_1_2_2,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_minutes AS DOUBLE PRECISION) * m.pre_minutes * m.pre_active_days * m.pre_active_days
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_1_1_3_3,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_minutes AS DOUBLE PRECISION) * m.pre_minutes * m.pre_days_since_last * m.pre_days_since_last
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_1_1_4_4,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_fare_per_trip AS DOUBLE PRECISION) * m.pre_fare_per_trip * m.pre_fare_per_trip * m.pre_fare_per_trip
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_2_2_2_2,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_fare_per_trip AS DOUBLE PRECISION) * m.pre_fare_per_trip * m.pre_active_days * m.pre_active_days
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_2_2_3_3,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_fare_per_trip AS DOUBLE PRECISION) * m.pre_fare_per_trip * m.pre_days_since_last * m.pre_days_since_last
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_2_2_4_4,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_active_days AS DOUBLE PRECISION) * m.pre_active_days * m.pre_active_days * m.pre_active_days
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_3_3_3_3,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_active_days AS DOUBLE PRECISION) * m.pre_active_days * m.pre_days_since_last * m.pre_days_since_last
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_3_3_4_4,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_days_since_last AS DOUBLE PRECISION) * m.pre_days_since_last * m.pre_days_since_last * m.pre_days_since_last
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_4_4_4_4,
   CAST(SUM(w.weight * (
     m.pre_trips * m.post_trips
   )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_trips__x__post_trips,
@@ -93,6 +294,31 @@ SELECT
   CAST(SUM(w.weight * (
     m.pre_days_since_last * m.post_trips
   )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_days_since_last__x__post_trips,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_trips AS DOUBLE PRECISION) * m.pre_trips * m.post_trips
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_0_0__x__post_trips,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_minutes AS DOUBLE PRECISION) * m.pre_minutes * m.post_trips
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_1_1__x__post_trips,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_fare_per_trip AS DOUBLE PRECISION) * m.pre_fare_per_trip * m.post_trips
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_2_2__x__post_trips,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_active_days AS DOUBLE PRECISION) * m.pre_active_days * m.post_trips
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_3_3__x__post_trips,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_days_since_last AS DOUBLE PRECISION) * m.pre_days_since_last * m.post_trips
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_4_4__x__post_trips,
   CAST(SUM(w.weight * (
     m.pre_trips * m.post_minutes
   )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_trips__x__post_minutes,
@@ -108,6 +334,111 @@ SELECT
   CAST(SUM(w.weight * (
     m.pre_days_since_last * m.post_minutes
   )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_days_since_last__x__post_minutes,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_trips AS DOUBLE PRECISION) * m.pre_trips * m.post_minutes
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_0_0__x__post_minutes,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_minutes AS DOUBLE PRECISION) * m.pre_minutes * m.post_minutes
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_1_1__x__post_minutes,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_fare_per_trip AS DOUBLE PRECISION) * m.pre_fare_per_trip * m.post_minutes
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_2_2__x__post_minutes,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_active_days AS DOUBLE PRECISION) * m.pre_active_days * m.post_minutes
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_3_3__x__post_minutes,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_days_since_last AS DOUBLE PRECISION) * m.pre_days_since_last * m.post_minutes
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_4_4__x__post_minutes,
+  CAST(SUM(w.weight * (
+    m.pre_trips * m.fare_per_trip__num
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_trips__x__fare_per_trip__num,
+  CAST(SUM(w.weight * (
+    m.pre_minutes * m.fare_per_trip__num
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_minutes__x__fare_per_trip__num,
+  CAST(SUM(w.weight * (
+    m.pre_fare_per_trip * m.fare_per_trip__num
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_fare_per_trip__x__fare_per_trip__num,
+  CAST(SUM(w.weight * (
+    m.pre_active_days * m.fare_per_trip__num
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_active_days__x__fare_per_trip__num,
+  CAST(SUM(w.weight * (
+    m.pre_days_since_last * m.fare_per_trip__num
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_days_since_last__x__fare_per_trip__num,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_trips AS DOUBLE PRECISION) * m.pre_trips * m.fare_per_trip__num
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_0_0__x__fare_per_trip__num,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_minutes AS DOUBLE PRECISION) * m.pre_minutes * m.fare_per_trip__num
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_1_1__x__fare_per_trip__num,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_fare_per_trip AS DOUBLE PRECISION) * m.pre_fare_per_trip * m.fare_per_trip__num
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_2_2__x__fare_per_trip__num,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_active_days AS DOUBLE PRECISION) * m.pre_active_days * m.fare_per_trip__num
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_3_3__x__fare_per_trip__num,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_days_since_last AS DOUBLE PRECISION) * m.pre_days_since_last * m.fare_per_trip__num
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_4_4__x__fare_per_trip__num,
+  CAST(SUM(w.weight * (
+    m.pre_trips * m.fare_per_trip__den
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_trips__x__fare_per_trip__den,
+  CAST(SUM(w.weight * (
+    m.pre_minutes * m.fare_per_trip__den
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_minutes__x__fare_per_trip__den,
+  CAST(SUM(w.weight * (
+    m.pre_fare_per_trip * m.fare_per_trip__den
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_fare_per_trip__x__fare_per_trip__den,
+  CAST(SUM(w.weight * (
+    m.pre_active_days * m.fare_per_trip__den
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_active_days__x__fare_per_trip__den,
+  CAST(SUM(w.weight * (
+    m.pre_days_since_last * m.fare_per_trip__den
+  )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_days_since_last__x__fare_per_trip__den,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_trips AS DOUBLE PRECISION) * m.pre_trips * m.fare_per_trip__den
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_0_0__x__fare_per_trip__den,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_minutes AS DOUBLE PRECISION) * m.pre_minutes * m.fare_per_trip__den
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_1_1__x__fare_per_trip__den,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_fare_per_trip AS DOUBLE PRECISION) * m.pre_fare_per_trip * m.fare_per_trip__den
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_2_2__x__fare_per_trip__den,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_active_days AS DOUBLE PRECISION) * m.pre_active_days * m.fare_per_trip__den
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_3_3__x__fare_per_trip__den,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_days_since_last AS DOUBLE PRECISION) * m.pre_days_since_last * m.fare_per_trip__den
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_4_4__x__fare_per_trip__den,
   CAST(SUM(w.weight * (
     m.pre_trips * m.active_last_month
   )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_trips__x__active_last_month,
@@ -123,6 +454,31 @@ SELECT
   CAST(SUM(w.weight * (
     m.pre_days_since_last * m.active_last_month
   )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS pre_days_since_last__x__active_last_month,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_trips AS DOUBLE PRECISION) * m.pre_trips * m.active_last_month
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_0_0__x__active_last_month,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_minutes AS DOUBLE PRECISION) * m.pre_minutes * m.active_last_month
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_1_1__x__active_last_month,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_fare_per_trip AS DOUBLE PRECISION) * m.pre_fare_per_trip * m.active_last_month
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_2_2__x__active_last_month,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_active_days AS DOUBLE PRECISION) * m.pre_active_days * m.active_last_month
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_3_3__x__active_last_month,
+  CAST(SUM(
+    w.weight * (
+      CAST(m.pre_days_since_last AS DOUBLE PRECISION) * m.pre_days_since_last * m.active_last_month
+    )
+  ) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS adj_4_4__x__active_last_month,
   CAST(SUM(w.weight * (
     m.post_trips
   )) * COUNT(*) AS DOUBLE PRECISION) / NULLIF(SUM(w.weight), 0) AS post_trips__sum,
