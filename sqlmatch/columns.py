@@ -55,9 +55,20 @@ def cross(a: str, b: str) -> str:
 def adjustment_terms(p: int, terms: str = "linear") -> list[tuple[int, ...]]:
     """The regressors of the within-stratum adjustment (estimators/adjusted.py) over p numeric
     features, each as the sorted indices of the features it multiplies: (i,) for feature i, then
-    with `terms = "squares"` (i, i) for its square."""
-    linear = [(i,) for i in range(p)]
-    return linear + ([(i, i) for i in range(p)] if terms == "squares" else [])
+    with `terms = "squares"` (i, i) for its square, with "products" also (i, j), i < j, for every
+    pair."""
+    out = [(i,) for i in range(p)]
+    if terms in ("squares", "products"):
+        out += [(i, i) for i in range(p)]
+    if terms == "products":
+        out += [(i, j) for i in range(p) for j in range(i + 1, p)]
+    return out
+
+
+# The most sums outcome_strata may carry for the adjustment (every part's together): beyond it
+# [effect] adjustment_terms is refused, naming the count (products of many features grow with
+# the fourth power of their number).
+MAX_ADJUSTMENT_SUMS = 6000
 
 
 def adjustment_monomials(terms: list[tuple[int, ...]]) -> list[tuple[int, ...]]:

@@ -16,7 +16,7 @@ from dataclasses import dataclass, field
 from sqlglot import exp
 
 from sqlmatch import dialects, render
-from sqlmatch.columns import part_name, regression_design, split_sums, stat, upper_pairs
+from sqlmatch.columns import MAX_ADJUSTMENT_SUMS, part_name, regression_design, split_sums, stat, upper_pairs
 from sqlmatch.matching import method_for
 from sqlmatch.spec import DERIVED, MISSING_INDICATOR, Spec, is_boolean, last_period_start
 
@@ -746,6 +746,15 @@ def outcome_steps(ctx: PlanContext, outcomes, per_match: bool) -> list[Step]:
     )
     # the regression adjustment's sums (estimators/adjusted.py), split under PostgreSQL's SELECT limit
     sums = adjustment_sums(numeric, outcomes, spec.adjustment_terms) if adjust else []
+    if len(sums) > MAX_ADJUSTMENT_SUMS:
+        from sqlmatch.errors import SpecError
+
+        raise SpecError(
+            "effect.adjustment_terms",
+            f"{spec.adjustment_terms!r} over {len(numeric)} numeric features needs {len(sums):,} sums per stratum and group, over the "
+            f"{MAX_ADJUSTMENT_SUMS:,} the adjustment may fetch.",
+            'set [effect] adjustment_terms = "squares" or "linear", or use fewer numeric features.',
+        )
     fixed = 4 + sum(5 if o.kind == "ratio" else (4 if o.twin else 2) for o in outcomes)  # part 1: stratum, treated, n_units, sum_w, the outcomes' own sums
     parts = split_sums(sums, first_fixed=fixed, later_fixed=3)
     steps += ctx.query_parts(
@@ -755,7 +764,7 @@ def outcome_steps(ctx: PlanContext, outcomes, per_match: bool) -> list[Step]:
         purpose="Outcome sums per stratum and group among matched units, with the sums of the regressors, their cross-products and products with the outcomes that adjust them by regression.",
         parts=[dict(adjust_sums=own, first_part=k == 0) for k, own in enumerate(parts)],
         matched=True,
-        adjust_squares=spec.adjustment_terms == "squares",
+        adjust_terms=spec.adjustment_terms,
         **common,
     )
     steps.append(
@@ -766,7 +775,7 @@ def outcome_steps(ctx: PlanContext, outcomes, per_match: bool) -> list[Step]:
             purpose="Outcome sums per group before matching (the naive comparison).",
             matched=False,
             adjust_sums=[],
-            adjust_squares=False,
+            adjust_terms="",
             first_part=True,
             **common,
         )
@@ -782,7 +791,7 @@ def outcome_steps(ctx: PlanContext, outcomes, per_match: bool) -> list[Step]:
                 per_match=per_match,
                 outcomes=outcomes,
                 adjust_sums=[],
-                adjust_squares=False,
+                adjust_terms="",
                 first_part=True,
                 level=subgroup_level(g),
                 measures_table=ctx.table("measures"),

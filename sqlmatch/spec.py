@@ -46,7 +46,7 @@ OUTCOME_AGGREGATES = ("count", "sum", "active_days", "ratio", "active_at_end")
 CONTROL_POOLS = ("never_by_post_end", "not_yet_enrolled")
 WINDOW_UNITS = ("month", "day")
 ADJUSTMENT_SLOPES = ("group", "common")  # [effect] adjustment_slopes (estimators/adjusted.py)
-ADJUSTMENT_TERMS = ("linear", "squares")  # [effect] adjustment_terms
+ADJUSTMENT_TERMS = ("linear", "squares", "products")  # [effect] adjustment_terms
 POST_STARTS = ("after_cohort", "cohort")
 METHODS = tuple(_matching_methods.METHODS)
 # Names of earlier versions, refused with the name to use now.
@@ -261,7 +261,7 @@ class Spec:
     # fits one slope on both groups (estimators/adjusted.py)
     adjustment_slopes: str = "group"
     # [effect] adjustment_terms: the regressors of that adjustment: "linear" (the numeric features),
-    # "squares" (default: and their squares)
+    # "squares" (default: and their squares), "products" (and their squares and pairwise products)
     adjustment_terms: str = "squares"
     source_path: Path | None = None
 

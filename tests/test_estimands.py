@@ -190,3 +190,38 @@ def test_ratio_outcome_adjusts_numerator_and_denominator(demo_db, estimand):
         _, lin = _group_predictions(rows_e, "e_lin", terms, estimand)
         var += lin[g][1] / float((w * den[g][0]).sum()) ** 2
     assert e.std_error == pytest.approx(math.sqrt(var), rel=1e-6)
+
+
+def test_products_add_every_pairwise_product_of_the_features(demo_db):
+    """[effect] adjustment_terms = "products": the regressors are the features, their squares and
+    every pairwise product; the ATT is each group's statsmodels OLS on those terms predicted at
+    the treated units, as above."""
+    raw = raw_spec(demo_db)
+    raw["effect"] = {"adjustment_terms": "products"}
+    results = api.run(parse_spec(raw), keep_tables=True)
+    rows = _matched_rows(demo_db)
+    features = [f.name for f in parse_spec(raw).numeric_features]
+    terms = _terms(rows, features)
+    for i, a in enumerate(features):
+        for b in features[i + 1:]:
+            rows[f"{a}_by_{b}"] = rows[a].astype(float) * rows[b].astype(float)
+            terms.append(f"{a}_by_{b}")
+    e = results.effect("post_trips")
+    assert len(e.adjusted_for) == len(terms) == 20
+    w, fits = _group_predictions(rows, "post_trips", terms, "att")
+    assert e.estimate == pytest.approx(float((w * (fits[1][0] - fits[0][0])).sum()), rel=1e-7)
+    assert e.std_error == pytest.approx(math.sqrt(fits[1][1] + fits[0][1]), rel=1e-6)
+
+
+def test_too_many_adjustment_sums_are_refused_naming_the_key(demo_db):
+    """17 numeric features with pairwise products need more than columns.MAX_ADJUSTMENT_SUMS sums."""
+    from sqlmatch.plan import build_plan
+
+    raw = raw_spec(demo_db)
+    raw["features"] += [{"name": f"pre_trips_{k}", "aggregate": "count"} for k in range(12)]
+    raw["effect"] = {"adjustment_terms": "products"}
+    with pytest.raises(SpecError) as err:
+        build_plan(parse_spec(raw), "duckdb")
+    assert err.value.key == "effect.adjustment_terms" and "17 numeric features" in str(err.value) and '"squares"' in str(err.value)
+    raw["effect"] = {"adjustment_terms": "squares"}  # the squares of the same 17 features: 821 entries, one query
+    assert build_plan(parse_spec(raw), "duckdb").step("outcome_strata").name == "outcome_strata"
