@@ -51,7 +51,10 @@ per stratum; the second the slopes' estimation error under a common residual var
 group, the homoskedastic OLS formula). Left out: the variation of the target means themselves (a
 population estimand's share, sum_s w_s^2 (gamma_1 - gamma_0)' Var(zbar_ts) (gamma_1 - gamma_0)),
 heteroskedasticity in the slopes' term, and the correlation between a group's slopes and the
-common slope when only one group falls back to it (below).
+common slope when only one group falls back to it (below). Measured on the commuter simulation's
+lognormal fares (benchmarks/RESULTS_calibration_adjustment_groups.md) the standard error is then
+too small, SE/SD 0.73-0.85: a heteroskedasticity-robust slopes' term needs per-unit residuals,
+i.e. a second aggregate query at the fitted slopes (not done).
 
 A group with too few units for slopes of its own (fewer than MIN_UNITS_PER_SLOPE units beyond its
 strata per regressor, common practice: about ten observations per coefficient, recalled), or whose
