@@ -123,6 +123,23 @@ def _adjust(spec) -> bool:
 BIAS_TEXT = ", bias-corrected by the controls' regression on the features (Abadie-Imbens 2011)"
 
 
+# The adjusted effect stays beside the headline, not in it, when its standard error is more than
+# this many times the plain comparison's: the within-stratum regressions then predict far from the
+# units they were fitted on (cells so fine that the features hardly vary inside them), and the
+# prediction is mostly the slopes' error. Our own guard (no published rule); measured: the demo with
+# cut points every 3 units on every feature (20,000 riders) gave an adjusted post_trips of 111.7
+# (SE 48.0) against a plain 4.82 (SE 0.24); in the calibration runs of
+# benchmarks/RESULTS_calibration_adjustment_groups.md the ratio was at most 1.17.
+EXTRAPOLATION_RATIO = 3.0
+EXTRAPOLATION_TEXT = " (the regression-adjusted effect, kept as `adjusted`, is not the headline: its standard error was over 3 times this one, the within-stratum regressions extrapolating)"
+
+
+def _extrapolates(adjusted_se, plain_se) -> bool:
+    if adjusted_se is None or plain_se is None or not (plain_se > 0):
+        return adjusted_se is None
+    return adjusted_se > EXTRAPOLATION_RATIO * plain_se
+
+
 def _with_matching_variance(fields: dict, mv) -> None:
     """Replace the two-sample standard error and interval by the matching-aware ones."""
     se = mv.std_error
@@ -165,7 +182,9 @@ def outcome_effect(
             terms = adjustment[1]
             adj = adjusted_ratio(*aggregates.ratio_cell_sums(matched, outcome.name, list(features), terms), aggregates.term_names(list(features), terms), estimand=estimand)
             extra.update(adjusted=_interval(adj.estimate, adj.std_error, adj.ci_low, adj.ci_high), adjusted_for=adj.adjusted_for)
-            if adjust:
+            if adjust and _extrapolates(adj.std_error, fields["std_error"]):
+                fields["estimator"] += EXTRAPOLATION_TEXT
+            elif adjust:
                 extra["unadjusted"] = _interval(fields["estimate"], fields["std_error"], fields["ci_low"], fields["ci_high"])
                 fields.update(
                     estimator=f"{fields['estimator']}, numerator and denominator adjusted by a within-stratum regression on {', '.join(adj.adjusted_for) or 'no feature'}",
@@ -256,7 +275,9 @@ def outcome_effect(
             )
             a = adj.effect
             extra.update(adjusted=_interval(a.estimate, a.std_error, a.ci_low, a.ci_high), adjusted_for=adj.adjusted_for)
-            if adjust:
+            if adjust and _extrapolates(a.std_error, fields["std_error"]):
+                fields["estimator"] += EXTRAPOLATION_TEXT
+            elif adjust:
                 extra["unadjusted"] = _interval(fields["estimate"], fields["std_error"], fields["ci_low"], fields["ci_high"])
                 fields.update(
                     estimator=f"{fields['estimator']}, adjusted by a within-stratum regression on {', '.join(adj.adjusted_for) or 'no feature'}",

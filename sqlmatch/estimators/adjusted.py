@@ -317,7 +317,10 @@ def adjusted_ratio(treated, control, names, tol: float = 1e-10, estimand: str = 
     var = v1 + v0 + (cross / (den1 * den0) if cross else 0.0)
     se = math.sqrt(var) if math.isfinite(var) and var >= 0 else None
     lo, hi = normal_interval(r1 - r0, se)
-    lift = relative_lift(r1, v1, r0, v0)
+    try:
+        lift = relative_lift(r1, v1, r0, v0)
+    except OverflowError:  # a variance so large its log-scale interval leaves the doubles: no interval
+        lift = relative_lift(r1, math.nan, r0, math.nan)
     return AdjustedRatio(
         estimate=r1 - r0, std_error=se, ci_low=lo, ci_high=hi, ratio_treated=r1, ratio_control=r0, var_treated=v1, var_control=v0,
         lift=lift.estimate, lift_std_error=lift.std_error, lift_ci_low=lift.ci_low, lift_ci_high=lift.ci_high,
