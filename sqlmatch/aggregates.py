@@ -127,28 +127,47 @@ def outcome_moments(result: QueryResult, outcome: str, suffix: str = "") -> tupl
     return moments(treated), moments(control)
 
 
-def cell_sums(result: QueryResult, outcome: str, features: list[str]) -> tuple[CellSums, CellSums]:
-    """Per-stratum sums of the numeric features, their cross-products and their products with the
-    outcome (outcome_strata, matched), treated and control, for the regression adjustment."""
+def term_names(features: list[str], terms: str = "linear") -> list[str]:
+    """How the adjustment's regressors are named in reports: the feature, `<feature>^2`."""
+    return ["^".join([features[t[0]], str(len(t))]) if len(set(t)) == 1 and len(t) > 1 else " * ".join(features[i] for i in t) for t in columns.adjustment_terms(len(features), terms)]
+
+
+def cell_sums(result: QueryResult, outcome: str, features: list[str], terms: str = "linear", keys: tuple[str, str, str] | None = None) -> tuple[CellSums, CellSums]:
+    """Per-stratum sums of the adjustment's regressors z (the numeric features, and their squares
+    with `terms = "squares"`), their cross-products and their products with the outcome
+    (outcome_strata, matched), treated and control. `keys`: the outcome's (sum, sum of squares,
+    key of its products with z) columns, by default those of a count, sum or 0/1 outcome."""
     treated, control = _aligned(result)
-    p = len(features)
+    z = columns.adjustment_terms(len(features), terms)
+    q = len(z)
+    sum_key, sq_key, cross_key = keys or (stat(outcome, "sum"), stat(outcome, "sumsq"), outcome)
 
     def sums(rows):
         get = lambda r, key: _f(r.get(key, 0.0) or 0.0)  # noqa: E731
-        sxx = np.zeros((len(rows), p, p))
+        szz = np.zeros((len(rows), q, q))
         for k, r in enumerate(rows):
-            for i, j in columns.upper_pairs(p):
-                sxx[k, i, j] = sxx[k, j, i] = get(r, columns.cross(features[i], features[j]))
+            for i, j in columns.upper_pairs(q):
+                szz[k, i, j] = szz[k, j, i] = get(r, columns.monomial_sum(tuple(sorted(z[i] + z[j])), features))
         return CellSums.of(
             [get(r, "n_units") for r in rows],
-            [[get(r, stat(f, "xsum")) for f in features] for r in rows] if p else np.zeros((len(rows), 0)),
-            sxx,
-            [get(r, stat(outcome, "sum")) for r in rows],
-            [get(r, stat(outcome, "sumsq")) for r in rows],
-            [[get(r, columns.cross(f, outcome)) for f in features] for r in rows] if p else np.zeros((len(rows), 0)),
+            [[get(r, columns.monomial_sum(t, features)) for t in z] for r in rows] if q else np.zeros((len(rows), 0)),
+            szz,
+            [get(r, sum_key) for r in rows],
+            [get(r, sq_key) for r in rows],
+            [[get(r, columns.monomial_outcome(t, features, cross_key)) for t in z] for r in rows] if q else np.zeros((len(rows), 0)),
         )
 
     return sums(treated), sums(control)
+
+
+def ratio_cell_sums(result: QueryResult, outcome: str, features: list[str], terms: str = "linear"):
+    """A ratio outcome's numerator and denominator as two outcomes of cell_sums, and the sum of
+    their product per stratum, treated and control: ((num, den, sum num*den) treated, (...) control)."""
+    num = cell_sums(result, outcome, features, terms, (stat(outcome, "sum_y"), stat(outcome, "sumsq_y"), f"{outcome}__num"))
+    den = cell_sums(result, outcome, features, terms, (stat(outcome, "sum_x"), stat(outcome, "sumsq_x"), f"{outcome}__den"))
+    treated, control = _aligned(result)
+    nd = [np.array([_f(r.get(stat(outcome, "sum_xy"), 0.0) or 0.0) for r in rows]) for rows in (treated, control)]
+    return (num[0], den[0], nd[0]), (num[1], den[1], nd[1])
 
 
 def ratio_sums(result: QueryResult, outcome: str) -> tuple[RatioSums, RatioSums]:

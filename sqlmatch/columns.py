@@ -52,6 +52,56 @@ def cross(a: str, b: str) -> str:
     return f"{a}__x__{b}"
 
 
+def adjustment_terms(p: int, terms: str = "linear") -> list[tuple[int, ...]]:
+    """The regressors of the within-stratum adjustment (estimators/adjusted.py) over p numeric
+    features, each as the sorted indices of the features it multiplies: (i,) for feature i, then
+    with `terms = "squares"` (i, i) for its square, with "products" also (i, j), i < j, for every
+    pair."""
+    out = [(i,) for i in range(p)]
+    if terms in ("squares", "products"):
+        out += [(i, i) for i in range(p)]
+    if terms == "products":
+        out += [(i, j) for i in range(p) for j in range(i + 1, p)]
+    return out
+
+
+# The most sums outcome_strata may carry for the adjustment (every part's together): beyond it
+# [effect] adjustment_terms is refused, naming the count (products of many features grow with
+# the fourth power of their number).
+MAX_ADJUSTMENT_SUMS = 6000
+
+
+def adjustment_monomials(terms: list[tuple[int, ...]]) -> list[tuple[int, ...]]:
+    """The products of features whose per-cell sums the adjustment needs: every term (sum z) and
+    every product of two terms (sum z z'), each once (x_i * x_i is also the square term (i, i)),
+    in the order first needed."""
+    seen: dict[tuple[int, ...], None] = {}
+    for t in terms:
+        seen.setdefault(t, None)
+    for a, b in upper_pairs(len(terms)):
+        seen.setdefault(tuple(sorted(terms[a] + terms[b])), None)
+    return list(seen)
+
+
+def monomial_sum(mono: tuple[int, ...], names) -> str:
+    """outcome_strata's sum of a product of features: `<f>__xsum` for one, cross(f, g) for two,
+    `adj_<i>_<j>_<k>...` (feature indices) for three or four, short enough for PostgreSQL's
+    63-character identifiers."""
+    if len(mono) == 1:
+        return stat(names[mono[0]], "xsum")
+    if len(mono) == 2:
+        return cross(names[mono[0]], names[mono[1]])
+    return "adj_" + "_".join(str(i) for i in mono)
+
+
+def monomial_outcome(mono: tuple[int, ...], names, key: str) -> str:
+    """outcome_strata's sum of a term times an outcome column `key` (an outcome, or for a ratio
+    outcome `<name>__num` / `<name>__den`): cross(f, key) for a feature, `adj_<i>_<j>__x__<key>`."""
+    if len(mono) == 1:
+        return cross(names[mono[0]], key)
+    return "adj_" + "_".join(str(i) for i in mono) + "__x__" + key
+
+
 def xtx(i: int, j: int) -> str:
     """Entry (i, j), i <= j, of X'WX in outcome_regression (shared by every outcome)."""
     return f"xtx_{i}_{j}"

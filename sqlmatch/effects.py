@@ -12,7 +12,7 @@ from sqlmatch.columns import stat
 from sqlmatch import aggregates
 from sqlmatch.design import provenance, study_design
 from sqlmatch.diagnostics import run_warnings
-from sqlmatch.estimators.adjusted import adjusted_att
+from sqlmatch.estimators.adjusted import adjusted_att, adjusted_ratio
 from sqlmatch.matching import method_for
 from sqlmatch.estimators.att import relative_lift, stratified_att, stratum_weights
 from sqlmatch.estimators.binary import risk_ratio
@@ -74,6 +74,7 @@ def study_results(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
         outcome_effect(
             o, r["outcome_strata"], r["outcome_unmatched"], r.get("outcome_regression"), numeric, spec.matching.method,
             r.get("pair_signed_rank"), spec.treatment_words, adjust=_adjust(spec), nn=nn, estimand=spec.matching.estimand, weighting=weighting,
+            adjustment=(spec.adjustment_slopes, spec.adjustment_terms),
         )
         for o in plan.outcomes
     ]
@@ -124,6 +125,23 @@ def _adjust(spec) -> bool:
 BIAS_TEXT = ", bias-corrected by the controls' regression on the features (Abadie-Imbens 2011)"
 
 
+# The adjusted effect stays beside the headline, not in it, when its standard error is more than
+# this many times the plain comparison's: the within-stratum regressions then predict far from the
+# units they were fitted on (cells so fine that the features hardly vary inside them), and the
+# prediction is mostly the slopes' error. Our own guard (no published rule); measured: the demo with
+# cut points every 3 units on every feature (20,000 riders) gave an adjusted post_trips of 111.7
+# (SE 48.0) against a plain 4.82 (SE 0.24); in the calibration runs of
+# benchmarks/RESULTS_calibration_adjustment_groups.md the ratio was at most 1.17.
+EXTRAPOLATION_RATIO = 3.0
+EXTRAPOLATION_TEXT = " (the regression-adjusted effect, kept as `adjusted`, is not the headline: its standard error was over 3 times this one, the within-stratum regressions extrapolating)"
+
+
+def _extrapolates(adjusted_se, plain_se) -> bool:
+    if adjusted_se is None or plain_se is None or not (plain_se > 0):
+        return adjusted_se is None
+    return adjusted_se > EXTRAPOLATION_RATIO * plain_se
+
+
 def _with_matching_variance(fields: dict, mv) -> None:
     """Replace the two-sample standard error and interval by the matching-aware ones."""
     se = mv.std_error
@@ -134,7 +152,7 @@ def _with_matching_variance(fields: dict, mv) -> None:
 
 def outcome_effect(
     outcome, matched, unmatched, regression=None, features=(), method: str = "", pair_ranks=None, treatment_words: str = "enrolment",
-    adjust: bool = False, nn: MatchingInference | None = None, estimand: str = "att", weighting=None,
+    adjust: bool = False, nn: MatchingInference | None = None, estimand: str = "att", weighting=None, adjustment: tuple[str, str] = ("group", "linear"),
 ) -> Effect:
     """One outcome's effect, relative lift, risk ratio (binary), difference-in-differences (an
     outcome with a pre-window twin) and sensitivity figures, all from aggregates. With
@@ -160,6 +178,23 @@ def outcome_effect(
         )
         # Lift R_1 / R_0 - 1, interval on the log scale (estimators/ratio.py).
         extra.update(lift=_interval(m.lift, m.lift_std_error, m.lift_ci_low, m.lift_ci_high))
+        if features and nn is None and weighting is None and (not method or method_for(method).adjustable) and adjustment[0] == "group":
+            # numerator and denominator adjusted by each group's within-stratum regression, then
+            # their ratio, delta-method variance (estimators/adjusted.py, adjusted_ratio)
+            terms = adjustment[1]
+            adj = adjusted_ratio(*aggregates.ratio_cell_sums(matched, outcome.name, list(features), terms), aggregates.term_names(list(features), terms), estimand=estimand)
+            extra.update(adjusted=_interval(adj.estimate, adj.std_error, adj.ci_low, adj.ci_high), adjusted_for=adj.adjusted_for)
+            if adjust and _extrapolates(adj.std_error, fields["std_error"]):
+                fields["estimator"] += EXTRAPOLATION_TEXT
+            elif adjust:
+                extra["unadjusted"] = _interval(fields["estimate"], fields["std_error"], fields["ci_low"], fields["ci_high"])
+                fields.update(
+                    estimator=f"{fields['estimator']}, numerator and denominator adjusted by a within-stratum regression on {', '.join(adj.adjusted_for) or 'no feature'}",
+                    estimate=adj.estimate,
+                    std_error=adj.std_error,
+                    ci_low=adj.ci_low,
+                    ci_high=adj.ci_high,
+                )
         if nn is not None:
             keep = (t_sums.n > 0) & (c_sums.n > 0)
             w = t_sums.n[keep] / t_sums.n[keep].sum()
@@ -236,10 +271,15 @@ def outcome_effect(
             # regression adjustment within strata on the numeric features (estimators/adjusted.py);
             # nearest neighbours with replacement have the Abadie-Imbens correction instead, whose
             # variance counts control reuse (the stratified one here would not)
-            adj = adjusted_att(*aggregates.cell_sums(matched, outcome.name, list(features)), list(features), estimand=estimand)
+            slopes, terms = adjustment
+            adj = adjusted_att(
+                *aggregates.cell_sums(matched, outcome.name, list(features), terms), aggregates.term_names(list(features), terms), estimand=estimand, slopes=slopes,
+            )
             a = adj.effect
             extra.update(adjusted=_interval(a.estimate, a.std_error, a.ci_low, a.ci_high), adjusted_for=adj.adjusted_for)
-            if adjust:
+            if adjust and _extrapolates(a.std_error, fields["std_error"]):
+                fields["estimator"] += EXTRAPOLATION_TEXT
+            elif adjust:
                 extra["unadjusted"] = _interval(fields["estimate"], fields["std_error"], fields["ci_low"], fields["ci_high"])
                 fields.update(
                     estimator=f"{fields['estimator']}, adjusted by a within-stratum regression on {', '.join(adj.adjusted_for) or 'no feature'}",

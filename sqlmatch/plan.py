@@ -16,7 +16,7 @@ from dataclasses import dataclass, field
 from sqlglot import exp
 
 from sqlmatch import dialects, render
-from sqlmatch.columns import part_name, regression_design, stat, upper_pairs
+from sqlmatch.columns import MAX_ADJUSTMENT_SUMS, part_name, regression_design, split_sums, stat, upper_pairs
 from sqlmatch.matching import method_for
 from sqlmatch.spec import DERIVED, MISSING_INDICATOR, Spec, is_boolean, last_period_start
 
@@ -721,6 +721,24 @@ def subgroup_level(g) -> SubgroupLevel:
     return SubgroupLevel(feature=g.feature) if g.feature else SubgroupLevel(condition=render.expression_sql(g.where, alias="m"))
 
 
+def adjustment_sums(numeric: list[str], outcomes, terms: str = "linear", ratios: bool = True) -> list[tuple[str, tuple[str, ...]]]:
+    """outcome_strata's sums for the within-stratum regression adjustment, as (column, the measure
+    columns it multiplies): every product of features the regressors z need (sum z, sum z z'),
+    then sum z y per outcome (a ratio outcome: its numerator and its denominator, when `ratios`:
+    only each group's own slopes adjust ratio outcomes)."""
+    from sqlmatch import columns as col
+
+    z = col.adjustment_terms(len(numeric), terms)
+    out = [(col.monomial_sum(m, numeric), tuple(numeric[i] for i in m)) for m in col.adjustment_monomials(z)]
+    for o in outcomes:
+        if o.kind == "ratio" and not ratios:
+            continue
+        keys = [(f"{o.name}__num", o.num), (f"{o.name}__den", o.den)] if o.kind == "ratio" else [(o.name, o.name)]
+        for key, column in keys:
+            out += [(col.monomial_outcome(t, numeric, key), tuple(numeric[i] for i in t) + (column,)) for t in z]
+    return out
+
+
 def outcome_steps(ctx: PlanContext, outcomes, per_match: bool) -> list[Step]:
     """Outcome sums per stratum and group (matched and naive) and the regression cross-products."""
     spec = ctx.spec
@@ -729,30 +747,50 @@ def outcome_steps(ctx: PlanContext, outcomes, per_match: bool) -> list[Step]:
     # the regression adjustment's sums, for methods whose strata weigh a group's units alike
     adjust = method_for(spec.matching.method).adjustable
     steps: list[Step] = []
-    for matched in (True, False):
-        steps.append(
-            ctx.query_step(
-                "outcome_strata" if matched else "outcome_unmatched",
-                "outcome_strata",
-                reads=([ctx.display("measures"), ctx.display("match_weights")] if per_match else weighted) if matched else [ctx.display("measures")],
-                purpose=(
-                    "Outcome sums per stratum and group among matched units, with the feature sums and cross-products that adjust them by regression."
-                    if matched
-                    else "Outcome sums per group before matching (the naive comparison)."
-                ),
-                matched=matched,
-                per_match=per_match,
-                outcomes=outcomes,
-                # sums for regression adjustment within strata (estimators/adjusted.py)
-                adjust_features=numeric if matched and adjust else [],
-                adjust_pairs=[(numeric[i], numeric[j]) for i, j in upper_pairs(len(numeric))] if matched and adjust else [],
-                adjust_outcomes=[o.name for o in outcomes if o.kind != "ratio"] if matched and adjust else [],
-                level=None,
-                measures_table=ctx.table("measures"),
-                weights_table=ctx.table("match_weights"),
-                weighted_table=ctx.table("weighted_units"),
-            )
+    common = dict(
+        per_match=per_match,
+        outcomes=outcomes,
+        level=None,
+        measures_table=ctx.table("measures"),
+        weights_table=ctx.table("match_weights"),
+        weighted_table=ctx.table("weighted_units"),
+    )
+    # the regression adjustment's sums (estimators/adjusted.py), split under PostgreSQL's SELECT limit
+    sums = adjustment_sums(numeric, outcomes, spec.adjustment_terms, ratios=spec.adjustment_slopes == "group") if adjust else []
+    if len(sums) > MAX_ADJUSTMENT_SUMS:
+        from sqlmatch.errors import SpecError
+
+        raise SpecError(
+            "effect.adjustment_terms",
+            f"{spec.adjustment_terms!r} over {len(numeric)} numeric features needs {len(sums):,} sums per stratum and group, over the "
+            f"{MAX_ADJUSTMENT_SUMS:,} the adjustment may fetch.",
+            'set [effect] adjustment_terms = "squares" or "linear", or use fewer numeric features.',
         )
+    fixed = 4 + sum(5 if o.kind == "ratio" else (4 if o.twin else 2) for o in outcomes)  # part 1: stratum, treated, n_units, sum_w, the outcomes' own sums
+    parts = split_sums(sums, first_fixed=fixed, later_fixed=3)
+    steps += ctx.query_parts(
+        "outcome_strata",
+        "outcome_strata",
+        reads=[ctx.display("measures"), ctx.display("match_weights")] if per_match else weighted,
+        purpose="Outcome sums per stratum and group among matched units, with the sums of the regressors, their cross-products and products with the outcomes that adjust them by regression.",
+        parts=[dict(adjust_sums=own, first_part=k == 0) for k, own in enumerate(parts)],
+        matched=True,
+        adjust_terms=spec.adjustment_terms,
+        **common,
+    )
+    steps.append(
+        ctx.query_step(
+            "outcome_unmatched",
+            "outcome_strata",
+            reads=[ctx.display("measures")],
+            purpose="Outcome sums per group before matching (the naive comparison).",
+            matched=False,
+            adjust_sums=[],
+            adjust_terms="",
+            first_part=True,
+            **common,
+        )
+    )
     for g in spec.subgroups:
         steps.append(
             ctx.query_step(
@@ -763,9 +801,9 @@ def outcome_steps(ctx: PlanContext, outcomes, per_match: bool) -> list[Step]:
                 matched=True,
                 per_match=per_match,
                 outcomes=outcomes,
-                adjust_features=[],
-                adjust_pairs=[],
-                adjust_outcomes=[],
+                adjust_sums=[],
+                adjust_terms="",
+                first_part=True,
                 level=subgroup_level(g),
                 measures_table=ctx.table("measures"),
                 weights_table=ctx.table("match_weights"),

@@ -45,6 +45,8 @@ MISSING_POLICIES = {"numeric": ("error", "fill", "drop"), "categorical": ("level
 OUTCOME_AGGREGATES = ("count", "sum", "active_days", "ratio", "active_at_end")
 CONTROL_POOLS = ("never_by_post_end", "not_yet_enrolled")
 WINDOW_UNITS = ("month", "day")
+ADJUSTMENT_SLOPES = ("group", "common")  # [effect] adjustment_slopes (estimators/adjusted.py)
+ADJUSTMENT_TERMS = ("linear", "squares", "products")  # [effect] adjustment_terms
 POST_STARTS = ("after_cohort", "cohort")
 METHODS = tuple(_matching_methods.METHODS)
 # Names of earlier versions, refused with the name to use now.
@@ -254,6 +256,15 @@ class Spec:
     # None (not given): on for coarsened_exact and score_bins (effects.ADJUSTED_BY_DEFAULT), measured to
     # cover at least as well as the plain comparison (benchmarks/RESULTS_calibration_stratum.md)
     regression_adjustment: bool | None = None
+    # [effect] adjustment_slopes: "common" (default) fits one within-stratum slope on both groups;
+    # "group" fits each group's own and predicts each group's stratum mean at the estimand's target
+    # means (estimators/adjusted.py). The defaults stay common and linear: on the commuter
+    # simulation each group's slopes with squares removed more bias but left the fares' SE too
+    # small, so coverage fell (benchmarks/RESULTS_calibration_adjustment_groups.md)
+    adjustment_slopes: str = "common"
+    # [effect] adjustment_terms: the regressors of that adjustment: "linear" (default: the numeric
+    # features), "squares" (and their squares), "products" (and their squares and pairwise products)
+    adjustment_terms: str = "linear"
     source_path: Path | None = None
 
     @property
@@ -727,8 +738,10 @@ def parse_spec(raw: dict, source_path: Path | None = None) -> Spec:
     effect = raw.get("effect", {})
     if not isinstance(effect, dict):
         raise SpecError("effect", "must be a table.", "write it as [effect] with regression_adjustment = true or false.")
-    _check_keys(effect, "effect", {"regression_adjustment"})
+    _check_keys(effect, "effect", {"regression_adjustment", "adjustment_slopes", "adjustment_terms"})
     regression_adjustment = read_bool(effect, "effect", "regression_adjustment", default=False) if "regression_adjustment" in effect else None
+    adjustment_slopes = _choice(effect, "effect", "adjustment_slopes", ADJUSTMENT_SLOPES, default="common")
+    adjustment_terms = _choice(effect, "effect", "adjustment_terms", ADJUSTMENT_TERMS, default="linear")
     placebo_months = _placebo(raw.get("placebo"), windows)
     subgroups = _subgroups(raw.get("subgroups"), features)
 
@@ -747,6 +760,8 @@ def parse_spec(raw: dict, source_path: Path | None = None) -> Spec:
         control_pool=control_pool,
         treatment_words=described_as,
         regression_adjustment=regression_adjustment,
+        adjustment_slopes=adjustment_slopes,
+        adjustment_terms=adjustment_terms,
         placebo_months=placebo_months,
         subgroups=subgroups,
         windows=windows,

@@ -42,7 +42,7 @@ def sums(df: pd.DataFrame, strata: list) -> tuple[CellSums, CellSums]:
 
 def test_one_stratum_is_the_treatment_coefficient_of_ols(men):
     df = men.assign(stratum=0)
-    got = adjusted_att(*sums(df, [0]), X)
+    got = adjusted_att(*sums(df, [0]), X, slopes="common")
     fit = sm.OLS(df.y, sm.add_constant(df[["t"] + X])).fit()
     assert got.effect.estimate == pytest.approx(fit.params["t"], rel=1e-9)
     assert got.slopes == pytest.approx(fit.params[X].to_numpy(), rel=1e-7)
@@ -54,7 +54,7 @@ def test_strata_combine_the_cell_intercepts_of_ancova(men):
     df["stratum"] = (df.u75 * 2 + df.black).astype(int)
     strata = sorted(df.stratum.unique())
     assert all(((df.stratum == s) & (df.t == g)).any() for s in strata for g in (0, 1))
-    got = adjusted_att(*sums(df, strata), X)
+    got = adjusted_att(*sums(df, strata), X, slopes="common")
     # y = alpha_(s, g) + gamma' x: one dummy per cell, no constant
     cell = pd.get_dummies(df.stratum.astype(str) + "_" + df.t.astype(str), dtype=float)
     fit = sm.OLS(df.y, pd.concat([cell, df[X]], axis=1)).fit()
@@ -77,7 +77,7 @@ def test_strata_combine_the_cell_intercepts_of_ancova(men):
 def test_a_column_constant_within_cells_gets_no_slope(men):
     df = men.assign(stratum=0)
     df["nodegree"] = 1.0  # no variation at all
-    got = adjusted_att(*sums(df, [0]), X)
+    got = adjusted_att(*sums(df, [0]), X, slopes="common")
     assert "nodegree" not in got.adjusted_for and got.slopes[X.index("nodegree")] == 0.0
     fit = sm.OLS(df.y, sm.add_constant(df[["t"] + [x for x in X if x != "nodegree"]])).fit()
     assert got.effect.estimate == pytest.approx(fit.params["t"], rel=1e-9)
@@ -100,7 +100,7 @@ def test_the_run_adjusts_as_statsmodels_does_on_the_matched_units(demo_db):
     db = demo_db
     raw = tomllib.loads(DEMO_SPEC.read_text())
     raw["study"]["database"] = str(db)
-    raw["effect"] = {"regression_adjustment": False}
+    raw["effect"] = {"regression_adjustment": False, "adjustment_slopes": "common", "adjustment_terms": "linear"}
     spec = parse_spec(raw)
     plain = api.run(spec, keep_tables=True)
     assert all(e.unadjusted is None and "within-stratum regression" not in e.estimator for e in plain.effects)
@@ -126,8 +126,67 @@ def test_the_run_adjusts_as_statsmodels_does_on_the_matched_units(demo_db):
     adjusted = api.run(parse_spec(raw))
     assert [e.estimate for e in default.effects] == pytest.approx([e.estimate for e in adjusted.effects], rel=1e-9)
     for e0, e1 in zip(plain.effects, adjusted.effects):
+        # the default is the common slope on the features (checked against statsmodels above): ratio
+        # outcomes stay unadjusted (only each group's own slopes adjust them)
         if e0.kind == "ratio":
             assert e1.adjusted is None and e1.estimate == pytest.approx(e0.estimate, rel=1e-12)
             continue
         assert e1.estimate == pytest.approx(e0.adjusted.estimate) and e1.std_error == pytest.approx(e0.adjusted.std_error)
         assert e1.unadjusted.estimate == pytest.approx(e0.estimate) and "within-stratum regression" in e1.estimator
+
+
+def _fit_rows(df, cols):
+    return sm.OLS(df.y, sm.add_constant(df[cols])).fit()
+
+
+def test_group_slopes_are_each_groups_ols_predicted_at_the_target_means(men):
+    """Each group's own slopes (the default), one stratum: the ATT is the treated mean minus the
+    controls' OLS (statsmodels) predicted at the treated's mean features, the ATC the treated's
+    OLS predicted at the controls' means minus their mean (Lin 2013, separate slopes; Imbens &
+    Rubin 2015 ch. 12). Variance: the residual variances of each fit over n plus the slopes' term
+    d' cov_params d, d = target mean - the group's mean."""
+    df = men.assign(stratum=0)
+    t, c = df[df.t == 1], df[df.t == 0]
+    f1, f0 = _fit_rows(t, X), _fit_rows(c, X)
+    for estimand, target in (("att", t), ("atc", c)):
+        got = adjusted_att(*sums(df, [0]), X, estimand=estimand)
+        assert got.own_slopes == (True, True)
+        zt = sm.add_constant(target[X], has_constant="add").mean()
+        mu1, mu0 = float(f1.params @ zt), float(f0.params @ zt)
+        assert got.effect.estimate == pytest.approx(mu1 - mu0, rel=1e-9)
+        var = 0.0
+        for fit, part in ((f1, t), (f0, c)):
+            d = (target[X].mean() - part[X].mean()).to_numpy()
+            var += fit.resid.var(ddof=1) / len(part) + d @ fit.cov_params().loc[X, X].to_numpy() @ d
+        assert got.effect.std_error == pytest.approx(np.sqrt(var), rel=1e-8)
+    assert got.slopes == pytest.approx(f0.params[X].to_numpy(), rel=1e-7)
+    assert got.slopes_treated == pytest.approx(f1.params[X].to_numpy(), rel=1e-7)
+
+
+def test_a_group_too_small_for_its_own_slopes_takes_the_common_slope(men):
+    """40 controls for 5 slopes (fewer than MIN_UNITS_PER_SLOPE = 10 per slope beyond the intercept):
+    the controls take the common slope of both groups, so the ATT is the treatment coefficient of
+    y ~ t + x (statsmodels), and the controls' slope term is d' cov_params d of that fit; the
+    treated keep their own residuals."""
+    df = pd.concat([men[men.t == 1], men[men.t == 0].head(40)]).assign(stratum=0)
+    got = adjusted_att(*sums(df, [0]), X)
+    assert got.own_slopes == (True, False)
+    pooled = _fit_rows(df, ["t"] + X)
+    assert got.effect.estimate == pytest.approx(pooled.params["t"], rel=1e-9)
+    assert got.slopes == pytest.approx(pooled.params[X].to_numpy(), rel=1e-7)
+    t, c = df[df.t == 1], df[df.t == 0]
+    own = _fit_rows(t, X)
+    d0 = (t[X].mean() - c[X].mean()).to_numpy()
+    u0 = c.y - c[X].to_numpy() @ pooled.params[X].to_numpy()
+    var = own.resid.var(ddof=1) / len(t) + u0.var(ddof=1) / len(c) + d0 @ pooled.cov_params().loc[X, X].to_numpy() @ d0
+    assert got.effect.std_error == pytest.approx(np.sqrt(var), rel=1e-8)
+    # with both groups too small for slopes of their own, one common slope and one slope term
+    few = pd.concat([men[men.t == 1].head(45), men[men.t == 0].head(45)]).assign(stratum=0)
+    both = adjusted_att(*sums(few, [0]), X)
+    fit = _fit_rows(few, ["t"] + X)
+    assert both.own_slopes == (False, False) and both.effect.estimate == pytest.approx(fit.params["t"], rel=1e-9)
+    t, c = few[few.t == 1], few[few.t == 0]
+    u = few.y - few[X].to_numpy() @ fit.params[X].to_numpy()
+    d = (t[X].mean() - c[X].mean()).to_numpy()  # d_1 - d_0 = 0 - (xbar_1 - xbar_0), squared the same
+    var = u[few.t == 1].var(ddof=1) / len(t) + u[few.t == 0].var(ddof=1) / len(c) + d @ fit.cov_params().loc[X, X].to_numpy() @ d
+    assert both.effect.std_error == pytest.approx(np.sqrt(var), rel=1e-8)

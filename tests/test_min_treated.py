@@ -156,6 +156,12 @@ def test_few_treated_kept_says_the_effect_is_for_them_only(demo_db):
     results = api.run(parse_spec(raw))
     m = results.matching
     assert m.n_treated_matched < 0.9 * m.n_treated
+    # with each group's own slopes and squares, cells this fine leave the within-stratum regressions
+    # extrapolating: the adjusted effect's SE is many times the plain one's, so the plain comparison
+    # stays the headline (effects.EXTRAPOLATION_RATIO)
+    group = api.run(parse_spec({**raw, "effect": {"adjustment_slopes": "group", "adjustment_terms": "squares"}}))
+    e = group.effect("post_trips")
+    assert e.adjusted.std_error > 3 * e.std_error and e.unadjusted is None and "not the headline" in e.estimator
     (text,) = [w for w in results.warnings if "were matched: every effect" in w]
     assert text.kind == "kept"  # what `--fail-on kept` acts on
     assert f"Only {m.n_treated_matched:,} of the {m.n_treated:,} enrolled units ({m.n_treated_matched / m.n_treated:.0%})" in text

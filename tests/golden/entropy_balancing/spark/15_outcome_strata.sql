@@ -1,5 +1,5 @@
 -- sqlmatch study 'annual_pass', step 15: outcome_strata (spark)
--- Outcome sums per stratum and group among matched units, with the feature sums and cross-products that adjust them by regression.
+-- Outcome sums per stratum and group among matched units, with the sums of the regressors, their cross-products and products with the outcomes that adjust them by regression.
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_weighted_units
 -- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)

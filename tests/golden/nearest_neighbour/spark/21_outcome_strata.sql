@@ -1,5 +1,5 @@
 -- sqlmatch study 'annual_pass', step 21: outcome_strata (spark)
--- Outcome sums per stratum and group among matched units, with the feature sums and cross-products that adjust them by regression.
+-- Outcome sums per stratum and group among matched units, with the sums of the regressors, their cross-products and products with the outcomes that adjust them by regression.
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_measures, sqlmatch.annual_pass_match_weights
 -- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
@@ -8,8 +8,9 @@ SET spark.sql.session.timeZone = UTC;
 
 /* Outcomes per stratum and group among matched units:
    counts, sums, sums of squares (and, for ratio outcomes, the cross-product) from which the
-   effect and its variance are computed. Also the sums of the numeric features, their
-   cross-products and their products with each outcome, from which the within-stratum regression
+   effect and its variance are computed. Also the sums of the regressors of the within-stratum
+   regression adjustment (the numeric features), their cross-products and
+   their products with each outcome (a ratio outcome's numerator and denominator), from which the
    adjustment is computed. Rows grow with the number of strata, never with the
    number of units. An outcome with a pre-window twin (the same measure before
    enrolment) also gets the sums of (outcome - twin), for the difference-in-differences. */
