@@ -142,6 +142,16 @@ def _extrapolates(adjusted_se, plain_se) -> bool:
     return adjusted_se > EXTRAPOLATION_RATIO * plain_se
 
 
+def _adjusted_headline(fields: dict, extra: dict, a, how: str) -> None:
+    """Make the regression-adjusted figure `a` the headline, the plain one kept as `unadjusted`,
+    unless its SE says the within-stratum regressions extrapolate (the plain one stays, and says so)."""
+    if _extrapolates(a.std_error, fields["std_error"]):
+        fields["estimator"] += EXTRAPOLATION_TEXT
+        return
+    extra["unadjusted"] = _interval(fields["estimate"], fields["std_error"], fields["ci_low"], fields["ci_high"])
+    fields.update(estimator=f"{fields['estimator']}, {how}", estimate=a.estimate, std_error=a.std_error, ci_low=a.ci_low, ci_high=a.ci_high)
+
+
 def _with_matching_variance(fields: dict, mv) -> None:
     """Replace the two-sample standard error and interval by the matching-aware ones."""
     se = mv.std_error
@@ -184,17 +194,8 @@ def outcome_effect(
             terms = adjustment[1]
             adj = adjusted_ratio(*aggregates.ratio_cell_sums(matched, outcome.name, list(features), terms), aggregates.term_names(list(features), terms), estimand=estimand)
             extra.update(adjusted=_interval(adj.estimate, adj.std_error, adj.ci_low, adj.ci_high), adjusted_for=adj.adjusted_for)
-            if adjust and _extrapolates(adj.std_error, fields["std_error"]):
-                fields["estimator"] += EXTRAPOLATION_TEXT
-            elif adjust:
-                extra["unadjusted"] = _interval(fields["estimate"], fields["std_error"], fields["ci_low"], fields["ci_high"])
-                fields.update(
-                    estimator=f"{fields['estimator']}, numerator and denominator adjusted by a within-stratum regression on {', '.join(adj.adjusted_for) or 'no feature'}",
-                    estimate=adj.estimate,
-                    std_error=adj.std_error,
-                    ci_low=adj.ci_low,
-                    ci_high=adj.ci_high,
-                )
+            if adjust:
+                _adjusted_headline(fields, extra, adj, f"numerator and denominator adjusted by a within-stratum regression on {', '.join(adj.adjusted_for) or 'no feature'}")
         if nn is not None:
             keep = (t_sums.n > 0) & (c_sums.n > 0)
             w = t_sums.n[keep] / t_sums.n[keep].sum()
@@ -277,17 +278,8 @@ def outcome_effect(
             )
             a = adj.effect
             extra.update(adjusted=_interval(a.estimate, a.std_error, a.ci_low, a.ci_high), adjusted_for=adj.adjusted_for)
-            if adjust and _extrapolates(a.std_error, fields["std_error"]):
-                fields["estimator"] += EXTRAPOLATION_TEXT
-            elif adjust:
-                extra["unadjusted"] = _interval(fields["estimate"], fields["std_error"], fields["ci_low"], fields["ci_high"])
-                fields.update(
-                    estimator=f"{fields['estimator']}, adjusted by a within-stratum regression on {', '.join(adj.adjusted_for) or 'no feature'}",
-                    estimate=a.estimate,
-                    std_error=a.std_error,
-                    ci_low=a.ci_low,
-                    ci_high=a.ci_high,
-                )
+            if adjust:
+                _adjusted_headline(fields, extra, a, f"adjusted by a within-stratum regression on {', '.join(adj.adjusted_for) or 'no feature'}")
         if getattr(outcome, "twin", None):
             # Difference-in-differences on the matched sample: the same stratified estimator
             # applied to (outcome - twin), per-stratum sums from the outcome_strata query.
