@@ -776,6 +776,7 @@ def outcome_steps(ctx: PlanContext, outcomes, per_match: bool) -> list[Step]:
         parts=[dict(adjust_sums=own, first_part=k == 0) for k, own in enumerate(parts)],
         matched=True,
         adjust_terms=spec.adjustment_terms,
+        adjust_ratios=spec.adjustment_slopes == "group",
         **common,
     )
     steps.append(

@@ -10,7 +10,7 @@ SET TimeZone = 'UTC';
    counts, sums, sums of squares (and, for ratio outcomes, the cross-product) from which the
    effect and its variance are computed. Also the sums of the regressors of the within-stratum
    regression adjustment (the numeric features), their cross-products and
-   their products with each outcome (a ratio outcome's numerator and denominator), from which the
+   their products with each count, sum and 0/1 outcome, from which the
    adjustment is computed. Rows grow with the number of strata, never with the
    number of units. An outcome with a pre-window twin (the same measure before
    enrolment) also gets the sums of (outcome - twin), for the difference-in-differences. */
