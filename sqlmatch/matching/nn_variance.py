@@ -38,22 +38,6 @@ class Product:
         return product_key(self.a, self.b)
 
 
-@dataclass(frozen=True)
-class PairSum:
-    """One product sum of the pair_sums step: sum over the treated of <left><a> * <right><b>, with
-    left, right = t (the unit's own value) or c (its matches' mean); named <key>__<left><right>."""
-
-    key: str
-    a: int
-    b: int
-    left: str
-    right: str
-
-
-def pair_sums(products) -> list[PairSum]:
-    return [PairSum(q.key, q.a, q.b, kind[0], kind[1]) for q in products for kind in ("tt", "tc", "ct", "cc")]
-
-
 def product_key(a: int, b: int) -> str:
     return f"p{min(a, b)}_{max(a, b)}"
 
@@ -135,10 +119,6 @@ def steps(ctx, outcomes) -> list:
         units_table=ctx.table("nearest_neighbour_units"),
     )
     match_reads = [ctx.display("nearest_neighbour_matches")] + ([ctx.display("nearest_neighbour_units")] if ranked else [])
-    from sqlmatch.columns import split_sums
-
-    # four sums per product: split under PostgreSQL's SELECT-list limit (part 1 also has the count and t, c sums)
-    parts = split_sums(pair_sums(ps), first_fixed=1 + 2 * len(vs))
     return out + [
         ctx.query_step(
             STEP,
@@ -153,14 +133,15 @@ def steps(ctx, outcomes) -> list:
             weighted_table=ctx.table("weighted_units"),
             **links,
         ),
-    ] + ctx.query_parts(
-        PAIR_STEP,
-        "nearest_neighbour_pair_sums",
-        reads=[ctx.display("weighted_units")] + match_reads,
-        purpose="Abadie-Imbens population variance sums: products of each matched treated unit's values and its matches' "
-        "share-weighted means, summed over the treated units.",
-        parts=[dict(sums=part, head=k == 1) for k, part in enumerate(parts, 1)],
-        variables=vs,
-        weighted_table=ctx.table("weighted_units"),
-        **links,
-    )
+        ctx.query_step(
+            PAIR_STEP,
+            "nearest_neighbour_pair_sums",
+            reads=[ctx.display("weighted_units")] + match_reads,
+            purpose="Abadie-Imbens population variance sums: products of each matched treated unit's values and its matches' "
+            "share-weighted means, summed over the treated units.",
+            variables=vs,
+            products=ps,
+            weighted_table=ctx.table("weighted_units"),
+            **links,
+        ),
+    ]
