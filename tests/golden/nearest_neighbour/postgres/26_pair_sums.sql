@@ -3,11 +3,8 @@
 -- kind: returns aggregates to sqlmatch
 -- reads: sqlmatch.annual_pass_weighted_units, sqlmatch.annual_pass_nearest_neighbour_matches, sqlmatch.annual_pass_nearest_neighbour_units
 -- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
--- jit: the next statement turns PostgreSQL's JIT compilation off for this session (the wide aggregates run many times slower compiled; `sqlmatch run` does the same)
 
 SET TimeZone = 'UTC';
-
-SET jit = off;
 
 /* Nearest-neighbour matching with replacement: for each matched treated unit i, its own values
    t_a = v_a(i) and the share-weighted mean of its matches' values c_a = sum_j share_ij v_a(j), for the
