@@ -18,7 +18,7 @@ from sqlmatch.estimators.att import relative_lift, stratified_att, stratum_weigh
 from sqlmatch.estimators.binary import risk_ratio
 from sqlmatch.estimators.intervals import normal_interval
 from sqlmatch.estimators.matching_variance import MatchingInference
-from sqlmatch.matching.nn_variance import BIAS_STEP, bias_features, variable_numbers
+from sqlmatch.matching.nn_variance import BIAS_STEP, PAIR_STEP, bias_features, variable_numbers
 from sqlmatch.matching.nn_variance import STEP as MATCHING_VARIANCE
 from sqlmatch.estimators.ratio import ratio_effect
 from sqlmatch.estimators.regression import wls_from_moments
@@ -58,7 +58,9 @@ def study_results(spec: Spec, plan: Plan, output: RunOutput) -> StudyResults:
     nn = None
     if MATCHING_VARIANCE in r:
         with_bias = BIAS_STEP in r
-        nn = MatchingInference(r[MATCHING_VARIANCE], r[BIAS_STEP] if with_bias else None, variable_numbers(plan.outcomes), len(bias_features(spec)) if with_bias else 0)
+        nn = MatchingInference(
+            r[MATCHING_VARIANCE], r[BIAS_STEP] if with_bias else None, variable_numbers(plan.outcomes), len(bias_features(spec)) if with_bias else 0, r.get(PAIR_STEP)
+        )
     # score_weighting: the weighted effect and its sandwich variance replace the per-stratum one
     weighting = None
     if "weighting_sandwich" in r:

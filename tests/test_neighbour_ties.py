@@ -121,8 +121,9 @@ def test_tied_controls_share_the_last_slots(runs, name):
 def test_estimate_and_abadie_imbens_variance_follow_the_shares(runs, name):
     """With the numpy shares: the bias-corrected matching estimator (Abadie & Imbens 2011, per
     treated unit: Y_i - sum_j s_ij Y_j - (mu0(X_i) - sum_j s_ij mu0(X_j)), mu0 the matched controls'
-    WLS regression weighted by K_M(i) / M) and the Abadie & Imbens (2006) standard error with those
-    K_M(i) (numpy_variance), against sqlmatch's reported estimate and standard error."""
+    WLS regression weighted by K_M(i) / M) and the Abadie & Imbens (2006) population standard error with
+    those shares (numpy_variance: each treated unit's matched mean and the controls' squared shares),
+    against sqlmatch's reported estimate and standard error."""
     spec, results, tables = runs[name]
     t, c, width = brute_force_candidates(tables, spec)
     shares, _ = reference_shares(t, c, width, [], spec.matching.controls_per_treated)
@@ -139,7 +140,7 @@ def test_estimate_and_abadie_imbens_variance_follow_the_shares(runs, name):
         expected = float(np.mean((y.loc[per.index].to_numpy() - per.yc.to_numpy()) - (mu0.loc[per.index].to_numpy() - per.muc.to_numpy())))
         effect = results.effect(outcome)
         assert effect.estimate == pytest.approx(expected, rel=1e-9, abs=1e-12)
-        variance = numpy_variance(spec, {"match_weights": weights, "scores": tables["scores"], "measures": tables["measures"]}, lambda u, w, o=outcome: u[o].to_numpy(dtype=float))
+        variance = numpy_variance(spec, {"match_weights": weights, "scores": tables["scores"], "measures": tables["measures"], "matches": m}, lambda u, w, o=outcome: u[o].to_numpy(dtype=float))
         assert effect.std_error == pytest.approx(np.sqrt(variance), rel=1e-9)
 
 

@@ -75,9 +75,10 @@ so the per-stratum outcome sums are weighted (outcome_strata) and the stratified
 the matching estimator. The plan's weighted_units step sums each unit's weights for balance and plots.
 
 Variance and bias correction (with replacement; nn_variance.py, run after <study>_weighted_units
-exists): the Abadie & Imbens (2006) variance, which counts how often each control is used, and
-with `matching.bias_correction` (default) the Abadie & Imbens (2011) regression correction; both
-from per-group sums in SQL (estimators/matching_variance.py). Without replacement the 1:1 pairs
+exists): the Abadie & Imbens (2006) variance of the estimator of the population effect on the
+treated, which counts how often each control is used and holds the treated units' squared
+differences from their matched means, and with `matching.bias_correction` (default) the Abadie &
+Imbens (2011) regression correction; all from aggregate sums in SQL (estimators/matching_variance.py). Without replacement the 1:1 pairs
 get the paired-difference interval.
 
 Guard. One aggregate query counts the pairs the Mahalanobis join would compare (from block

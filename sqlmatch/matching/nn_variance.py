@@ -1,11 +1,13 @@
-"""Nearest-neighbour matching with replacement: the plan step whose sums give the Abadie & Imbens
-(2006, Econometrica 74(1):235) variance of the effect on the treated, which counts how often each
-control is used (see sql_templates/nearest_neighbour_variance.sql.j2 and
-estimators/matching_variance.py). It reads the units with a score and <study>_weighted_units, so it
-does not depend on how the matches were found: on the score distance (the grouped search) the units
-come from <study>_nearest_neighbour_units, whose integer score_rank orders them as the score at 10
-decimal places and the unit key do (a sort on integers, not on the decimal score); otherwise from
-<study>_scores."""
+"""Nearest-neighbour matching with replacement: the plan steps whose sums give the Abadie & Imbens
+(2006, Econometrica 74(1):235, section 4) variance of the estimator of the population effect on the
+treated, which counts how often each control is used (see sql_templates/nearest_neighbour_variance.sql.j2,
+nearest_neighbour_pair_sums.sql.j2 and estimators/matching_variance.py). `matching_variance` reads
+the units with a score and <study>_weighted_units (on the score distance, the grouped search, the
+units come from <study>_nearest_neighbour_units, whose integer score_rank orders them as the score
+at 10 decimal places and the unit key do: a sort on integers, not on the decimal score; otherwise
+from <study>_scores), and the matches table for each control's sum of squared shares;
+`pair_sums` reads the matches table and <study>_weighted_units for each treated unit's matched
+mean. Both return a fixed number of rows (two, one)."""
 
 from __future__ import annotations
 
@@ -13,6 +15,7 @@ from dataclasses import dataclass
 
 STEP = "matching_variance"
 BIAS_STEP = "bias_sums"
+PAIR_STEP = "pair_sums"
 
 
 @dataclass(frozen=True)
@@ -33,6 +36,22 @@ class Product:
     @property
     def key(self) -> str:
         return product_key(self.a, self.b)
+
+
+@dataclass(frozen=True)
+class PairSum:
+    """One product sum of the pair_sums step: sum over the treated of <left><a> * <right><b>, with
+    left, right = t (the unit's own value) or c (its matches' mean); named <key>__<left><right>."""
+
+    key: str
+    a: int
+    b: int
+    left: str
+    right: str
+
+
+def pair_sums(products) -> list[PairSum]:
+    return [PairSum(q.key, q.a, q.b, kind[0], kind[1]) for q in products for kind in ("tt", "tc", "ct", "cc")]
 
 
 def product_key(a: int, b: int) -> str:
@@ -109,18 +128,39 @@ def steps(ctx, outcomes) -> list:
 
     # the grouped search (with replacement on the score) stored an integer score order with the units
     ranked = nearest_neighbour.search_route(m) == "sorted"
+    links = dict(
+        exact=list(m.block_on),
+        grouped=ranked,
+        matches_table=ctx.table("nearest_neighbour_matches"),
+        units_table=ctx.table("nearest_neighbour_units"),
+    )
+    match_reads = [ctx.display("nearest_neighbour_matches")] + ([ctx.display("nearest_neighbour_units")] if ranked else [])
+    from sqlmatch.columns import split_sums
+
+    # four sums per product: split under PostgreSQL's SELECT-list limit (part 1 also has the count and t, c sums)
+    parts = split_sums(pair_sums(ps), first_fixed=1 + 2 * len(vs))
     return out + [
         ctx.query_step(
             STEP,
             "nearest_neighbour_variance",
-            reads=[ctx.display("nearest_neighbour_units" if ranked else "scores"), ctx.display("weighted_units")],
+            reads=[ctx.display("nearest_neighbour_units" if ranked else "scores"), ctx.display("weighted_units")] + match_reads,
             purpose="Abadie-Imbens variance sums: squared matching weights (times each control is used) times conditional "
             "variances estimated by matching each unit to its nearest unit of the same group.",
-            exact=list(m.block_on),
             variables=vs,
             products=ps,
             scores_table=ctx.table("scores"),
             ranked_units=ctx.table("nearest_neighbour_units") if ranked else None,
             weighted_table=ctx.table("weighted_units"),
-        )
-    ]
+            **links,
+        ),
+    ] + ctx.query_parts(
+        PAIR_STEP,
+        "nearest_neighbour_pair_sums",
+        reads=[ctx.display("weighted_units")] + match_reads,
+        purpose="Abadie-Imbens population variance sums: products of each matched treated unit's values and its matches' "
+        "share-weighted means, summed over the treated units.",
+        parts=[dict(sums=part, head=k == 1) for k, part in enumerate(parts, 1)],
+        variables=vs,
+        weighted_table=ctx.table("weighted_units"),
+        **links,
+    )

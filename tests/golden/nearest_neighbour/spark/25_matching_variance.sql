@@ -1,7 +1,7 @@
 -- sqlmatch study 'annual_pass', step 25: matching_variance (spark)
 -- Abadie-Imbens variance sums: squared matching weights (times each control is used) times conditional variances estimated by matching each unit to its nearest unit of the same group.
 -- kind: returns aggregates to sqlmatch
--- reads: sqlmatch.annual_pass_nearest_neighbour_units, sqlmatch.annual_pass_weighted_units
+-- reads: sqlmatch.annual_pass_nearest_neighbour_units, sqlmatch.annual_pass_weighted_units, sqlmatch.annual_pass_nearest_neighbour_matches, sqlmatch.annual_pass_nearest_neighbour_units
 -- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
 
 SET spark.sql.session.timeZone = UTC;
@@ -20,8 +20,28 @@ SET spark.sql.session.timeZone = UTC;
    matched units that have a neighbour (a unit alone in its group and block borrows their mean).
    The units and their order come from the units table of the grouped search, whose score_rank orders each
    group's units of a block as (score at 10 decimal places, unit key) does: the sort is on two integers.
+   For the population variance a control's w^2 splits into the part already in the treated units'
+   squared matched differences, share2 = sum over the treated units it serves of its share squared, and
+   the rest (w^2 - share2, K_M(i)(K_M(i) - 1) / M^2 without ties): the products are also summed
+   weighted by share2.
    One row per group. */
-WITH units AS (
+WITH reuse AS (
+  SELECT
+    u.unit_key AS control_key,
+    g.share2
+  FROM (
+    SELECT
+      m.control_group,
+      m.age_band,
+      SUM(m.share * m.share) AS share2
+    FROM `sqlmatch`.annual_pass_nearest_neighbour_matches AS m
+    GROUP BY
+      m.control_group,
+      m.age_band
+  ) AS g
+  INNER JOIN `sqlmatch`.annual_pass_nearest_neighbour_units AS u
+    ON u.treated = 0 AND u.control_group = g.control_group AND u.age_band = g.age_band
+), units AS (
   SELECT
     s.unit_key,
     s.treated,
@@ -39,16 +59,20 @@ WITH units AS (
     CAST(w.pre_fare_per_trip AS DOUBLE) AS v9,
     CAST(w.pre_active_days AS DOUBLE) AS v10,
     CAST(w.pre_days_since_last AS DOUBLE) AS v11,
-    w.match__weight AS weight
+    w.match__weight AS weight,
+    CASE WHEN s.treated = 0 THEN COALESCE(r.share2, 0) ELSE 0 END AS share2
   FROM `sqlmatch`.annual_pass_nearest_neighbour_units AS s
   INNER JOIN `sqlmatch`.annual_pass_weighted_units AS w
     ON w.unit_key = s.unit_key
+  LEFT JOIN reuse AS r
+    ON r.control_key = s.unit_key
   WHERE
     NOT s.score IS NULL
 ), ordered AS (
   SELECT
     u.treated,
     u.weight,
+    u.share2,
     u.score - LAG(u.score) OVER (
       PARTITION BY u.treated, u.age_band
       ORDER BY u.score_rank NULLS LAST, u.unit_key NULLS LAST
@@ -150,6 +174,7 @@ WITH units AS (
   SELECT
     o.treated,
     o.weight,
+    o.share2,
     CASE WHEN o.gap_before IS NULL AND o.gap_after IS NULL THEN 0 ELSE 1 END AS has_neighbour,
     CASE
       WHEN o.gap_after IS NULL
@@ -250,109 +275,163 @@ SELECT
   SUM(d.weight) AS sum_w,
   SUM(d.weight * d.weight) AS sum_w2,
   SUM(CASE WHEN d.has_neighbour = 1 THEN d.weight * d.weight ELSE 0 END) AS sum_w2_with_neighbour,
+  SUM(d.share2) AS sum_s2,
+  SUM(CASE WHEN d.has_neighbour = 1 THEN d.share2 ELSE 0 END) AS sum_s2_with_neighbour,
   SUM(d.weight * d.weight * d.d1 * d.d1) / 2.0 AS p1_1__w2_dd,
+  SUM(d.share2 * d.d1 * d.d1) / 2.0 AS p1_1__s2_dd,
   SUM(d.d1 * d.d1) / 2.0 AS p1_1__dd,
   SUM(d.weight * d.weight * d.d2 * d.d2) / 2.0 AS p2_2__w2_dd,
+  SUM(d.share2 * d.d2 * d.d2) / 2.0 AS p2_2__s2_dd,
   SUM(d.d2 * d.d2) / 2.0 AS p2_2__dd,
   SUM(d.weight * d.weight * d.d3 * d.d3) / 2.0 AS p3_3__w2_dd,
+  SUM(d.share2 * d.d3 * d.d3) / 2.0 AS p3_3__s2_dd,
   SUM(d.d3 * d.d3) / 2.0 AS p3_3__dd,
   SUM(d.weight * d.weight * d.d4 * d.d4) / 2.0 AS p4_4__w2_dd,
+  SUM(d.share2 * d.d4 * d.d4) / 2.0 AS p4_4__s2_dd,
   SUM(d.d4 * d.d4) / 2.0 AS p4_4__dd,
   SUM(d.weight * d.weight * d.d4 * d.d5) / 2.0 AS p4_5__w2_dd,
+  SUM(d.share2 * d.d4 * d.d5) / 2.0 AS p4_5__s2_dd,
   SUM(d.d4 * d.d5) / 2.0 AS p4_5__dd,
   SUM(d.weight * d.weight * d.d5 * d.d5) / 2.0 AS p5_5__w2_dd,
+  SUM(d.share2 * d.d5 * d.d5) / 2.0 AS p5_5__s2_dd,
   SUM(d.d5 * d.d5) / 2.0 AS p5_5__dd,
   SUM(d.weight * d.weight * d.d6 * d.d6) / 2.0 AS p6_6__w2_dd,
+  SUM(d.share2 * d.d6 * d.d6) / 2.0 AS p6_6__s2_dd,
   SUM(d.d6 * d.d6) / 2.0 AS p6_6__dd,
   SUM(d.weight * d.weight * d.d1 * d.d7) / 2.0 AS p1_7__w2_dd,
+  SUM(d.share2 * d.d1 * d.d7) / 2.0 AS p1_7__s2_dd,
   SUM(d.d1 * d.d7) / 2.0 AS p1_7__dd,
   SUM(d.weight * d.weight * d.d1 * d.d8) / 2.0 AS p1_8__w2_dd,
+  SUM(d.share2 * d.d1 * d.d8) / 2.0 AS p1_8__s2_dd,
   SUM(d.d1 * d.d8) / 2.0 AS p1_8__dd,
   SUM(d.weight * d.weight * d.d1 * d.d9) / 2.0 AS p1_9__w2_dd,
+  SUM(d.share2 * d.d1 * d.d9) / 2.0 AS p1_9__s2_dd,
   SUM(d.d1 * d.d9) / 2.0 AS p1_9__dd,
   SUM(d.weight * d.weight * d.d1 * d.d10) / 2.0 AS p1_10__w2_dd,
+  SUM(d.share2 * d.d1 * d.d10) / 2.0 AS p1_10__s2_dd,
   SUM(d.d1 * d.d10) / 2.0 AS p1_10__dd,
   SUM(d.weight * d.weight * d.d1 * d.d11) / 2.0 AS p1_11__w2_dd,
+  SUM(d.share2 * d.d1 * d.d11) / 2.0 AS p1_11__s2_dd,
   SUM(d.d1 * d.d11) / 2.0 AS p1_11__dd,
   SUM(d.weight * d.weight * d.d2 * d.d7) / 2.0 AS p2_7__w2_dd,
+  SUM(d.share2 * d.d2 * d.d7) / 2.0 AS p2_7__s2_dd,
   SUM(d.d2 * d.d7) / 2.0 AS p2_7__dd,
   SUM(d.weight * d.weight * d.d2 * d.d8) / 2.0 AS p2_8__w2_dd,
+  SUM(d.share2 * d.d2 * d.d8) / 2.0 AS p2_8__s2_dd,
   SUM(d.d2 * d.d8) / 2.0 AS p2_8__dd,
   SUM(d.weight * d.weight * d.d2 * d.d9) / 2.0 AS p2_9__w2_dd,
+  SUM(d.share2 * d.d2 * d.d9) / 2.0 AS p2_9__s2_dd,
   SUM(d.d2 * d.d9) / 2.0 AS p2_9__dd,
   SUM(d.weight * d.weight * d.d2 * d.d10) / 2.0 AS p2_10__w2_dd,
+  SUM(d.share2 * d.d2 * d.d10) / 2.0 AS p2_10__s2_dd,
   SUM(d.d2 * d.d10) / 2.0 AS p2_10__dd,
   SUM(d.weight * d.weight * d.d2 * d.d11) / 2.0 AS p2_11__w2_dd,
+  SUM(d.share2 * d.d2 * d.d11) / 2.0 AS p2_11__s2_dd,
   SUM(d.d2 * d.d11) / 2.0 AS p2_11__dd,
   SUM(d.weight * d.weight * d.d3 * d.d7) / 2.0 AS p3_7__w2_dd,
+  SUM(d.share2 * d.d3 * d.d7) / 2.0 AS p3_7__s2_dd,
   SUM(d.d3 * d.d7) / 2.0 AS p3_7__dd,
   SUM(d.weight * d.weight * d.d3 * d.d8) / 2.0 AS p3_8__w2_dd,
+  SUM(d.share2 * d.d3 * d.d8) / 2.0 AS p3_8__s2_dd,
   SUM(d.d3 * d.d8) / 2.0 AS p3_8__dd,
   SUM(d.weight * d.weight * d.d3 * d.d9) / 2.0 AS p3_9__w2_dd,
+  SUM(d.share2 * d.d3 * d.d9) / 2.0 AS p3_9__s2_dd,
   SUM(d.d3 * d.d9) / 2.0 AS p3_9__dd,
   SUM(d.weight * d.weight * d.d3 * d.d10) / 2.0 AS p3_10__w2_dd,
+  SUM(d.share2 * d.d3 * d.d10) / 2.0 AS p3_10__s2_dd,
   SUM(d.d3 * d.d10) / 2.0 AS p3_10__dd,
   SUM(d.weight * d.weight * d.d3 * d.d11) / 2.0 AS p3_11__w2_dd,
+  SUM(d.share2 * d.d3 * d.d11) / 2.0 AS p3_11__s2_dd,
   SUM(d.d3 * d.d11) / 2.0 AS p3_11__dd,
   SUM(d.weight * d.weight * d.d4 * d.d7) / 2.0 AS p4_7__w2_dd,
+  SUM(d.share2 * d.d4 * d.d7) / 2.0 AS p4_7__s2_dd,
   SUM(d.d4 * d.d7) / 2.0 AS p4_7__dd,
   SUM(d.weight * d.weight * d.d4 * d.d8) / 2.0 AS p4_8__w2_dd,
+  SUM(d.share2 * d.d4 * d.d8) / 2.0 AS p4_8__s2_dd,
   SUM(d.d4 * d.d8) / 2.0 AS p4_8__dd,
   SUM(d.weight * d.weight * d.d4 * d.d9) / 2.0 AS p4_9__w2_dd,
+  SUM(d.share2 * d.d4 * d.d9) / 2.0 AS p4_9__s2_dd,
   SUM(d.d4 * d.d9) / 2.0 AS p4_9__dd,
   SUM(d.weight * d.weight * d.d4 * d.d10) / 2.0 AS p4_10__w2_dd,
+  SUM(d.share2 * d.d4 * d.d10) / 2.0 AS p4_10__s2_dd,
   SUM(d.d4 * d.d10) / 2.0 AS p4_10__dd,
   SUM(d.weight * d.weight * d.d4 * d.d11) / 2.0 AS p4_11__w2_dd,
+  SUM(d.share2 * d.d4 * d.d11) / 2.0 AS p4_11__s2_dd,
   SUM(d.d4 * d.d11) / 2.0 AS p4_11__dd,
   SUM(d.weight * d.weight * d.d5 * d.d7) / 2.0 AS p5_7__w2_dd,
+  SUM(d.share2 * d.d5 * d.d7) / 2.0 AS p5_7__s2_dd,
   SUM(d.d5 * d.d7) / 2.0 AS p5_7__dd,
   SUM(d.weight * d.weight * d.d5 * d.d8) / 2.0 AS p5_8__w2_dd,
+  SUM(d.share2 * d.d5 * d.d8) / 2.0 AS p5_8__s2_dd,
   SUM(d.d5 * d.d8) / 2.0 AS p5_8__dd,
   SUM(d.weight * d.weight * d.d5 * d.d9) / 2.0 AS p5_9__w2_dd,
+  SUM(d.share2 * d.d5 * d.d9) / 2.0 AS p5_9__s2_dd,
   SUM(d.d5 * d.d9) / 2.0 AS p5_9__dd,
   SUM(d.weight * d.weight * d.d5 * d.d10) / 2.0 AS p5_10__w2_dd,
+  SUM(d.share2 * d.d5 * d.d10) / 2.0 AS p5_10__s2_dd,
   SUM(d.d5 * d.d10) / 2.0 AS p5_10__dd,
   SUM(d.weight * d.weight * d.d5 * d.d11) / 2.0 AS p5_11__w2_dd,
+  SUM(d.share2 * d.d5 * d.d11) / 2.0 AS p5_11__s2_dd,
   SUM(d.d5 * d.d11) / 2.0 AS p5_11__dd,
   SUM(d.weight * d.weight * d.d6 * d.d7) / 2.0 AS p6_7__w2_dd,
+  SUM(d.share2 * d.d6 * d.d7) / 2.0 AS p6_7__s2_dd,
   SUM(d.d6 * d.d7) / 2.0 AS p6_7__dd,
   SUM(d.weight * d.weight * d.d6 * d.d8) / 2.0 AS p6_8__w2_dd,
+  SUM(d.share2 * d.d6 * d.d8) / 2.0 AS p6_8__s2_dd,
   SUM(d.d6 * d.d8) / 2.0 AS p6_8__dd,
   SUM(d.weight * d.weight * d.d6 * d.d9) / 2.0 AS p6_9__w2_dd,
+  SUM(d.share2 * d.d6 * d.d9) / 2.0 AS p6_9__s2_dd,
   SUM(d.d6 * d.d9) / 2.0 AS p6_9__dd,
   SUM(d.weight * d.weight * d.d6 * d.d10) / 2.0 AS p6_10__w2_dd,
+  SUM(d.share2 * d.d6 * d.d10) / 2.0 AS p6_10__s2_dd,
   SUM(d.d6 * d.d10) / 2.0 AS p6_10__dd,
   SUM(d.weight * d.weight * d.d6 * d.d11) / 2.0 AS p6_11__w2_dd,
+  SUM(d.share2 * d.d6 * d.d11) / 2.0 AS p6_11__s2_dd,
   SUM(d.d6 * d.d11) / 2.0 AS p6_11__dd,
   SUM(d.weight * d.weight * d.d7 * d.d7) / 2.0 AS p7_7__w2_dd,
+  SUM(d.share2 * d.d7 * d.d7) / 2.0 AS p7_7__s2_dd,
   SUM(d.d7 * d.d7) / 2.0 AS p7_7__dd,
   SUM(d.weight * d.weight * d.d7 * d.d8) / 2.0 AS p7_8__w2_dd,
+  SUM(d.share2 * d.d7 * d.d8) / 2.0 AS p7_8__s2_dd,
   SUM(d.d7 * d.d8) / 2.0 AS p7_8__dd,
   SUM(d.weight * d.weight * d.d7 * d.d9) / 2.0 AS p7_9__w2_dd,
+  SUM(d.share2 * d.d7 * d.d9) / 2.0 AS p7_9__s2_dd,
   SUM(d.d7 * d.d9) / 2.0 AS p7_9__dd,
   SUM(d.weight * d.weight * d.d7 * d.d10) / 2.0 AS p7_10__w2_dd,
+  SUM(d.share2 * d.d7 * d.d10) / 2.0 AS p7_10__s2_dd,
   SUM(d.d7 * d.d10) / 2.0 AS p7_10__dd,
   SUM(d.weight * d.weight * d.d7 * d.d11) / 2.0 AS p7_11__w2_dd,
+  SUM(d.share2 * d.d7 * d.d11) / 2.0 AS p7_11__s2_dd,
   SUM(d.d7 * d.d11) / 2.0 AS p7_11__dd,
   SUM(d.weight * d.weight * d.d8 * d.d8) / 2.0 AS p8_8__w2_dd,
+  SUM(d.share2 * d.d8 * d.d8) / 2.0 AS p8_8__s2_dd,
   SUM(d.d8 * d.d8) / 2.0 AS p8_8__dd,
   SUM(d.weight * d.weight * d.d8 * d.d9) / 2.0 AS p8_9__w2_dd,
+  SUM(d.share2 * d.d8 * d.d9) / 2.0 AS p8_9__s2_dd,
   SUM(d.d8 * d.d9) / 2.0 AS p8_9__dd,
   SUM(d.weight * d.weight * d.d8 * d.d10) / 2.0 AS p8_10__w2_dd,
+  SUM(d.share2 * d.d8 * d.d10) / 2.0 AS p8_10__s2_dd,
   SUM(d.d8 * d.d10) / 2.0 AS p8_10__dd,
   SUM(d.weight * d.weight * d.d8 * d.d11) / 2.0 AS p8_11__w2_dd,
+  SUM(d.share2 * d.d8 * d.d11) / 2.0 AS p8_11__s2_dd,
   SUM(d.d8 * d.d11) / 2.0 AS p8_11__dd,
   SUM(d.weight * d.weight * d.d9 * d.d9) / 2.0 AS p9_9__w2_dd,
+  SUM(d.share2 * d.d9 * d.d9) / 2.0 AS p9_9__s2_dd,
   SUM(d.d9 * d.d9) / 2.0 AS p9_9__dd,
   SUM(d.weight * d.weight * d.d9 * d.d10) / 2.0 AS p9_10__w2_dd,
+  SUM(d.share2 * d.d9 * d.d10) / 2.0 AS p9_10__s2_dd,
   SUM(d.d9 * d.d10) / 2.0 AS p9_10__dd,
   SUM(d.weight * d.weight * d.d9 * d.d11) / 2.0 AS p9_11__w2_dd,
+  SUM(d.share2 * d.d9 * d.d11) / 2.0 AS p9_11__s2_dd,
   SUM(d.d9 * d.d11) / 2.0 AS p9_11__dd,
   SUM(d.weight * d.weight * d.d10 * d.d10) / 2.0 AS p10_10__w2_dd,
+  SUM(d.share2 * d.d10 * d.d10) / 2.0 AS p10_10__s2_dd,
   SUM(d.d10 * d.d10) / 2.0 AS p10_10__dd,
   SUM(d.weight * d.weight * d.d10 * d.d11) / 2.0 AS p10_11__w2_dd,
+  SUM(d.share2 * d.d10 * d.d11) / 2.0 AS p10_11__s2_dd,
   SUM(d.d10 * d.d11) / 2.0 AS p10_11__dd,
   SUM(d.weight * d.weight * d.d11 * d.d11) / 2.0 AS p11_11__w2_dd,
+  SUM(d.share2 * d.d11 * d.d11) / 2.0 AS p11_11__s2_dd,
   SUM(d.d11 * d.d11) / 2.0 AS p11_11__dd
 FROM differences AS d
 GROUP BY
