@@ -354,9 +354,10 @@ def test_a_scheduled_plan_holds_every_part_and_report_reads_them(demo_dir, tmp_p
 
 
 def test_nearest_neighbour_pair_sums_split_give_the_whole_querys_effects(demo_db, monkeypatch):
-    """The nearest-neighbour population-variance sums (four per product of the variables) split under
-    a lowered limit: several pair_sums parts, none wider than the limit, and the study's effects and
-    standard errors equal the unsplit run's."""
+    """The nearest-neighbour population-variance sums (four per product of the variables in pair_sums,
+    three per product and one row per group in matching_variance) split under a lowered limit: several
+    parts of each, none wider than the limit, and the study's effects and standard errors equal the
+    unsplit run's."""
     from sqlmatch import api
 
     raw = tomllib.loads(DEMO_SPEC.read_text(encoding="utf-8"))
@@ -371,8 +372,10 @@ def test_nearest_neighbour_pair_sums_split_give_the_whole_querys_effects(demo_db
     with DuckDBEngine(str(demo_db)) as engine:
         model = run_plan(build_plan(spec, "duckdb"), spec, engine).model
     compiled = build_plan(spec, "duckdb", model=model)
-    parts = [s for s in compiled.steps if s.name == "pair_sums" or s.part_of == "pair_sums"]
-    assert len(parts) > 1 and all(select_width(s.statements[0]) <= 60 for s in parts)
+    for name in ("pair_sums", "matching_variance"):
+        parts = [s for s in compiled.steps if s.name == name or s.part_of == name]
+        queries = [q for s in parts for q in s.statements if not q.lstrip().upper().startswith("SET ")]
+        assert len(parts) > 1 and len(queries) == len(parts) and all(select_width(q) <= 60 for q in queries), name
     for a, b in zip(whole.effects, split.effects):
         assert a.outcome == b.outcome
         assert b.estimate == pytest.approx(a.estimate, rel=1e-12)

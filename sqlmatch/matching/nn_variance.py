@@ -50,6 +50,21 @@ class PairSum:
     right: str
 
 
+@dataclass(frozen=True)
+class VarianceSum:
+    """One product sum of the matching_variance step: sum over the matched units of weight * d_a d_b / 2,
+    weight = w^2 ("w2"), the controls' squared shares ("s2") or 1 ("dd"); named <key>__<weight>_dd."""
+
+    key: str
+    a: int
+    b: int
+    weight: str
+
+
+def variance_sums(products) -> list[VarianceSum]:
+    return [VarianceSum(q.key, q.a, q.b, w) for q in products for w in ("w2", "s2", "")]
+
+
 def pair_sums(products) -> list[PairSum]:
     return [PairSum(q.key, q.a, q.b, kind[0], kind[1]) for q in products for kind in ("tt", "tc", "ct", "cc")]
 
@@ -139,21 +154,21 @@ def steps(ctx, outcomes) -> list:
 
     # four sums per product: split under PostgreSQL's SELECT-list limit (part 1 also has the count and t, c sums)
     parts = split_sums(pair_sums(ps), first_fixed=1 + 2 * len(vs))
-    return out + [
-        ctx.query_step(
+    # three sums per product, one row per group: later parts repeat the group column and the window pass
+    variance_parts = split_sums(variance_sums(ps), first_fixed=8, later_fixed=1)
+    return out + ctx.query_parts(
             STEP,
             "nearest_neighbour_variance",
             reads=[ctx.display("nearest_neighbour_units" if ranked else "scores"), ctx.display("weighted_units")] + match_reads,
             purpose="Abadie-Imbens variance sums: squared matching weights (times each control is used) times conditional "
             "variances estimated by matching each unit to its nearest unit of the same group.",
+            parts=[dict(sums=part, head=k == 1) for k, part in enumerate(variance_parts, 1)],
             variables=vs,
-            products=ps,
             scores_table=ctx.table("scores"),
             ranked_units=ctx.table("nearest_neighbour_units") if ranked else None,
             weighted_table=ctx.table("weighted_units"),
             **links,
-        ),
-    ] + ctx.query_parts(
+    ) + ctx.query_parts(
         PAIR_STEP,
         "nearest_neighbour_pair_sums",
         reads=[ctx.display("weighted_units")] + match_reads,
