@@ -49,19 +49,29 @@ def build_demo(out: Path, riders: int, seed: int, progress: Progress | None = No
     progress = progress or Progress(quiet=True)
     start = time.perf_counter()
     with DuckDBEngine(str(database)) as engine:
+        pending: dict = {}  # the table being written (trips takes one INSERT per month) and its seconds so far
+
+        def flush():
+            if pending:
+                name = pending.pop("name")
+                rows = engine.fetch(exp.select("COUNT(*)").from_(exp.to_identifier(name, quoted=True)).sql("duckdb")).rows[0][0]
+                progress.note(f"demo warehouse: {name:<22} {pending.pop('seconds'):8.2f}s {rows:>12,} rows written")
 
         def execute(statement: str):
             t0 = time.perf_counter()
             engine.execute(statement)
             created = _CREATED.search("\n".join(line for line in statement.splitlines() if not line.lstrip().startswith("--")))
-            # a CREATE TABLE with a column list is filled by a later INSERT: reported then
+            # a CREATE TABLE with a column list is filled by later INSERTs: reported once, after the last
             if created and not progress.quiet and not (created.group(1).upper().startswith("CREATE") and created.group(3)):
                 name = created.group(2)
-                rows = engine.fetch(exp.select("COUNT(*)").from_(exp.to_identifier(name, quoted=True)).sql("duckdb")).rows[0][0]
-                progress.note(f"demo warehouse: {name:<22} {time.perf_counter() - t0:8.2f}s {rows:>12,} rows written")
+                if pending.get("name") != name:
+                    flush()
+                    pending.update(name=name, seconds=0.0)
+                pending["seconds"] += time.perf_counter() - t0
 
         progress.note(f"building the demo warehouse: {riders:,} riders (seed {seed})")
         build_demo_warehouse(execute, riders=riders, seed=seed)
+        flush()
     size = database.stat().st_size / 2**20
     progress.note(f"demo warehouse built in {time.perf_counter() - start:.1f}s: {database} ({size:,.0f} MiB)")
     spec_path = out / DEMO_SPEC

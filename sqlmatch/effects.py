@@ -14,7 +14,7 @@ from sqlmatch.design import provenance, study_design
 from sqlmatch.diagnostics import run_warnings
 from sqlmatch.estimators.adjusted import adjusted_att, adjusted_ratio
 from sqlmatch.matching import method_for
-from sqlmatch.estimators.att import relative_lift, stratified_att, stratum_weights
+from sqlmatch.estimators.att import lift_from_ratio_se, relative_lift, stratified_att, stratum_weights
 from sqlmatch.estimators.binary import risk_ratio
 from sqlmatch.estimators.intervals import normal_interval
 from sqlmatch.estimators.matching_variance import MatchingInference
@@ -214,7 +214,11 @@ def outcome_effect(
             mv = nn.variance({1: {num: 1.0 / xbars[0], den: -r1 / xbars[0]}, 0: {num: 1.0 / xbars[1], den: -r0 / xbars[1]}})
             _with_matching_variance(fields, mv)
             fields["estimator"] += AI_TEXT
-            lift = relative_lift(r1, mv.var_treated, r0_bc, mv.var_control)
+            # the lift R1 / R0 - 1 linearised as (R1 - rho R0) / R0: its matching variance counts the
+            # dependence of the two means (the same controls serve many treated units)
+            rho = r1 / r0_bc if r0_bc else math.nan
+            lv = nn.variance({1: {num: 1.0 / (xbars[0] * r0_bc), den: -r1 / (xbars[0] * r0_bc)}, 0: {num: rho / (xbars[1] * r0_bc), den: -rho * r0 / (xbars[1] * r0_bc)}}) if r0_bc else None
+            lift = lift_from_ratio_se(r1, r0_bc, lv.std_error if lv is not None else math.nan)
             extra.update(lift=_interval(lift.estimate, lift.std_error, lift.ci_low, lift.ci_high))
     else:
         t_mom, c_mom = aggregates.outcome_moments(matched, outcome.name)
@@ -265,8 +269,13 @@ def outcome_effect(
                 lift=_interval(rr.lift, rr.std_error, rr.lift_ci_low, rr.lift_ci_high),
             )
         else:
-            v1, v0 = (mv.var_treated, mv.var_control) if mv is not None else (m.var_mean_treated, m.var_mean_control)
-            lift = relative_lift(m.mean_treated, v1, mean_control, v0)
+            if mv is not None and mean_control:
+                # m1 / m0 - 1 linearised as (m1 - rho m0) / m0, its matching variance (the means are dependent)
+                rho = m.mean_treated / mean_control
+                lv = nn.variance({1: {outcome.name: 1.0 / mean_control}, 0: {outcome.name: rho / mean_control}})
+                lift = lift_from_ratio_se(m.mean_treated, mean_control, lv.std_error)
+            else:
+                lift = relative_lift(m.mean_treated, m.var_mean_treated, mean_control, m.var_mean_control)
             extra.update(lift=_interval(lift.estimate, lift.std_error, lift.ci_low, lift.ci_high))
         if features and nn is None and (not method or method_for(method).adjustable):
             # regression adjustment within strata on the numeric features (estimators/adjusted.py);

@@ -157,6 +157,31 @@ def test_standard_errors_equal_numpy_abadie_imbens(runs, name):
     fare = numpy_variance(spec, tables, linearised)
     assert results.effect("fare_per_trip").std_error == pytest.approx(np.sqrt(fare), rel=1e-9)
 
+    # the relative lift m1 / m0 - 1 (delta method, e.g. Casella & Berger 2002, section 5.5.4, recalled):
+    # rho - rho_hat ~ (m1 - rho m0) / m0, so its SE is the matching variance of the quantity y / m0
+    # for the treated and rho y / m0 for the controls; the two means are dependent (shared controls),
+    # which the old form (treated and control parts as independent) could not count
+    effect = results.effect("post_trips")
+    m0, rho = effect.mean_control, effect.lift.estimate + 1.0
+    assert rho == pytest.approx(effect.mean_treated / m0, rel=1e-12)
+
+    def scaled(u, w):
+        y = u.post_trips.to_numpy(dtype=float)
+        return np.where(u.treated.to_numpy() == 1, y / m0, rho * y / m0)
+
+    assert effect.lift.std_error == pytest.approx(np.sqrt(numpy_variance(spec, tables, scaled)), rel=1e-9)
+    lo, hi = effect.lift.ci_low, effect.lift.ci_high
+    se_log = effect.lift.std_error / rho
+    assert (lo, hi) == pytest.approx((rho * np.exp(-1.959963984540054 * se_log) - 1, rho * np.exp(1.959963984540054 * se_log) - 1), rel=1e-9)
+
+    ratio = results.effect("fare_per_trip")
+    r0, rho_f = ratio.mean_control, ratio.lift.estimate + 1.0
+
+    def scaled_ratio(u, w):
+        return np.where(u.treated.to_numpy() == 1, linearised(u, w) / r0, rho_f * linearised(u, w) / r0)
+
+    assert ratio.lift.std_error == pytest.approx(np.sqrt(numpy_variance(spec, tables, scaled_ratio)), rel=1e-6)
+
 
 def test_matched_difference_squares_by_hand():
     """Two treated units, one variable (1) and one feature (2): t = (3, 5), c = (1, 2), feature t = (1, 0),

@@ -141,3 +141,23 @@ def relative_lift(mean_treated: float, var_treated: float, mean_control: float, 
         return Lift(rho - 1.0, rho * log_se, lo - 1.0, hi - 1.0, "log")
     se = math.sqrt(v1 / (m0 * m0) + m1 * m1 * v0 / m0**4)
     return Lift(rho - 1.0, se, rho - 1.0 - z * se, rho - 1.0 + z * se, "linear")
+
+
+def lift_from_ratio_se(mean_treated: float, mean_control: float, ratio_se: float, level: float = 0.95) -> Lift:
+    """Relative lift m1 / m0 - 1 when the standard error of the ratio rho = m1 / m0 is known from a
+    variance that counts the dependence between the two means (matching with replacement: the
+    Abadie-Imbens variance of the linearised difference (m1 - rho m0) / m0, delta method as in
+    relative_lift). Log-scale interval when both means are positive, se_log = se(rho) / rho;
+    otherwise the linear one. NaN lift when m0 = 0."""
+    m1, m0 = float(mean_treated), float(mean_control)
+    if m0 == 0.0 or not math.isfinite(m0) or not math.isfinite(m1):
+        return Lift(math.nan, None, None, None, "linear")
+    rho = m1 / m0
+    se = float(ratio_se) if ratio_se is not None else math.nan
+    if not math.isfinite(se) or se < 0:
+        return Lift(rho - 1.0, None, None, None, "linear")
+    if m1 > 0.0 and m0 > 0.0:
+        lo, hi = log_ratio_interval(rho, se / rho, level)
+        return Lift(rho - 1.0, se, lo - 1.0, hi - 1.0, "log")
+    z = critical_value(level)
+    return Lift(rho - 1.0, se, rho - 1.0 - z * se, rho - 1.0 + z * se, "linear")
