@@ -61,28 +61,26 @@ def runs(demo_dir, tmp_path_factory):
     return out
 
 
-def nearest_same_group(units: pd.DataFrame, exact: list[str]) -> np.ndarray:
-    """Brute force: for each unit, the position of its nearest other unit of the same group and
-    exact block by |score difference| (at 10 decimal places); among equally near units, the last
-    one before it in (score, key) order, else the first one after it. -1 when it has none."""
+def nearest_same_group(units: pd.DataFrame, exact: list[str]) -> list[np.ndarray]:
+    """Brute force: for each unit, the positions of all its nearest other units of the same group and
+    exact block by |score difference| (at 10 decimal places): every unit at the smallest distance
+    (distance 0 for units sharing its score). Empty when it has none."""
     score = np.round(units.score.to_numpy(), 10)
-    order = np.lexsort((units.unit_key.to_numpy(), score))
-    rank = np.empty(len(units), dtype=int)
-    rank[order] = np.arange(len(units))
     same = units.treated.to_numpy()[:, None] == units.treated.to_numpy()[None, :]
     for f in exact:
         v = units[f].fillna("(missing)").to_numpy()
         same &= v[:, None] == v[None, :]
     np.fill_diagonal(same, False)
     gap = np.where(same, np.round(np.abs(score[:, None] - score[None, :]), 10), np.inf)
-    out = np.full(len(units), -1)
+    out = []
     for i in range(len(units)):
-        if not np.isfinite(gap[i]).any():
-            continue
-        best = np.flatnonzero(gap[i] == gap[i].min())
-        before = best[rank[best] < rank[i]]
-        out[i] = before[np.argmax(rank[before])] if len(before) else best[np.argmin(rank[best])]
+        out.append(np.flatnonzero(gap[i] == gap[i].min()) if np.isfinite(gap[i]).any() else np.array([], dtype=int))
     return out
+
+
+def tie_averaged_sigma2(y: np.ndarray, nearest: list[np.ndarray]) -> np.ndarray:
+    """sigma2_i = (y_i - y_l)^2 / 2 (Abadie & Imbens 2006, J = 1) averaged over every nearest unit l."""
+    return np.array([np.mean(0.5 * (y[i] - y[nb]) ** 2) if len(nb) else np.nan for i, nb in enumerate(nearest)])
 
 
 def numpy_variance(spec, tables, value, population: bool = True) -> float:
@@ -109,9 +107,11 @@ def numpy_variance(spec, tables, value, population: bool = True) -> float:
         slopes[g] = beta[1:]
         rows = units.treated.to_numpy() == g
         y = np.where(rows, y - X[:, 1:] @ beta[1:], y)
-    nb = nearest_same_group(units, list(spec.matching.block_on))
-    sigma2 = np.where(nb >= 0, 0.5 * (y - y[np.maximum(nb, 0)]) ** 2, np.nan)
-    assert (nb[matched] >= 0).all()  # every matched unit has a neighbour here (no borrowing to check)
+    nearest = nearest_same_group(units, list(spec.matching.block_on))
+    sigma2 = tie_averaged_sigma2(y, nearest)
+    assert all(len(nearest[i]) for i in np.flatnonzero(matched))  # every matched unit has a neighbour here (no borrowing to check)
+    # the demo's scores tie: the averaging over several nearest units is exercised
+    assert sum(len(nearest[i]) > 1 for i in np.flatnonzero(matched)) > 10
     n1 = weight[matched & (units.treated.to_numpy() == 1)].sum()
     if not population:
         return float(np.sum(weight[matched] ** 2 * sigma2[matched]) / n1**2)
@@ -251,10 +251,11 @@ def test_bias_corrected_estimate_equals_the_per_unit_form(runs, name, outcome):
 
 
 @pytest.mark.parametrize("distance", ["score", "mahalanobis"])
-def test_variance_sorts_the_score_distance_units_by_their_integer_rank(distance):
-    """On the score distance the variance step orders each group by the units table's integer score_rank
-    (the order of the score at 10 decimal places and the key, stored by the units step) instead of sorting
-    by the decimal score; the Mahalanobis route, whose units table has no such rank, reads the scores."""
+def test_variance_windows_run_over_tie_sets_not_units(distance):
+    """The variance step's neighbour search sorts the tie sets (one row per group, block and score: a
+    GROUP BY of the units), not the units: every window reads the tie_sets CTE and orders by its score
+    alone, and the units' own rows are never sorted. On the score distance the scores come from the
+    units table of the grouped search (score_compared), otherwise from the scores table."""
     import sqlglot
     from sqlglot import exp
 
@@ -264,6 +265,12 @@ def test_variance_sorts_the_score_distance_units_by_their_integer_rank(distance)
     spec = parse_spec(demo_raw("unused.duckdb", "mv_plan", distance=distance))
     step = build_plan(spec, "duckdb", model=STAND_IN_MODEL).step("matching_variance")
     (query,) = [sql for sql in step.statements if "LAG(" in sql.upper()]
-    orders = {o.sql("duckdb") for w in sqlglot.parse_one(query, read="duckdb").find_all(exp.Window) for o in w.args["order"].expressions}
-    assert orders == ({"u.score_rank", "u.unit_key"} if distance == "score" else {"u.score", "u.unit_key"})
+    tree = sqlglot.parse_one(query, read="duckdb")
+    ctes = {c.alias: c.this for c in tree.find_all(exp.CTE)}
+    assert list(ctes["tie_sets"].args["group"].expressions)  # the tie sets are a GROUP BY
+    windowed = [name for name, body in ctes.items() if list(body.find_all(exp.Window))]
+    assert windowed == ["ordered"]
+    assert {t.name for t in ctes["ordered"].find_all(exp.Table)} == {"tie_sets"}
+    orders = {o.sql("duckdb") for w in ctes["ordered"].find_all(exp.Window) for o in w.args["order"].expressions}
+    assert orders == {"t.score"}
     assert ("nearest_neighbour_units" in query) == (distance == "score")

@@ -50,21 +50,6 @@ class PairSum:
     right: str
 
 
-@dataclass(frozen=True)
-class VarianceSum:
-    """One product sum of the matching_variance step: sum over the matched units of weight * d_a d_b / 2,
-    weight = w^2 ("w2"), the controls' squared shares ("s2") or 1 ("dd"); named <key>__<weight>_dd."""
-
-    key: str
-    a: int
-    b: int
-    weight: str
-
-
-def variance_sums(products) -> list[VarianceSum]:
-    return [VarianceSum(q.key, q.a, q.b, w) for q in products for w in ("w2", "s2", "")]
-
-
 def pair_sums(products) -> list[PairSum]:
     return [PairSum(q.key, q.a, q.b, kind[0], kind[1]) for q in products for kind in ("tt", "tc", "ct", "cc")]
 
@@ -154,15 +139,20 @@ def steps(ctx, outcomes) -> list:
 
     # four sums per product: split under PostgreSQL's SELECT-list limit (part 1 also has the count and t, c sums)
     parts = split_sums(pair_sums(ps), first_fixed=1 + 2 * len(vs))
-    # three sums per product, one row per group: later parts repeat the group column and the window pass
-    variance_parts = split_sums(variance_sums(ps), first_fixed=8, later_fixed=1)
+    # one row per group; the widest SELECT list is over the tie sets: about 6 columns per product and
+    # per variable (its sums, their neighbours'), so the products are split with that cost each
+    from sqlmatch import columns
+
+    per = 6
+    fixed = -(-(per * len(vs) + 12) // per)
+    variance_parts = split_sums(ps, first_fixed=fixed, later_fixed=fixed, limit=columns.MAX_SUMS_PER_QUERY // per)
     return out + ctx.query_parts(
             STEP,
             "nearest_neighbour_variance",
             reads=[ctx.display("nearest_neighbour_units" if ranked else "scores"), ctx.display("weighted_units")] + match_reads,
             purpose="Abadie-Imbens variance sums: squared matching weights (times each control is used) times conditional "
             "variances estimated by matching each unit to its nearest unit of the same group.",
-            parts=[dict(sums=part, head=k == 1) for k, part in enumerate(variance_parts, 1)],
+            parts=[dict(products=part, head=k == 1) for k, part in enumerate(variance_parts, 1)],
             variables=vs,
             scores_table=ctx.table("scores"),
             ranked_units=ctx.table("nearest_neighbour_units") if ranked else None,
