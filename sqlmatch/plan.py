@@ -812,18 +812,23 @@ def outcome_steps(ctx: PlanContext, outcomes, per_match: bool) -> list[Step]:
             )
         )
     design = regression_design(numeric)
-    steps.append(
-        ctx.query_step(
-            "outcome_regression",
-            "outcome_regression",
-            reads=weighted,
-            purpose="Weighted regression of each outcome on treatment and the numeric features among matched units, as sums (X'WX, X'Wy, y'Wy) for the sensitivity analysis.",
-            features=numeric,
-            design=design,
-            design_pairs=upper_pairs(len(design)),
-            outcomes=outcomes,
-            weighted_table=ctx.table("weighted_units"),
-        )
+    # the sums in the order the one query has them; split under PostgreSQL's SELECT-list limit
+    # (one row, so later parts repeat nothing; part 1 also has the three weight totals)
+    sums = [dict(kind="xtx", i=i, j=j) for i, j in upper_pairs(len(design))]
+    sums += [dict(kind="feature_centre", k=k, name=f) for k, f in enumerate(numeric)]
+    for k, o in enumerate(outcomes):
+        sums += [dict(kind="xty", k=k, i=d.index, name=o.name) for d in design]
+        sums += [dict(kind=kind, k=k, name=o.name) for kind in ("yty", "tyy", "outcome_centre")]
+    steps += ctx.query_parts(
+        "outcome_regression",
+        "outcome_regression",
+        reads=weighted,
+        purpose="Weighted regression of each outcome on treatment and the numeric features among matched units, as sums (X'WX, X'Wy, y'Wy) for the sensitivity analysis.",
+        parts=[dict(sums=part, head=k == 1) for k, part in enumerate(split_sums(sums, first_fixed=3), 1)],
+        features=numeric,
+        design=design,
+        outcomes=outcomes,
+        weighted_table=ctx.table("weighted_units"),
     )
     method = method_for(spec.matching.method)
     if method.outcome_steps is not None:

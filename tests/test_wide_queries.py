@@ -409,6 +409,49 @@ def test_nearest_neighbour_pair_sums_split_give_the_whole_querys_effects(demo_db
         assert b.std_error == pytest.approx(a.std_error, rel=1e-9)
 
 
+def test_outcome_regression_split_into_parts_gives_the_same_row_and_sensitivity(demo_db):
+    """outcome_regression (one row: X'WX over the design, X'Wy, y'Wy per outcome) split by lowering the
+    limit to 40 entries: several parts, every part's SELECT lists (CTEs included) within it, the merged row
+    equal to the one query's entry for entry (DuckDB computes both), and a run with the parts gives the
+    same robustness values and E-values as a run without."""
+    from sqlmatch.engines.base import merged
+
+    raw = tomllib.loads(DEMO_SPEC.read_text(encoding="utf-8"))
+    raw["study"]["database"] = str(demo_db)
+    spec = parse_spec(raw)
+    whole_run = api.run(spec)
+    whole = build_plan(spec, "duckdb").step("outcome_regression")
+    limit = columns.MAX_SUMS_PER_QUERY
+    columns.MAX_SUMS_PER_QUERY = 40
+    try:
+        split = build_plan(spec, "duckdb")
+        split_run = api.run(spec)
+    finally:
+        columns.MAX_SUMS_PER_QUERY = limit
+    parts = [s for s in split.steps if s.name == "outcome_regression" or s.part_of == "outcome_regression"]
+    queries = [q for s in parts for q in s.statements if not q.lstrip().upper().startswith("SET ")]
+    assert len(parts) > 1 and len(queries) == len(parts) and all(widest_select(q) <= 40 for q in queries)
+    (whole_query,) = [q for q in whole.statements if not q.lstrip().upper().startswith("SET ")]
+    assert select_width(whole_query) > 40
+    with DuckDBEngine(str(demo_db)) as engine:
+        one = engine.fetch(whole_query)
+        pieces = merged([engine.fetch(q) for q in queries], "outcome_regression")
+    assert list(pieces.columns) == list(one.columns)
+    for a, b in zip(one.rows[0], pieces.rows[0]):
+        # sums of centred columns are 0 up to summation order (about 1e-10 against sums of 1e6)
+        assert b == pytest.approx(a, rel=1e-9, abs=1e-6)
+    compared = 0
+    for a, b in zip(whole_run.effects, split_run.effects):
+        assert a.outcome == b.outcome
+        for key in ("robustness_value", "partial_r2", "e_value"):
+            x, y = a.sensitivity.get(key), b.sensitivity.get(key)
+            assert (x is None) == (y is None), key
+            if x is not None:
+                assert y == pytest.approx(x, rel=1e-9), key
+                compared += 1
+    assert compared >= 2 * len(whole_run.effects)  # the figures exist, so the comparison can fail
+
+
 def test_outcome_strata_split_into_parts_gives_the_same_rows_and_effects(demo_db):
     """outcome_strata (one row per stratum and group) with the adjustment's sums of the features and
     their squares, split by lowering the limit to 60 entries: every part within it, the merged rows
