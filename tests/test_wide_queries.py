@@ -39,6 +39,16 @@ def select_width(sql: str) -> int:
     return len(sqlglot.parse_one(sql, read="postgres").selects)
 
 
+def plan_and_run_under(spec, limit: int):
+    """The study's plan (before the fit) and a full run with the SELECT-list limit lowered to `limit`."""
+    saved = columns.MAX_SUMS_PER_QUERY
+    columns.MAX_SUMS_PER_QUERY = limit
+    try:
+        return build_plan(spec, "duckdb"), api.run(spec)
+    finally:
+        columns.MAX_SUMS_PER_QUERY = saved
+
+
 def widest_select(sql: str) -> int:
     """The most entries of any SELECT list in the statement, its CTEs' included, with `alias.*` of a
     CTE counted as that CTE's entries (PostgreSQL's 1,664 limit applies to the expanded list)."""
@@ -421,13 +431,7 @@ def test_outcome_regression_split_into_parts_gives_the_same_row_and_sensitivity(
     spec = parse_spec(raw)
     whole_run = api.run(spec)
     whole = build_plan(spec, "duckdb").step("outcome_regression")
-    limit = columns.MAX_SUMS_PER_QUERY
-    columns.MAX_SUMS_PER_QUERY = 40
-    try:
-        split = build_plan(spec, "duckdb")
-        split_run = api.run(spec)
-    finally:
-        columns.MAX_SUMS_PER_QUERY = limit
+    split, split_run = plan_and_run_under(spec, 40)
     parts = [s for s in split.steps if s.name == "outcome_regression" or s.part_of == "outcome_regression"]
     queries = [q for s in parts for q in s.statements if not q.lstrip().upper().startswith("SET ")]
     assert len(parts) > 1 and len(queries) == len(parts) and all(widest_select(q) <= 40 for q in queries)
@@ -464,13 +468,7 @@ def test_outcome_strata_split_into_parts_gives_the_same_rows_and_effects(demo_db
     raw["effect"] = {"adjustment_slopes": "group", "adjustment_terms": "squares"}
     spec = parse_spec(raw)
     whole = build_plan(spec, "duckdb")
-    limit = columns.MAX_SUMS_PER_QUERY
-    columns.MAX_SUMS_PER_QUERY = 60
-    try:
-        split = build_plan(spec, "duckdb")
-        split_run = api.run(spec)
-    finally:
-        columns.MAX_SUMS_PER_QUERY = limit
+    split, split_run = plan_and_run_under(spec, 60)
     parts = [s for s in split.steps if s.name == "outcome_strata" or s.part_of == "outcome_strata"]
     assert len(parts) > 2 and all(select_width(s.statements[0]) <= 60 for s in parts)
     assert [s.name for s in parts[1:]] == [f"outcome_strata__part{k}" for k in range(2, len(parts) + 1)]
