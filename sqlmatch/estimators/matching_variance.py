@@ -7,8 +7,10 @@ features (the effect on the treated given their features, as the stratified vari
 K_M(i) the number of times control i is used, M the matches per treated unit (a control's summed
 matching weight is K_M(i) / M, so the factor is the squared weight, 1 for a treated unit), and
 sigma2 estimated by matching within the unit's group: sigma2_i = J / (J + 1) (y_i - mean of its J
-nearest same-group units)^2, J = 1 here. Treated and control parts are returned separately (they
-are independent given the features), so a lift can use them as it uses the stratified ones.
+nearest same-group units)^2, J = 1 here, averaged over every unit as near as the nearest (units tied
+on the score share the role; the SQL sums it per tie set). Treated and control parts are returned
+separately; the relative lift takes the variance of its own linearised quantity instead (effects.py),
+since the population form couples the two means.
 
 A ratio outcome R = sum y / sum x per group is linearised: u_i = (y_i - R x_i) / xbar, whose
 neighbour difference is (dy - R dx) / xbar, so sum w^2 du^2 / 2 = (S_yy - 2 R S_xy + R^2 S_xx) / xbar^2

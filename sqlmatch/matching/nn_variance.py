@@ -2,16 +2,18 @@
 (2006, Econometrica 74(1):235, section 4) variance of the estimator of the population effect on the
 treated, which counts how often each control is used (see sql_templates/nearest_neighbour_variance.sql.j2,
 nearest_neighbour_pair_sums.sql.j2 and estimators/matching_variance.py). `matching_variance` reads
-the units with a score and <study>_weighted_units (on the score distance, the grouped search, the
-units come from <study>_nearest_neighbour_units, whose integer score_rank orders them as the score
-at 10 decimal places and the unit key do: a sort on integers, not on the decimal score; otherwise
-from <study>_scores), and the matches table for each control's sum of squared shares;
-`pair_sums` reads the matches table and <study>_weighted_units for each treated unit's matched
-mean. Both return a fixed number of rows (two, one)."""
+the units with a score (on the score distance, the grouped search, from <study>_nearest_neighbour_units
+and its score_compared; otherwise from <study>_scores), <study>_weighted_units and the matches table
+(each control's sum of squared shares); it groups the units into tie sets (group, block, score) and
+sorts those, not the units. `pair_sums` reads the matches table and <study>_weighted_units for each
+treated unit's matched mean. Neither holds a row per (treated, control) pair on the score distance
+(_nearest_neighbour_links.sql.j2). Both return a fixed number of rows (two, one)."""
 
 from __future__ import annotations
 
 from dataclasses import dataclass
+
+from sqlmatch import columns
 
 STEP = "matching_variance"
 BIAS_STEP = "bias_sums"
@@ -135,29 +137,25 @@ def steps(ctx, outcomes) -> list:
         units_table=ctx.table("nearest_neighbour_units"),
     )
     match_reads = [ctx.display("nearest_neighbour_matches")] + ([ctx.display("nearest_neighbour_units")] if ranked else [])
-    from sqlmatch.columns import split_sums
-
     # four sums per product: split under PostgreSQL's SELECT-list limit (part 1 also has the count and t, c sums)
-    parts = split_sums(pair_sums(ps), first_fixed=1 + 2 * len(vs))
+    parts = columns.split_sums(pair_sums(ps), first_fixed=1 + 2 * len(vs))
     # one row per group; the widest SELECT list is over the tie sets: about 6 columns per product and
     # per variable (its sums, their neighbours'), so the products are split with that cost each
-    from sqlmatch import columns
-
     per = 6
     fixed = -(-(per * len(vs) + 12) // per)
-    variance_parts = split_sums(ps, first_fixed=fixed, later_fixed=fixed, limit=columns.MAX_SUMS_PER_QUERY // per)
+    variance_parts = columns.split_sums(ps, first_fixed=fixed, later_fixed=fixed, limit=columns.MAX_SUMS_PER_QUERY // per)
     return out + ctx.query_parts(
-            STEP,
-            "nearest_neighbour_variance",
-            reads=[ctx.display("nearest_neighbour_units" if ranked else "scores"), ctx.display("weighted_units")] + match_reads,
-            purpose="Abadie-Imbens variance sums: squared matching weights (times each control is used) times conditional "
-            "variances estimated by matching each unit to its nearest unit of the same group.",
-            parts=[dict(products=part, head=k == 1) for k, part in enumerate(variance_parts, 1)],
-            variables=vs,
-            scores_table=ctx.table("scores"),
-            ranked_units=ctx.table("nearest_neighbour_units") if ranked else None,
-            weighted_table=ctx.table("weighted_units"),
-            **links,
+        STEP,
+        "nearest_neighbour_variance",
+        reads=list(dict.fromkeys([ctx.display("nearest_neighbour_units" if ranked else "scores"), ctx.display("weighted_units")] + match_reads)),
+        purpose="Abadie-Imbens variance sums: squared matching weights (times each control is used) times conditional "
+        "variances estimated from each unit's nearest units of the same group (tied ones averaged), summed per tie set.",
+        parts=[dict(products=part, head=k == 1) for k, part in enumerate(variance_parts, 1)],
+        variables=vs,
+        scores_table=ctx.table("scores"),
+        ranked_units=ctx.table("nearest_neighbour_units") if ranked else None,
+        weighted_table=ctx.table("weighted_units"),
+        **links,
     ) + ctx.query_parts(
         PAIR_STEP,
         "nearest_neighbour_pair_sums",

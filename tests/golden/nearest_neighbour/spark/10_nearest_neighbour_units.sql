@@ -34,10 +34,6 @@ CREATE TABLE `sqlmatch`.annual_pass_nearest_neighbour_units__building AS
    at or below its own; each control then takes its group's index by an equality join. So the one sort
    covers the treated units and the distinct control scores, not every unit. The grouped search reads
    nothing else of the score order (no score_position, no controls_through here).
-   score_rank: an integer that orders each group's units of a block as (score_compared, unit key) does:
-   control_group for a control (then the key), the treated unit's place in the sort above for a treated
-   unit (a ROW_NUMBER over the same window, so no second sort); matching_variance sorts by it, not by the
-   decimal score.
 */
 WITH scored AS (
   SELECT
@@ -90,8 +86,7 @@ WITH scored AS (
       PARTITION BY m.age_band
       ORDER BY m.score_compared, m.treated, m.unit_key
       ROWS BETWEEN UNBOUNDED PRECEDING AND CURRENT ROW
-    ) AS BIGINT) AS control_group,
-    CAST(ROW_NUMBER() OVER (PARTITION BY m.age_band ORDER BY m.score_compared, m.treated, m.unit_key) AS BIGINT) AS mark_position
+    ) AS BIGINT) AS control_group
   FROM marks AS m
 )
 SELECT
@@ -101,8 +96,7 @@ SELECT
   r.score,
   r.score_compared,
   r.score_bin,
-  r.control_group,
-  r.mark_position AS score_rank
+  r.control_group
 FROM ranked AS r
 WHERE
   r.treated = 1
@@ -114,8 +108,7 @@ SELECT
   c.score,
   c.score_compared,
   c.score_bin,
-  r.control_group,
-  r.control_group AS score_rank
+  r.control_group
 FROM scored AS c
 INNER JOIN ranked AS r
   ON r.treated = 0 AND r.score_compared = c.score_compared AND r.age_band = c.age_band

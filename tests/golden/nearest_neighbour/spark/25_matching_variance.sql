@@ -1,7 +1,7 @@
 -- sqlmatch study 'annual_pass', step 25: matching_variance (spark)
--- Abadie-Imbens variance sums: squared matching weights (times each control is used) times conditional variances estimated by matching each unit to its nearest unit of the same group.
+-- Abadie-Imbens variance sums: squared matching weights (times each control is used) times conditional variances estimated from each unit's nearest units of the same group (tied ones averaged), summed per tie set.
 -- kind: returns aggregates to sqlmatch
--- reads: sqlmatch.annual_pass_nearest_neighbour_units, sqlmatch.annual_pass_weighted_units, sqlmatch.annual_pass_nearest_neighbour_matches, sqlmatch.annual_pass_nearest_neighbour_units
+-- reads: sqlmatch.annual_pass_nearest_neighbour_units, sqlmatch.annual_pass_weighted_units, sqlmatch.annual_pass_nearest_neighbour_matches
 -- time zone: the first statement sets this session's time zone to UTC (it stays so for the rest of the session)
 
 SET spark.sql.session.timeZone = UTC;
@@ -21,8 +21,8 @@ SET spark.sql.session.timeZone = UTC;
    How: the units are grouped into tie sets (group, block, score), one row each with the sums over
    its units of v_a and v_a v_b, unweighted and weighted by wt = m (1 for a matched unit, else 0),
    w^2 and share2; a window over the tie sets (not over the units) gives each its neighbour set S
-   (itself when it holds two or more units, else the nearer adjacent one or both). With n_S units in S and A, B,
-   AB its sums of v_a, v_b, v_a v_b, a tie set's sum over its units of wt sigma2_ab is
+   (itself when it holds two or more units, else the nearer adjacent one or both). With n_S units
+   in S and A, B, AB its sums of v_a, v_b, v_a v_b, a tie set's sum over its units of wt sigma2_ab is
      (n_S sum wt v_a v_b - B sum wt v_a - A sum wt v_b + AB sum wt) / (2 q),
    q = n_S - 1 when S is the set itself, n_S otherwise (the unit's own term is 0). These are summed
    weighted by w^2 and share2 over the matched units, and by m over the matched units that have a
